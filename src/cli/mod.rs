@@ -1,0 +1,371 @@
+//! The command line: `check`, `fit`, `simulate`. Only this module prints or exits.
+//!
+//! Exit status: 0 success, 2 bad spec, data or usage, 1 any other failure.
+
+use crate::data::Dataset;
+use crate::error::{Diagnostic, Error, Result};
+use crate::fit::{self, FitResult, PreparedPlacement};
+use crate::report::{self, Manifest, RunFiles};
+use crate::spec::{self, Study};
+use clap::{Parser, Subcommand};
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+const EXAMPLES: &str = "\
+Examples:
+  cohortmix check configs/demo.toml       validate the spec against its data, show the plan
+  cohortmix fit configs/demo.toml         fit every placement and cluster count
+  cohortmix simulate demo-data/respiratory-truth.toml
+                                          write data drawn from a stated truth
+
+Exit status: 0 success, 2 bad spec, data or command line, 1 other failure.";
+
+/// Mixture-of-experts cluster analysis with covariates in the gating network, the
+/// component models, or both.
+#[derive(Debug, Parser)]
+#[command(name = "cohortmix", version, about, long_about = None, after_help = EXAMPLES)]
+pub struct Cli {
+    /// Worker threads (default: all cores). Results do not depend on it.
+    #[arg(long, global = true, value_name = "N")]
+    pub threads: Option<usize>,
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// Subcommands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Validate a study spec against its data and print the plan: models to fit, rows used
+    /// and excluded.
+    #[command(after_help = "Example:\n  cohortmix check configs/demo.toml")]
+    Check {
+        /// The study spec (TOML).
+        spec: PathBuf,
+    },
+    /// Fit every placement × cluster count of a study spec and write the run folder.
+    #[command(
+        after_help = "Example:\n  cohortmix fit configs/demo.toml --out runs/demo\n\n\
+The run folder gets results.json, models.csv, memberships.csv and manifest.json.\n\
+Default folder: [study].output in the spec, else runs/<spec name> here."
+    )]
+    Fit {
+        /// The study spec (TOML).
+        spec: PathBuf,
+        /// Run folder (overrides [study].output).
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+    },
+    /// Write a CSV of data drawn from the truth a truth spec states (seeded).
+    #[command(
+        after_help = "Example:\n  cohortmix simulate demo-data/respiratory-truth.toml\n\n\
+The truth spec format is described in docs/simulate.md."
+    )]
+    Simulate {
+        /// The truth spec (TOML).
+        spec: PathBuf,
+        /// Output CSV (overrides [simulation].output).
+        #[arg(long, value_name = "FILE")]
+        out: Option<PathBuf>,
+    },
+}
+
+/// Run the program with the process arguments; returns the exit status.
+pub fn main() -> i32 {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let code = if e.use_stderr() { 2 } else { 0 };
+            let _ = e.print();
+            return code;
+        }
+    };
+    match run(cli) {
+        Ok(()) => 0,
+        Err(e) => {
+            let mut err = std::io::stderr().lock();
+            let _ = write!(err, "{e}");
+            e.exit_code()
+        }
+    }
+}
+
+/// Run a parsed command line.
+pub fn run(cli: Cli) -> Result<()> {
+    if let Some(n) = cli.threads {
+        if n == 0 {
+            return Err(Error::input(Diagnostic::new(
+                "--threads must be at least 1",
+            )));
+        }
+        // Fails only if a pool exists already (a second call in one process); harmless.
+        let _ = rayon::ThreadPoolBuilder::new()
+            .num_threads(n)
+            .build_global();
+    }
+    match cli.command {
+        Command::Check { spec } => check(&spec),
+        Command::Fit { spec, out } => fit_command(&spec, out.as_deref()),
+        Command::Simulate { spec, out } => simulate_command(&spec, out.as_deref()),
+    }
+}
+
+/// Read spec and data, build designs, and check there are enough rows for every fit.
+pub fn load_study(spec_path: &Path) -> Result<(Study, Dataset, Vec<PreparedPlacement>)> {
+    let study = spec::load(spec_path)?;
+    let data = crate::data::load(&study)?;
+    let prepared = fit::prepare(&study, &data)?;
+    check_rows(&study, &data, &prepared)?;
+    Ok((study, data, prepared))
+}
+
+fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> Result<()> {
+    for pp in prepared {
+        let fd = fit::fit_data(data, pp);
+        for &g in &pp.placement.clusters {
+            let k = fit::initial_model(&fd, &pp.placement, g, 0.0).n_params();
+            if data.n() <= k {
+                return Err(Error::input(
+                    study
+                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters has {k} parameters", data.n(), pp.placement.name))
+                        .help("fit fewer clusters, use fewer covariates, or use more data (the rows must outnumber the parameters)"),
+                ));
+            }
+        }
+    }
+    Ok(())
+}
+
+fn check(spec_path: &Path) -> Result<()> {
+    let (study, data, prepared) = load_study(spec_path)?;
+    let mut out = std::io::stdout().lock();
+    let _ = writeln!(
+        out,
+        "spec {} is valid: {}",
+        study.spec_path.display(),
+        study.title
+    );
+    let _ = writeln!(
+        out,
+        "data {}: {} rows read, {} used, {} excluded for missing values",
+        data.path.display(),
+        data.rows_read,
+        data.n(),
+        data.rows_excluded
+    );
+    for (col, m) in &data.missing_by_column {
+        if *m > 0 {
+            let _ = writeln!(out, "  {col}: {m} missing");
+        }
+    }
+    let _ = writeln!(
+        out,
+        "indicators ({}): {}",
+        study.family.word(),
+        data.indicator_names.join(", ")
+    );
+    if let Some(w) = &study.weights {
+        let _ = writeln!(out, "case weights: {}", w.name);
+    }
+    let _ = writeln!(out, "plan:");
+    let mut total_fits = 0;
+    for pp in &prepared {
+        let fd = fit::fit_data(&data, pp);
+        let terms = |d: &crate::data::Design| {
+            d.terms
+                .iter()
+                .skip(1)
+                .map(|t| t.name.clone())
+                .collect::<Vec<_>>()
+                .join(", ")
+        };
+        let _ = writeln!(out, "  placement '{}'", pp.placement.name);
+        let _ = writeln!(out, "    gating terms:    {}", or_none(&terms(&pp.gating)));
+        let _ = writeln!(
+            out,
+            "    component terms: {}",
+            or_none(&terms(&pp.components))
+        );
+        for &g in &pp.placement.clusters {
+            let k = fit::initial_model(&fd, &pp.placement, g, 0.0).n_params();
+            let starts = if g == 1 { 1 } else { study.search.starts };
+            let _ = writeln!(
+                out,
+                "    {g} cluster{}: {k} parameters, {starts} start{}",
+                plural(g),
+                plural(starts)
+            );
+            total_fits += 1;
+        }
+    }
+    let _ = writeln!(out, "{total_fits} fits in all");
+    Ok(())
+}
+
+fn or_none(s: &str) -> &str {
+    if s.is_empty() {
+        "(none)"
+    } else {
+        s
+    }
+}
+
+fn plural(n: usize) -> &'static str {
+    if n == 1 {
+        ""
+    } else {
+        "s"
+    }
+}
+
+/// The run folder for a spec: `--out`, else `[study].output`, else `runs/<spec stem>`.
+pub fn run_folder(study: &Study, out: Option<&Path>) -> PathBuf {
+    if let Some(o) = out {
+        return o.to_path_buf();
+    }
+    if let Some(o) = &study.output {
+        return o.clone();
+    }
+    let stem = study
+        .spec_path
+        .file_stem()
+        .map_or_else(|| "study".into(), |s| s.to_string_lossy().to_string());
+    PathBuf::from("runs").join(stem)
+}
+
+fn fit_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
+    let t0 = Instant::now();
+    let (study, data, prepared) = load_study(spec_path)?;
+    let folder = run_folder(&study, out);
+    let seconds_reading = t0.elapsed().as_secs_f64();
+    eprintln!(
+        "{}: {} rows used ({} excluded for missing values)",
+        study.title,
+        data.n(),
+        data.rows_excluded
+    );
+    let t1 = Instant::now();
+    let fits = fit::fit_grid(&study, &data, &prepared, |done, total, r| {
+        eprintln!("[{done}/{total}] {}", progress_line(r));
+    });
+    let seconds_fitting = t1.elapsed().as_secs_f64();
+    let results = report::results(&study, &data, &prepared, &fits);
+    let json = serde_json::to_string_pretty(&results)
+        .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode results: {e}"))))?;
+    let manifest = Manifest {
+        version: env!("CARGO_PKG_VERSION"),
+        spec_sha256: crate::data::sha256_hex(study.spec_text.as_bytes()),
+        data_sha256: data.sha256.clone(),
+        spec_file: study.spec_path.display().to_string(),
+        data_file: study.data_path.display().to_string(),
+        threads: rayon::current_num_threads(),
+        fits: fits.len(),
+        seconds_reading,
+        seconds_fitting,
+    };
+    let manifest = serde_json::to_string_pretty(&manifest)
+        .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode manifest: {e}"))))?;
+    let mut files = RunFiles::default();
+    files.add("results.json", json + "\n");
+    files.add("models.csv", report::models_csv(&results));
+    files.add(
+        "memberships.csv",
+        report::memberships_csv(&data, &fits, &results.chosen),
+    );
+    files.add("manifest.json", manifest + "\n");
+    files.commit(&folder)?;
+    print_table(&results);
+    println!(
+        "wrote {} (results.json, models.csv, memberships.csv, manifest.json) in {:.1} s",
+        folder.display(),
+        t0.elapsed().as_secs_f64()
+    );
+    Ok(())
+}
+
+fn progress_line(r: &FitResult) -> String {
+    let t = r.termination();
+    match r.loglik() {
+        Some(l) => format!(
+            "'{}', {} cluster{}: loglik {:.3}, {} of {} starts reached the best, {}",
+            r.placement,
+            r.clusters,
+            plural(r.clusters),
+            l,
+            r.best.as_ref().map_or(0, |b| b.reaching),
+            r.starts.len(),
+            t.word()
+        ),
+        None => format!(
+            "'{}', {} clusters: no usable start ({})",
+            r.placement,
+            r.clusters,
+            t.reason().unwrap_or("")
+        ),
+    }
+}
+
+fn print_table(results: &report::Results) {
+    println!("BIC = -2 loglik + parameters x ln(rows); smaller is better");
+    println!(
+        "{:<36} {:>3} {:>14} {:>6} {:>14} {:>9}  status",
+        "placement", "G", "loglik", "params", "BIC", "best/all"
+    );
+    for f in &results.fits {
+        let chosen = results
+            .chosen
+            .iter()
+            .any(|c| c.placement == f.placement && c.clusters == f.clusters);
+        println!(
+            "{:<36} {:>3} {:>14} {:>6} {:>14} {:>9}  {}{}",
+            truncate(&f.placement, 36),
+            f.clusters,
+            f.loglik.map_or("-".into(), |v| format!("{v:.3}")),
+            f.parameters,
+            f.bic.map_or("-".into(), |v| format!("{v:.3}")),
+            format!("{}/{}", f.starts.reaching_best, f.starts.total),
+            f.status,
+            if chosen { "  <- lowest BIC" } else { "" }
+        );
+    }
+}
+
+fn truncate(s: &str, n: usize) -> String {
+    if s.chars().count() <= n {
+        s.to_string()
+    } else {
+        s.chars().take(n - 1).chain(std::iter::once('…')).collect()
+    }
+}
+
+fn simulate_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
+    let truth = crate::simulate::load(spec_path)?;
+    let sim = crate::simulate::generate(&truth);
+    let dest = out.map_or_else(|| truth.output.clone(), Path::to_path_buf);
+    let dir = dest
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
+    let name = dest.file_name().map_or_else(
+        || "simulated.csv".into(),
+        |n| n.to_string_lossy().to_string(),
+    );
+    let mut files = RunFiles::default();
+    files.add(&name, sim.csv);
+    files.commit(&dir)?;
+    let mut counts = vec![0usize; truth.clusters.len()];
+    for k in &sim.clusters {
+        counts[*k] += 1;
+    }
+    println!("wrote {} rows to {}", truth.rows, dest.display());
+    for (c, n) in truth.clusters.iter().zip(&counts) {
+        println!(
+            "  cluster '{}': {} rows ({:.1}%)",
+            c.name,
+            n,
+            100.0 * *n as f64 / truth.rows as f64
+        );
+    }
+    Ok(())
+}

@@ -1,0 +1,622 @@
+//! Data: reading the study CSV into typed columns, and building design matrices.
+//!
+//! [`load`] reads the CSV a [`Study`] names, checks every column the spec uses against the
+//! header (errors point back at the spec), parses each used column by its declared type,
+//! and drops rows that miss a value the fits need (an indicator, a covariate, the weight),
+//! counting them by column. A value that cannot be read is an error with its line and
+//! column. [`Design`] turns covariate columns into a matrix with an intercept and
+//! treatment-coded categoricals, standardising continuous columns for fitting and mapping
+//! coefficients back to the original scale.
+
+mod design;
+
+pub use design::{Design, Term};
+
+use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
+use crate::spec::{read_text, ColumnRef, Study, VariableType};
+use sha2::{Digest, Sha256};
+use std::collections::{BTreeMap, HashMap};
+use std::path::{Path, PathBuf};
+
+/// Text that counts as a missing value (besides an empty cell).
+pub const MISSING_WORD: &str = "NA";
+
+/// A used column after parsing, over the rows kept.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Column {
+    /// Continuous, binary (0/1) or count values.
+    Numeric {
+        /// Declared type.
+        kind: VariableType,
+        /// Values.
+        values: Vec<f64>,
+    },
+    /// Categorical levels, coded 0..levels.len().
+    Categorical {
+        /// Levels in order; `levels[reference]` is the reference.
+        levels: Vec<String>,
+        /// Index of the reference level.
+        reference: usize,
+        /// Level index per row.
+        codes: Vec<u32>,
+    },
+}
+
+/// The rows a study uses, ready for design matrices.
+#[derive(Debug, Clone)]
+pub struct Dataset {
+    /// Data file as resolved from the spec.
+    pub path: PathBuf,
+    /// SHA-256 of the file's bytes, in hex.
+    pub sha256: String,
+    /// Data rows in the file (header excluded).
+    pub rows_read: usize,
+    /// Rows excluded because a needed value was missing.
+    pub rows_excluded: usize,
+    /// For each needed column, how many rows missed it (a row can count under several).
+    pub missing_by_column: Vec<(String, usize)>,
+    /// Row identifiers of the rows kept (the id column, or the 1-based data row number).
+    pub ids: Vec<String>,
+    /// Case weights of the rows kept (1 without a weight column).
+    pub weights: Vec<f64>,
+    /// Indicator names.
+    pub indicator_names: Vec<String>,
+    /// Indicators, row-major: `y[i * d + j]`.
+    pub y: Vec<f64>,
+    /// Covariate columns by name.
+    pub columns: BTreeMap<String, Column>,
+}
+
+impl Dataset {
+    /// Rows kept.
+    pub fn n(&self) -> usize {
+        self.ids.len()
+    }
+
+    /// Number of indicators.
+    pub fn d(&self) -> usize {
+        self.indicator_names.len()
+    }
+
+    /// Design matrix for a list of covariates (intercept first).
+    pub fn design(&self, covariates: &[String]) -> std::result::Result<Design, String> {
+        Design::build(self, covariates)
+    }
+}
+
+struct Raw<'a> {
+    path: &'a Path,
+    text: &'a str,
+    line_starts: Vec<usize>,
+}
+
+impl Raw<'_> {
+    fn line_text(&self, line: usize) -> String {
+        let start = self
+            .line_starts
+            .get(line - 1)
+            .copied()
+            .unwrap_or(self.text.len());
+        let end = self
+            .line_starts
+            .get(line)
+            .map_or(self.text.len(), |e| e.saturating_sub(1));
+        self.text[start..end.max(start)]
+            .trim_end_matches('\r')
+            .to_string()
+    }
+
+    /// Location of field `field` (0-based) on 1-based `line`.
+    fn field_location(&self, line: usize, field: usize) -> Location {
+        let text = self.line_text(line);
+        let (col, width) = field_offset(&text, field);
+        let mut loc = Location::at(self.path, line, col, Some(text));
+        loc.width = width;
+        loc
+    }
+}
+
+/// 1-based character column and width of a field in a CSV line (quote-aware).
+fn field_offset(line: &str, field: usize) -> (usize, usize) {
+    let mut idx = 0;
+    let mut in_quotes = false;
+    let mut start = 0;
+    let chars: Vec<char> = line.chars().collect();
+    for (pos, &c) in chars.iter().enumerate() {
+        if c == '"' {
+            in_quotes = !in_quotes;
+        } else if c == ',' && !in_quotes {
+            if idx == field {
+                return (start + 1, (pos - start).max(1));
+            }
+            idx += 1;
+            start = pos + 1;
+        }
+    }
+    if idx == field {
+        (start + 1, (chars.len() - start).max(1))
+    } else {
+        (chars.len() + 1, 1)
+    }
+}
+
+fn is_missing(s: &str) -> bool {
+    s.is_empty() || s == MISSING_WORD
+}
+
+/// Role of a needed column.
+#[derive(Clone, Copy, PartialEq)]
+enum Role {
+    Indicator,
+    Covariate,
+    Weight,
+    Id,
+}
+
+struct Needed {
+    col: ColumnRef,
+    index: usize,
+    role: Role,
+    kind: VariableType,
+}
+
+/// Read the CSV a study names and keep the rows every fit can use.
+pub fn load(study: &Study) -> Result<Dataset> {
+    let path = study.data_path.as_path();
+    if !path.exists() {
+        return Err(Error::input(
+            study
+                .error_at(
+                    study.data_span.clone(),
+                    format!("the data file {} does not exist", path.display()),
+                )
+                .help("paths in a spec are relative to the spec file"),
+        ));
+    }
+    let text = read_text(path, "data")?;
+    let text = text.strip_prefix('\u{feff}').unwrap_or(&text).to_string();
+    let sha256 = sha256_hex(text.as_bytes());
+    let mut line_starts = vec![0];
+    line_starts.extend(text.match_indices('\n').map(|(i, _)| i + 1));
+    let raw = Raw {
+        path,
+        text: &text,
+        line_starts,
+    };
+
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .trim(csv::Trim::All)
+        .from_reader(text.as_bytes());
+    let header: Vec<String> = reader
+        .headers()
+        .map_err(|e| csv_error(&raw, &e))?
+        .iter()
+        .map(str::to_string)
+        .collect();
+    if header.iter().all(String::is_empty) {
+        return Err(Error::input(
+            Diagnostic::new(format!("the data file {} is empty", path.display()))
+                .help("the first line must name the columns, e.g. worker_id,age,sex,..."),
+        ));
+    }
+    for (i, h) in header.iter().enumerate() {
+        if header[..i].contains(h) {
+            return Err(Error::input(
+                Diagnostic::new(format!("column name '{h}' appears twice in the header"))
+                    .at(raw.field_location(1, i))
+                    .help("give every column a different name"),
+            ));
+        }
+    }
+
+    let needed = needed_columns(study, &header)?;
+    let mut cells: Vec<Vec<Option<String>>> = vec![Vec::new(); needed.len()];
+    let mut lines: Vec<usize> = Vec::new();
+    let mut record = csv::StringRecord::new();
+    loop {
+        match reader.read_record(&mut record) {
+            Ok(false) => break,
+            Ok(true) => {}
+            Err(e) => return Err(csv_error(&raw, &e)),
+        }
+        let line = record.position().map_or(0, |p| p.line() as usize);
+        if record.len() == 1 && record.get(0) == Some("") && header.len() > 1 {
+            continue; // a blank line
+        }
+        lines.push(line);
+        for (k, nd) in needed.iter().enumerate() {
+            let v = record.get(nd.index).unwrap_or("");
+            cells[k].push((!is_missing(v)).then(|| v.to_string()));
+        }
+    }
+    let rows_read = lines.len();
+    if rows_read == 0 {
+        return Err(Error::input(
+            Diagnostic::new(format!(
+                "the data file {} has a header but no data rows",
+                path.display()
+            ))
+            .help("add at least one row of data below the header"),
+        ));
+    }
+
+    // Which rows are complete for every needed column.
+    let mut keep = vec![true; rows_read];
+    let mut missing_by_column = Vec::new();
+    for (k, nd) in needed.iter().enumerate() {
+        let missing = cells[k].iter().filter(|c| c.is_none()).count();
+        if missing == rows_read && nd.role != Role::Id {
+            return Err(Error::input(
+                study
+                    .error_at(
+                        nd.col.span.clone(),
+                        format!(
+                            "column '{}' has no values: every row is empty or {MISSING_WORD}",
+                            nd.col.name
+                        ),
+                    )
+                    .help("check the column in the data file, or leave it out of the spec"),
+            ));
+        }
+        if nd.role != Role::Id {
+            missing_by_column.push((nd.col.name.clone(), missing));
+            for (i, c) in cells[k].iter().enumerate() {
+                if c.is_none() {
+                    keep[i] = false;
+                }
+            }
+        }
+    }
+    let rows_used = keep.iter().filter(|k| **k).count();
+    if rows_used == 0 {
+        return Err(Error::input(
+            Diagnostic::new(format!(
+                "no row of {} has every value the fits need",
+                path.display()
+            ))
+            .help(describe_missing(&missing_by_column)),
+        ));
+    }
+
+    let mut ids = Vec::with_capacity(rows_used);
+    let mut weights = vec![1.0; rows_used];
+    let d = study.indicators.len();
+    let mut y = vec![0.0; rows_used * d];
+    let mut columns = BTreeMap::new();
+    let mut id_seen: HashMap<String, usize> = HashMap::new();
+    let id_k = needed.iter().position(|n| n.role == Role::Id);
+    for (i, line) in lines.iter().enumerate() {
+        if !keep[i] {
+            continue;
+        }
+        let id = match id_k.and_then(|k| cells[k][i].clone()) {
+            Some(v) => v,
+            None => (i + 1).to_string(),
+        };
+        if let Some(first) = id_seen.insert(id.clone(), *line) {
+            return Err(Error::input(
+                Diagnostic::new(format!(
+                    "id '{id}' appears twice (lines {first} and {line})"
+                ))
+                .at(raw.field_location(*line, needed[id_k.unwrap_or(0)].index))
+                .help("every row needs its own id; remove the duplicate row"),
+            ));
+        }
+        ids.push(id);
+    }
+    let mut ind_pos = 0;
+    for (k, nd) in needed.iter().enumerate() {
+        if nd.role == Role::Id {
+            continue;
+        }
+        let kept: Vec<(usize, &str)> = lines
+            .iter()
+            .zip(&cells[k])
+            .zip(&keep)
+            .filter(|(_, k)| **k)
+            .map(|((l, c), _)| (*l, c.as_deref().unwrap_or("")))
+            .collect();
+        let parsed = parse_column(&raw, study, nd, &kept)?;
+        match nd.role {
+            Role::Indicator => {
+                let Column::Numeric { values, .. } = &parsed else {
+                    unreachable!("indicators are numeric")
+                };
+                for (i, v) in values.iter().enumerate() {
+                    y[i * d + ind_pos] = *v;
+                }
+                ind_pos += 1;
+            }
+            Role::Weight => {
+                let Column::Numeric { values, .. } = parsed else {
+                    unreachable!("weights are numeric")
+                };
+                for ((l, _), w) in kept.iter().zip(&values) {
+                    if *w < 0.0 {
+                        return Err(Error::input(
+                            Diagnostic::new(format!(
+                                "weight {w} in column '{}' is negative",
+                                nd.col.name
+                            ))
+                            .at(raw.field_location(*l, nd.index))
+                            .help("case weights must be zero or positive"),
+                        ));
+                    }
+                }
+                if values.iter().all(|w| *w == 0.0) {
+                    return Err(Error::input(study.error_at(
+                        nd.col.span.clone(),
+                        format!("every weight in '{}' is zero", nd.col.name),
+                    )));
+                }
+                weights = values;
+            }
+            Role::Covariate => {
+                columns.insert(nd.col.name.clone(), parsed);
+            }
+            Role::Id => {}
+        }
+    }
+
+    Ok(Dataset {
+        path: path.to_path_buf(),
+        sha256,
+        rows_read,
+        rows_excluded: rows_read - rows_used,
+        missing_by_column,
+        ids,
+        weights,
+        indicator_names: study.indicators.iter().map(|c| c.name.clone()).collect(),
+        y,
+        columns,
+    })
+}
+
+fn describe_missing(m: &[(String, usize)]) -> String {
+    let parts: Vec<String> = m
+        .iter()
+        .filter(|(_, n)| *n > 0)
+        .map(|(c, n)| format!("{c}: {n} missing"))
+        .collect();
+    format!("missing values by column: {}", parts.join(", "))
+}
+
+fn needed_columns(study: &Study, header: &[String]) -> Result<Vec<Needed>> {
+    let mut out: Vec<Needed> = Vec::new();
+    let find = |c: &ColumnRef| -> Result<usize> {
+        header.iter().position(|h| *h == c.name).ok_or_else(|| {
+            let mut d = study.error_at(
+                c.span.clone(),
+                format!("unknown column '{}' in {}", c.name, c.key),
+            );
+            if let Some(s) = did_you_mean(&c.name, header.iter().map(String::as_str)) {
+                d = d.help(format!("did you mean '{s}'?"));
+            }
+            Error::input(d.help(format!("the data has: {}", list_preview(header))))
+        })
+    };
+    let mut add = |c: &ColumnRef, role: Role| -> Result<()> {
+        if out.iter().any(|n| n.col.name == c.name) {
+            return Ok(());
+        }
+        let index = find(c)?;
+        let kind = match role {
+            Role::Id => VariableType::Categorical { reference: None, levels: None },
+            Role::Weight => VariableType::Continuous,
+            _ => study.variable_type(&c.name).ok_or_else(|| {
+                Error::input(
+                    study
+                        .error_at(c.span.clone(), format!("covariate '{}' has no type in [variables]", c.name))
+                        .help(format!(
+                            "add {0} = \"continuous\" (or \"binary\", \"count\", {{ type = \"categorical\", reference = \"...\" }}) under [variables]",
+                            c.name
+                        )),
+                )
+            })?,
+        };
+        out.push(Needed {
+            col: c.clone(),
+            index,
+            role,
+            kind,
+        });
+        Ok(())
+    };
+    if let Some(id) = &study.id {
+        add(id, Role::Id)?;
+    }
+    if let Some(w) = &study.weights {
+        add(w, Role::Weight)?;
+    }
+    for c in &study.indicators {
+        add(c, Role::Indicator)?;
+    }
+    for c in study.all_covariates() {
+        add(c, Role::Covariate)?;
+    }
+    Ok(out)
+}
+
+fn list_preview(header: &[String]) -> String {
+    if header.len() <= 12 {
+        header.join(", ")
+    } else {
+        format!(
+            "{}, ... ({} columns)",
+            header[..12].join(", "),
+            header.len()
+        )
+    }
+}
+
+fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -> Result<Column> {
+    let name = &nd.col.name;
+    let bad = |line: usize, msg: String, help: String| -> Error {
+        Error::input(
+            Diagnostic::new(msg)
+                .at(raw.field_location(line, nd.index))
+                .help(help),
+        )
+    };
+    match &nd.kind {
+        VariableType::Categorical { reference, levels } => {
+            let mut found: Vec<String> = Vec::new();
+            for (_, v) in kept {
+                if !found.iter().any(|f| f == v) {
+                    found.push(v.to_string());
+                }
+            }
+            let order = match levels {
+                Some(ls) => {
+                    if let Some((l, v)) = kept.iter().find(|(_, v)| !ls.iter().any(|x| x == v)) {
+                        let mut h =
+                            format!("the levels declared in [variables] are: {}", ls.join(", "));
+                        if let Some(s) = did_you_mean(v, ls.iter().map(String::as_str)) {
+                            h = format!("did you mean '{s}'? {h}");
+                        }
+                        return Err(bad(*l, format!("'{v}' is not a level of '{name}'"), h));
+                    }
+                    ls.clone()
+                }
+                None => sort_levels(found.clone()),
+            };
+            let used: Vec<&String> = order.iter().filter(|l| found.contains(l)).collect();
+            if used.len() < 2 {
+                return Err(Error::input(
+                    study
+                        .error_at(nd.col.span.clone(), format!("categorical covariate '{name}' has only one level ('{}') in the rows used", used.first().map_or("", |s| s.as_str())))
+                        .help("a covariate needs at least two levels; leave it out"),
+                ));
+            }
+            let reference = match reference {
+                None => 0,
+                Some(r) => order.iter().position(|l| l == r).ok_or_else(|| {
+                    let (_, span) = &study.variables[name];
+                    Error::input(
+                        study
+                            .error_at(
+                                span.clone(),
+                                format!(
+                                    "reference level '{r}' of '{name}' does not occur in the data"
+                                ),
+                            )
+                            .help(format!("levels found: {}", order.join(", "))),
+                    )
+                })?,
+            };
+            let codes = kept
+                .iter()
+                .map(|(_, v)| order.iter().position(|l| l == v).unwrap_or(0) as u32)
+                .collect();
+            Ok(Column::Categorical {
+                levels: order,
+                reference,
+                codes,
+            })
+        }
+        kind => {
+            let mut values = Vec::with_capacity(kept.len());
+            for (line, v) in kept {
+                let x: f64 = v.parse().map_err(|_| {
+                    bad(*line, format!("'{v}' in column '{name}' is not a number"), format!("'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing", kind.word()))
+                })?;
+                if !x.is_finite() {
+                    return Err(bad(
+                        *line,
+                        format!("'{v}' in column '{name}' is not a finite number"),
+                        "write a finite number, or leave the cell empty if it is missing".into(),
+                    ));
+                }
+                match kind {
+                    VariableType::Binary if x != 0.0 && x != 1.0 => {
+                        return Err(bad(
+                            *line,
+                            format!("'{v}' in binary column '{name}' is not 0 or 1"),
+                            format!("code '{name}' as 0/1, or declare it categorical"),
+                        ));
+                    }
+                    VariableType::Count if x < 0.0 || x.fract() != 0.0 => {
+                        return Err(bad(*line, format!("'{v}' in count column '{name}' is not a whole number of zero or more"), "counts are 0, 1, 2, ...".into()));
+                    }
+                    _ => {}
+                }
+                values.push(x);
+            }
+            Ok(Column::Numeric {
+                kind: kind.clone(),
+                values,
+            })
+        }
+    }
+}
+
+/// Levels in natural order: numerically when every level is a number, else by text.
+fn sort_levels(mut levels: Vec<String>) -> Vec<String> {
+    if levels.iter().all(|l| l.parse::<f64>().is_ok()) {
+        levels.sort_by(|a, b| {
+            a.parse::<f64>()
+                .unwrap_or(0.0)
+                .total_cmp(&b.parse::<f64>().unwrap_or(0.0))
+        });
+    } else {
+        levels.sort();
+    }
+    levels
+}
+
+fn csv_error(raw: &Raw, e: &csv::Error) -> Error {
+    match e.kind() {
+        csv::ErrorKind::UnequalLengths {
+            pos,
+            expected_len,
+            len,
+        } => {
+            let line = pos.as_ref().map_or(0, |p| p.line() as usize);
+            Error::input(
+                Diagnostic::new(format!(
+                    "line {line} has {len} fields, but the header has {expected_len}"
+                ))
+                .at(Location::at(
+                    raw.path,
+                    line,
+                    1,
+                    Some(raw.line_text(line.max(1))),
+                ))
+                .help("every row needs one value per column; quote values that contain commas"),
+            )
+        }
+        _ => Error::input(Diagnostic::new(format!(
+            "cannot read {} as CSV: {e}",
+            raw.path.display()
+        ))),
+    }
+}
+
+/// SHA-256 of bytes, as lower-case hexadecimal.
+pub fn sha256_hex(bytes: &[u8]) -> String {
+    hex(&Sha256::digest(bytes))
+}
+
+/// Lower-case hexadecimal of bytes.
+pub fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn field_offsets_respect_quotes() {
+        assert_eq!(field_offset("a,bb,c", 1), (3, 2));
+        assert_eq!(field_offset("\"x,y\",z", 1), (7, 1));
+        assert_eq!(field_offset("a,b", 0), (1, 1));
+    }
+
+    #[test]
+    fn numeric_levels_sort_as_numbers() {
+        let v = sort_levels(vec!["10".into(), "9".into(), "2".into()]);
+        assert_eq!(v, vec!["2", "9", "10"]);
+    }
+}

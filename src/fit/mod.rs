@@ -1,0 +1,343 @@
+//! Fitting: the search grid over placements × cluster counts, many starts per fit.
+//!
+//! [`prepare`] builds the design matrices of every placement once (errors point at the
+//! placement in the spec). [`fit_cell`] runs all starts of one (placement, cluster count)
+//! in parallel, each with its own random stream, and keeps the best usable start; a start
+//! that degenerates is recorded with its reason and skipped. [`fit_grid`] does every cell.
+
+pub mod em;
+pub mod starts;
+
+use crate::data::{Dataset, Design};
+use crate::error::{Error, Result};
+use crate::model::family::{Components, CovarianceStructure, GaussianComponents};
+use crate::model::gating::Gating;
+use crate::model::{FitData, Model};
+use crate::rng::Stream;
+use crate::spec::{Placement, Proportions, Study};
+use em::{EmRun, EmSettings, Termination};
+use rayon::prelude::*;
+use starts::StartKind;
+
+/// Two log-likelihoods within this relative distance count as the same optimum.
+pub const SAME_OPTIMUM: f64 = 1e-6;
+
+/// A placement with its design matrices built.
+#[derive(Debug, Clone)]
+pub struct PreparedPlacement {
+    /// The placement as validated.
+    pub placement: Placement,
+    /// Gating design (intercept alone when the placement has no gating covariates).
+    pub gating: Design,
+    /// Component design.
+    pub components: Design,
+}
+
+/// Build the designs of every placement; a constant or collinear covariate set is an
+/// input error pointing at the placement.
+pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> {
+    study
+        .placements
+        .iter()
+        .map(|p| {
+            let design = |cols: &[crate::spec::ColumnRef]| -> Result<Design> {
+                let names: Vec<String> = cols.iter().map(|c| c.name.clone()).collect();
+                data.design(&names).map_err(|msg| {
+                    let span = cols.first().map(|c| c.span.clone()).unwrap_or(0..0);
+                    Error::input(study.error_at(span, format!("in placement '{}': {msg}", p.name)))
+                })
+            };
+            Ok(PreparedPlacement {
+                placement: p.clone(),
+                gating: design(&p.gating)?,
+                components: design(&p.components)?,
+            })
+        })
+        .collect()
+}
+
+/// What happened to one start.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct StartRecord {
+    /// 1-based start number.
+    pub start: usize,
+    /// How the start was made.
+    pub kind: StartKind,
+    /// Final log-likelihood (None when it degenerated).
+    pub loglik: Option<f64>,
+    /// EM iterations.
+    pub iterations: usize,
+    /// Why it stopped.
+    pub termination: Termination,
+}
+
+/// The best start of a fit and how often it was reached.
+#[derive(Debug, Clone)]
+pub struct BestFit {
+    /// The winning run (clusters ordered largest first).
+    pub run: EmRun,
+    /// 1-based start that produced it.
+    pub start: usize,
+    /// Starts whose log-likelihood is within [`SAME_OPTIMUM`] (relative) of the best.
+    pub reaching: usize,
+}
+
+/// One cell of the grid: a placement at one cluster count.
+#[derive(Debug, Clone)]
+pub struct FitResult {
+    /// Index of the placement in the spec.
+    pub placement_index: usize,
+    /// Placement name.
+    pub placement: String,
+    /// Cluster count.
+    pub clusters: usize,
+    /// Covariance structure of the Gaussian components.
+    pub structure: CovarianceStructure,
+    /// Free parameters.
+    pub n_params: usize,
+    /// Rows used (the n in BIC).
+    pub n_rows: usize,
+    /// Every start.
+    pub starts: Vec<StartRecord>,
+    /// The best usable start, if any.
+    pub best: Option<BestFit>,
+}
+
+impl FitResult {
+    /// How the fit ended: the best start's termination, or why every start failed.
+    pub fn termination(&self) -> Termination {
+        match &self.best {
+            Some(b) => b.run.termination.clone(),
+            None => {
+                let reason = self
+                    .starts
+                    .iter()
+                    .find_map(|s| s.termination.reason().map(str::to_string))
+                    .unwrap_or_else(|| "no start finished".to_string());
+                Termination::Degenerate(format!("every start failed; first reason: {reason}"))
+            }
+        }
+    }
+
+    /// Log-likelihood of the best start.
+    pub fn loglik(&self) -> Option<f64> {
+        self.best.as_ref().map(|b| b.run.loglik)
+    }
+
+    /// BIC = −2 loglik + k ln n (smaller is better).
+    pub fn bic(&self) -> Option<f64> {
+        self.loglik()
+            .map(|l| -2.0 * l + self.n_params as f64 * (self.n_rows as f64).ln())
+    }
+
+    /// AIC = −2 loglik + 2k (smaller is better).
+    pub fn aic(&self) -> Option<f64> {
+        self.loglik().map(|l| -2.0 * l + 2.0 * self.n_params as f64)
+    }
+
+    /// Cluster shares of the best fit (weighted posterior sums over the weight total).
+    pub fn shares(&self, weights: &[f64]) -> Option<Vec<f64>> {
+        let b = self.best.as_ref()?;
+        Some(cluster_shares(&b.run.tau, weights, self.clusters))
+    }
+}
+
+/// Weighted posterior shares per cluster.
+pub fn cluster_shares(tau: &[f64], weights: &[f64], g: usize) -> Vec<f64> {
+    let mut sums = vec![0.0; g];
+    for (row, c) in tau.chunks_exact(g).zip(weights) {
+        for (s, t) in sums.iter_mut().zip(row) {
+            *s += c * t;
+        }
+    }
+    let total: f64 = sums.iter().sum();
+    sums.iter().map(|s| s / total).collect()
+}
+
+/// The arrays of one placement over a dataset.
+pub fn fit_data<'a>(data: &'a Dataset, prepared: &'a PreparedPlacement) -> FitData<'a> {
+    FitData {
+        n: data.n(),
+        weights: &data.weights,
+        y: &data.y,
+        d: data.d(),
+        z: &prepared.components.x,
+        q: prepared.components.p(),
+        w: &prepared.gating.x,
+        p: prepared.gating.p(),
+    }
+}
+
+/// A model with the placement's structure and empty parameters.
+pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, ridge: f64) -> Model {
+    let gating = if g == 1 {
+        Gating::Equal { g: 1 }
+    } else {
+        match &placement.proportions {
+            Proportions::Free if fd.p > 1 => Gating::Logit {
+                g,
+                p: fd.p,
+                gamma: vec![0.0; (g - 1) * fd.p],
+                ridge,
+            },
+            Proportions::Free => Gating::Free {
+                log_pi: vec![-(g as f64).ln(); g],
+            },
+            Proportions::Equal => Gating::Equal { g },
+            Proportions::Fixed(v) => Gating::Fixed {
+                log_pi: v.iter().map(|x| x.ln()).collect(),
+            },
+        }
+    };
+    let components = Components::Gaussian(GaussianComponents::new(
+        fd,
+        g,
+        CovarianceStructure::Unconstrained,
+    ));
+    Model { gating, components }
+}
+
+/// Label of a start's random stream.
+fn stream_label(placement: &str, g: usize, start: usize) -> String {
+    format!("start|{placement}|{g}|{start}")
+}
+
+/// Fit one placement at one cluster count from `starts` starts.
+pub fn fit_cell(
+    study: &Study,
+    data: &Dataset,
+    prepared: &PreparedPlacement,
+    placement_index: usize,
+    g: usize,
+) -> FitResult {
+    let fd = fit_data(data, prepared);
+    let settings = EmSettings {
+        max_iterations: study.search.max_iterations,
+        tolerance: study.search.tolerance,
+    };
+    let template = initial_model(&fd, &prepared.placement, g, study.search.gating_ridge);
+    let n_starts = if g == 1 { 1 } else { study.search.starts };
+    let runs: Vec<(StartRecord, Option<EmRun>)> = (0..n_starts)
+        .into_par_iter()
+        .map(|s| {
+            let kind = StartKind::for_start(s, g);
+            let mut rng = Stream::new(
+                study.seed,
+                &stream_label(&prepared.placement.name, g, s + 1),
+            );
+            let tau = starts::partition(kind, fd.y, fd.d, fd.weights, g, &mut rng);
+            let run = em::run(&fd, template.clone(), tau, settings);
+            let usable = run.termination.usable();
+            let record = StartRecord {
+                start: s + 1,
+                kind,
+                loglik: usable.then_some(run.loglik),
+                iterations: run.iterations,
+                termination: run.termination.clone(),
+            };
+            (record, usable.then_some(run))
+        })
+        .collect();
+    let mut best: Option<(usize, EmRun)> = None;
+    for (i, (_, run)) in runs.iter().enumerate() {
+        if let Some(r) = run {
+            // Compare the EM objective (equal to the log-likelihood without a ridge).
+            if best.as_ref().is_none_or(|(_, b)| r.objective > b.objective) {
+                best = Some((i, r.clone()));
+            }
+        }
+    }
+    let best = best.map(|(i, mut run)| {
+        let reaching = runs
+            .iter()
+            .filter_map(|(_, r)| r.as_ref())
+            .filter(|r| (r.objective - run.objective).abs() <= SAME_OPTIMUM * run.objective.abs())
+            .count();
+        order_largest_first(&mut run, &data.weights, &prepared.placement.proportions);
+        BestFit {
+            run,
+            start: i + 1,
+            reaching,
+        }
+    });
+    FitResult {
+        placement_index,
+        placement: prepared.placement.name.clone(),
+        clusters: g,
+        structure: CovarianceStructure::Unconstrained,
+        n_params: template.n_params(),
+        n_rows: fd.n,
+        starts: runs.into_iter().map(|(r, _)| r).collect(),
+        best,
+    }
+}
+
+/// Relabel clusters by decreasing weighted size (cluster 1, the gating reference, is
+/// the largest). Fixed proportions keep the user's order.
+fn order_largest_first(run: &mut EmRun, weights: &[f64], proportions: &Proportions) {
+    if matches!(proportions, Proportions::Fixed(_)) {
+        return;
+    }
+    let g = run.model.clusters();
+    let shares = cluster_shares(&run.tau, weights, g);
+    let mut order: Vec<usize> = (0..g).collect();
+    order.sort_by(|a, b| shares[*b].total_cmp(&shares[*a]).then(a.cmp(b)));
+    if order.iter().enumerate().all(|(i, k)| i == *k) {
+        return;
+    }
+    run.model.permute(&order);
+    let old = run.tau.clone();
+    for (row_new, row_old) in run.tau.chunks_exact_mut(g).zip(old.chunks_exact(g)) {
+        for (k, &o) in order.iter().enumerate() {
+            row_new[k] = row_old[o];
+        }
+    }
+}
+
+/// A grid cell to fit.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Cell {
+    /// Placement index.
+    pub placement: usize,
+    /// Cluster count.
+    pub clusters: usize,
+}
+
+/// Every cell of the grid, placements in spec order, cluster counts ascending.
+pub fn grid(study: &Study) -> Vec<Cell> {
+    study
+        .placements
+        .iter()
+        .enumerate()
+        .flat_map(|(i, p)| {
+            p.clusters.iter().map(move |&g| Cell {
+                placement: i,
+                clusters: g,
+            })
+        })
+        .collect()
+}
+
+/// Fit every cell; `progress` is called after each cell with (done, total, result).
+pub fn fit_grid(
+    study: &Study,
+    data: &Dataset,
+    prepared: &[PreparedPlacement],
+    mut progress: impl FnMut(usize, usize, &FitResult),
+) -> Vec<FitResult> {
+    let cells = grid(study);
+    let total = cells.len();
+    let mut out = Vec::with_capacity(total);
+    for (done, cell) in cells.iter().enumerate() {
+        let r = fit_cell(
+            study,
+            data,
+            &prepared[cell.placement],
+            cell.placement,
+            cell.clusters,
+        );
+        progress(done + 1, total, &r);
+        out.push(r);
+    }
+    out
+}

@@ -1,0 +1,29 @@
+//! cohortmix: mixture-of-experts cluster analysis for epidemiology.
+//!
+//! A study spec ([`spec`]) names a CSV ([`data`]), the indicators that define the
+//! clusters, and covariate placements: covariates in the gating network change who
+//! belongs to a cluster ([`model::gating`]); covariates in the component models change
+//! what is measured inside it ([`model::family`]). [`fit`] runs EM with many starts over
+//! every placement and cluster count; [`report`] writes the run folder; [`simulate`] makes
+//! data from a stated truth. [`cli`] is the command line.
+//!
+//! ```no_run
+//! let study = cohortmix::spec::load(std::path::Path::new("configs/demo.toml")).unwrap();
+//! let data = cohortmix::data::load(&study).unwrap();
+//! let prepared = cohortmix::fit::prepare(&study, &data).unwrap();
+//! let fits = cohortmix::fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
+//! println!("{} fits", fits.len());
+//! ```
+#![deny(missing_docs)]
+
+pub mod cli;
+pub mod data;
+pub mod error;
+pub mod fit;
+pub mod model;
+pub mod report;
+pub mod rng;
+pub mod simulate;
+pub mod spec;
+
+pub use error::{Error, Result};

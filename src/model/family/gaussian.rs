@@ -1,0 +1,343 @@
+//! Gaussian components: y_i | z_i, cluster g ~ N(B_g' z_i, Sigma_g), y in R^d.
+//!
+//! M-step for cluster g with weights v_i = c_i tau_ig: weighted least squares
+//! B_g = (Z'VZ)^-1 Z'VY, then Sigma_g = sum_i v_i r_i r_i' / sum_i v_i from the residuals
+//! r_i = y_i − B_g' z_i (the maximum-likelihood divisor, not n − p).
+
+use super::{ComponentFamily, Degeneracy, Naming, Parameter};
+use crate::model::FitData;
+use nalgebra::DMatrix;
+
+/// ln(2π).
+const LN_2PI: f64 = 1.837_877_066_409_345_5;
+
+/// Smallest eigenvalue of a cluster covariance, relative to the indicator's overall
+/// variance, below which the cluster counts as collapsed.
+pub const COLLAPSE_RATIO: f64 = 1e-8;
+
+/// Covariance structure across clusters. This version offers the unconstrained one;
+/// the type is an enum so that constrained structures can join it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CovarianceStructure {
+    /// Volume, shape and orientation all varying across clusters.
+    Unconstrained,
+}
+
+impl CovarianceStructure {
+    /// Plain-words name used in every output.
+    pub fn describe(&self) -> &'static str {
+        match self {
+            CovarianceStructure::Unconstrained => {
+                "varying volume, varying shape, varying orientation"
+            }
+        }
+    }
+
+    /// Covariance parameters for d indicators and G clusters.
+    pub fn n_params(&self, d: usize, g: usize) -> usize {
+        match self {
+            CovarianceStructure::Unconstrained => g * d * (d + 1) / 2,
+        }
+    }
+}
+
+/// Parameters of G Gaussian regression components.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GaussianComponents {
+    /// Clusters.
+    pub g: usize,
+    /// Indicators.
+    pub d: usize,
+    /// Component design columns (intercept included).
+    pub q: usize,
+    /// Structure.
+    pub structure: CovarianceStructure,
+    /// Coefficients on the fitting scale, `coef[(k * q + a) * d + j]`.
+    pub coef: Vec<f64>,
+    /// Covariance per cluster.
+    pub cov: Vec<DMatrix<f64>>,
+    /// Lower Cholesky factor per cluster, row-major d×d (kept in step with `cov`).
+    chol: Vec<Vec<f64>>,
+    /// Log-determinant per cluster.
+    log_det: Vec<f64>,
+    /// Overall variance of each indicator, the yardstick for collapse.
+    y_var: Vec<f64>,
+}
+
+impl GaussianComponents {
+    /// Empty components sized for the data; call [`ComponentFamily::m_step`] to fill them.
+    pub fn new(data: &FitData, g: usize, structure: CovarianceStructure) -> GaussianComponents {
+        let (d, q) = (data.d, data.q);
+        let total: f64 = data.weights.iter().sum();
+        let y_var = (0..d)
+            .map(|j| {
+                let mean = data
+                    .y
+                    .chunks_exact(d)
+                    .zip(data.weights)
+                    .map(|(y, c)| c * y[j])
+                    .sum::<f64>()
+                    / total;
+                data.y
+                    .chunks_exact(d)
+                    .zip(data.weights)
+                    .map(|(y, c)| c * (y[j] - mean).powi(2))
+                    .sum::<f64>()
+                    / total
+            })
+            .collect();
+        GaussianComponents {
+            g,
+            d,
+            q,
+            structure,
+            coef: vec![0.0; g * q * d],
+            cov: vec![DMatrix::identity(d, d); g],
+            chol: vec![
+                DMatrix::<f64>::identity(d, d)
+                    .transpose()
+                    .as_slice()
+                    .to_vec();
+                g
+            ],
+            log_det: vec![0.0; g],
+            y_var,
+        }
+    }
+
+    /// Set parameters directly (simulation truth, tests); fails if a covariance is not
+    /// positive definite.
+    pub fn with_parameters(
+        mut self,
+        coef: Vec<f64>,
+        cov: Vec<DMatrix<f64>>,
+    ) -> Result<Self, Degeneracy> {
+        assert_eq!(coef.len(), self.g * self.q * self.d);
+        self.coef = coef;
+        for (k, s) in cov.into_iter().enumerate() {
+            self.set_covariance(k, s)?;
+        }
+        Ok(self)
+    }
+
+    fn set_covariance(&mut self, k: usize, s: DMatrix<f64>) -> Result<(), Degeneracy> {
+        let collapsed = || Degeneracy {
+            cluster: k + 1,
+            reason: "its covariance is singular (the cluster collapsed onto a point or a line)"
+                .to_string(),
+        };
+        let eig = s.clone().symmetric_eigenvalues();
+        let scale = self
+            .y_var
+            .iter()
+            .copied()
+            .fold(0.0, f64::max)
+            .max(f64::MIN_POSITIVE);
+        if eig
+            .iter()
+            .any(|e| !e.is_finite() || *e <= COLLAPSE_RATIO * scale)
+        {
+            return Err(collapsed());
+        }
+        let chol = s.clone().cholesky().ok_or_else(collapsed)?;
+        let l = chol.l();
+        self.log_det[k] = 2.0 * (0..self.d).map(|i| l[(i, i)].ln()).sum::<f64>();
+        self.chol[k] = l.transpose().as_slice().to_vec(); // column-major of L' = row-major of L
+        self.cov[k] = s;
+        Ok(())
+    }
+
+    /// Mean of cluster k for one row of the component design, into `out`.
+    pub fn mean(&self, k: usize, z: &[f64], out: &mut [f64]) {
+        out.fill(0.0);
+        let base = k * self.q * self.d;
+        for (a, za) in z.iter().enumerate() {
+            let row = &self.coef[base + a * self.d..base + (a + 1) * self.d];
+            for (o, b) in out.iter_mut().zip(row) {
+                *o += za * b;
+            }
+        }
+    }
+}
+
+impl ComponentFamily for GaussianComponents {
+    fn log_density(&self, data: &FitData, out: &mut [f64]) {
+        let (d, g, q) = (self.d, self.g, self.q);
+        let mut mu = vec![0.0; d];
+        let mut u = vec![0.0; d];
+        let constant = -0.5 * d as f64 * LN_2PI;
+        for k in 0..g {
+            let l = &self.chol[k];
+            let base = constant - 0.5 * self.log_det[k];
+            let coef = &self.coef[k * q * d..(k + 1) * q * d];
+            for i in 0..data.n {
+                let y = &data.y[i * d..(i + 1) * d];
+                let z = &data.z[i * q..(i + 1) * q];
+                mu.copy_from_slice(&coef[..d]);
+                for a in 1..q {
+                    for (m, b) in mu.iter_mut().zip(&coef[a * d..(a + 1) * d]) {
+                        *m += z[a] * b;
+                    }
+                }
+                // Forward substitution L u = y − mu.
+                let mut quad = 0.0;
+                for r in 0..d {
+                    let row = &l[r * d..r * d + r + 1];
+                    let mut s = y[r] - mu[r];
+                    for c in 0..r {
+                        s -= row[c] * u[c];
+                    }
+                    u[r] = s / row[r];
+                    quad += u[r] * u[r];
+                }
+                out[i * g + k] = base - 0.5 * quad;
+            }
+        }
+    }
+
+    fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
+        let (d, q, g) = (self.d, self.q, self.g);
+        let mut ztz = vec![0.0; q * q];
+        let mut zty = vec![0.0; q * d];
+        let mut s = vec![0.0; d * d];
+        let mut mu = vec![0.0; d];
+        for k in 0..g {
+            ztz.fill(0.0);
+            zty.fill(0.0);
+            let (mut sum_v, mut rows) = (0.0, 0.0);
+            for i in 0..data.n {
+                let t = tau[i * g + k];
+                let v = data.weights[i] * t;
+                if v == 0.0 {
+                    continue;
+                }
+                rows += t;
+                sum_v += v;
+                let z = &data.z[i * q..(i + 1) * q];
+                let y = &data.y[i * d..(i + 1) * d];
+                for a in 0..q {
+                    let vz = v * z[a];
+                    for b in 0..=a {
+                        ztz[a * q + b] += vz * z[b];
+                    }
+                    for (acc, yj) in zty[a * d..(a + 1) * d].iter_mut().zip(y) {
+                        *acc += vz * yj;
+                    }
+                }
+            }
+            let needed = (d + q) as f64;
+            if rows < needed {
+                return Err(Degeneracy {
+                    cluster: k + 1,
+                    reason: format!("it holds {rows:.1} effective rows, fewer than the {needed} its mean and covariance need"),
+                });
+            }
+            let a_mat = DMatrix::from_fn(q, q, |a, b| {
+                if b <= a {
+                    ztz[a * q + b]
+                } else {
+                    ztz[b * q + a]
+                }
+            });
+            let rhs = DMatrix::from_fn(q, d, |a, j| zty[a * d + j]);
+            let beta = a_mat
+                .cholesky()
+                .map(|c| c.solve(&rhs))
+                .ok_or_else(|| Degeneracy {
+                    cluster: k + 1,
+                    reason: "its component covariates are collinear among the rows it holds"
+                        .to_string(),
+                })?;
+            for a in 0..q {
+                for j in 0..d {
+                    self.coef[(k * q + a) * d + j] = beta[(a, j)];
+                }
+            }
+            // Second pass: residual cross-products (more accurate than Y'VY − B'Z'VY).
+            s.fill(0.0);
+            for i in 0..data.n {
+                let v = data.weights[i] * tau[i * g + k];
+                if v == 0.0 {
+                    continue;
+                }
+                self.mean(k, &data.z[i * q..(i + 1) * q], &mut mu);
+                let y = &data.y[i * d..(i + 1) * d];
+                for (m, yj) in mu.iter_mut().zip(y) {
+                    *m = yj - *m; // residual
+                }
+                for a in 0..d {
+                    let va = v * mu[a];
+                    for b in 0..=a {
+                        s[a * d + b] += va * mu[b];
+                    }
+                }
+            }
+            let cov = DMatrix::from_fn(d, d, |a, b| {
+                if b <= a {
+                    s[a * d + b] / sum_v
+                } else {
+                    s[b * d + a] / sum_v
+                }
+            });
+            self.set_covariance(k, cov)?;
+        }
+        Ok(())
+    }
+
+    fn n_params(&self) -> usize {
+        self.g * self.q * self.d + self.structure.n_params(self.d, self.g)
+    }
+
+    fn permute(&mut self, order: &[usize]) {
+        let block = self.q * self.d;
+        let coef = order
+            .iter()
+            .flat_map(|&k| self.coef[k * block..(k + 1) * block].to_vec())
+            .collect();
+        self.coef = coef;
+        self.cov = order.iter().map(|&k| self.cov[k].clone()).collect();
+        self.chol = order.iter().map(|&k| self.chol[k].clone()).collect();
+        self.log_det = order.iter().map(|&k| self.log_det[k]).collect();
+    }
+
+    fn parameters(&self, naming: Naming) -> Vec<Parameter> {
+        let (d, q) = (self.d, self.q);
+        let mut out = Vec::new();
+        for k in 0..self.g {
+            for j in 0..d {
+                let beta: Vec<f64> = (0..q).map(|a| self.coef[(k * q + a) * d + j]).collect();
+                for (term, value) in naming
+                    .design
+                    .terms
+                    .iter()
+                    .zip(naming.design.to_original_scale(&beta))
+                {
+                    out.push(Parameter {
+                        block: "mean",
+                        cluster: k + 1,
+                        indicator: Some(naming.indicators[j].clone()),
+                        term: Some(term.name.clone()),
+                        value,
+                    });
+                }
+            }
+            for a in 0..d {
+                for b in 0..=a {
+                    let pair = if a == b {
+                        naming.indicators[a].clone()
+                    } else {
+                        format!("{}~{}", naming.indicators[b], naming.indicators[a])
+                    };
+                    out.push(Parameter {
+                        block: "covariance",
+                        cluster: k + 1,
+                        indicator: Some(pair),
+                        term: None,
+                        value: self.cov[k][(a, b)],
+                    });
+                }
+            }
+        }
+        out
+    }
+}

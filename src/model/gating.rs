@@ -1,0 +1,460 @@
+//! The gating network: how covariates change who belongs to which cluster.
+//!
+//! With gating covariates w_i (intercept first) the cluster probabilities are a
+//! multinomial logit with cluster 1 as reference:
+//!
+//! ```text
+//! pi_g(w) = exp(w' gamma_g) / sum_h exp(w' gamma_h),   gamma_1 = 0
+//! ```
+//!
+//! The M-step maximises sum_i c_i sum_g tau_ig log pi_g(w_i) − (ridge/2) sum of squared
+//! slopes (intercepts are not penalised) over gamma_2..gamma_G. It is concave, so Newton's
+//! method with the exact Hessian and step-halving converges from any start. Without
+//! covariates the proportions are free shares (closed form), equal, or fixed by the user.
+
+use nalgebra::{DMatrix, DVector};
+
+/// Newton iterations allowed when the logit is fitted on its own.
+pub const MAX_NEWTON_ITERATIONS: usize = 100;
+
+/// Newton iterations per EM M-step. One step with halving already raises the expected
+/// complete-data log-likelihood, which is all EM needs to climb (a generalised EM step);
+/// warm starts make later steps nearly exact.
+pub const NEWTON_STEPS_PER_EM_ITERATION: usize = 1;
+
+/// How the gating network is parameterised.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Gating {
+    /// Every cluster has probability 1/G. No parameters.
+    Equal {
+        /// Number of clusters.
+        g: usize,
+    },
+    /// Proportions fixed by the user. No parameters.
+    Fixed {
+        /// Log proportions.
+        log_pi: Vec<f64>,
+    },
+    /// Estimated shares, no covariates. G − 1 parameters.
+    Free {
+        /// Log proportions.
+        log_pi: Vec<f64>,
+    },
+    /// Multinomial logit on p gating columns. (G − 1)·p parameters.
+    Logit {
+        /// Number of clusters.
+        g: usize,
+        /// Columns of the gating design (intercept included).
+        p: usize,
+        /// Coefficients on the fitting scale, `gamma[k * p + j]` for cluster k + 2.
+        gamma: Vec<f64>,
+        /// Ridge penalty on slopes.
+        ridge: f64,
+    },
+}
+
+/// What one gating M-step did.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct GatingStep {
+    /// Newton iterations used (0 for closed forms).
+    pub iterations: usize,
+    /// Whether Newton met its tolerance.
+    pub converged: bool,
+    /// Times the Hessian needed damping to be solved (a sign of separation).
+    pub damped: usize,
+}
+
+impl Gating {
+    /// Number of clusters.
+    pub fn clusters(&self) -> usize {
+        match self {
+            Gating::Equal { g } | Gating::Logit { g, .. } => *g,
+            Gating::Fixed { log_pi } | Gating::Free { log_pi } => log_pi.len(),
+        }
+    }
+
+    /// Number of free parameters.
+    pub fn n_params(&self) -> usize {
+        match self {
+            Gating::Equal { .. } | Gating::Fixed { .. } => 0,
+            Gating::Free { log_pi } => log_pi.len() - 1,
+            Gating::Logit { g, p, .. } => (g - 1) * p,
+        }
+    }
+
+    /// The penalty subtracted from the log-likelihood in the EM objective.
+    pub fn penalty(&self) -> f64 {
+        match self {
+            Gating::Logit {
+                p, gamma, ridge, ..
+            } if *ridge > 0.0 => ridge_penalty(gamma, *p, *ridge),
+            _ => 0.0,
+        }
+    }
+
+    /// Log cluster probabilities for one row of the gating design.
+    pub fn log_priors(&self, w: &[f64], out: &mut [f64]) {
+        match self {
+            Gating::Equal { g } => out.fill(-(*g as f64).ln()),
+            Gating::Fixed { log_pi } | Gating::Free { log_pi } => out.copy_from_slice(log_pi),
+            Gating::Logit { p, gamma, .. } => log_softmax_row(gamma, *p, w, out),
+        }
+    }
+
+    /// M-step: maximise the expected complete-data gating term given responsibilities.
+    ///
+    /// `w` is the n×p gating design (row-major), `tau` the n×G responsibilities.
+    pub fn m_step(&mut self, w: &[f64], tau: &[f64], weights: &[f64]) -> GatingStep {
+        match self {
+            Gating::Equal { .. } | Gating::Fixed { .. } => GatingStep {
+                iterations: 0,
+                converged: true,
+                damped: 0,
+            },
+            Gating::Free { log_pi } => {
+                let g = log_pi.len();
+                let mut sums = vec![0.0; g];
+                for (row, c) in tau.chunks_exact(g).zip(weights) {
+                    for (s, t) in sums.iter_mut().zip(row) {
+                        *s += c * t;
+                    }
+                }
+                let total: f64 = sums.iter().sum();
+                for (l, s) in log_pi.iter_mut().zip(&sums) {
+                    *l = (s / total).ln();
+                }
+                GatingStep {
+                    iterations: 0,
+                    converged: true,
+                    damped: 0,
+                }
+            }
+            Gating::Logit { g, p, gamma, ridge } => {
+                let fit = fit_multinomial_logit(
+                    w,
+                    *p,
+                    tau,
+                    *g,
+                    weights,
+                    *ridge,
+                    gamma,
+                    NEWTON_STEPS_PER_EM_ITERATION,
+                );
+                *gamma = fit.gamma;
+                GatingStep {
+                    iterations: fit.iterations,
+                    converged: fit.converged,
+                    damped: fit.damped,
+                }
+            }
+        }
+    }
+
+    /// Relabel clusters: new cluster k is old cluster `order[k]`. For the logit the new
+    /// cluster 1 becomes the reference (its coefficients are subtracted from all).
+    pub fn permute(&mut self, order: &[usize]) {
+        match self {
+            Gating::Equal { .. } => {}
+            Gating::Fixed { log_pi } | Gating::Free { log_pi } => {
+                *log_pi = order.iter().map(|&k| log_pi[k]).collect();
+            }
+            Gating::Logit { g, p, gamma, .. } => {
+                let (g, p) = (*g, *p);
+                let full = |k: usize, j: usize| if k == 0 { 0.0 } else { gamma[(k - 1) * p + j] };
+                let mut next = vec![0.0; (g - 1) * p];
+                for (new_k, &old_k) in order.iter().enumerate().skip(1) {
+                    for j in 0..p {
+                        next[(new_k - 1) * p + j] = full(old_k, j) - full(order[0], j);
+                    }
+                }
+                *gamma = next;
+            }
+        }
+    }
+}
+
+fn ridge_penalty(gamma: &[f64], p: usize, ridge: f64) -> f64 {
+    0.5 * ridge
+        * gamma
+            .chunks_exact(p)
+            .map(|c| c[1..].iter().map(|x| x * x).sum::<f64>())
+            .sum::<f64>()
+}
+
+/// log pi_g(w) for all g, with gamma_1 = 0; one maximum per row (stable).
+pub fn log_softmax_row(gamma: &[f64], p: usize, w: &[f64], out: &mut [f64]) {
+    out[0] = 0.0;
+    for (k, coef) in gamma.chunks_exact(p).enumerate() {
+        out[k + 1] = coef.iter().zip(w).map(|(a, b)| a * b).sum();
+    }
+    let lse = log_sum_exp(out);
+    for o in out.iter_mut() {
+        *o -= lse;
+    }
+}
+
+/// log(sum exp(x)) with the row's own maximum subtracted first.
+pub fn log_sum_exp(x: &[f64]) -> f64 {
+    let m = x.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    if m == f64::NEG_INFINITY {
+        return m;
+    }
+    m + x.iter().map(|v| (v - m).exp()).sum::<f64>().ln()
+}
+
+/// Result of a weighted multinomial-logit fit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LogitFit {
+    /// Coefficients, `gamma[k * p + j]` for category k + 2.
+    pub gamma: Vec<f64>,
+    /// Penalised objective at `gamma`.
+    pub objective: f64,
+    /// Newton iterations.
+    pub iterations: usize,
+    /// Whether the Newton decrement fell below tolerance.
+    pub converged: bool,
+    /// Damped Hessian solves.
+    pub damped: usize,
+}
+
+/// Objective sum_i c_i sum_g tau_ig log pi_ig − penalty.
+pub fn logit_objective(
+    w: &[f64],
+    p: usize,
+    tau: &[f64],
+    g: usize,
+    weights: &[f64],
+    ridge: f64,
+    gamma: &[f64],
+) -> f64 {
+    let mut lp = vec![0.0; g];
+    let mut total = 0.0;
+    for ((wr, tr), c) in w.chunks_exact(p).zip(tau.chunks_exact(g)).zip(weights) {
+        log_softmax_row(gamma, p, wr, &mut lp);
+        let row: f64 = tr
+            .iter()
+            .zip(&lp)
+            .filter(|(t, _)| **t > 0.0)
+            .map(|(t, l)| t * l)
+            .sum();
+        total += c * row;
+    }
+    total - ridge_penalty(gamma, p, ridge)
+}
+
+/// Objective, score and Hessian of the penalised multinomial logit at `gamma`.
+///
+/// Score: sum_i c_i (tau_ik − s_i pi_ik) w_i, with s_i = sum_g tau_ig.
+/// Hessian block (k, l): −sum_i c_i s_i pi_ik (δ_kl − pi_il) w_i w_i'.
+pub fn logit_score_hessian(
+    w: &[f64],
+    p: usize,
+    tau: &[f64],
+    g: usize,
+    weights: &[f64],
+    ridge: f64,
+    gamma: &[f64],
+) -> (f64, DVector<f64>, DMatrix<f64>) {
+    let m = (g - 1) * p;
+    let mut score = vec![0.0; m];
+    let mut h = vec![0.0; m * m]; // lower triangle used
+    let mut lp = vec![0.0; g];
+    let mut pi = vec![0.0; g];
+    let mut objective = 0.0;
+    for ((wr, tr), c) in w.chunks_exact(p).zip(tau.chunks_exact(g)).zip(weights) {
+        if *c == 0.0 {
+            continue;
+        }
+        log_softmax_row(gamma, p, wr, &mut lp);
+        let s: f64 = tr.iter().sum();
+        for k in 0..g {
+            pi[k] = lp[k].exp();
+            if tr[k] > 0.0 {
+                objective += c * tr[k] * lp[k];
+            }
+        }
+        for k in 1..g {
+            let r = c * (tr[k] - s * pi[k]);
+            for j in 0..p {
+                score[(k - 1) * p + j] += r * wr[j];
+            }
+            for l in 1..=k {
+                let hk = c * s * pi[k] * (f64::from(u8::from(k == l)) - pi[l]);
+                for a in 0..p {
+                    let ha = hk * wr[a];
+                    let row = &mut h[((k - 1) * p + a) * m + (l - 1) * p..][..p];
+                    for (cell, wb) in row.iter_mut().zip(wr) {
+                        *cell -= ha * wb;
+                    }
+                }
+            }
+        }
+    }
+    let mut score = DVector::from_vec(score);
+    let mut hess = DMatrix::from_fn(m, m, |r, col| {
+        if col <= r {
+            h[r * m + col]
+        } else {
+            h[col * m + r]
+        }
+    });
+    if ridge > 0.0 {
+        for k in 0..(g - 1) {
+            for j in 1..p {
+                let i = k * p + j;
+                score[i] -= ridge * gamma[i];
+                hess[(i, i)] -= ridge;
+            }
+        }
+        objective -= ridge_penalty(gamma, p, ridge);
+    }
+    (objective, score, hess)
+}
+
+/// Weighted multinomial logit with fractional responses, by Newton with step-halving.
+///
+/// Starts from `start` (warm start inside EM). Each iteration takes the Newton step,
+/// halved until the objective does not fall. Stops after the step whose Newton decrement
+/// score'·step is below 1e-12·(1 + |objective|) (that last step is kept unless it lowers
+/// the objective by more than rounding), when halving cannot raise the objective, or
+/// after `max_iter` iterations.
+#[allow(clippy::too_many_arguments)]
+pub fn fit_multinomial_logit(
+    w: &[f64],
+    p: usize,
+    tau: &[f64],
+    g: usize,
+    weights: &[f64],
+    ridge: f64,
+    start: &[f64],
+    max_iter: usize,
+) -> LogitFit {
+    let mut gamma = start.to_vec();
+    let mut damped = 0;
+    let mut objective = f64::NEG_INFINITY;
+    for it in 1..=max_iter {
+        let (obj, score, hess) = logit_score_hessian(w, p, tau, g, weights, ridge, &gamma);
+        objective = obj;
+        let neg = -hess;
+        let step = match solve_spd(&neg, &score) {
+            Some(s) => s,
+            None => {
+                damped += 1;
+                let mut mu = 1e-8 * (1.0 + neg.trace().abs() / neg.nrows() as f64);
+                loop {
+                    let mut m = neg.clone();
+                    for i in 0..m.nrows() {
+                        m[(i, i)] += mu;
+                    }
+                    if let Some(s) = solve_spd(&m, &score) {
+                        break s;
+                    }
+                    mu *= 10.0;
+                    if !mu.is_finite() {
+                        return LogitFit {
+                            gamma,
+                            objective,
+                            iterations: it,
+                            converged: false,
+                            damped,
+                        };
+                    }
+                }
+            }
+        };
+        let decrement = score.dot(&step);
+        let tiny = decrement.abs() <= 1e-12 * (1.0 + objective.abs());
+        // Rounding allowance: at the optimum a full step may "lose" a few ulps.
+        let slack = 1e-13 * (1.0 + objective.abs());
+        let mut t = 1.0;
+        loop {
+            let trial: Vec<f64> = gamma
+                .iter()
+                .zip(step.iter())
+                .map(|(a, b)| a + t * b)
+                .collect();
+            let trial_obj = logit_objective(w, p, tau, g, weights, ridge, &trial);
+            if trial_obj >= objective - if tiny { slack } else { 0.0 } {
+                gamma = trial;
+                objective = trial_obj;
+                break;
+            }
+            if tiny {
+                // The step is below rounding and does not help: we are at the optimum.
+                return LogitFit {
+                    gamma,
+                    objective,
+                    iterations: it,
+                    converged: true,
+                    damped,
+                };
+            }
+            t *= 0.5;
+            if t < 1e-10 {
+                return LogitFit {
+                    gamma,
+                    objective,
+                    iterations: it,
+                    converged: true,
+                    damped,
+                };
+            }
+        }
+        if tiny {
+            return LogitFit {
+                gamma,
+                objective,
+                iterations: it,
+                converged: true,
+                damped,
+            };
+        }
+    }
+    LogitFit {
+        gamma,
+        objective,
+        iterations: max_iter,
+        converged: false,
+        damped,
+    }
+}
+
+/// Solve A x = b for symmetric positive definite A; `None` when A is not.
+pub fn solve_spd(a: &DMatrix<f64>, b: &DVector<f64>) -> Option<DVector<f64>> {
+    let chol = a.clone().cholesky()?;
+    let x = chol.solve(b);
+    x.iter().all(|v| v.is_finite()).then_some(x)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn log_softmax_is_stable_for_large_scores() {
+        let gamma = [1000.0, 0.0];
+        let mut out = [0.0; 2];
+        log_softmax_row(&gamma, 2, &[1.0, 0.0], &mut out);
+        assert!(out.iter().all(|v| v.is_finite()));
+        assert!((out[1]).abs() < 1e-12);
+    }
+
+    #[test]
+    fn permuting_keeps_probabilities() {
+        let mut gt = Gating::Logit {
+            g: 3,
+            p: 2,
+            gamma: vec![0.3, -1.0, 1.2, 0.5],
+            ridge: 0.0,
+        };
+        let w = [1.0, 0.7];
+        let mut before = [0.0; 3];
+        gt.log_priors(&w, &mut before);
+        gt.permute(&[2, 0, 1]);
+        let mut after = [0.0; 3];
+        gt.log_priors(&w, &mut after);
+        for (new_k, old_k) in [2, 0, 1].iter().enumerate() {
+            assert!((after[new_k] - before[*old_k]).abs() < 1e-12);
+        }
+    }
+}

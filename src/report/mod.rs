@@ -1,0 +1,494 @@
+//! The run folder: `results.json`, `models.csv`, `memberships.csv`, `manifest.json`.
+//!
+//! The JSON output is a wire format with its own serialise-only types ([`Results`] and
+//! what it holds), documented in `docs/results-schema.md`; change them only with a new
+//! `schema_version`. All files of a run are first written under temporary names in the run
+//! folder and renamed into place at the end, so a failed or interrupted run never leaves a
+//! half-written file and never touches the previous run's files before it has succeeded.
+
+use crate::data::{Dataset, Design};
+use crate::error::{Diagnostic, Error, Result};
+use crate::fit::{FitResult, PreparedPlacement};
+use crate::model::family::{ComponentFamily, Naming, Parameter};
+use crate::model::gating::Gating;
+use crate::spec::Study;
+use serde::Serialize;
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+
+/// Version of the `results.json` layout.
+pub const SCHEMA_VERSION: u32 = 1;
+
+/// The whole `results.json`.
+#[derive(Debug, Serialize)]
+pub struct Results {
+    /// Layout version.
+    pub schema_version: u32,
+    /// Program name and version.
+    pub program: Program,
+    /// What was analysed.
+    pub study: StudySummary,
+    /// Conventions a reader needs.
+    pub conventions: Conventions,
+    /// One entry per fitted (placement, cluster count).
+    pub fits: Vec<FitRecord>,
+    /// The lowest-BIC fit of each placement.
+    pub chosen: Vec<Chosen>,
+}
+
+/// Program identity.
+#[derive(Debug, Serialize)]
+pub struct Program {
+    /// Always `cohortmix`.
+    pub name: &'static str,
+    /// Crate version.
+    pub version: &'static str,
+}
+
+/// The study and its data.
+#[derive(Debug, Serialize)]
+pub struct StudySummary {
+    /// Title from the spec.
+    pub title: String,
+    /// Spec file as given.
+    pub spec_file: String,
+    /// Data file as resolved.
+    pub data_file: String,
+    /// Data rows in the file.
+    pub rows_read: usize,
+    /// Rows used by every fit.
+    pub rows_used: usize,
+    /// Rows excluded for a missing needed value.
+    pub rows_excluded: usize,
+    /// Missing values per needed column.
+    pub missing_by_column: Vec<MissingCount>,
+    /// Weight column, if any.
+    pub weights: Option<String>,
+    /// Component family.
+    pub family: &'static str,
+    /// Indicator columns.
+    pub indicators: Vec<String>,
+    /// Master seed.
+    pub seed: u64,
+    /// Starts per fit (one-cluster fits need one).
+    pub starts: usize,
+    /// Iteration cap.
+    pub max_iterations: usize,
+    /// Convergence tolerance (relative log-likelihood change).
+    pub tolerance: f64,
+    /// Ridge penalty on gating slopes.
+    pub gating_ridge: f64,
+}
+
+/// Missing values of one column.
+#[derive(Debug, Serialize)]
+pub struct MissingCount {
+    /// Column.
+    pub column: String,
+    /// Rows missing it.
+    pub missing: usize,
+}
+
+/// Conventions stated once.
+#[derive(Debug, Serialize)]
+pub struct Conventions {
+    /// How BIC is defined.
+    pub bic: &'static str,
+    /// How AIC is defined.
+    pub aic: &'static str,
+    /// Which cluster is the gating reference.
+    pub reference_cluster: &'static str,
+    /// How clusters are numbered.
+    pub cluster_order: &'static str,
+    /// Scale of reported coefficients.
+    pub coefficient_scale: &'static str,
+}
+
+/// One fit.
+#[derive(Debug, Serialize)]
+pub struct FitRecord {
+    /// Placement name.
+    pub placement: String,
+    /// Gating covariates.
+    pub gating_covariates: Vec<String>,
+    /// Component covariates.
+    pub component_covariates: Vec<String>,
+    /// Clusters.
+    pub clusters: usize,
+    /// Covariance structure, in words.
+    pub covariance: &'static str,
+    /// How the gating network is parameterised.
+    pub gating_model: &'static str,
+    /// `converged`, `iteration_cap`, `degenerate` or `numerical_fault`.
+    pub status: String,
+    /// Why, when the fit failed.
+    pub reason: Option<String>,
+    /// Weighted log-likelihood of the best start.
+    pub loglik: Option<f64>,
+    /// Free parameters.
+    pub parameters: usize,
+    /// Rows used (the n in BIC).
+    pub rows: usize,
+    /// BIC (smaller is better).
+    pub bic: Option<f64>,
+    /// AIC (smaller is better).
+    pub aic: Option<f64>,
+    /// EM iterations of the best start.
+    pub iterations: Option<usize>,
+    /// Start summary.
+    pub starts: StartSummary,
+    /// Cluster shares of the best fit, cluster 1 first.
+    pub shares: Option<Vec<f64>>,
+    /// Every parameter, named, on the original scale.
+    pub parameters_named: Vec<Parameter>,
+}
+
+/// How the starts went.
+#[derive(Debug, Serialize)]
+pub struct StartSummary {
+    /// Starts run.
+    pub total: usize,
+    /// Starts that converged or hit the cap (not degenerate).
+    pub usable: usize,
+    /// Starts within 1e-6 (relative) of the best log-likelihood.
+    pub reaching_best: usize,
+    /// The best start (1-based).
+    pub best_start: Option<usize>,
+    /// True when the best value was reached by one start only of several.
+    pub best_reached_once: bool,
+    /// Every start.
+    pub each: Vec<crate::fit::StartRecord>,
+}
+
+/// The chosen fit of a placement.
+#[derive(Debug, Serialize)]
+pub struct Chosen {
+    /// Placement.
+    pub placement: String,
+    /// Clusters of its lowest-BIC fit.
+    pub clusters: usize,
+    /// That BIC.
+    pub bic: f64,
+}
+
+/// Named gating parameters on the original covariate scale.
+pub fn gating_parameters(gating: &Gating, design: &Design) -> Vec<Parameter> {
+    let mut out = Vec::new();
+    match gating {
+        Gating::Logit { g, p, gamma, .. } => {
+            for k in 1..*g {
+                let orig = design.to_original_scale(&gamma[(k - 1) * p..k * p]);
+                for (term, value) in design.terms.iter().zip(orig) {
+                    out.push(Parameter {
+                        block: "gating",
+                        cluster: k + 1,
+                        indicator: None,
+                        term: Some(term.name.clone()),
+                        value,
+                    });
+                }
+            }
+        }
+        Gating::Free { log_pi } => {
+            for (k, l) in log_pi.iter().enumerate().skip(1) {
+                out.push(Parameter {
+                    block: "gating",
+                    cluster: k + 1,
+                    indicator: None,
+                    term: Some("intercept".into()),
+                    value: l - log_pi[0],
+                });
+            }
+        }
+        Gating::Equal { .. } | Gating::Fixed { .. } => {}
+    }
+    out
+}
+
+fn gating_word(g: &Gating) -> &'static str {
+    match g {
+        Gating::Equal { g: 1 } => "single cluster",
+        Gating::Equal { .. } => "equal proportions",
+        Gating::Fixed { .. } => "fixed proportions",
+        Gating::Free { .. } => "free proportions",
+        Gating::Logit { .. } => "multinomial logit",
+    }
+}
+
+fn status_word(t: &crate::fit::em::Termination) -> String {
+    t.word().replace(' ', "_")
+}
+
+/// Assemble `results.json`.
+pub fn results(
+    study: &Study,
+    data: &Dataset,
+    prepared: &[PreparedPlacement],
+    fits: &[FitResult],
+) -> Results {
+    let records = fits
+        .iter()
+        .map(|f| {
+            let pp = &prepared[f.placement_index];
+            let termination = f.termination();
+            let (parameters_named, gating_model) = match &f.best {
+                Some(b) => {
+                    let mut ps = gating_parameters(&b.run.model.gating, &pp.gating);
+                    ps.extend(b.run.model.components.parameters(Naming {
+                        indicators: &data.indicator_names,
+                        design: &pp.components,
+                    }));
+                    (ps, gating_word(&b.run.model.gating))
+                }
+                None => (Vec::new(), "none"),
+            };
+            let usable = f.starts.iter().filter(|s| s.termination.usable()).count();
+            FitRecord {
+                placement: f.placement.clone(),
+                gating_covariates: pp.placement.gating.iter().map(|c| c.name.clone()).collect(),
+                component_covariates: pp
+                    .placement
+                    .components
+                    .iter()
+                    .map(|c| c.name.clone())
+                    .collect(),
+                clusters: f.clusters,
+                covariance: f.structure.describe(),
+                gating_model,
+                status: status_word(&termination),
+                reason: termination.reason().map(str::to_string),
+                loglik: f.loglik(),
+                parameters: f.n_params,
+                rows: f.n_rows,
+                bic: f.bic(),
+                aic: f.aic(),
+                iterations: f.best.as_ref().map(|b| b.run.iterations),
+                starts: StartSummary {
+                    total: f.starts.len(),
+                    usable,
+                    reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
+                    best_start: f.best.as_ref().map(|b| b.start),
+                    best_reached_once: f
+                        .best
+                        .as_ref()
+                        .is_some_and(|b| b.reaching == 1 && usable > 1),
+                    each: f.starts.clone(),
+                },
+                shares: f.shares(&data.weights),
+                parameters_named,
+            }
+        })
+        .collect();
+    Results {
+        schema_version: SCHEMA_VERSION,
+        program: Program { name: "cohortmix", version: env!("CARGO_PKG_VERSION") },
+        study: StudySummary {
+            title: study.title.clone(),
+            spec_file: study.spec_path.display().to_string(),
+            data_file: study.data_path.display().to_string(),
+            rows_read: data.rows_read,
+            rows_used: data.n(),
+            rows_excluded: data.rows_excluded,
+            missing_by_column: data.missing_by_column.iter().map(|(c, m)| MissingCount { column: c.clone(), missing: *m }).collect(),
+            weights: study.weights.as_ref().map(|w| w.name.clone()),
+            family: study.family.word(),
+            indicators: data.indicator_names.clone(),
+            seed: study.seed,
+            starts: study.search.starts,
+            max_iterations: study.search.max_iterations,
+            tolerance: study.search.tolerance,
+            gating_ridge: study.search.gating_ridge,
+        },
+        conventions: Conventions {
+            bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",
+            aic: "AIC = -2 loglik + 2 * parameters; smaller is better",
+            reference_cluster: "gating coefficients are log relative risk ratios against cluster 1",
+            cluster_order: "clusters are numbered by decreasing share in each fit (fixed proportions keep the spec's order)",
+            coefficient_scale: "coefficients are per unit of each covariate on its original scale",
+        },
+        fits: records,
+        chosen: chosen(fits),
+    }
+}
+
+/// The lowest-BIC usable fit per placement, in placement order.
+pub fn chosen(fits: &[FitResult]) -> Vec<Chosen> {
+    let mut out: Vec<Chosen> = Vec::new();
+    for f in fits {
+        let Some(bic) = f.bic() else { continue };
+        match out.iter_mut().find(|c| c.placement == f.placement) {
+            Some(c) if bic < c.bic => {
+                c.clusters = f.clusters;
+                c.bic = bic;
+            }
+            Some(_) => {}
+            None => out.push(Chosen {
+                placement: f.placement.clone(),
+                clusters: f.clusters,
+                bic,
+            }),
+        }
+    }
+    out
+}
+
+/// Quote a CSV field when it needs it.
+pub fn csv_field(s: &str) -> String {
+    if s.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    } else {
+        s.to_string()
+    }
+}
+
+/// Format a float for tables: shortest text that reads back to the same value.
+fn num(x: Option<f64>) -> String {
+    x.map_or_else(String::new, |v| format!("{v}"))
+}
+
+/// `models.csv`: one row per fit.
+pub fn models_csv(results: &Results) -> String {
+    let mut s = String::from(
+        "placement,clusters,covariance,status,loglik,parameters,rows,bic,aic,iterations,starts,usable_starts,starts_reaching_best,smallest_share,reason\n",
+    );
+    for f in &results.fits {
+        let smallest = f
+            .shares
+            .as_ref()
+            .map(|v| v.iter().copied().fold(f64::INFINITY, f64::min));
+        let _ = writeln!(
+            s,
+            "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
+            csv_field(&f.placement),
+            f.clusters,
+            csv_field(f.covariance),
+            f.status,
+            num(f.loglik),
+            f.parameters,
+            f.rows,
+            num(f.bic),
+            num(f.aic),
+            f.iterations.map_or_else(String::new, |i| i.to_string()),
+            f.starts.total,
+            f.starts.usable,
+            f.starts.reaching_best,
+            num(smallest),
+            csv_field(f.reason.as_deref().unwrap_or("")),
+        );
+    }
+    s
+}
+
+/// `memberships.csv`: per row, for the chosen fit of each placement: most likely cluster
+/// and posterior probabilities (long format: one block of rows per placement).
+pub fn memberships_csv(data: &Dataset, fits: &[FitResult], chosen: &[Chosen]) -> String {
+    let kmax = chosen.iter().map(|c| c.clusters).max().unwrap_or(1);
+    let mut s = String::from("placement,clusters,id,most_likely");
+    for k in 1..=kmax {
+        let _ = write!(s, ",posterior_{k}");
+    }
+    s.push('\n');
+    for c in chosen {
+        let Some(f) = fits
+            .iter()
+            .find(|f| f.placement == c.placement && f.clusters == c.clusters)
+        else {
+            continue;
+        };
+        let Some(best) = &f.best else { continue };
+        let g = f.clusters;
+        let name = csv_field(&f.placement);
+        for (id, row) in data.ids.iter().zip(best.run.tau.chunks_exact(g)) {
+            let most = row
+                .iter()
+                .enumerate()
+                .fold(
+                    (0, f64::NEG_INFINITY),
+                    |b, (k, t)| if *t > b.1 { (k, *t) } else { b },
+                )
+                .0;
+            let _ = write!(s, "{name},{g},{},{}", csv_field(id), most + 1);
+            for k in 0..kmax {
+                if k < g {
+                    let _ = write!(s, ",{:.6}", row[k]);
+                } else {
+                    s.push(',');
+                }
+            }
+            s.push('\n');
+        }
+    }
+    s
+}
+
+/// `manifest.json`: what produced the run, with timings (the only file that varies).
+#[derive(Debug, Serialize)]
+pub struct Manifest {
+    /// Program version.
+    pub version: &'static str,
+    /// SHA-256 of the spec text.
+    pub spec_sha256: String,
+    /// SHA-256 of the data file.
+    pub data_sha256: String,
+    /// Spec file.
+    pub spec_file: String,
+    /// Data file.
+    pub data_file: String,
+    /// Worker threads.
+    pub threads: usize,
+    /// Fits in the grid.
+    pub fits: usize,
+    /// Wall time of reading and checking, seconds.
+    pub seconds_reading: f64,
+    /// Wall time of fitting, seconds.
+    pub seconds_fitting: f64,
+}
+
+/// Files to write into a run folder, written together.
+#[derive(Debug, Default)]
+pub struct RunFiles {
+    files: Vec<(String, Vec<u8>)>,
+}
+
+impl RunFiles {
+    /// Add a file by name.
+    pub fn add(&mut self, name: &str, bytes: impl Into<Vec<u8>>) {
+        self.files.push((name.to_string(), bytes.into()));
+    }
+
+    /// Write every file to a temporary name in `dir`, then rename them all into place.
+    /// If any write fails, the temporaries are removed and the old files are untouched.
+    pub fn commit(self, dir: &Path) -> Result<Vec<PathBuf>> {
+        let fail = |what: String, e: std::io::Error| {
+            Error::run(
+                Diagnostic::new(format!("{what}: {e}"))
+                    .help("the previous run's files were left as they were"),
+            )
+        };
+        std::fs::create_dir_all(dir)
+            .map_err(|e| fail(format!("cannot create the run folder {}", dir.display()), e))?;
+        let mut temps: Vec<(PathBuf, PathBuf)> = Vec::new();
+        for (name, bytes) in &self.files {
+            let tmp = dir.join(format!(".{name}.partial"));
+            if let Err(e) = std::fs::write(&tmp, bytes) {
+                for (t, _) in &temps {
+                    let _ = std::fs::remove_file(t);
+                }
+                let _ = std::fs::remove_file(&tmp);
+                return Err(fail(format!("cannot write {}", tmp.display()), e));
+            }
+            temps.push((tmp, dir.join(name)));
+        }
+        let mut done = Vec::new();
+        for (tmp, dest) in temps {
+            std::fs::rename(&tmp, &dest).map_err(|e| {
+                fail(
+                    format!("cannot rename {} to {}", tmp.display(), dest.display()),
+                    e,
+                )
+            })?;
+            done.push(dest);
+        }
+        Ok(done)
+    }
+}

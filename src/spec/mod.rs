@@ -1,0 +1,879 @@
+//! The study spec: reading the TOML file and validating it into a [`Study`].
+//!
+//! A spec has five parts (every key is documented on the field that holds it, in
+//! [`raw`], and in `docs/spec.md`):
+//!
+//! ```toml
+//! [study]
+//! title = "Respiratory profiles in an occupational cohort (simulated)"
+//! data  = "../demo-data/respiratory.csv"   # relative to this file
+//! id    = "worker_id"
+//! seed  = 20261202
+//!
+//! [variables]
+//! age = "continuous"
+//! sex = { type = "categorical", reference = "female" }
+//!
+//! [indicators]
+//! family  = "gaussian"
+//! columns = ["fev1_pct", "fvc_pct"]
+//!
+//! [search]
+//! clusters = [1, 2, 3]
+//! starts   = 20
+//!
+//! [[placement]]
+//! name   = "age and sex drive membership"
+//! gating = ["age", "sex"]
+//! ```
+//!
+//! [`load`] parses and checks everything that can be checked without the data; the data
+//! module checks column names against the CSV header, pointing back at the spec.
+
+pub mod raw;
+
+use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
+use raw::{RawPlacement, RawSpec, SList, SStr};
+use std::collections::BTreeMap;
+use std::ops::Range;
+use std::path::{Path, PathBuf};
+use toml::Spanned;
+
+/// Default number of starts per fit.
+pub const DEFAULT_STARTS: usize = 20;
+/// Default EM iteration cap per start.
+pub const DEFAULT_MAX_ITERATIONS: usize = 1000;
+/// Default convergence tolerance on the relative log-likelihood change.
+pub const DEFAULT_TOLERANCE: f64 = 1e-8;
+/// Default master seed when the spec gives none.
+pub const DEFAULT_SEED: u64 = 1;
+
+/// The type of a data column.
+#[derive(Debug, Clone, PartialEq)]
+pub enum VariableType {
+    /// A real number.
+    Continuous,
+    /// 0 or 1.
+    Binary,
+    /// Unordered levels; coded against `reference` (treatment coding).
+    Categorical {
+        /// Level that the other levels are compared with; the first level if not given.
+        reference: Option<String>,
+        /// All levels in order, when the spec lists them.
+        levels: Option<Vec<String>>,
+    },
+    /// A non-negative whole number.
+    Count,
+}
+
+impl VariableType {
+    /// The word used in the spec.
+    pub fn word(&self) -> &'static str {
+        match self {
+            VariableType::Continuous => "continuous",
+            VariableType::Binary => "binary",
+            VariableType::Categorical { .. } => "categorical",
+            VariableType::Count => "count",
+        }
+    }
+}
+
+/// A column name as written in the spec, with where it was written.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ColumnRef {
+    /// The column name.
+    pub name: String,
+    /// Byte span in the spec text.
+    pub span: Range<usize>,
+    /// Which key it came from, e.g. `[indicators].columns`.
+    pub key: String,
+}
+
+/// Component family of the indicators.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum FamilyKind {
+    /// Multivariate normal regression within each cluster.
+    Gaussian,
+}
+
+impl FamilyKind {
+    /// The word used in the spec.
+    pub fn word(&self) -> &'static str {
+        match self {
+            FamilyKind::Gaussian => "gaussian",
+        }
+    }
+}
+
+/// How cluster proportions are modelled when the gating network has no covariates.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Proportions {
+    /// Estimated (a multinomial logit with covariates, or free shares without).
+    Free,
+    /// All clusters 1/G; no parameters.
+    Equal,
+    /// Given by the user; no parameters.
+    Fixed(Vec<f64>),
+}
+
+/// One covariate placement: which covariates go in the gating network and which in the
+/// component models.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Placement {
+    /// Unique name.
+    pub name: String,
+    /// Gating (membership) covariates.
+    pub gating: Vec<ColumnRef>,
+    /// Component (within-cluster) covariates.
+    pub components: Vec<ColumnRef>,
+    /// Proportions model.
+    pub proportions: Proportions,
+    /// Cluster counts to fit for this placement.
+    pub clusters: Vec<usize>,
+    /// Where the cluster counts were written (the placement's own key, else [search]).
+    pub clusters_span: Range<usize>,
+}
+
+/// Search settings shared by all placements.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Search {
+    /// Starts per fit.
+    pub starts: usize,
+    /// EM iteration cap per start.
+    pub max_iterations: usize,
+    /// Relative log-likelihood change that counts as converged.
+    pub tolerance: f64,
+    /// Ridge penalty on the gating slopes (not the intercepts); 0 = none.
+    pub gating_ridge: f64,
+}
+
+/// A validated study spec: the only spec type the rest of the program sees.
+#[derive(Debug, Clone)]
+pub struct Study {
+    /// The spec file as given.
+    pub spec_path: PathBuf,
+    /// The spec text (for error excerpts and hashing).
+    pub spec_text: String,
+    /// Title.
+    pub title: String,
+    /// Data file, resolved against the spec's folder.
+    pub data_path: PathBuf,
+    /// Span of `[study].data` in the spec.
+    pub data_span: Range<usize>,
+    /// Id column.
+    pub id: Option<ColumnRef>,
+    /// Weight column.
+    pub weights: Option<ColumnRef>,
+    /// Master seed.
+    pub seed: u64,
+    /// Run folder from the spec, resolved against the spec's folder.
+    pub output: Option<PathBuf>,
+    /// Declared column types, by name, with their spans.
+    pub variables: BTreeMap<String, (VariableType, Range<usize>)>,
+    /// Family of the indicators.
+    pub family: FamilyKind,
+    /// Indicator columns.
+    pub indicators: Vec<ColumnRef>,
+    /// Search settings.
+    pub search: Search,
+    /// Placements, in spec order.
+    pub placements: Vec<Placement>,
+}
+
+impl Study {
+    /// A diagnostic pointing at a span of the spec.
+    pub fn error_at(&self, span: Range<usize>, message: impl Into<String>) -> Diagnostic {
+        Diagnostic::new(message).at(Location::from_span(&self.spec_path, &self.spec_text, span))
+    }
+
+    /// The type of a column: declared, or continuous for a gaussian indicator.
+    pub fn variable_type(&self, name: &str) -> Option<VariableType> {
+        if let Some((t, _)) = self.variables.get(name) {
+            return Some(t.clone());
+        }
+        let is_indicator = self.indicators.iter().any(|c| c.name == name);
+        (is_indicator && self.family == FamilyKind::Gaussian).then_some(VariableType::Continuous)
+    }
+
+    /// Every covariate used by any placement, in first-use order, without repeats.
+    pub fn all_covariates(&self) -> Vec<&ColumnRef> {
+        let mut seen: Vec<&ColumnRef> = Vec::new();
+        for p in &self.placements {
+            for c in p.gating.iter().chain(&p.components) {
+                if !seen.iter().any(|s| s.name == c.name) {
+                    seen.push(c);
+                }
+            }
+        }
+        seen
+    }
+
+    /// The largest cluster count any placement fits.
+    pub fn max_clusters(&self) -> usize {
+        self.placements
+            .iter()
+            .flat_map(|p| p.clusters.iter().copied())
+            .max()
+            .unwrap_or(1)
+    }
+}
+
+/// Read and validate a spec file.
+pub fn load(path: &Path) -> Result<Study> {
+    let text = read_text(path, "spec")?;
+    parse(path, &text)
+}
+
+/// Read a whole text file, with an input error that names it when that fails.
+pub fn read_text(path: &Path, what: &str) -> Result<String> {
+    if path.is_dir() {
+        return Err(Error::input(
+            Diagnostic::new(format!(
+                "the {what} path {} is a folder, not a file",
+                path.display()
+            ))
+            .help(format!("give the path of the {what} file inside it")),
+        ));
+    }
+    let bytes = std::fs::read(path).map_err(|e| {
+        Error::input(
+            Diagnostic::new(format!(
+                "cannot read the {what} file {}: {}",
+                path.display(),
+                io_words(&e)
+            ))
+            .help("check the path; paths in a spec are relative to the spec file"),
+        )
+    })?;
+    String::from_utf8(bytes).map_err(|e| {
+        let text_before =
+            String::from_utf8_lossy(&e.as_bytes()[..e.utf8_error().valid_up_to()]).to_string();
+        let line = text_before.matches('\n').count() + 1;
+        let column = text_before
+            .rsplit('\n')
+            .next()
+            .map_or(0, |l| l.chars().count())
+            + 1;
+        Error::input(
+            Diagnostic::new(format!("the {what} file is not valid UTF-8 text"))
+                .at(Location::at(path, line, column, None))
+                .help("save the file as UTF-8"),
+        )
+    })
+}
+
+/// Plain words for an I/O error kind.
+pub fn io_words(e: &std::io::Error) -> String {
+    match e.kind() {
+        std::io::ErrorKind::NotFound => "no such file".to_string(),
+        std::io::ErrorKind::PermissionDenied => "permission denied".to_string(),
+        _ => e.to_string(),
+    }
+}
+
+/// Parse and validate spec text that was read from `path`.
+pub fn parse(path: &Path, text: &str) -> Result<Study> {
+    let raw: RawSpec = toml::from_str(text).map_err(|e| toml_error(path, text, &e))?;
+    validate(path, text, raw)
+}
+
+fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
+    let message = e.message().trim().to_string();
+    let mut d = Diagnostic::new(first_line(&message));
+    if let Some(span) = e.span() {
+        d = d.at(Location::from_span(path, text, span));
+    }
+    // serde says: unknown field `x`, expected one of `a`, `b`
+    if let Some(rest) = message.strip_prefix("unknown field `") {
+        if let Some((word, expected)) = rest.split_once('`') {
+            let options: Vec<&str> = expected.split('`').skip(1).step_by(2).collect();
+            d.message = format!("unknown key '{word}'");
+            if let Some(s) = did_you_mean(word, options.iter().copied()) {
+                d = d.help(format!("did you mean '{s}'?"));
+            }
+            if !options.is_empty() {
+                d = d.help(format!("keys allowed here: {}", options.join(", ")));
+            }
+        }
+    } else if let Some(field) = message.strip_prefix("missing field `") {
+        let field = field.split('`').next().unwrap_or("");
+        d.message = format!("missing key '{field}'");
+        d = d.help(format!(
+            "add {field} = ... to this table (see docs/spec.md)"
+        ));
+    }
+    Error::input(d)
+}
+
+fn first_line(s: &str) -> String {
+    s.lines().next().unwrap_or("").to_string()
+}
+
+fn column_ref(s: &SStr, key: &str) -> ColumnRef {
+    ColumnRef {
+        name: s.get_ref().clone(),
+        span: s.span(),
+        key: key.to_string(),
+    }
+}
+
+fn column_list(list: &Option<SList>, key: &str) -> Vec<ColumnRef> {
+    list.as_ref().map_or_else(Vec::new, |l| {
+        l.get_ref().iter().map(|s| column_ref(s, key)).collect()
+    })
+}
+
+struct Ctx<'a> {
+    path: &'a Path,
+    text: &'a str,
+}
+
+impl Ctx<'_> {
+    fn err(&self, span: Range<usize>, message: impl Into<String>) -> Diagnostic {
+        Diagnostic::new(message).at(Location::from_span(self.path, self.text, span))
+    }
+}
+
+fn positive(ctx: &Ctx, v: &Spanned<i64>, key: &str, min: i64) -> Result<usize> {
+    let x = *v.get_ref();
+    if x < min {
+        return Err(Error::input(
+            ctx.err(v.span(), format!("{key} must be at least {min}, not {x}")),
+        ));
+    }
+    usize::try_from(x).map_err(|_| Error::input(ctx.err(v.span(), format!("{key} is too large"))))
+}
+
+fn cluster_list(ctx: &Ctx, v: &Spanned<Vec<Spanned<i64>>>, key: &str) -> Result<Vec<usize>> {
+    if v.get_ref().is_empty() {
+        return Err(Error::input(
+            ctx.err(v.span(), format!("{key} is empty"))
+                .help("list at least one cluster count, e.g. [1, 2, 3]"),
+        ));
+    }
+    let mut out = Vec::new();
+    for c in v.get_ref() {
+        let g = positive(ctx, c, key, 1)?;
+        if g > 50 {
+            return Err(Error::input(ctx.err(
+                c.span(),
+                format!("{key} asks for {g} clusters; at most 50 are supported"),
+            )));
+        }
+        if out.contains(&g) {
+            return Err(Error::input(
+                ctx.err(c.span(), format!("{key} lists {g} twice")),
+            ));
+        }
+        out.push(g);
+    }
+    out.sort_unstable();
+    Ok(out)
+}
+
+/// Validate a parsed spec into a [`Study`].
+pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
+    let ctx = Ctx { path, text };
+    let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
+    let study = raw.study.get_ref();
+
+    // [study]
+    let title = study.title.get_ref().trim().to_string();
+    if title.is_empty() {
+        return Err(Error::input(
+            ctx.err(study.title.span(), "[study].title is empty")
+                .help("give the study a title"),
+        ));
+    }
+    let data = study.data.get_ref();
+    if data.trim().is_empty() {
+        return Err(Error::input(
+            ctx.err(study.data.span(), "[study].data is empty")
+                .help("give the path of the CSV file"),
+        ));
+    }
+    let seed = match &study.seed {
+        None => DEFAULT_SEED,
+        Some(s) if *s.get_ref() < 0 => {
+            return Err(Error::input(
+                ctx.err(s.span(), "[study].seed must be zero or positive"),
+            ));
+        }
+        Some(s) => *s.get_ref() as u64,
+    };
+
+    // [variables]
+    let mut variables = BTreeMap::new();
+    for (name, v) in &raw.variables {
+        let r = v.get_ref();
+        let t = match r.kind.as_str() {
+            "continuous" => VariableType::Continuous,
+            "binary" => VariableType::Binary,
+            "count" => VariableType::Count,
+            "categorical" => {
+                if let (Some(reference), Some(levels)) = (&r.reference, &r.levels) {
+                    if !levels.contains(reference) {
+                        return Err(Error::input(
+                            ctx.err(v.span(), format!("reference level '{reference}' of '{name}' is not in its levels"))
+                                .help(format!("levels listed: {}", levels.join(", "))),
+                        ));
+                    }
+                }
+                VariableType::Categorical {
+                    reference: r.reference.clone(),
+                    levels: r.levels.clone(),
+                }
+            }
+            other => {
+                let words = ["continuous", "binary", "categorical", "count"];
+                let mut d = ctx.err(
+                    v.span(),
+                    format!("unknown variable type '{other}' for '{name}'"),
+                );
+                if let Some(s) = did_you_mean(other, words) {
+                    d = d.help(format!("did you mean '{s}'?"));
+                }
+                return Err(Error::input(
+                    d.help("types: continuous, binary, categorical, count"),
+                ));
+            }
+        };
+        if !matches!(t, VariableType::Categorical { .. })
+            && (r.reference.is_some() || r.levels.is_some())
+        {
+            return Err(Error::input(
+                ctx.err(
+                    v.span(),
+                    format!(
+                        "'{name}' is {}, so it has no reference level or levels",
+                        t.word()
+                    ),
+                )
+                .help("use type = \"categorical\" for a column with levels"),
+            ));
+        }
+        variables.insert(name.clone(), (t, v.span()));
+    }
+
+    // [indicators]
+    let ind = raw.indicators.get_ref();
+    let family = match &ind.family {
+        None => FamilyKind::Gaussian,
+        Some(f) => match f.get_ref().as_str() {
+            "gaussian" => FamilyKind::Gaussian,
+            "items" | "counts" | "mixed" => {
+                return Err(Error::input(
+                    ctx.err(
+                        f.span(),
+                        format!("family '{}' is not available in this version", f.get_ref()),
+                    )
+                    .help("available: gaussian"),
+                ))
+            }
+            other => {
+                let mut d = ctx.err(f.span(), format!("unknown family '{other}'"));
+                if let Some(s) = did_you_mean(other, ["gaussian", "items", "counts", "mixed"]) {
+                    d = d.help(format!("did you mean '{s}'?"));
+                }
+                return Err(Error::input(d.help("families: gaussian")));
+            }
+        },
+    };
+    let indicators = column_list(&Some(ind.columns.clone()), "[indicators].columns");
+    if indicators.is_empty() {
+        return Err(Error::input(
+            ctx.err(ind.columns.span(), "[indicators].columns is empty")
+                .help("list the columns that define the clusters"),
+        ));
+    }
+    check_unique(&ctx, &indicators)?;
+    for c in &indicators {
+        if let Some((t, _)) = variables.get(&c.name) {
+            if family == FamilyKind::Gaussian && *t != VariableType::Continuous {
+                return Err(Error::input(
+                    ctx.err(c.span.clone(), format!("indicator '{}' is declared {}, but the gaussian family needs continuous indicators", c.name, t.word()))
+                        .help(format!("declare {} = \"continuous\" in [variables], or drop it from the indicators", c.name)),
+                ));
+            }
+        }
+    }
+
+    // [search]
+    let default_span = raw
+        .search
+        .as_ref()
+        .map(|s| s.get_ref().clusters.as_ref().map_or(s.span(), |c| c.span()))
+        .unwrap_or(raw.indicators.span());
+    let (default_clusters, search) = match &raw.search {
+        None => (
+            vec![1, 2, 3],
+            Search {
+                starts: DEFAULT_STARTS,
+                max_iterations: DEFAULT_MAX_ITERATIONS,
+                tolerance: DEFAULT_TOLERANCE,
+                gating_ridge: 0.0,
+            },
+        ),
+        Some(s) => search_settings(&ctx, s.get_ref())?,
+    };
+
+    // [[placement]]
+    let mut placements = Vec::new();
+    if raw.placement.is_empty() {
+        placements.push(Placement {
+            name: "unadjusted".to_string(),
+            gating: Vec::new(),
+            components: Vec::new(),
+            proportions: Proportions::Free,
+            clusters: default_clusters.clone(),
+            clusters_span: default_span.clone(),
+        });
+    }
+    for p in &raw.placement {
+        let placement = placement(&ctx, p, &default_clusters, &default_span, &indicators)?;
+        if let Some(first) = placements
+            .iter()
+            .find(|q: &&Placement| q.name == placement.name)
+        {
+            let _ = first;
+            return Err(Error::input(
+                ctx.err(
+                    p.get_ref().name.span(),
+                    format!("two placements are named '{}'", placement.name),
+                )
+                .help("give every [[placement]] a different name"),
+            ));
+        }
+        placements.push(placement);
+    }
+
+    let id = study.id.as_ref().map(|s| column_ref(s, "[study].id"));
+    let weights = study
+        .weights
+        .as_ref()
+        .map(|s| column_ref(s, "[study].weights"));
+    for special in id.iter().chain(weights.iter()) {
+        for p in &placements {
+            if let Some(c) = p
+                .gating
+                .iter()
+                .chain(&p.components)
+                .find(|c| c.name == special.name)
+            {
+                return Err(Error::input(
+                    ctx.err(
+                        c.span.clone(),
+                        format!(
+                            "'{}' is the {} column and cannot be a covariate",
+                            c.name, special.key
+                        ),
+                    )
+                    .help("remove it from the placement's covariate lists"),
+                ));
+            }
+        }
+        if let Some(c) = indicators.iter().find(|c| c.name == special.name) {
+            return Err(Error::input(ctx.err(
+                c.span.clone(),
+                format!(
+                    "'{}' is the {} column and cannot be an indicator",
+                    c.name, special.key
+                ),
+            )));
+        }
+    }
+    if let (Some(i), Some(w)) = (&id, &weights) {
+        if i.name == w.name {
+            return Err(Error::input(
+                ctx.err(w.span.clone(), "[study].weights names the id column"),
+            ));
+        }
+    }
+
+    let output = study.output.as_ref().map(|o| base.join(o.get_ref()));
+    Ok(Study {
+        spec_path: path.to_path_buf(),
+        spec_text: text.to_string(),
+        title,
+        data_path: base.join(data),
+        data_span: study.data.span(),
+        id,
+        weights,
+        seed,
+        output,
+        variables,
+        family,
+        indicators,
+        search,
+        placements,
+    })
+}
+
+fn check_unique(ctx: &Ctx, cols: &[ColumnRef]) -> Result<()> {
+    for (i, c) in cols.iter().enumerate() {
+        if cols[..i].iter().any(|d| d.name == c.name) {
+            return Err(Error::input(
+                ctx.err(
+                    c.span.clone(),
+                    format!("'{}' is listed twice in {}", c.name, c.key),
+                )
+                .help("list each column once"),
+            ));
+        }
+    }
+    Ok(())
+}
+
+fn search_settings(ctx: &Ctx, s: &raw::RawSearch) -> Result<(Vec<usize>, Search)> {
+    let clusters = match &s.clusters {
+        None => vec![1, 2, 3],
+        Some(c) => cluster_list(ctx, c, "[search].clusters")?,
+    };
+    let starts = match &s.starts {
+        None => DEFAULT_STARTS,
+        Some(v) => positive(ctx, v, "[search].starts", 1)?,
+    };
+    let max_iterations = match &s.max_iterations {
+        None => DEFAULT_MAX_ITERATIONS,
+        Some(v) => positive(ctx, v, "[search].max_iterations", 1)?,
+    };
+    let tolerance = match &s.tolerance {
+        None => DEFAULT_TOLERANCE,
+        Some(v) => {
+            let t = *v.get_ref();
+            // Below a few machine epsilons a relative change cannot be measured.
+            if !(t >= 4.0 * f64::EPSILON && t < 1.0) {
+                return Err(Error::input(
+                    ctx.err(
+                        v.span(),
+                        format!("[search].tolerance must be between 1e-15 and 1, not {t}"),
+                    )
+                    .help("the default is 1e-8"),
+                ));
+            }
+            t
+        }
+    };
+    let gating_ridge = match &s.gating_ridge {
+        None => 0.0,
+        Some(v) => {
+            let r = *v.get_ref();
+            if !(r.is_finite() && r >= 0.0) {
+                return Err(Error::input(
+                    ctx.err(v.span(), "[search].gating_ridge must be zero or positive"),
+                ));
+            }
+            r
+        }
+    };
+    if let Some(cov) = &s.covariance {
+        check_covariance(ctx, cov)?;
+    }
+    Ok((
+        clusters,
+        Search {
+            starts,
+            max_iterations,
+            tolerance,
+            gating_ridge,
+        },
+    ))
+}
+
+/// This version fits one covariance structure: everything varying across clusters.
+fn check_covariance(ctx: &Ctx, cov: &Spanned<toml::Value>) -> Result<()> {
+    let unsupported = || {
+        Error::input(
+            ctx.err(
+                cov.span(),
+                "only the unconstrained covariance structure is available in this version",
+            )
+            .help("write covariance = \"unconstrained\", or leave the key out"),
+        )
+    };
+    match cov.get_ref() {
+        toml::Value::String(s) if s == "unconstrained" => Ok(()),
+        toml::Value::String(s) => {
+            let mut d = ctx.err(cov.span(), format!("unknown covariance choice '{s}'"));
+            if let Some(w) = did_you_mean(s, ["unconstrained"]) {
+                d = d.help(format!("did you mean '{w}'?"));
+            }
+            Err(Error::input(d.help(
+                "available: \"unconstrained\" (volume, shape and orientation all varying)",
+            )))
+        }
+        toml::Value::Array(items) => {
+            for item in items {
+                let ok = item.as_table().is_some_and(|t| {
+                    t.len() == 3
+                        && ["volume", "shape", "orientation"]
+                            .iter()
+                            .all(|k| t.get(*k).and_then(|v| v.as_str()) == Some("varying"))
+                });
+                if !ok {
+                    return Err(unsupported());
+                }
+            }
+            Ok(())
+        }
+        _ => Err(unsupported()),
+    }
+}
+
+fn placement(
+    ctx: &Ctx,
+    p: &Spanned<RawPlacement>,
+    default_clusters: &[usize],
+    default_span: &Range<usize>,
+    indicators: &[ColumnRef],
+) -> Result<Placement> {
+    let r = p.get_ref();
+    let name = r.name.get_ref().trim().to_string();
+    if name.is_empty() {
+        return Err(Error::input(
+            ctx.err(r.name.span(), "a placement name is empty")
+                .help("name every [[placement]]"),
+        ));
+    }
+    let gating = column_list(&r.gating, "[placement].gating");
+    let components = column_list(&r.components, "[placement].components");
+    check_unique(ctx, &gating)?;
+    check_unique(ctx, &components)?;
+    for c in gating.iter().chain(&components) {
+        if indicators.iter().any(|i| i.name == c.name) {
+            return Err(Error::input(
+                ctx.err(
+                    c.span.clone(),
+                    format!(
+                        "'{}' is an indicator and cannot also be a covariate ({})",
+                        c.name, c.key
+                    ),
+                )
+                .help("a column either defines the clusters or adjusts them, not both"),
+            ));
+        }
+    }
+    let (clusters, clusters_span) = match &r.clusters {
+        None => (default_clusters.to_vec(), default_span.clone()),
+        Some(c) => (cluster_list(ctx, c, "[placement].clusters")?, c.span()),
+    };
+    let proportions = match &r.proportions {
+        None => Proportions::Free,
+        Some(v) => {
+            match v.get_ref() {
+                toml::Value::String(s) if s == "free" => Proportions::Free,
+                toml::Value::String(s) if s == "equal" => Proportions::Equal,
+                toml::Value::String(s) => {
+                    let mut d = ctx.err(v.span(), format!("unknown proportions choice '{s}'"));
+                    if let Some(w) = did_you_mean(s, ["free", "equal"]) {
+                        d = d.help(format!("did you mean '{w}'?"));
+                    }
+                    return Err(Error::input(d.help("write \"free\", \"equal\", or a list of fixed shares such as [0.5, 0.3, 0.2]")));
+                }
+                toml::Value::Array(a) => {
+                    let shares: Option<Vec<f64>> = a
+                        .iter()
+                        .map(|x| x.as_float().or_else(|| x.as_integer().map(|i| i as f64)))
+                        .collect();
+                    let shares = shares.ok_or_else(|| {
+                        Error::input(ctx.err(v.span(), "fixed proportions must be numbers"))
+                    })?;
+                    let sum: f64 = shares.iter().sum();
+                    if shares.iter().any(|s| !(*s > 0.0)) || (sum - 1.0).abs() > 1e-9 {
+                        return Err(Error::input(
+                        ctx.err(v.span(), format!("fixed proportions must be positive and add up to 1 (these add up to {sum})")),
+                    ));
+                    }
+                    if clusters.iter().any(|g| *g != shares.len()) {
+                        return Err(Error::input(
+                        ctx.err(v.span(), format!("{} fixed proportions are given, but this placement fits cluster counts {:?}", shares.len(), clusters))
+                            .help(format!("add clusters = [{}] to this [[placement]]", shares.len())),
+                    ));
+                    }
+                    Proportions::Fixed(shares)
+                }
+                _ => {
+                    return Err(Error::input(ctx.err(
+                        v.span(),
+                        "proportions must be \"free\", \"equal\" or a list of numbers",
+                    )))
+                }
+            }
+        }
+    };
+    if !matches!(proportions, Proportions::Free) && !gating.is_empty() {
+        return Err(Error::input(
+            ctx.err(
+                r.gating.as_ref().map_or(r.name.span(), |g| g.span()),
+                "gating covariates need estimated proportions, but this placement fixes them",
+            )
+            .help("remove the gating list, or remove the proportions key (default \"free\")"),
+        ));
+    }
+    Ok(Placement {
+        name,
+        gating,
+        components,
+        proportions,
+        clusters,
+        clusters_span,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn spec(body: &str) -> std::result::Result<Study, String> {
+        parse(Path::new("s.toml"), body).map_err(|e| e.to_string())
+    }
+
+    const BASE: &str =
+        "[study]\ntitle = \"t\"\ndata = \"d.csv\"\n[indicators]\ncolumns = [\"a\", \"b\"]\n";
+
+    #[test]
+    fn minimal_spec_gets_defaults() {
+        let s = spec(BASE).unwrap();
+        assert_eq!(s.search.starts, DEFAULT_STARTS);
+        assert_eq!(s.placements.len(), 1);
+        assert_eq!(s.placements[0].clusters, vec![1, 2, 3]);
+        assert_eq!(s.data_path, PathBuf::from("d.csv"));
+        assert_eq!(s.variable_type("a"), Some(VariableType::Continuous));
+    }
+
+    #[test]
+    fn misspelt_key_gets_a_suggestion() {
+        let e = spec(&format!("{BASE}[search]\nclustrs = [2]\n")).unwrap_err();
+        assert!(
+            e.contains("unknown key 'clustrs'") && e.contains("did you mean 'clusters'?"),
+            "{e}"
+        );
+        assert!(e.contains("s.toml:7:1"), "{e}");
+    }
+
+    #[test]
+    fn fixed_proportions_must_match_cluster_counts() {
+        let e = spec(&format!(
+            "{BASE}[[placement]]\nname = \"p\"\nproportions = [0.5, 0.5]\n"
+        ))
+        .unwrap_err();
+        assert!(e.contains("add clusters = [2]"), "{e}");
+        let ok = spec(&format!(
+            "{BASE}[[placement]]\nname = \"p\"\nproportions = [0.5, 0.5]\nclusters = [2]\n"
+        ))
+        .unwrap();
+        assert_eq!(
+            ok.placements[0].proportions,
+            Proportions::Fixed(vec![0.5, 0.5])
+        );
+    }
+
+    #[test]
+    fn indicator_cannot_be_a_covariate() {
+        let e = spec(&format!(
+            "{BASE}[[placement]]\nname = \"p\"\ncomponents = [\"a\"]\n"
+        ))
+        .unwrap_err();
+        assert!(e.contains("'a' is an indicator"), "{e}");
+    }
+}

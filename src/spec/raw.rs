@@ -1,0 +1,156 @@
+//! The study spec exactly as written: serde types that mirror the TOML.
+//!
+//! Unknown keys are rejected (`deny_unknown_fields`); values keep their byte spans
+//! ([`toml::Spanned`]) so that checks made after parsing can still point at the line and
+//! column. Nothing outside `spec` sees these types: [`super::validate`] turns them into a
+//! [`super::Study`].
+
+use serde::de::{self, Deserializer, MapAccess, Visitor};
+use serde::Deserialize;
+use std::collections::BTreeMap;
+use std::fmt;
+use toml::Spanned;
+
+/// Spanned string.
+pub type SStr = Spanned<String>;
+/// Spanned list of spanned strings.
+pub type SList = Spanned<Vec<SStr>>;
+
+/// The whole spec file.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSpec {
+    /// `[study]`: title, data file, id and weight columns, seed, output folder.
+    pub study: Spanned<RawStudy>,
+    /// `[variables]`: the type of each column used.
+    #[serde(default)]
+    pub variables: BTreeMap<String, Spanned<RawVariable>>,
+    /// `[indicators]`: the columns that define the clusters, and their family.
+    pub indicators: Spanned<RawIndicators>,
+    /// `[search]`: cluster counts, starts, convergence.
+    #[serde(default)]
+    pub search: Option<Spanned<RawSearch>>,
+    /// `[[placement]]`: where the covariates go.
+    #[serde(default)]
+    pub placement: Vec<Spanned<RawPlacement>>,
+}
+
+/// `[study]`.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawStudy {
+    /// Free text shown on every output.
+    pub title: SStr,
+    /// CSV file, relative to the spec file.
+    pub data: SStr,
+    /// Column that identifies a row; row numbers are used without it.
+    pub id: Option<SStr>,
+    /// Column of case weights (non-negative).
+    pub weights: Option<SStr>,
+    /// Master random seed.
+    pub seed: Option<Spanned<i64>>,
+    /// Run folder, relative to the spec file.
+    pub output: Option<SStr>,
+}
+
+/// One entry of `[variables]`: either a bare type word or a table.
+#[derive(Debug)]
+pub struct RawVariable {
+    /// `continuous`, `binary`, `categorical` or `count`.
+    pub kind: String,
+    /// Reference level of a categorical column.
+    pub reference: Option<String>,
+    /// All levels of a categorical column, in order.
+    pub levels: Option<Vec<String>>,
+}
+
+impl<'de> Deserialize<'de> for RawVariable {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = RawVariable;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str(
+                    "a type word (\"continuous\", \"binary\", \"categorical\", \"count\") \
+                     or a table such as { type = \"categorical\", reference = \"female\" }",
+                )
+            }
+            fn visit_str<E: de::Error>(self, v: &str) -> Result<RawVariable, E> {
+                Ok(RawVariable {
+                    kind: v.to_string(),
+                    reference: None,
+                    levels: None,
+                })
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<RawVariable, A::Error> {
+                let mut kind = None;
+                let mut reference = None;
+                let mut levels = None;
+                while let Some(key) = map.next_key::<String>()? {
+                    match key.as_str() {
+                        "type" => kind = Some(map.next_value::<String>()?),
+                        "reference" => reference = Some(map.next_value::<String>()?),
+                        "levels" => levels = Some(map.next_value::<Vec<String>>()?),
+                        other => {
+                            return Err(de::Error::unknown_field(
+                                other,
+                                &["type", "reference", "levels"],
+                            ))
+                        }
+                    }
+                }
+                let kind = kind.ok_or_else(|| de::Error::missing_field("type"))?;
+                Ok(RawVariable {
+                    kind,
+                    reference,
+                    levels,
+                })
+            }
+        }
+        deserializer.deserialize_any(V)
+    }
+}
+
+/// `[indicators]`.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawIndicators {
+    /// Component family; `gaussian` by default.
+    pub family: Option<SStr>,
+    /// The indicator columns.
+    pub columns: SList,
+}
+
+/// `[search]`.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSearch {
+    /// Cluster counts to fit.
+    pub clusters: Option<Spanned<Vec<Spanned<i64>>>>,
+    /// Starts per fit.
+    pub starts: Option<Spanned<i64>>,
+    /// EM iteration cap per start.
+    pub max_iterations: Option<Spanned<i64>>,
+    /// Relative log-likelihood change that counts as converged.
+    pub tolerance: Option<Spanned<f64>>,
+    /// Ridge penalty on the gating slopes.
+    pub gating_ridge: Option<Spanned<f64>>,
+    /// Covariance structures (gaussian only).
+    pub covariance: Option<Spanned<toml::Value>>,
+}
+
+/// `[[placement]]`.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawPlacement {
+    /// Unique name shown in every table.
+    pub name: SStr,
+    /// Covariates of the gating network (membership).
+    pub gating: Option<SList>,
+    /// Covariates of the component models (inside clusters).
+    pub components: Option<SList>,
+    /// `free`, `equal`, or a list of fixed proportions.
+    pub proportions: Option<Spanned<toml::Value>>,
+    /// Cluster counts for this placement instead of `[search].clusters`.
+    pub clusters: Option<Spanned<Vec<Spanned<i64>>>>,
+}

@@ -1,0 +1,3 @@
+//! The integration test binary: one crate, one module per layer.
+
+mod suite;

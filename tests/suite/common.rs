@@ -1,0 +1,49 @@
+//! Helpers shared by the integration tests.
+
+use cohortmix::data::Column;
+use cohortmix::spec::VariableType;
+use std::path::{Path, PathBuf};
+
+/// A path under the crate root.
+pub fn root(rel: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join(rel)
+}
+
+/// Read a CSV into named columns of text.
+pub fn read_csv(path: &Path) -> (Vec<String>, Vec<Vec<String>>) {
+    let mut r = csv::Reader::from_path(path).expect("fixture CSV");
+    let header: Vec<String> = r.headers().unwrap().iter().map(str::to_string).collect();
+    let mut cols = vec![Vec::new(); header.len()];
+    for rec in r.records() {
+        let rec = rec.unwrap();
+        for (c, v) in cols.iter_mut().zip(rec.iter()) {
+            c.push(v.to_string());
+        }
+    }
+    (header, cols)
+}
+
+/// A continuous column from text.
+pub fn numeric(values: &[String]) -> Column {
+    Column::Numeric {
+        kind: VariableType::Continuous,
+        values: values.iter().map(|v| v.parse().unwrap()).collect(),
+    }
+}
+
+/// Column by name.
+pub fn col<'a>(header: &[String], cols: &'a [Vec<String>], name: &str) -> &'a [String] {
+    &cols[header
+        .iter()
+        .position(|h| h == name)
+        .unwrap_or_else(|| panic!("no column {name}"))]
+}
+
+/// Significant digits on which a and b agree (16 when equal).
+pub fn digits(a: f64, b: f64) -> f64 {
+    if a == b {
+        16.0
+    } else {
+        -((a - b).abs() / b.abs().max(f64::MIN_POSITIVE)).log10()
+    }
+}

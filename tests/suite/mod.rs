@@ -1,0 +1,8 @@
+//! Integration tests, by layer.
+
+pub mod bad_inputs;
+pub mod cli;
+pub mod common;
+pub mod properties;
+pub mod recovery;
+pub mod reference;
