@@ -36,9 +36,7 @@ impl Location {
         let line_end = text[start..].find('\n').map_or(text.len(), |i| start + i);
         let line = text[..start].matches('\n').count() + 1;
         let column = text[line_start..start].chars().count() + 1;
-        let excerpt = text[line_start..line_end]
-            .trim_end_matches('\r')
-            .to_string();
+        let excerpt = text[line_start..line_end].trim_end_matches('\r').to_string();
         let width = text[start..end.min(line_end)].chars().count().max(1);
         Location {
             file: file.to_path_buf(),
@@ -98,22 +96,13 @@ impl Diagnostic {
 impl fmt::Display for Diagnostic {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         writeln!(f, "error: {}", self.message)?;
+        // Gutter as wide as the line number, as compilers print it.
+        let pad = " ".repeat(self.location.as_ref().map_or(1, |l| l.line.to_string().len()));
         if let Some(loc) = &self.location {
-            writeln!(
-                f,
-                "  --> {}:{}:{}",
-                loc.file.display(),
-                loc.line,
-                loc.column
-            )?;
+            writeln!(f, "{pad}--> {}:{}:{}", loc.file.display(), loc.line, loc.column)?;
             if let Some(text) = &loc.excerpt {
-                let gutter = loc.line.to_string().len();
-                let pad = " ".repeat(gutter);
                 // Tabs would misplace the caret; show them as single spaces.
-                let shown: String = text
-                    .chars()
-                    .map(|c| if c == '\t' { ' ' } else { c })
-                    .collect();
+                let shown: String = text.chars().map(|c| if c == '\t' { ' ' } else { c }).collect();
                 let shown = truncate_chars(&shown, 200);
                 writeln!(f, "{pad} |")?;
                 writeln!(f, "{} | {}", loc.line, shown)?;
@@ -122,7 +111,7 @@ impl fmt::Display for Diagnostic {
             }
         }
         for h in &self.help {
-            writeln!(f, "  = help: {h}")?;
+            writeln!(f, "{pad} = help: {h}")?;
         }
         Ok(())
     }
@@ -227,10 +216,7 @@ mod tests {
     fn suggestions_only_for_near_misses() {
         let cols = ["age", "sex", "exposure_years"];
         assert_eq!(did_you_mean("sexx", cols).as_deref(), Some("sex"));
-        assert_eq!(
-            did_you_mean("exposure_yrs", cols).as_deref(),
-            Some("exposure_years")
-        );
+        assert_eq!(did_you_mean("exposure_yrs", cols).as_deref(), Some("exposure_years"));
         assert_eq!(did_you_mean("height", cols), None);
         assert_eq!(edit_distance("kitten", "sitting"), 3);
     }
@@ -242,7 +228,7 @@ mod tests {
             .at(Location::from_span(Path::new("s.toml"), text, 17..22))
             .help("did you mean 'fev1'?");
         let shown = d.to_string();
-        assert!(shown.contains("--> s.toml:2:12"), "{shown}");
+        assert!(shown.contains("\n --> s.toml:2:12"), "{shown}");
         assert!(shown.contains("2 | columns = [\"fev\"]"), "{shown}");
         assert!(shown.contains("  |            ^^^^^"), "{shown}");
     }

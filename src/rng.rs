@@ -119,9 +119,6 @@ mod tests {
         for _ in 0..30_000 {
             counts[s.index(3)] += 1;
         }
-        assert!(
-            counts.iter().all(|c| (9_500..10_500).contains(c)),
-            "{counts:?}"
-        );
+        assert!(counts.iter().all(|c| (9_500..10_500).contains(c)), "{counts:?}");
     }
 }

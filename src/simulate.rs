@@ -189,9 +189,7 @@ pub fn load(path: &Path) -> Result<Truth> {
 
 /// Parse and validate truth-spec text read from `path`.
 pub fn parse(path: &Path, text: &str) -> Result<Truth> {
-    let err = |span: Range<usize>, msg: String| {
-        Diagnostic::new(msg).at(Location::from_span(path, text, span))
-    };
+    let err = |span: Range<usize>, msg: String| Diagnostic::new(msg).at(Location::from_span(path, text, span));
     let raw: RawTruth = toml::from_str(text).map_err(|e| {
         let mut d = Diagnostic::new(e.message().lines().next().unwrap_or("").to_string());
         if let Some(span) = e.span() {
@@ -219,10 +217,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
     };
     let decimals = match &sim.decimals {
         Some(d) if !(0..=12).contains(d.get_ref()) => {
-            return Err(Error::input(err(
-                d.span(),
-                "decimals must be 0 to 12".into(),
-            )))
+            return Err(Error::input(err(d.span(), "decimals must be 0 to 12".into())))
         }
         Some(d) => *d.get_ref() as usize,
         None => 2,
@@ -239,12 +234,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
     for c in &raw.covariate {
         let r = c.get_ref();
         let need = |v: Option<f64>, key: &str| -> Result<f64> {
-            v.ok_or_else(|| {
-                Error::input(err(
-                    c.span(),
-                    format!("covariate '{}' needs {key}", r.name.get_ref()),
-                ))
-            })
+            v.ok_or_else(|| Error::input(err(c.span(), format!("covariate '{}' needs {key}", r.name.get_ref()))))
         };
         let draw = match r.distribution.get_ref().as_str() {
             "normal" => {
@@ -277,28 +267,31 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
                 Draw::Bernoulli { probability: p }
             }
             "categorical" => {
-                let levels = r.levels.clone().ok_or_else(|| {
-                    Error::input(err(c.span(), "a categorical covariate needs levels".into()))
-                })?;
-                let shares = r.shares.clone().ok_or_else(|| {
-                    Error::input(err(c.span(), "a categorical covariate needs shares".into()))
-                })?;
+                let levels = r
+                    .levels
+                    .clone()
+                    .ok_or_else(|| Error::input(err(c.span(), "a categorical covariate needs levels".into())))?;
+                let shares = r
+                    .shares
+                    .clone()
+                    .ok_or_else(|| Error::input(err(c.span(), "a categorical covariate needs shares".into())))?;
                 let total: f64 = shares.iter().sum();
                 if shares.len() != levels.len()
                     || levels.len() < 2
                     || (total - 1.0).abs() > 1e-9
                     || shares.iter().any(|s| *s < 0.0)
                 {
-                    return Err(Error::input(err(c.span(), "levels and shares must have the same length (at least 2) and the shares must add up to 1".into())));
+                    return Err(Error::input(err(
+                        c.span(),
+                        "levels and shares must have the same length (at least 2) and the shares must add up to 1"
+                            .into(),
+                    )));
                 }
                 Draw::Categorical { levels, shares }
             }
             other => {
                 let words = ["normal", "uniform", "bernoulli", "categorical"];
-                let mut d = err(
-                    r.distribution.span(),
-                    format!("unknown distribution '{other}'"),
-                );
+                let mut d = err(r.distribution.span(), format!("unknown distribution '{other}'"));
                 if let Some(s) = did_you_mean(other, words) {
                     d = d.help(format!("did you mean '{s}'?"));
                 }
@@ -323,22 +316,19 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
     }
 
     let terms = term_names(&covariates);
-    let check_terms =
-        |map: &BTreeMap<String, f64>, span: Range<usize>, allow_intercept: bool| -> Result<()> {
-            for k in map.keys() {
-                let ok = (allow_intercept && k == "intercept") || terms.contains(k);
-                if !ok {
-                    let mut d = err(span.clone(), format!("unknown term '{k}'"));
-                    if let Some(s) = did_you_mean(k, terms.iter().map(String::as_str)) {
-                        d = d.help(format!("did you mean '{s}'?"));
-                    }
-                    return Err(Error::input(
-                        d.help(format!("terms: intercept, {}", terms.join(", "))),
-                    ));
+    let check_terms = |map: &BTreeMap<String, f64>, span: Range<usize>, allow_intercept: bool| -> Result<()> {
+        for k in map.keys() {
+            let ok = (allow_intercept && k == "intercept") || terms.contains(k);
+            if !ok {
+                let mut d = err(span.clone(), format!("unknown term '{k}'"));
+                if let Some(s) = did_you_mean(k, terms.iter().map(String::as_str)) {
+                    d = d.help(format!("did you mean '{s}'?"));
                 }
+                return Err(Error::input(d.help(format!("terms: intercept, {}", terms.join(", ")))));
             }
-            Ok(())
-        };
+        }
+        Ok(())
+    };
     if raw.cluster.is_empty() {
         return Err(Error::input(err(
             raw.simulation.span(),
@@ -353,8 +343,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
             Some(g) if k == 0 => {
                 return Err(Error::input(err(
                     g.span(),
-                    "the first cluster is the gating reference and takes no gating coefficients"
-                        .into(),
+                    "the first cluster is the gating reference and takes no gating coefficients".into(),
                 )));
             }
             Some(g) => {
@@ -368,10 +357,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
                 .iter()
                 .map(|i| {
                     m.get_ref().get(i).copied().ok_or_else(|| {
-                        Error::input(err(
-                            m.span(),
-                            format!("cluster '{}' gives no {key} for '{i}'", r.name),
-                        ))
+                        Error::input(err(m.span(), format!("cluster '{}' gives no {key} for '{i}'", r.name)))
                     })
                 })
                 .collect()
@@ -379,10 +365,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         let mean = per_indicator(&r.mean, "mean")?;
         let sd = per_indicator(&r.sd, "sd")?;
         if sd.iter().any(|s| !(*s > 0.0)) {
-            return Err(Error::input(err(
-                r.sd.span(),
-                "every sd must be positive".into(),
-            )));
+            return Err(Error::input(err(r.sd.span(), "every sd must be positive".into())));
         }
         let mut effects = vec![BTreeMap::new(); d];
         if let Some(e) = &r.effects {
@@ -397,20 +380,13 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
                 effects[j] = map.clone();
             }
         }
-        let corr = correlation(r.correlation.as_ref(), d).map_err(|m| {
-            Error::input(err(
-                r.correlation.as_ref().map_or(c.span(), Spanned::span),
-                m,
-            ))
-        })?;
+        let corr = correlation(r.correlation.as_ref(), d)
+            .map_err(|m| Error::input(err(r.correlation.as_ref().map_or(c.span(), Spanned::span), m)))?;
         let covariance = DMatrix::from_fn(d, d, |a, b| corr[(a, b)] * sd[a] * sd[b]);
         if covariance.clone().cholesky().is_none() {
             return Err(Error::input(err(
                 c.span(),
-                format!(
-                    "the covariance of cluster '{}' is not positive definite",
-                    r.name
-                ),
+                format!("the covariance of cluster '{}' is not positive definite", r.name),
             )));
         }
         clusters.push(SimCluster {
@@ -436,10 +412,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
     })
 }
 
-fn correlation(
-    v: Option<&Spanned<toml::Value>>,
-    d: usize,
-) -> std::result::Result<DMatrix<f64>, String> {
+fn correlation(v: Option<&Spanned<toml::Value>>, d: usize) -> std::result::Result<DMatrix<f64>, String> {
     let Some(v) = v else {
         return Ok(DMatrix::identity(d, d));
     };
@@ -480,11 +453,7 @@ fn term_names(covariates: &[SimCovariate]) -> Vec<String> {
     covariates
         .iter()
         .flat_map(|c| match &c.draw {
-            Draw::Categorical { levels, .. } => levels
-                .iter()
-                .skip(1)
-                .map(|l| format!("{}={l}", c.name))
-                .collect(),
+            Draw::Categorical { levels, .. } => levels.iter().skip(1).map(|l| format!("{}={l}", c.name)).collect(),
             _ => vec![c.name.clone()],
         })
         .collect()
@@ -539,13 +508,7 @@ pub fn generate(truth: &Truth) -> Simulated {
             .clusters
             .iter()
             .enumerate()
-            .map(|(k, cl)| {
-                if k == 0 {
-                    0.0
-                } else {
-                    linear(&cl.gating, &term_values)
-                }
-            })
+            .map(|(k, cl)| if k == 0 { 0.0 } else { linear(&cl.gating, &term_values) })
             .collect();
         let m = eta.iter().copied().fold(f64::NEG_INFINITY, f64::max);
         let probs: Vec<f64> = eta.iter().map(|e| (e - m).exp()).collect();
@@ -565,10 +528,7 @@ pub fn generate(truth: &Truth) -> Simulated {
         }
         let _ = writeln!(csv, "{}", row.join(","));
     }
-    Simulated {
-        csv,
-        clusters: classes,
-    }
+    Simulated { csv, clusters: classes }
 }
 
 fn linear(coefs: &BTreeMap<String, f64>, values: &BTreeMap<String, f64>) -> f64 {

@@ -45,11 +45,9 @@ pub enum Command {
         spec: PathBuf,
     },
     /// Fit every placement × cluster count of a study spec and write the run folder.
-    #[command(
-        after_help = "Example:\n  cohortmix fit configs/demo.toml --out runs/demo\n\n\
+    #[command(after_help = "Example:\n  cohortmix fit configs/demo.toml --out runs/demo\n\n\
 The run folder gets results.json, models.csv, memberships.csv and manifest.json.\n\
-Default folder: [study].output in the spec, else runs/<spec name> here."
-    )]
+Default folder: [study].output in the spec, else runs/<spec name> here.")]
     Fit {
         /// The study spec (TOML).
         spec: PathBuf,
@@ -58,10 +56,8 @@ Default folder: [study].output in the spec, else runs/<spec name> here."
         out: Option<PathBuf>,
     },
     /// Write a CSV of data drawn from the truth a truth spec states (seeded).
-    #[command(
-        after_help = "Example:\n  cohortmix simulate demo-data/respiratory-truth.toml\n\n\
-The truth spec format is described in docs/simulate.md."
-    )]
+    #[command(after_help = "Example:\n  cohortmix simulate demo-data/respiratory-truth.toml\n\n\
+The truth spec format is described in docs/simulate.md.")]
     Simulate {
         /// The truth spec (TOML).
         spec: PathBuf,
@@ -95,14 +91,10 @@ pub fn main() -> i32 {
 pub fn run(cli: Cli) -> Result<()> {
     if let Some(n) = cli.threads {
         if n == 0 {
-            return Err(Error::input(Diagnostic::new(
-                "--threads must be at least 1",
-            )));
+            return Err(Error::input(Diagnostic::new("--threads must be at least 1")));
         }
         // Fails only if a pool exists already (a second call in one process); harmless.
-        let _ = rayon::ThreadPoolBuilder::new()
-            .num_threads(n)
-            .build_global();
+        let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
     }
     match cli.command {
         Command::Check { spec } => check(&spec),
@@ -140,12 +132,7 @@ fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> 
 fn check(spec_path: &Path) -> Result<()> {
     let (study, data, prepared) = load_study(spec_path)?;
     let mut out = std::io::stdout().lock();
-    let _ = writeln!(
-        out,
-        "spec {} is valid: {}",
-        study.spec_path.display(),
-        study.title
-    );
+    let _ = writeln!(out, "spec {} is valid: {}", study.spec_path.display(), study.title);
     let _ = writeln!(
         out,
         "data {}: {} rows read, {} used, {} excluded for missing values",
@@ -182,11 +169,7 @@ fn check(spec_path: &Path) -> Result<()> {
         };
         let _ = writeln!(out, "  placement '{}'", pp.placement.name);
         let _ = writeln!(out, "    gating terms:    {}", or_none(&terms(&pp.gating)));
-        let _ = writeln!(
-            out,
-            "    component terms: {}",
-            or_none(&terms(&pp.components))
-        );
+        let _ = writeln!(out, "    component terms: {}", or_none(&terms(&pp.components)));
         for &g in &pp.placement.clusters {
             let k = fit::initial_model(&fd, &pp.placement, g, 0.0).n_params();
             let starts = if g == 1 { 1 } else { study.search.starts };
@@ -347,10 +330,9 @@ fn simulate_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
         .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
-    let name = dest.file_name().map_or_else(
-        || "simulated.csv".into(),
-        |n| n.to_string_lossy().to_string(),
-    );
+    let name = dest
+        .file_name()
+        .map_or_else(|| "simulated.csv".into(), |n| n.to_string_lossy().to_string());
     let mut files = RunFiles::default();
     files.add(&name, sim.csv);
     files.commit(&dir)?;

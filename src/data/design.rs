@@ -17,6 +17,15 @@ pub struct Term {
     pub scale: f64,
 }
 
+/// Why a design matrix cannot be built.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DesignError {
+    /// The covariate at fault, when one is.
+    pub covariate: Option<String>,
+    /// What is wrong and what to do.
+    pub message: String,
+}
+
 /// A design matrix, row-major, as used for fitting (numeric columns standardised).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Design {
@@ -44,34 +53,36 @@ impl Design {
     }
 
     /// Build from named covariates of a dataset; fails on constant or collinear columns.
-    pub fn build(data: &Dataset, covariates: &[String]) -> Result<Design, String> {
+    pub fn build(data: &Dataset, covariates: &[String]) -> Result<Design, DesignError> {
         let cols: Vec<(&str, &Column)> = covariates
             .iter()
             .map(|c| {
                 data.columns
                     .get(c)
                     .map(|col| (c.as_str(), col))
-                    .ok_or_else(|| format!("covariate '{c}' was not read"))
+                    .ok_or_else(|| DesignError {
+                        covariate: Some(c.clone()),
+                        message: format!("covariate '{c}' was not read"),
+                    })
             })
             .collect::<Result<_, _>>()?;
         Design::from_columns(data.n(), &cols)
     }
 
     /// Build from columns directly (used by [`Design::build`] and by reference tests).
-    pub fn from_columns(n: usize, cols: &[(&str, &Column)]) -> Result<Design, String> {
+    pub fn from_columns(n: usize, cols: &[(&str, &Column)]) -> Result<Design, DesignError> {
         let mut terms = vec![intercept_term()];
         let mut columns: Vec<Vec<f64>> = Vec::new();
         for (name, col) in cols {
             match col {
                 Column::Numeric { kind, values } => {
                     let standardise = !matches!(kind, VariableType::Binary);
-                    let (center, scale) = if standardise {
-                        mean_sd(values)
-                    } else {
-                        (0.0, 1.0)
-                    };
+                    let (center, scale) = if standardise { mean_sd(values) } else { (0.0, 1.0) };
                     if !(scale > 0.0) || (!standardise && values.iter().all(|v| *v == values[0])) {
-                        return Err(format!("covariate '{name}' has the same value in every row used, so its effect cannot be estimated; leave it out"));
+                        return Err(DesignError {
+                            covariate: Some(name.to_string()),
+                            message: format!("covariate '{name}' has the same value in every row used, so its effect cannot be estimated; leave it out"),
+                        });
                     }
                     columns.push(values.iter().map(|v| (v - center) / scale).collect());
                     terms.push(Term {
@@ -90,10 +101,7 @@ impl Design {
                         if k == *reference {
                             continue;
                         }
-                        let dummy: Vec<f64> = codes
-                            .iter()
-                            .map(|c| f64::from(u8::from(*c as usize == k)))
-                            .collect();
+                        let dummy: Vec<f64> = codes.iter().map(|c| f64::from(u8::from(*c as usize == k))).collect();
                         if dummy.iter().all(|v| *v == 0.0) {
                             continue; // a declared level that does not occur in the rows used
                         }
@@ -122,7 +130,7 @@ impl Design {
     }
 
     /// Fails when the columns are (nearly) linearly dependent.
-    fn check_rank(&self) -> Result<(), String> {
+    fn check_rank(&self) -> Result<(), DesignError> {
         let p = self.p();
         let mut xtx = DMatrix::<f64>::zeros(p, p);
         for row in self.x.chunks_exact(p) {
@@ -138,18 +146,19 @@ impl Design {
             }
         }
         // Scale to a correlation-like matrix so the threshold is unit-free.
-        let d: Vec<f64> = (0..p)
-            .map(|a| xtx[(a, a)].sqrt().max(f64::MIN_POSITIVE))
-            .collect();
+        let d: Vec<f64> = (0..p).map(|a| xtx[(a, a)].sqrt().max(f64::MIN_POSITIVE)).collect();
         let scaled = DMatrix::from_fn(p, p, |a, b| xtx[(a, b)] / (d[a] * d[b]));
         let eig = scaled.symmetric_eigenvalues();
         let min = eig.iter().copied().fold(f64::INFINITY, f64::min);
         if min < 1e-10 {
             let names: Vec<&str> = self.terms.iter().skip(1).map(|t| t.name.as_str()).collect();
-            return Err(format!(
-                "the covariates {} are collinear (one is a combination of the others), so their effects cannot be separated; leave one out",
-                names.join(", ")
-            ));
+            return Err(DesignError {
+                covariate: None,
+                message: format!(
+                    "the covariates {} are collinear (one is a combination of the others), so their effects cannot be separated; leave one out",
+                    names.join(", ")
+                ),
+            });
         }
         Ok(())
     }

@@ -10,7 +10,7 @@
 
 mod design;
 
-pub use design::{Design, Term};
+pub use design::{Design, DesignError, Term};
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
 use crate::spec::{read_text, ColumnRef, Study, VariableType};
@@ -79,7 +79,7 @@ impl Dataset {
     }
 
     /// Design matrix for a list of covariates (intercept first).
-    pub fn design(&self, covariates: &[String]) -> std::result::Result<Design, String> {
+    pub fn design(&self, covariates: &[String]) -> std::result::Result<Design, DesignError> {
         Design::build(self, covariates)
     }
 }
@@ -92,18 +92,12 @@ struct Raw<'a> {
 
 impl Raw<'_> {
     fn line_text(&self, line: usize) -> String {
-        let start = self
-            .line_starts
-            .get(line - 1)
-            .copied()
-            .unwrap_or(self.text.len());
+        let start = self.line_starts.get(line - 1).copied().unwrap_or(self.text.len());
         let end = self
             .line_starts
             .get(line)
             .map_or(self.text.len(), |e| e.saturating_sub(1));
-        self.text[start..end.max(start)]
-            .trim_end_matches('\r')
-            .to_string()
+        self.text[start..end.max(start)].trim_end_matches('\r').to_string()
     }
 
     /// Location of field `field` (0-based) on 1-based `line`.
@@ -237,6 +231,7 @@ pub fn load(study: &Study) -> Result<Dataset> {
                 "the data file {} has a header but no data rows",
                 path.display()
             ))
+            .at(Location::at(path, 2, 1, Some(String::new())))
             .help("add at least one row of data below the header"),
         ));
     }
@@ -271,11 +266,8 @@ pub fn load(study: &Study) -> Result<Dataset> {
     let rows_used = keep.iter().filter(|k| **k).count();
     if rows_used == 0 {
         return Err(Error::input(
-            Diagnostic::new(format!(
-                "no row of {} has every value the fits need",
-                path.display()
-            ))
-            .help(describe_missing(&missing_by_column)),
+            Diagnostic::new(format!("no row of {} has every value the fits need", path.display()))
+                .help(describe_missing(&missing_by_column)),
         ));
     }
 
@@ -296,11 +288,9 @@ pub fn load(study: &Study) -> Result<Dataset> {
         };
         if let Some(first) = id_seen.insert(id.clone(), *line) {
             return Err(Error::input(
-                Diagnostic::new(format!(
-                    "id '{id}' appears twice (lines {first} and {line})"
-                ))
-                .at(raw.field_location(*line, needed[id_k.unwrap_or(0)].index))
-                .help("every row needs its own id; remove the duplicate row"),
+                Diagnostic::new(format!("id '{id}' appears twice (lines {first} and {line})"))
+                    .at(raw.field_location(*line, needed[id_k.unwrap_or(0)].index))
+                    .help("every row needs its own id; remove the duplicate row"),
             ));
         }
         ids.push(id);
@@ -335,12 +325,9 @@ pub fn load(study: &Study) -> Result<Dataset> {
                 for ((l, _), w) in kept.iter().zip(&values) {
                     if *w < 0.0 {
                         return Err(Error::input(
-                            Diagnostic::new(format!(
-                                "weight {w} in column '{}' is negative",
-                                nd.col.name
-                            ))
-                            .at(raw.field_location(*l, nd.index))
-                            .help("case weights must be zero or positive"),
+                            Diagnostic::new(format!("weight {w} in column '{}' is negative", nd.col.name))
+                                .at(raw.field_location(*l, nd.index))
+                                .help("case weights must be zero or positive"),
                         ));
                     }
                 }
@@ -386,10 +373,7 @@ fn needed_columns(study: &Study, header: &[String]) -> Result<Vec<Needed>> {
     let mut out: Vec<Needed> = Vec::new();
     let find = |c: &ColumnRef| -> Result<usize> {
         header.iter().position(|h| *h == c.name).ok_or_else(|| {
-            let mut d = study.error_at(
-                c.span.clone(),
-                format!("unknown column '{}' in {}", c.name, c.key),
-            );
+            let mut d = study.error_at(c.span.clone(), format!("unknown column '{}' in {}", c.name, c.key));
             if let Some(s) = did_you_mean(&c.name, header.iter().map(String::as_str)) {
                 d = d.help(format!("did you mean '{s}'?"));
             }
@@ -442,22 +426,14 @@ fn list_preview(header: &[String]) -> String {
     if header.len() <= 12 {
         header.join(", ")
     } else {
-        format!(
-            "{}, ... ({} columns)",
-            header[..12].join(", "),
-            header.len()
-        )
+        format!("{}, ... ({} columns)", header[..12].join(", "), header.len())
     }
 }
 
 fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -> Result<Column> {
     let name = &nd.col.name;
     let bad = |line: usize, msg: String, help: String| -> Error {
-        Error::input(
-            Diagnostic::new(msg)
-                .at(raw.field_location(line, nd.index))
-                .help(help),
-        )
+        Error::input(Diagnostic::new(msg).at(raw.field_location(line, nd.index)).help(help))
     };
     match &nd.kind {
         VariableType::Categorical { reference, levels } => {
@@ -470,8 +446,7 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
             let order = match levels {
                 Some(ls) => {
                     if let Some((l, v)) = kept.iter().find(|(_, v)| !ls.iter().any(|x| x == v)) {
-                        let mut h =
-                            format!("the levels declared in [variables] are: {}", ls.join(", "));
+                        let mut h = format!("the levels declared in [variables] are: {}", ls.join(", "));
                         if let Some(s) = did_you_mean(v, ls.iter().map(String::as_str)) {
                             h = format!("did you mean '{s}'? {h}");
                         }
@@ -485,7 +460,13 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
             if used.len() < 2 {
                 return Err(Error::input(
                     study
-                        .error_at(nd.col.span.clone(), format!("categorical covariate '{name}' has only one level ('{}') in the rows used", used.first().map_or("", |s| s.as_str())))
+                        .error_at(
+                            nd.col.span.clone(),
+                            format!(
+                                "categorical covariate '{name}' has only one level ('{}') in the rows used",
+                                used.first().map_or("", |s| s.as_str())
+                            ),
+                        )
                         .help("a covariate needs at least two levels; leave it out"),
                 ));
             }
@@ -497,9 +478,7 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
                         study
                             .error_at(
                                 span.clone(),
-                                format!(
-                                    "reference level '{r}' of '{name}' does not occur in the data"
-                                ),
+                                format!("reference level '{r}' of '{name}' does not occur in the data"),
                             )
                             .help(format!("levels found: {}", order.join(", "))),
                     )
@@ -537,7 +516,11 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
                         ));
                     }
                     VariableType::Count if x < 0.0 || x.fract() != 0.0 => {
-                        return Err(bad(*line, format!("'{v}' in count column '{name}' is not a whole number of zero or more"), "counts are 0, 1, 2, ...".into()));
+                        return Err(bad(
+                            *line,
+                            format!("'{v}' in count column '{name}' is not a whole number of zero or more"),
+                            "counts are 0, 1, 2, ...".into(),
+                        ));
                     }
                     _ => {}
                 }
@@ -567,22 +550,13 @@ fn sort_levels(mut levels: Vec<String>) -> Vec<String> {
 
 fn csv_error(raw: &Raw, e: &csv::Error) -> Error {
     match e.kind() {
-        csv::ErrorKind::UnequalLengths {
-            pos,
-            expected_len,
-            len,
-        } => {
+        csv::ErrorKind::UnequalLengths { pos, expected_len, len } => {
             let line = pos.as_ref().map_or(0, |p| p.line() as usize);
             Error::input(
                 Diagnostic::new(format!(
                     "line {line} has {len} fields, but the header has {expected_len}"
                 ))
-                .at(Location::at(
-                    raw.path,
-                    line,
-                    1,
-                    Some(raw.line_text(line.max(1))),
-                ))
+                .at(Location::at(raw.path, line, 1, Some(raw.line_text(line.max(1)))))
                 .help("every row needs one value per column; quote values that contain commas"),
             )
         }

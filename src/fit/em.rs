@@ -87,10 +87,7 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
         let step = match model.m_step(data, &tau) {
             Ok(step) => step,
             Err(d) => {
-                let termination = Termination::Degenerate(format!(
-                    "cluster {} degenerated: {}",
-                    d.cluster, d.reason
-                ));
+                let termination = Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason));
                 return finish(
                     model,
                     tau,

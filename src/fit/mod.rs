@@ -42,9 +42,13 @@ pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> 
         .map(|p| {
             let design = |cols: &[crate::spec::ColumnRef]| -> Result<Design> {
                 let names: Vec<String> = cols.iter().map(|c| c.name.clone()).collect();
-                data.design(&names).map_err(|msg| {
-                    let span = cols.first().map(|c| c.span.clone()).unwrap_or(0..0);
-                    Error::input(study.error_at(span, format!("in placement '{}': {msg}", p.name)))
+                data.design(&names).map_err(|e| {
+                    let at = cols
+                        .iter()
+                        .find(|c| Some(&c.name) == e.covariate.as_ref())
+                        .or(cols.first());
+                    let span = at.map_or(0..0, |c| c.span.clone());
+                    Error::input(study.error_at(span, format!("in placement '{}': {}", p.name, e.message)))
                 })
             };
             Ok(PreparedPlacement {
@@ -189,11 +193,7 @@ pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, ridge: f64) 
             },
         }
     };
-    let components = Components::Gaussian(GaussianComponents::new(
-        fd,
-        g,
-        CovarianceStructure::Unconstrained,
-    ));
+    let components = Components::Gaussian(GaussianComponents::new(fd, g, CovarianceStructure::Unconstrained));
     Model { gating, components }
 }
 
@@ -221,10 +221,7 @@ pub fn fit_cell(
         .into_par_iter()
         .map(|s| {
             let kind = StartKind::for_start(s, g);
-            let mut rng = Stream::new(
-                study.seed,
-                &stream_label(&prepared.placement.name, g, s + 1),
-            );
+            let mut rng = Stream::new(study.seed, &stream_label(&prepared.placement.name, g, s + 1));
             let tau = starts::partition(kind, fd.y, fd.d, fd.weights, g, &mut rng);
             let run = em::run(&fd, template.clone(), tau, settings);
             let usable = run.termination.usable();
@@ -329,13 +326,7 @@ pub fn fit_grid(
     let total = cells.len();
     let mut out = Vec::with_capacity(total);
     for (done, cell) in cells.iter().enumerate() {
-        let r = fit_cell(
-            study,
-            data,
-            &prepared[cell.placement],
-            cell.placement,
-            cell.clusters,
-        );
+        let r = fit_cell(study, data, &prepared[cell.placement], cell.placement, cell.clusters);
         progress(done + 1, total, &r);
         out.push(r);
     }

@@ -35,14 +35,7 @@ impl StartKind {
 }
 
 /// Hard responsibilities (n×g) for one start.
-pub fn partition(
-    kind: StartKind,
-    y: &[f64],
-    d: usize,
-    weights: &[f64],
-    g: usize,
-    rng: &mut Stream,
-) -> Vec<f64> {
+pub fn partition(kind: StartKind, y: &[f64], d: usize, weights: &[f64], g: usize, rng: &mut Stream) -> Vec<f64> {
     let n = weights.len();
     let labels: Vec<usize> = match kind {
         StartKind::Single => vec![0; n],
@@ -62,11 +55,7 @@ fn seeded_labels(y: &[f64], d: usize, weights: &[f64], g: usize, rng: &mut Strea
     let mut scale = vec![1.0; d];
     for (j, s) in scale.iter_mut().enumerate() {
         let mean = y.chunks_exact(d).map(|r| r[j]).sum::<f64>() / n as f64;
-        let var = y
-            .chunks_exact(d)
-            .map(|r| (r[j] - mean).powi(2))
-            .sum::<f64>()
-            / n as f64;
+        let var = y.chunks_exact(d).map(|r| (r[j] - mean).powi(2)).sum::<f64>() / n as f64;
         if var > 0.0 {
             *s = 1.0 / var.sqrt();
         }
@@ -123,10 +112,7 @@ mod tests {
         let tau = partition(StartKind::SeededCentres, &y, 1, &w, 2, &mut rng);
         let first = tau[0..2].iter().position(|t| *t == 1.0).unwrap();
         for i in 0..40 {
-            let l = tau[i * 2..i * 2 + 2]
-                .iter()
-                .position(|t| *t == 1.0)
-                .unwrap();
+            let l = tau[i * 2..i * 2 + 2].iter().position(|t| *t == 1.0).unwrap();
             assert_eq!(l == first, i < 20);
         }
     }

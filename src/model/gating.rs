@@ -85,9 +85,7 @@ impl Gating {
     /// The penalty subtracted from the log-likelihood in the EM objective.
     pub fn penalty(&self) -> f64 {
         match self {
-            Gating::Logit {
-                p, gamma, ridge, ..
-            } if *ridge > 0.0 => ridge_penalty(gamma, *p, *ridge),
+            Gating::Logit { p, gamma, ridge, .. } if *ridge > 0.0 => ridge_penalty(gamma, *p, *ridge),
             _ => 0.0,
         }
     }
@@ -130,16 +128,7 @@ impl Gating {
                 }
             }
             Gating::Logit { g, p, gamma, ridge } => {
-                let fit = fit_multinomial_logit(
-                    w,
-                    *p,
-                    tau,
-                    *g,
-                    weights,
-                    *ridge,
-                    gamma,
-                    NEWTON_STEPS_PER_EM_ITERATION,
-                );
+                let fit = fit_multinomial_logit(w, *p, tau, *g, weights, *ridge, gamma, NEWTON_STEPS_PER_EM_ITERATION);
                 *gamma = fit.gamma;
                 GatingStep {
                     iterations: fit.iterations,
@@ -218,25 +207,12 @@ pub struct LogitFit {
 }
 
 /// Objective sum_i c_i sum_g tau_ig log pi_ig − penalty.
-pub fn logit_objective(
-    w: &[f64],
-    p: usize,
-    tau: &[f64],
-    g: usize,
-    weights: &[f64],
-    ridge: f64,
-    gamma: &[f64],
-) -> f64 {
+pub fn logit_objective(w: &[f64], p: usize, tau: &[f64], g: usize, weights: &[f64], ridge: f64, gamma: &[f64]) -> f64 {
     let mut lp = vec![0.0; g];
     let mut total = 0.0;
     for ((wr, tr), c) in w.chunks_exact(p).zip(tau.chunks_exact(g)).zip(weights) {
         log_softmax_row(gamma, p, wr, &mut lp);
-        let row: f64 = tr
-            .iter()
-            .zip(&lp)
-            .filter(|(t, _)| **t > 0.0)
-            .map(|(t, l)| t * l)
-            .sum();
+        let row: f64 = tr.iter().zip(&lp).filter(|(t, _)| **t > 0.0).map(|(t, l)| t * l).sum();
         total += c * row;
     }
     total - ridge_penalty(gamma, p, ridge)
@@ -291,13 +267,7 @@ pub fn logit_score_hessian(
         }
     }
     let mut score = DVector::from_vec(score);
-    let mut hess = DMatrix::from_fn(m, m, |r, col| {
-        if col <= r {
-            h[r * m + col]
-        } else {
-            h[col * m + r]
-        }
-    });
+    let mut hess = DMatrix::from_fn(m, m, |r, col| if col <= r { h[r * m + col] } else { h[col * m + r] });
     if ridge > 0.0 {
         for k in 0..(g - 1) {
             for j in 1..p {
@@ -368,11 +338,7 @@ pub fn fit_multinomial_logit(
         let slack = 1e-13 * (1.0 + objective.abs());
         let mut t = 1.0;
         loop {
-            let trial: Vec<f64> = gamma
-                .iter()
-                .zip(step.iter())
-                .map(|(a, b)| a + t * b)
-                .collect();
+            let trial: Vec<f64> = gamma.iter().zip(step.iter()).map(|(a, b)| a + t * b).collect();
             let trial_obj = logit_objective(w, p, tau, g, weights, ridge, &trial);
             if trial_obj >= objective - if tiny { slack } else { 0.0 } {
                 gamma = trial;

@@ -56,11 +56,7 @@ impl Model {
     }
 
     /// Both M-steps from responsibilities.
-    pub fn m_step(
-        &mut self,
-        data: &FitData,
-        tau: &[f64],
-    ) -> Result<gating::GatingStep, Degeneracy> {
+    pub fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<gating::GatingStep, Degeneracy> {
         self.components.m_step(data, tau)?;
         Ok(self.gating.m_step(data.w, tau, data.weights))
     }

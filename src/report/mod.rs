@@ -220,12 +220,7 @@ fn status_word(t: &crate::fit::em::Termination) -> String {
 }
 
 /// Assemble `results.json`.
-pub fn results(
-    study: &Study,
-    data: &Dataset,
-    prepared: &[PreparedPlacement],
-    fits: &[FitResult],
-) -> Results {
+pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fits: &[FitResult]) -> Results {
     let records = fits
         .iter()
         .map(|f| {
@@ -246,12 +241,7 @@ pub fn results(
             FitRecord {
                 placement: f.placement.clone(),
                 gating_covariates: pp.placement.gating.iter().map(|c| c.name.clone()).collect(),
-                component_covariates: pp
-                    .placement
-                    .components
-                    .iter()
-                    .map(|c| c.name.clone())
-                    .collect(),
+                component_covariates: pp.placement.components.iter().map(|c| c.name.clone()).collect(),
                 clusters: f.clusters,
                 covariance: f.structure.describe(),
                 gating_model,
@@ -268,10 +258,7 @@ pub fn results(
                     usable,
                     reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
                     best_start: f.best.as_ref().map(|b| b.start),
-                    best_reached_once: f
-                        .best
-                        .as_ref()
-                        .is_some_and(|b| b.reaching == 1 && usable > 1),
+                    best_reached_once: f.best.as_ref().is_some_and(|b| b.reaching == 1 && usable > 1),
                     each: f.starts.clone(),
                 },
                 shares: f.shares(&data.weights),
@@ -281,7 +268,10 @@ pub fn results(
         .collect();
     Results {
         schema_version: SCHEMA_VERSION,
-        program: Program { name: "cohortmix", version: env!("CARGO_PKG_VERSION") },
+        program: Program {
+            name: "cohortmix",
+            version: env!("CARGO_PKG_VERSION"),
+        },
         study: StudySummary {
             title: study.title.clone(),
             spec_file: study.spec_path.display().to_string(),
@@ -289,7 +279,14 @@ pub fn results(
             rows_read: data.rows_read,
             rows_used: data.n(),
             rows_excluded: data.rows_excluded,
-            missing_by_column: data.missing_by_column.iter().map(|(c, m)| MissingCount { column: c.clone(), missing: *m }).collect(),
+            missing_by_column: data
+                .missing_by_column
+                .iter()
+                .map(|(c, m)| MissingCount {
+                    column: c.clone(),
+                    missing: *m,
+                })
+                .collect(),
             weights: study.weights.as_ref().map(|w| w.name.clone()),
             family: study.family.word(),
             indicators: data.indicator_names.clone(),
@@ -303,7 +300,8 @@ pub fn results(
             bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",
             aic: "AIC = -2 loglik + 2 * parameters; smaller is better",
             reference_cluster: "gating coefficients are log relative risk ratios against cluster 1",
-            cluster_order: "clusters are numbered by decreasing share in each fit (fixed proportions keep the spec's order)",
+            cluster_order:
+                "clusters are numbered by decreasing share in each fit (fixed proportions keep the spec's order)",
             coefficient_scale: "coefficients are per unit of each covariate on its original scale",
         },
         fits: records,
@@ -402,10 +400,7 @@ pub fn memberships_csv(data: &Dataset, fits: &[FitResult], chosen: &[Chosen]) ->
             let most = row
                 .iter()
                 .enumerate()
-                .fold(
-                    (0, f64::NEG_INFINITY),
-                    |b, (k, t)| if *t > b.1 { (k, *t) } else { b },
-                )
+                .fold((0, f64::NEG_INFINITY), |b, (k, t)| if *t > b.1 { (k, *t) } else { b })
                 .0;
             let _ = write!(s, "{name},{g},{},{}", csv_field(id), most + 1);
             for k in 0..kmax {
@@ -460,13 +455,9 @@ impl RunFiles {
     /// If any write fails, the temporaries are removed and the old files are untouched.
     pub fn commit(self, dir: &Path) -> Result<Vec<PathBuf>> {
         let fail = |what: String, e: std::io::Error| {
-            Error::run(
-                Diagnostic::new(format!("{what}: {e}"))
-                    .help("the previous run's files were left as they were"),
-            )
+            Error::run(Diagnostic::new(format!("{what}: {e}")).help("the previous run's files were left as they were"))
         };
-        std::fs::create_dir_all(dir)
-            .map_err(|e| fail(format!("cannot create the run folder {}", dir.display()), e))?;
+        std::fs::create_dir_all(dir).map_err(|e| fail(format!("cannot create the run folder {}", dir.display()), e))?;
         let mut temps: Vec<(PathBuf, PathBuf)> = Vec::new();
         for (name, bytes) in &self.files {
             let tmp = dir.join(format!(".{name}.partial"));
@@ -481,12 +472,8 @@ impl RunFiles {
         }
         let mut done = Vec::new();
         for (tmp, dest) in temps {
-            std::fs::rename(&tmp, &dest).map_err(|e| {
-                fail(
-                    format!("cannot rename {} to {}", tmp.display(), dest.display()),
-                    e,
-                )
-            })?;
+            std::fs::rename(&tmp, &dest)
+                .map_err(|e| fail(format!("cannot rename {} to {}", tmp.display(), dest.display()), e))?;
             done.push(dest);
         }
         Ok(done)

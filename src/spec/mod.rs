@@ -228,11 +228,8 @@ pub fn load(path: &Path) -> Result<Study> {
 pub fn read_text(path: &Path, what: &str) -> Result<String> {
     if path.is_dir() {
         return Err(Error::input(
-            Diagnostic::new(format!(
-                "the {what} path {} is a folder, not a file",
-                path.display()
-            ))
-            .help(format!("give the path of the {what} file inside it")),
+            Diagnostic::new(format!("the {what} path {} is a folder, not a file", path.display()))
+                .help(format!("give the path of the {what} file inside it")),
         ));
     }
     let bytes = std::fs::read(path).map_err(|e| {
@@ -246,14 +243,9 @@ pub fn read_text(path: &Path, what: &str) -> Result<String> {
         )
     })?;
     String::from_utf8(bytes).map_err(|e| {
-        let text_before =
-            String::from_utf8_lossy(&e.as_bytes()[..e.utf8_error().valid_up_to()]).to_string();
+        let text_before = String::from_utf8_lossy(&e.as_bytes()[..e.utf8_error().valid_up_to()]).to_string();
         let line = text_before.matches('\n').count() + 1;
-        let column = text_before
-            .rsplit('\n')
-            .next()
-            .map_or(0, |l| l.chars().count())
-            + 1;
+        let column = text_before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
         Error::input(
             Diagnostic::new(format!("the {what} file is not valid UTF-8 text"))
                 .at(Location::at(path, line, column, None))
@@ -283,6 +275,10 @@ fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
     if let Some(span) = e.span() {
         d = d.at(Location::from_span(path, text, span));
     }
+    let structural = message.starts_with("unknown field") || message.starts_with("missing field");
+    if !structural {
+        d = d.help("the spec is not valid TOML here, or a value has the wrong kind (see docs/spec.md)");
+    }
     // serde says: unknown field `x`, expected one of `a`, `b`
     if let Some(rest) = message.strip_prefix("unknown field `") {
         if let Some((word, expected)) = rest.split_once('`') {
@@ -298,9 +294,7 @@ fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
     } else if let Some(field) = message.strip_prefix("missing field `") {
         let field = field.split('`').next().unwrap_or("");
         d.message = format!("missing key '{field}'");
-        d = d.help(format!(
-            "add {field} = ... to this table (see docs/spec.md)"
-        ));
+        d = d.help(format!("add {field} = ... to this table (see docs/spec.md)"));
     }
     Error::input(d)
 }
@@ -318,9 +312,8 @@ fn column_ref(s: &SStr, key: &str) -> ColumnRef {
 }
 
 fn column_list(list: &Option<SList>, key: &str) -> Vec<ColumnRef> {
-    list.as_ref().map_or_else(Vec::new, |l| {
-        l.get_ref().iter().map(|s| column_ref(s, key)).collect()
-    })
+    list.as_ref()
+        .map_or_else(Vec::new, |l| l.get_ref().iter().map(|s| column_ref(s, key)).collect())
 }
 
 struct Ctx<'a> {
@@ -361,9 +354,7 @@ fn cluster_list(ctx: &Ctx, v: &Spanned<Vec<Spanned<i64>>>, key: &str) -> Result<
             )));
         }
         if out.contains(&g) {
-            return Err(Error::input(
-                ctx.err(c.span(), format!("{key} lists {g} twice")),
-            ));
+            return Err(Error::input(ctx.err(c.span(), format!("{key} lists {g} twice"))));
         }
         out.push(g);
     }
@@ -395,9 +386,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
     let seed = match &study.seed {
         None => DEFAULT_SEED,
         Some(s) if *s.get_ref() < 0 => {
-            return Err(Error::input(
-                ctx.err(s.span(), "[study].seed must be zero or positive"),
-            ));
+            return Err(Error::input(ctx.err(s.span(), "[study].seed must be zero or positive")));
         }
         Some(s) => *s.get_ref() as u64,
     };
@@ -414,8 +403,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 if let (Some(reference), Some(levels)) = (&r.reference, &r.levels) {
                     if !levels.contains(reference) {
                         return Err(Error::input(
-                            ctx.err(v.span(), format!("reference level '{reference}' of '{name}' is not in its levels"))
-                                .help(format!("levels listed: {}", levels.join(", "))),
+                            ctx.err(
+                                v.span(),
+                                format!("reference level '{reference}' of '{name}' is not in its levels"),
+                            )
+                            .help(format!("levels listed: {}", levels.join(", "))),
                         ));
                     }
                 }
@@ -426,28 +418,18 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
             }
             other => {
                 let words = ["continuous", "binary", "categorical", "count"];
-                let mut d = ctx.err(
-                    v.span(),
-                    format!("unknown variable type '{other}' for '{name}'"),
-                );
+                let mut d = ctx.err(v.span(), format!("unknown variable type '{other}' for '{name}'"));
                 if let Some(s) = did_you_mean(other, words) {
                     d = d.help(format!("did you mean '{s}'?"));
                 }
-                return Err(Error::input(
-                    d.help("types: continuous, binary, categorical, count"),
-                ));
+                return Err(Error::input(d.help("types: continuous, binary, categorical, count")));
             }
         };
-        if !matches!(t, VariableType::Categorical { .. })
-            && (r.reference.is_some() || r.levels.is_some())
-        {
+        if !matches!(t, VariableType::Categorical { .. }) && (r.reference.is_some() || r.levels.is_some()) {
             return Err(Error::input(
                 ctx.err(
                     v.span(),
-                    format!(
-                        "'{name}' is {}, so it has no reference level or levels",
-                        t.word()
-                    ),
+                    format!("'{name}' is {}, so it has no reference level or levels", t.word()),
                 )
                 .help("use type = \"categorical\" for a column with levels"),
             ));
@@ -491,8 +473,18 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         if let Some((t, _)) = variables.get(&c.name) {
             if family == FamilyKind::Gaussian && *t != VariableType::Continuous {
                 return Err(Error::input(
-                    ctx.err(c.span.clone(), format!("indicator '{}' is declared {}, but the gaussian family needs continuous indicators", c.name, t.word()))
-                        .help(format!("declare {} = \"continuous\" in [variables], or drop it from the indicators", c.name)),
+                    ctx.err(
+                        c.span.clone(),
+                        format!(
+                            "indicator '{}' is declared {}, but the gaussian family needs continuous indicators",
+                            c.name,
+                            t.word()
+                        ),
+                    )
+                    .help(format!(
+                        "declare {} = \"continuous\" in [variables], or drop it from the indicators",
+                        c.name
+                    )),
                 ));
             }
         }
@@ -531,10 +523,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
     }
     for p in &raw.placement {
         let placement = placement(&ctx, p, &default_clusters, &default_span, &indicators)?;
-        if let Some(first) = placements
-            .iter()
-            .find(|q: &&Placement| q.name == placement.name)
-        {
+        if let Some(first) = placements.iter().find(|q: &&Placement| q.name == placement.name) {
             let _ = first;
             return Err(Error::input(
                 ctx.err(
@@ -548,25 +537,14 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
     }
 
     let id = study.id.as_ref().map(|s| column_ref(s, "[study].id"));
-    let weights = study
-        .weights
-        .as_ref()
-        .map(|s| column_ref(s, "[study].weights"));
+    let weights = study.weights.as_ref().map(|s| column_ref(s, "[study].weights"));
     for special in id.iter().chain(weights.iter()) {
         for p in &placements {
-            if let Some(c) = p
-                .gating
-                .iter()
-                .chain(&p.components)
-                .find(|c| c.name == special.name)
-            {
+            if let Some(c) = p.gating.iter().chain(&p.components).find(|c| c.name == special.name) {
                 return Err(Error::input(
                     ctx.err(
                         c.span.clone(),
-                        format!(
-                            "'{}' is the {} column and cannot be a covariate",
-                            c.name, special.key
-                        ),
+                        format!("'{}' is the {} column and cannot be a covariate", c.name, special.key),
                     )
                     .help("remove it from the placement's covariate lists"),
                 ));
@@ -575,10 +553,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         if let Some(c) = indicators.iter().find(|c| c.name == special.name) {
             return Err(Error::input(ctx.err(
                 c.span.clone(),
-                format!(
-                    "'{}' is the {} column and cannot be an indicator",
-                    c.name, special.key
-                ),
+                format!("'{}' is the {} column and cannot be an indicator", c.name, special.key),
             )));
         }
     }
@@ -613,11 +588,8 @@ fn check_unique(ctx: &Ctx, cols: &[ColumnRef]) -> Result<()> {
     for (i, c) in cols.iter().enumerate() {
         if cols[..i].iter().any(|d| d.name == c.name) {
             return Err(Error::input(
-                ctx.err(
-                    c.span.clone(),
-                    format!("'{}' is listed twice in {}", c.name, c.key),
-                )
-                .help("list each column once"),
+                ctx.err(c.span.clone(), format!("'{}' is listed twice in {}", c.name, c.key))
+                    .help("list each column once"),
             ));
         }
     }
@@ -759,47 +731,53 @@ fn placement(
     };
     let proportions = match &r.proportions {
         None => Proportions::Free,
-        Some(v) => {
-            match v.get_ref() {
-                toml::Value::String(s) if s == "free" => Proportions::Free,
-                toml::Value::String(s) if s == "equal" => Proportions::Equal,
-                toml::Value::String(s) => {
-                    let mut d = ctx.err(v.span(), format!("unknown proportions choice '{s}'"));
-                    if let Some(w) = did_you_mean(s, ["free", "equal"]) {
-                        d = d.help(format!("did you mean '{w}'?"));
-                    }
-                    return Err(Error::input(d.help("write \"free\", \"equal\", or a list of fixed shares such as [0.5, 0.3, 0.2]")));
+        Some(v) => match v.get_ref() {
+            toml::Value::String(s) if s == "free" => Proportions::Free,
+            toml::Value::String(s) if s == "equal" => Proportions::Equal,
+            toml::Value::String(s) => {
+                let mut d = ctx.err(v.span(), format!("unknown proportions choice '{s}'"));
+                if let Some(w) = did_you_mean(s, ["free", "equal"]) {
+                    d = d.help(format!("did you mean '{w}'?"));
                 }
-                toml::Value::Array(a) => {
-                    let shares: Option<Vec<f64>> = a
-                        .iter()
-                        .map(|x| x.as_float().or_else(|| x.as_integer().map(|i| i as f64)))
-                        .collect();
-                    let shares = shares.ok_or_else(|| {
-                        Error::input(ctx.err(v.span(), "fixed proportions must be numbers"))
-                    })?;
-                    let sum: f64 = shares.iter().sum();
-                    if shares.iter().any(|s| !(*s > 0.0)) || (sum - 1.0).abs() > 1e-9 {
-                        return Err(Error::input(
-                        ctx.err(v.span(), format!("fixed proportions must be positive and add up to 1 (these add up to {sum})")),
-                    ));
-                    }
-                    if clusters.iter().any(|g| *g != shares.len()) {
-                        return Err(Error::input(
-                        ctx.err(v.span(), format!("{} fixed proportions are given, but this placement fits cluster counts {:?}", shares.len(), clusters))
-                            .help(format!("add clusters = [{}] to this [[placement]]", shares.len())),
-                    ));
-                    }
-                    Proportions::Fixed(shares)
-                }
-                _ => {
+                return Err(Error::input(d.help(
+                    "write \"free\", \"equal\", or a list of fixed shares such as [0.5, 0.3, 0.2]",
+                )));
+            }
+            toml::Value::Array(a) => {
+                let shares: Option<Vec<f64>> = a
+                    .iter()
+                    .map(|x| x.as_float().or_else(|| x.as_integer().map(|i| i as f64)))
+                    .collect();
+                let shares =
+                    shares.ok_or_else(|| Error::input(ctx.err(v.span(), "fixed proportions must be numbers")))?;
+                let sum: f64 = shares.iter().sum();
+                if shares.iter().any(|s| !(*s > 0.0)) || (sum - 1.0).abs() > 1e-9 {
                     return Err(Error::input(ctx.err(
                         v.span(),
-                        "proportions must be \"free\", \"equal\" or a list of numbers",
-                    )))
+                        format!("fixed proportions must be positive and add up to 1 (these add up to {sum})"),
+                    )));
                 }
+                if clusters.iter().any(|g| *g != shares.len()) {
+                    return Err(Error::input(
+                        ctx.err(
+                            v.span(),
+                            format!(
+                                "{} fixed proportions are given, but this placement fits cluster counts {:?}",
+                                shares.len(),
+                                clusters
+                            ),
+                        )
+                        .help(format!("add clusters = [{}] to this [[placement]]", shares.len())),
+                    ));
+                }
+                Proportions::Fixed(shares)
             }
-        }
+            _ => {
+                return Err(Error::input(
+                    ctx.err(v.span(), "proportions must be \"free\", \"equal\" or a list of numbers"),
+                ))
+            }
+        },
     };
     if !matches!(proportions, Proportions::Free) && !gating.is_empty() {
         return Err(Error::input(
@@ -828,8 +806,7 @@ mod tests {
         parse(Path::new("s.toml"), body).map_err(|e| e.to_string())
     }
 
-    const BASE: &str =
-        "[study]\ntitle = \"t\"\ndata = \"d.csv\"\n[indicators]\ncolumns = [\"a\", \"b\"]\n";
+    const BASE: &str = "[study]\ntitle = \"t\"\ndata = \"d.csv\"\n[indicators]\ncolumns = [\"a\", \"b\"]\n";
 
     #[test]
     fn minimal_spec_gets_defaults() {
@@ -862,18 +839,12 @@ mod tests {
             "{BASE}[[placement]]\nname = \"p\"\nproportions = [0.5, 0.5]\nclusters = [2]\n"
         ))
         .unwrap();
-        assert_eq!(
-            ok.placements[0].proportions,
-            Proportions::Fixed(vec![0.5, 0.5])
-        );
+        assert_eq!(ok.placements[0].proportions, Proportions::Fixed(vec![0.5, 0.5]));
     }
 
     #[test]
     fn indicator_cannot_be_a_covariate() {
-        let e = spec(&format!(
-            "{BASE}[[placement]]\nname = \"p\"\ncomponents = [\"a\"]\n"
-        ))
-        .unwrap_err();
+        let e = spec(&format!("{BASE}[[placement]]\nname = \"p\"\ncomponents = [\"a\"]\n")).unwrap_err();
         assert!(e.contains("'a' is an indicator"), "{e}");
     }
 }

@@ -91,12 +91,7 @@ impl<'de> Deserialize<'de> for RawVariable {
                         "type" => kind = Some(map.next_value::<String>()?),
                         "reference" => reference = Some(map.next_value::<String>()?),
                         "levels" => levels = Some(map.next_value::<Vec<String>>()?),
-                        other => {
-                            return Err(de::Error::unknown_field(
-                                other,
-                                &["type", "reference", "levels"],
-                            ))
-                        }
+                        other => return Err(de::Error::unknown_field(other, &["type", "reference", "levels"])),
                     }
                 }
                 let kind = kind.ok_or_else(|| de::Error::missing_field("type"))?;

@@ -1,1 +1,64 @@
+//! Bad input: every case under tests/bad_inputs/ runs the binary and pins what the user
+//! sees. A case is a folder with the inputs, `args` (the command line; default
+//! `check spec.toml`), `expected.stderr` and `expected.exit`. Run with
+//! `UPDATE_SNAPSHOTS=1` to rewrite the expected files after an intended change, then
+//! read the diff.
 
+use super::common::root;
+use std::process::Command;
+
+/// Cases whose problem has no line in a file (the file itself is missing, or the
+/// command line is wrong).
+const NO_LOCATION: &[&str] = &["missing_spec_file", "usage_missing_spec", "threads_zero"];
+
+#[test]
+fn every_bad_input_gets_a_pinned_message_and_exit_2() {
+    let update = std::env::var_os("UPDATE_SNAPSHOTS").is_some();
+    let mut cases: Vec<_> = std::fs::read_dir(root("tests/bad_inputs"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.is_dir())
+        .collect();
+    cases.sort();
+    assert!(cases.len() >= 12, "only {} cases", cases.len());
+    let mut failures = Vec::new();
+    for case in &cases {
+        let name = case.file_name().unwrap().to_string_lossy().to_string();
+        let args = std::fs::read_to_string(case.join("args")).unwrap_or_else(|_| "check spec.toml".into());
+        let out = Command::new(env!("CARGO_BIN_EXE_cohortmix"))
+            .args(args.split_whitespace())
+            .current_dir(case)
+            .output()
+            .unwrap();
+        let stderr = String::from_utf8_lossy(&out.stderr).to_string();
+        let code = out.status.code().unwrap_or(-1);
+        assert!(!stderr.contains("panicked"), "{name} panicked:\n{stderr}");
+        assert_eq!(code, 2, "{name}: exit {code}\n{stderr}");
+        assert!(stderr.starts_with("error:"), "{name}: {stderr}");
+        if !NO_LOCATION.contains(&name.as_str()) {
+            assert!(stderr.contains("--> "), "{name} names no file:line:column:\n{stderr}");
+        }
+        if update {
+            std::fs::write(case.join("expected.stderr"), &stderr).unwrap();
+            std::fs::write(case.join("expected.exit"), format!("{code}\n")).unwrap();
+            continue;
+        }
+        let want = std::fs::read_to_string(case.join("expected.stderr")).unwrap_or_default();
+        let want_code: i32 = std::fs::read_to_string(case.join("expected.exit"))
+            .unwrap_or_default()
+            .trim()
+            .parse()
+            .unwrap_or(-1);
+        if want != stderr || want_code != code {
+            failures.push(format!(
+                "{name}: expected (exit {want_code})\n{want}\ngot (exit {code})\n{stderr}"
+            ));
+        }
+    }
+    assert!(
+        failures.is_empty(),
+        "{} case(s) changed:\n{}",
+        failures.len(),
+        failures.join("\n")
+    );
+}

@@ -91,10 +91,7 @@ fn value(
     params
         .iter()
         .find(|p| {
-            p.block == block
-                && p.cluster == cluster
-                && p.indicator.as_deref() == indicator
-                && p.term.as_deref() == term
+            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
         })
         .unwrap_or_else(|| panic!("no parameter {block} {cluster} {indicator:?} {term:?}"))
         .value
@@ -111,13 +108,8 @@ fn mixture_of_experts_parameters_are_recovered() {
     let prepared = fit::prepare(&study, &data).unwrap();
     let result = fit::fit_cell(&study, &data, &prepared[0], 0, 3);
     let best = result.best.as_ref().expect("a usable fit");
-    assert!(
-        best.reaching >= 2,
-        "best optimum reached by {} starts",
-        best.reaching
-    );
-    let results =
-        cohortmix::report::results(&study, &data, &prepared, std::slice::from_ref(&result));
+    assert!(best.reaching >= 2, "best optimum reached by {} starts", best.reaching);
+    let results = cohortmix::report::results(&study, &data, &prepared, std::slice::from_ref(&result));
     let params = &results.fits[0].parameters_named;
 
     // Match fitted clusters to true ones by the fev1 intercept (70, 78, 100 are far apart).
@@ -142,9 +134,7 @@ fn mixture_of_experts_parameters_are_recovered() {
 
     let mut report = Vec::new();
     let mut check = |what: String, got: f64, want: f64, tol: f64| {
-        report.push(format!(
-            "{what}: fitted {got:.4}, true {want:.4}, tolerance {tol}"
-        ));
+        report.push(format!("{what}: fitted {got:.4}, true {want:.4}, tolerance {tol}"));
         assert!((got - want).abs() <= tol, "{}", report.join("\n"));
     };
     let inds = ["fev1", "fvc", "flow"];

@@ -14,11 +14,7 @@ fn fixture(name: &str) -> Value {
 }
 
 fn floats(v: &Value) -> Vec<f64> {
-    v.as_array()
-        .unwrap()
-        .iter()
-        .map(|x| x.as_f64().unwrap())
-        .collect()
+    v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
 }
 
 /// Gating M-step with hard memberships = multinomial logit.
@@ -26,19 +22,11 @@ fn floats(v: &Value) -> Vec<f64> {
 /// levels, reference level 0); made by tests/reference/make_gating_anes96.py.
 fn check_anes96(weighted: bool) {
     let reference = fixture("gating_anes96.json");
-    let case = &reference[if weighted {
-        "frequency_weighted"
-    } else {
-        "unweighted"
-    }];
+    let case = &reference[if weighted { "frequency_weighted" } else { "unweighted" }];
     let (header, cols) = read_csv(&root("tests/reference/anes96.csv"));
     let names = ["logpopul", "selfLR", "age", "educ", "income"];
-    let columns: Vec<_> = names
-        .iter()
-        .map(|n| numeric(col(&header, &cols, n)))
-        .collect();
-    let named: Vec<(&str, &cohortmix::data::Column)> =
-        names.iter().copied().zip(columns.iter()).collect();
+    let columns: Vec<_> = names.iter().map(|n| numeric(col(&header, &cols, n))).collect();
+    let named: Vec<(&str, &cohortmix::data::Column)> = names.iter().copied().zip(columns.iter()).collect();
     let n = cols[0].len();
     let design = Design::from_columns(n, &named).unwrap();
     let g = 7;
@@ -47,10 +35,7 @@ fn check_anes96(weighted: bool) {
         tau[i * g + v.parse::<usize>().unwrap()] = 1.0;
     }
     let weights: Vec<f64> = if weighted {
-        col(&header, &cols, "freq")
-            .iter()
-            .map(|v| v.parse().unwrap())
-            .collect()
+        col(&header, &cols, "freq").iter().map(|v| v.parse().unwrap()).collect()
     } else {
         vec![1.0; n]
     };
@@ -76,11 +61,10 @@ fn check_anes96(weighted: bool) {
             worst = worst.min(digits(*a, b));
         }
     }
-    println!("anes96 weighted={weighted}: loglik {loglik} vs {ref_ll}; coefficients agree to {worst:.1} significant digits");
-    assert!(
-        worst >= 6.0,
-        "coefficients agree to only {worst:.1} significant digits"
+    println!(
+        "anes96 weighted={weighted}: loglik {loglik} vs {ref_ll}; coefficients agree to {worst:.1} significant digits"
     );
+    assert!(worst >= 6.0, "coefficients agree to only {worst:.1} significant digits");
 }
 
 #[test]
@@ -164,8 +148,5 @@ fn gaussian_components_match_statsmodels_wls_on_iris() {
         }
     }
     println!("iris WLS: agreement {worst:.1} significant digits");
-    assert!(
-        worst >= 8.0,
-        "WLS agreement only {worst:.1} significant digits"
-    );
+    assert!(worst >= 8.0, "WLS agreement only {worst:.1} significant digits");
 }

@@ -27,9 +27,7 @@ impl CovarianceStructure {
     /// Plain-words name used in every output.
     pub fn describe(&self) -> &'static str {
         match self {
-            CovarianceStructure::Unconstrained => {
-                "varying volume, varying shape, varying orientation"
-            }
+            CovarianceStructure::Unconstrained => "varying volume, varying shape, varying orientation",
         }
     }
 
@@ -93,13 +91,7 @@ impl GaussianComponents {
             structure,
             coef: vec![0.0; g * q * d],
             cov: vec![DMatrix::identity(d, d); g],
-            chol: vec![
-                DMatrix::<f64>::identity(d, d)
-                    .transpose()
-                    .as_slice()
-                    .to_vec();
-                g
-            ],
+            chol: vec![DMatrix::<f64>::identity(d, d).transpose().as_slice().to_vec(); g],
             log_det: vec![0.0; g],
             y_var,
         }
@@ -107,11 +99,7 @@ impl GaussianComponents {
 
     /// Set parameters directly (simulation truth, tests); fails if a covariance is not
     /// positive definite.
-    pub fn with_parameters(
-        mut self,
-        coef: Vec<f64>,
-        cov: Vec<DMatrix<f64>>,
-    ) -> Result<Self, Degeneracy> {
+    pub fn with_parameters(mut self, coef: Vec<f64>, cov: Vec<DMatrix<f64>>) -> Result<Self, Degeneracy> {
         assert_eq!(coef.len(), self.g * self.q * self.d);
         self.coef = coef;
         for (k, s) in cov.into_iter().enumerate() {
@@ -123,20 +111,11 @@ impl GaussianComponents {
     fn set_covariance(&mut self, k: usize, s: DMatrix<f64>) -> Result<(), Degeneracy> {
         let collapsed = || Degeneracy {
             cluster: k + 1,
-            reason: "its covariance is singular (the cluster collapsed onto a point or a line)"
-                .to_string(),
+            reason: "its covariance is singular (the cluster collapsed onto a point or a line)".to_string(),
         };
         let eig = s.clone().symmetric_eigenvalues();
-        let scale = self
-            .y_var
-            .iter()
-            .copied()
-            .fold(0.0, f64::max)
-            .max(f64::MIN_POSITIVE);
-        if eig
-            .iter()
-            .any(|e| !e.is_finite() || *e <= COLLAPSE_RATIO * scale)
-        {
+        let scale = self.y_var.iter().copied().fold(0.0, f64::max).max(f64::MIN_POSITIVE);
+        if eig.iter().any(|e| !e.is_finite() || *e <= COLLAPSE_RATIO * scale) {
             return Err(collapsed());
         }
         let chol = s.clone().cholesky().ok_or_else(collapsed)?;
@@ -229,25 +208,17 @@ impl ComponentFamily for GaussianComponents {
             if rows < needed {
                 return Err(Degeneracy {
                     cluster: k + 1,
-                    reason: format!("it holds {rows:.1} effective rows, fewer than the {needed} its mean and covariance need"),
+                    reason: format!(
+                        "it holds {rows:.1} effective rows, fewer than the {needed} its mean and covariance need"
+                    ),
                 });
             }
-            let a_mat = DMatrix::from_fn(q, q, |a, b| {
-                if b <= a {
-                    ztz[a * q + b]
-                } else {
-                    ztz[b * q + a]
-                }
-            });
+            let a_mat = DMatrix::from_fn(q, q, |a, b| if b <= a { ztz[a * q + b] } else { ztz[b * q + a] });
             let rhs = DMatrix::from_fn(q, d, |a, j| zty[a * d + j]);
-            let beta = a_mat
-                .cholesky()
-                .map(|c| c.solve(&rhs))
-                .ok_or_else(|| Degeneracy {
-                    cluster: k + 1,
-                    reason: "its component covariates are collinear among the rows it holds"
-                        .to_string(),
-                })?;
+            let beta = a_mat.cholesky().map(|c| c.solve(&rhs)).ok_or_else(|| Degeneracy {
+                cluster: k + 1,
+                reason: "its component covariates are collinear among the rows it holds".to_string(),
+            })?;
             for a in 0..q {
                 for j in 0..d {
                     self.coef[(k * q + a) * d + j] = beta[(a, j)];
@@ -306,12 +277,7 @@ impl ComponentFamily for GaussianComponents {
         for k in 0..self.g {
             for j in 0..d {
                 let beta: Vec<f64> = (0..q).map(|a| self.coef[(k * q + a) * d + j]).collect();
-                for (term, value) in naming
-                    .design
-                    .terms
-                    .iter()
-                    .zip(naming.design.to_original_scale(&beta))
-                {
+                for (term, value) in naming.design.terms.iter().zip(naming.design.to_original_scale(&beta)) {
                     out.push(Parameter {
                         block: "mean",
                         cluster: k + 1,
