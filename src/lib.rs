@@ -15,6 +15,8 @@
 //! println!("{} fits", fits.len());
 //! ```
 #![deny(missing_docs)]
+// `!(x > 0.0)` is written on purpose: unlike `x <= 0.0` it is also true for NaN.
+#![allow(clippy::neg_cmp_op_on_partial_ord)]
 
 pub mod cli;
 pub mod data;

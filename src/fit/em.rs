@@ -5,6 +5,7 @@
 //! tolerance, at the iteration cap, when a cluster degenerates, or when the
 //! log-likelihood stops being finite. Why it stopped is part of the result.
 
+use crate::model::gating::{Gating, GatingStats};
 use crate::model::{e_step, FitData, Model};
 use serde::Serialize;
 
@@ -73,101 +74,97 @@ pub struct EmRun {
     pub iterations: usize,
     /// Why it stopped.
     pub termination: Termination,
-    /// Gating M-steps that needed a damped Hessian (possible separation).
+    /// Gating M-steps whose Hessian could not be solved (possible separation).
     pub gating_damped: usize,
+    /// Iterations redone with the safe bound step because the Newton step lowered the
+    /// log-likelihood.
+    pub gating_fallbacks: usize,
 }
 
 /// Run EM from starting responsibilities `tau` (n×G, rows summing to 1).
 pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSettings) -> EmRun {
-    let mut trace = Vec::new();
-    let mut loglik = f64::NAN;
-    let mut objective = f64::NAN;
-    let mut gating_damped = 0;
+    let mut out = Progress {
+        trace: Vec::new(),
+        loglik: f64::NAN,
+        objective: f64::NAN,
+        damped: 0,
+        fallbacks: 0,
+    };
+    let logit = matches!(model.gating, Gating::Logit { .. });
+    // Double buffers: the E-step writes the next responsibilities and gating sums while
+    // the current ones stay intact for a redo.
+    let mut tau_next = vec![0.0; tau.len()];
+    let (mut stats, mut stats_next) = (GatingStats::default(), GatingStats::default());
+    let mut have_stats = false;
     for iteration in 1..=settings.max_iterations {
-        let step = match model.m_step(data, &tau) {
+        let saved = (logit && have_stats).then(|| model.clone());
+        let known = have_stats.then_some(&stats);
+        let step = match model.m_step(data, &tau, known, false) {
             Ok(step) => step,
             Err(d) => {
-                let termination = Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason));
-                return finish(
-                    model,
-                    tau,
-                    loglik,
-                    objective,
-                    trace,
-                    iteration - 1,
-                    termination,
-                    gating_damped,
-                );
+                let t = Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason));
+                return out.finish(model, tau, iteration - 1, t);
             }
         };
-        gating_damped += step.damped;
-        let new_loglik = e_step(&model, data, &mut tau);
-        let new_objective = new_loglik - model.gating.penalty();
+        out.damped += step.damped;
+        let mut new_loglik = e_step(&model, data, &mut tau_next, Some(&mut stats_next));
+        let mut new_objective = new_loglik - model.gating.penalty();
+        if let Some(previous) = saved {
+            // A Newton step without line search can overshoot; redo the iteration with
+            // the bound step, which cannot lower the objective.
+            if !(new_objective >= out.objective - 1e-13 * out.objective.abs()) {
+                model = previous;
+                if let Err(d) = model.m_step(data, &tau, Some(&stats), true) {
+                    let t = Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason));
+                    return out.finish(model, tau, iteration - 1, t);
+                }
+                new_loglik = e_step(&model, data, &mut tau_next, Some(&mut stats_next));
+                new_objective = new_loglik - model.gating.penalty();
+                out.fallbacks += 1;
+            }
+        }
+        std::mem::swap(&mut tau, &mut tau_next);
+        std::mem::swap(&mut stats, &mut stats_next);
+        have_stats = true;
         if !new_objective.is_finite() {
-            let termination = Termination::NumericalFault(format!(
+            let t = Termination::NumericalFault(format!(
                 "the log-likelihood became {new_loglik} at iteration {iteration}"
             ));
-            return finish(
-                model,
-                tau,
-                loglik,
-                objective,
-                trace,
-                iteration - 1,
-                termination,
-                gating_damped,
-            );
+            return out.finish(model, tau, iteration - 1, t);
         }
-        trace.push(new_objective);
-        let change = (new_objective - objective).abs();
+        out.trace.push(new_objective);
+        let change = (new_objective - out.objective).abs();
         let converged = iteration > 1 && change <= settings.tolerance * new_objective.abs();
-        loglik = new_loglik;
-        objective = new_objective;
+        out.loglik = new_loglik;
+        out.objective = new_objective;
         if converged || model.n_params() == 0 && iteration > 1 {
-            return finish(
-                model,
-                tau,
-                loglik,
-                objective,
-                trace,
-                iteration,
-                Termination::Converged,
-                gating_damped,
-            );
+            return out.finish(model, tau, iteration, Termination::Converged);
         }
     }
-    let n = settings.max_iterations;
-    finish(
-        model,
-        tau,
-        loglik,
-        objective,
-        trace,
-        n,
-        Termination::IterationCap,
-        gating_damped,
-    )
+    out.finish(model, tau, settings.max_iterations, Termination::IterationCap)
 }
 
-#[allow(clippy::too_many_arguments)]
-fn finish(
-    model: Model,
-    tau: Vec<f64>,
+/// What the loop has gathered so far.
+struct Progress {
+    trace: Vec<f64>,
     loglik: f64,
     objective: f64,
-    trace: Vec<f64>,
-    iterations: usize,
-    termination: Termination,
-    gating_damped: usize,
-) -> EmRun {
-    EmRun {
-        model,
-        tau,
-        loglik,
-        objective,
-        trace,
-        iterations,
-        termination,
-        gating_damped,
+    damped: usize,
+    fallbacks: usize,
+}
+
+impl Progress {
+    fn finish(self, model: Model, tau: Vec<f64>, iterations: usize, termination: Termination) -> EmRun {
+        EmRun {
+            model,
+            tau,
+            loglik: self.loglik,
+            objective: self.objective,
+            trace: self.trace,
+            iterations,
+            termination,
+            gating_damped: self.damped,
+            gating_fallbacks: self.fallbacks,
+        }
     }
 }

@@ -179,6 +179,7 @@ pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, ridge: f64) 
     } else {
         match &placement.proportions {
             Proportions::Free if fd.p > 1 => Gating::Logit {
+                bound_inverse: None,
                 g,
                 p: fd.p,
                 gamma: vec![0.0; (g - 1) * fd.p],
@@ -215,7 +216,8 @@ pub fn fit_cell(
         max_iterations: study.search.max_iterations,
         tolerance: study.search.tolerance,
     };
-    let template = initial_model(&fd, &prepared.placement, g, study.search.gating_ridge);
+    let mut template = initial_model(&fd, &prepared.placement, g, study.search.gating_ridge);
+    template.gating.prepare_bound(fd.w, fd.weights);
     let n_starts = if g == 1 { 1 } else { study.search.starts };
     let runs: Vec<(StartRecord, Option<EmRun>)> = (0..n_starts)
         .into_par_iter()

@@ -13,13 +13,14 @@
 //! covariates the proportions are free shares (closed form), equal, or fixed by the user.
 
 use nalgebra::{DMatrix, DVector};
+use std::sync::Arc;
 
 /// Newton iterations allowed when the logit is fitted on its own.
 pub const MAX_NEWTON_ITERATIONS: usize = 100;
 
-/// Newton iterations per EM M-step. One step with halving already raises the expected
-/// complete-data log-likelihood, which is all EM needs to climb (a generalised EM step);
-/// warm starts make later steps nearly exact.
+/// Newton iterations per EM M-step when no bound is prepared. One step with halving
+/// already raises the expected complete-data log-likelihood, which is all EM needs to
+/// climb (a generalised EM step).
 pub const NEWTON_STEPS_PER_EM_ITERATION: usize = 1;
 
 /// How the gating network is parameterised.
@@ -50,6 +51,9 @@ pub enum Gating {
         gamma: Vec<f64>,
         /// Ridge penalty on slopes.
         ridge: f64,
+        /// Inverse of Böhning's bound matrix, when prepared: the M-step then takes the
+        /// bound step instead of Newton (see [`Gating::prepare_bound`]).
+        bound_inverse: Option<Arc<DMatrix<f64>>>,
     },
 }
 
@@ -127,7 +131,7 @@ impl Gating {
                     damped: 0,
                 }
             }
-            Gating::Logit { g, p, gamma, ridge } => {
+            Gating::Logit { g, p, gamma, ridge, .. } => {
                 let fit = fit_multinomial_logit(w, *p, tau, *g, weights, *ridge, gamma, NEWTON_STEPS_PER_EM_ITERATION);
                 *gamma = fit.gamma;
                 GatingStep {
@@ -147,8 +151,16 @@ impl Gating {
             Gating::Fixed { log_pi } | Gating::Free { log_pi } => {
                 *log_pi = order.iter().map(|&k| log_pi[k]).collect();
             }
-            Gating::Logit { g, p, gamma, .. } => {
+            Gating::Logit {
+                g,
+                p,
+                gamma,
+                bound_inverse,
+                ..
+            } => {
                 let (g, p) = (*g, *p);
+                // The bound belongs to the old labelling; prepare it again if EM continues.
+                *bound_inverse = None;
                 let full = |k: usize, j: usize| if k == 0 { 0.0 } else { gamma[(k - 1) * p + j] };
                 let mut next = vec![0.0; (g - 1) * p];
                 for (new_k, &old_k) in order.iter().enumerate().skip(1) {
@@ -160,6 +172,169 @@ impl Gating {
             }
         }
     }
+}
+
+impl Gating {
+    /// Prepare Böhning's bound step for a logit gating network (no-op otherwise).
+    ///
+    /// Böhning (1992, Ann. Inst. Statist. Math. 44:197–200): the negative Hessian of the
+    /// multinomial logit with K + 1 categories never exceeds
+    /// B = ½ (I_K − 11'/(K + 1)) ⊗ Σ_i c_i w_i w_i'. So the step γ + (B + λD)⁻¹ s(γ), with
+    /// s the penalised score and D selecting the slopes, always raises the penalised
+    /// objective, needs no line search, and B is the same at every iteration.
+    pub fn prepare_bound(&mut self, w: &[f64], weights: &[f64]) {
+        let Gating::Logit {
+            g,
+            p,
+            ridge,
+            bound_inverse,
+            ..
+        } = self
+        else {
+            return;
+        };
+        let (g, p) = (*g, *p);
+        let mut wtw = DMatrix::<f64>::zeros(p, p);
+        for (row, c) in w.chunks_exact(p).zip(weights) {
+            for a in 0..p {
+                for b in 0..=a {
+                    wtw[(a, b)] += c * row[a] * row[b];
+                }
+            }
+        }
+        let k = g - 1;
+        let m = k * p;
+        let bound = DMatrix::from_fn(m, m, |r, c| {
+            let (kr, a) = (r / p, r % p);
+            let (kc, b) = (c / p, c % p);
+            let outer = if kr == kc { 1.0 } else { 0.0 } - 1.0 / g as f64;
+            let x = if b <= a { wtw[(a, b)] } else { wtw[(b, a)] };
+            0.5 * outer * x + if r == c && a > 0 { *ridge } else { 0.0 }
+        });
+        *bound_inverse = bound.try_inverse().map(Arc::new);
+    }
+
+    /// Apply the bound step given the unpenalised score s(γ) = Σ c (τ − π) w.
+    pub fn bound_step(&mut self, score: &[f64]) {
+        let Gating::Logit {
+            p,
+            gamma,
+            ridge,
+            bound_inverse: Some(inv),
+            ..
+        } = self
+        else {
+            return;
+        };
+        let p = *p;
+        let penalised: DVector<f64> = DVector::from_iterator(
+            score.len(),
+            score
+                .iter()
+                .enumerate()
+                .map(|(i, s)| if i % p == 0 { *s } else { s - *ridge * gamma[i] }),
+        );
+        let step = inv.as_ref() * penalised;
+        for (gm, st) in gamma.iter_mut().zip(step.iter()) {
+            *gm += st;
+        }
+    }
+}
+
+/// Score and negative Hessian of the unpenalised gating objective at the current
+/// coefficients, accumulated row by row by the E-step (which has π and τ at hand).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct GatingStats {
+    /// Σ_i c_i (τ_ik − π_ik) w_i, `score[(k − 1) * p + j]`.
+    pub score: Vec<f64>,
+    /// Σ_i c_i π_ik (δ_kl − π_il) w_i w_i', lower triangle of an m×m row-major matrix.
+    pub neg_hessian: Vec<f64>,
+}
+
+impl GatingStats {
+    /// Zero the sums for G clusters and p gating columns.
+    pub fn reset(&mut self, g: usize, p: usize) {
+        let m = (g - 1) * p;
+        self.score.clear();
+        self.score.resize(m, 0.0);
+        self.neg_hessian.clear();
+        self.neg_hessian.resize(m * m, 0.0);
+    }
+
+    /// Add one row: weight c, responsibilities τ, prior probabilities π, gating row w.
+    #[inline]
+    pub fn add_row(&mut self, c: f64, tau: &[f64], pi: &[f64], w: &[f64]) {
+        let g = pi.len();
+        let p = w.len();
+        let m = (g - 1) * p;
+        for k in 1..g {
+            let r = c * (tau[k] - pi[k]);
+            for (acc, wj) in self.score[(k - 1) * p..k * p].iter_mut().zip(w) {
+                *acc += r * wj;
+            }
+            for l in 1..=k {
+                let h = c * pi[k] * (f64::from(u8::from(k == l)) - pi[l]);
+                for a in 0..p {
+                    let ha = h * w[a];
+                    let row = &mut self.neg_hessian[((k - 1) * p + a) * m + (l - 1) * p..][..p];
+                    for (cell, wb) in row.iter_mut().zip(w) {
+                        *cell += ha * wb;
+                    }
+                }
+            }
+        }
+    }
+}
+
+impl Gating {
+    /// Newton step from E-step sums, without line search (the EM driver checks the
+    /// log-likelihood and falls back to [`Gating::bound_step`]). False when the Hessian
+    /// cannot be solved (separation); then nothing changes.
+    pub fn newton_step(&mut self, stats: &GatingStats) -> bool {
+        let Gating::Logit { p, gamma, ridge, .. } = self else {
+            return false;
+        };
+        let (p, m) = (*p, gamma.len());
+        let h = &stats.neg_hessian;
+        let mat = DMatrix::from_fn(m, m, |r, c| {
+            let v = if c <= r { h[r * m + c] } else { h[c * m + r] };
+            v + if r == c && r % p != 0 { *ridge } else { 0.0 }
+        });
+        let rhs = DVector::from_iterator(
+            m,
+            stats
+                .score
+                .iter()
+                .enumerate()
+                .map(|(i, s)| if i % p == 0 { *s } else { s - *ridge * gamma[i] }),
+        );
+        match solve_spd(&mat, &rhs) {
+            Some(step) => {
+                for (gm, st) in gamma.iter_mut().zip(step.iter()) {
+                    *gm += st;
+                }
+                true
+            }
+            None => false,
+        }
+    }
+}
+
+/// Unpenalised score Σ_i c_i (τ_ik − s_i π_ik) w_i of the logit at `gamma`, one pass.
+pub fn logit_score(w: &[f64], p: usize, tau: &[f64], g: usize, weights: &[f64], gamma: &[f64]) -> Vec<f64> {
+    let mut score = vec![0.0; (g - 1) * p];
+    let mut lp = vec![0.0; g];
+    for ((wr, tr), c) in w.chunks_exact(p).zip(tau.chunks_exact(g)).zip(weights) {
+        log_softmax_row(gamma, p, wr, &mut lp);
+        let s: f64 = tr.iter().sum();
+        for k in 1..g {
+            let r = c * (tr[k] - s * lp[k].exp());
+            for j in 0..p {
+                score[(k - 1) * p + j] += r * wr[j];
+            }
+        }
+    }
+    score
 }
 
 fn ridge_penalty(gamma: &[f64], p: usize, ridge: f64) -> f64 {
@@ -408,6 +583,7 @@ mod tests {
     #[test]
     fn permuting_keeps_probabilities() {
         let mut gt = Gating::Logit {
+            bound_inverse: None,
             g: 3,
             p: 2,
             gamma: vec![0.3, -1.0, 1.2, 0.5],

@@ -12,7 +12,7 @@ pub mod family;
 pub mod gating;
 
 use family::{ComponentFamily, Components, Degeneracy};
-use gating::{log_sum_exp, Gating};
+use gating::{Gating, GatingStats};
 
 /// The arrays one fit reads. All row-major.
 #[derive(Debug, Clone, Copy)]
@@ -56,9 +56,45 @@ impl Model {
     }
 
     /// Both M-steps from responsibilities.
-    pub fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<gating::GatingStep, Degeneracy> {
+    ///
+    /// `stats` are the gating sums of the E-step that produced `tau` (see [`e_step`]).
+    /// With them a logit gating network takes a Newton step (`safe = false`) or Böhning's
+    /// bound step, which always raises the gating objective (`safe = true`); without them
+    /// it takes a Newton step with step-halving, computed from `tau` directly.
+    pub fn m_step(
+        &mut self,
+        data: &FitData,
+        tau: &[f64],
+        stats: Option<&GatingStats>,
+        safe: bool,
+    ) -> Result<gating::GatingStep, Degeneracy> {
         self.components.m_step(data, tau)?;
-        Ok(self.gating.m_step(data.w, tau, data.weights))
+        let has_bound = matches!(
+            self.gating,
+            Gating::Logit {
+                bound_inverse: Some(_),
+                ..
+            }
+        );
+        let one = |damped| gating::GatingStep {
+            iterations: 1,
+            converged: false,
+            damped,
+        };
+        match stats {
+            Some(st) if has_bound && safe => {
+                self.gating.bound_step(&st.score);
+                Ok(one(0))
+            }
+            Some(st) if has_bound => {
+                if !self.gating.newton_step(st) {
+                    self.gating.bound_step(&st.score);
+                    return Ok(one(1));
+                }
+                Ok(one(0))
+            }
+            _ => Ok(self.gating.m_step(data.w, tau, data.weights)),
+        }
     }
 
     /// Relabel clusters: new cluster k is old cluster `order[k]`.
@@ -70,31 +106,78 @@ impl Model {
 
 /// E-step: fill `tau` (n×G) with responsibilities and return sum_i c_i log p(y_i).
 ///
-/// Rows whose every cluster has zero density give −∞; the caller treats a non-finite
-/// log-likelihood as a numerical fault.
-pub fn e_step(model: &Model, data: &FitData, tau: &mut [f64]) -> f64 {
+/// When `gating_stats` is given and the gating network is a logit, it is filled with the
+/// gating score and negative Hessian at the current coefficients, which the next gating
+/// M-step needs: the pass computes π and τ anyway. Rows whose every cluster has
+/// zero density give −∞; the caller treats a non-finite log-likelihood as a fault.
+pub fn e_step(model: &Model, data: &FitData, tau: &mut [f64], mut gating_stats: Option<&mut GatingStats>) -> f64 {
     let g = model.clusters();
     model.components.log_density(data, tau);
     let mut prior = vec![0.0; g];
+    let mut eta = vec![0.0; g];
+    let p = data.p;
+    let logit = match &model.gating {
+        Gating::Logit { gamma, .. } => Some(gamma.as_slice()),
+        _ => None,
+    };
+    if let (Some(s), Some(_)) = (gating_stats.as_deref_mut(), logit) {
+        s.reset(g, p);
+    }
+    if logit.is_none() {
+        model.gating.log_priors(&[], &mut prior);
+    }
     let mut loglik = 0.0;
     for i in 0..data.n {
-        model
-            .gating
-            .log_priors(&data.w[i * data.p..(i + 1) * data.p], &mut prior);
         let row = &mut tau[i * g..(i + 1) * g];
-        for (r, l) in row.iter_mut().zip(&prior) {
-            *r += l;
+        let c = data.weights[i];
+        match logit {
+            Some(gamma) => {
+                let w = &data.w[i * p..(i + 1) * p];
+                // eta holds the linear predictors, prior becomes π; row gets log π = η − lse(η).
+                eta[0] = 0.0;
+                for (k, coef) in gamma.chunks_exact(p).enumerate() {
+                    eta[k + 1] = coef.iter().zip(w).map(|(a, b)| a * b).sum();
+                }
+                prior.copy_from_slice(&eta);
+                let lse_eta = softmax_in_place(&mut prior);
+                for (r, e) in row.iter_mut().zip(&eta) {
+                    *r += e - lse_eta;
+                }
+                loglik += c * softmax_in_place(row);
+                if let Some(s) = gating_stats.as_deref_mut() {
+                    s.add_row(c, row, &prior, w);
+                }
+            }
+            None => {
+                for (r, l) in row.iter_mut().zip(&prior) {
+                    *r += l;
+                }
+                loglik += c * softmax_in_place(row);
+            }
         }
-        let lse = log_sum_exp(row);
-        for r in row.iter_mut() {
-            *r = (*r - lse).exp();
-        }
-        loglik += data.weights[i] * lse;
     }
     loglik
 }
 
+/// Replace `x` by softmax(x) and return log Σ exp(x), with the row's own maximum
+/// subtracted first. One `exp` per entry.
+pub fn softmax_in_place(x: &mut [f64]) -> f64 {
+    let m = x.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    if m == f64::NEG_INFINITY {
+        return m;
+    }
+    let mut sum = 0.0;
+    for v in x.iter_mut() {
+        *v = (*v - m).exp();
+        sum += *v;
+    }
+    for v in x.iter_mut() {
+        *v /= sum;
+    }
+    m + sum.ln()
+}
+
 /// Log-likelihood alone (no responsibilities kept); uses `scratch` of length n×G.
 pub fn log_likelihood(model: &Model, data: &FitData, scratch: &mut [f64]) -> f64 {
-    e_step(model, data, scratch)
+    e_step(model, data, scratch, None)
 }

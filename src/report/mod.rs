@@ -403,13 +403,10 @@ pub fn memberships_csv(data: &Dataset, fits: &[FitResult], chosen: &[Chosen]) ->
                 .fold((0, f64::NEG_INFINITY), |b, (k, t)| if *t > b.1 { (k, *t) } else { b })
                 .0;
             let _ = write!(s, "{name},{g},{},{}", csv_field(id), most + 1);
-            for k in 0..kmax {
-                if k < g {
-                    let _ = write!(s, ",{:.6}", row[k]);
-                } else {
-                    s.push(',');
-                }
+            for t in row {
+                let _ = write!(s, ",{t:.6}");
             }
+            s.push_str(&",".repeat(kmax - g));
             s.push('\n');
         }
     }

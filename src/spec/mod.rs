@@ -614,7 +614,7 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch) -> Result<(Vec<usize>, Search)
         Some(v) => {
             let t = *v.get_ref();
             // Below a few machine epsilons a relative change cannot be measured.
-            if !(t >= 4.0 * f64::EPSILON && t < 1.0) {
+            if !(4.0 * f64::EPSILON..1.0).contains(&t) {
                 return Err(Error::input(
                     ctx.err(
                         v.span(),

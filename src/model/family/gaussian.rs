@@ -176,45 +176,50 @@ impl ComponentFamily for GaussianComponents {
 
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
         let (d, q, g) = (self.d, self.q, self.g);
-        let mut ztz = vec![0.0; q * q];
-        let mut zty = vec![0.0; q * d];
-        let mut s = vec![0.0; d * d];
-        let mut mu = vec![0.0; d];
-        for k in 0..g {
-            ztz.fill(0.0);
-            zty.fill(0.0);
-            let (mut sum_v, mut rows) = (0.0, 0.0);
-            for i in 0..data.n {
+        // Pass 1, all clusters at once: Z'VZ (lower triangle), Z'VY, Σv, Στ.
+        let mut ztz = vec![0.0; g * q * q];
+        let mut zty = vec![0.0; g * q * d];
+        let mut sum_v = vec![0.0; g];
+        let mut rows = vec![0.0; g];
+        for i in 0..data.n {
+            let z = &data.z[i * q..(i + 1) * q];
+            let y = &data.y[i * d..(i + 1) * d];
+            let c = data.weights[i];
+            for k in 0..g {
                 let t = tau[i * g + k];
-                let v = data.weights[i] * t;
+                let v = c * t;
                 if v == 0.0 {
                     continue;
                 }
-                rows += t;
-                sum_v += v;
-                let z = &data.z[i * q..(i + 1) * q];
-                let y = &data.y[i * d..(i + 1) * d];
+                rows[k] += t;
+                sum_v[k] += v;
+                let ztz_k = &mut ztz[k * q * q..(k + 1) * q * q];
+                let zty_k = &mut zty[k * q * d..(k + 1) * q * d];
                 for a in 0..q {
                     let vz = v * z[a];
                     for b in 0..=a {
-                        ztz[a * q + b] += vz * z[b];
+                        ztz_k[a * q + b] += vz * z[b];
                     }
-                    for (acc, yj) in zty[a * d..(a + 1) * d].iter_mut().zip(y) {
+                    for (acc, yj) in zty_k[a * d..(a + 1) * d].iter_mut().zip(y) {
                         *acc += vz * yj;
                     }
                 }
             }
-            let needed = (d + q) as f64;
-            if rows < needed {
+        }
+        let needed = (d + q) as f64;
+        for k in 0..g {
+            if rows[k] < needed {
                 return Err(Degeneracy {
                     cluster: k + 1,
                     reason: format!(
-                        "it holds {rows:.1} effective rows, fewer than the {needed} its mean and covariance need"
+                        "it holds {:.1} effective rows, fewer than the {needed} its mean and covariance need",
+                        rows[k]
                     ),
                 });
             }
-            let a_mat = DMatrix::from_fn(q, q, |a, b| if b <= a { ztz[a * q + b] } else { ztz[b * q + a] });
-            let rhs = DMatrix::from_fn(q, d, |a, j| zty[a * d + j]);
+            let ztz_k = &ztz[k * q * q..(k + 1) * q * q];
+            let a_mat = DMatrix::from_fn(q, q, |a, b| if b <= a { ztz_k[a * q + b] } else { ztz_k[b * q + a] });
+            let rhs = DMatrix::from_fn(q, d, |a, j| zty[k * q * d + a * d + j]);
             let beta = a_mat.cholesky().map(|c| c.solve(&rhs)).ok_or_else(|| Degeneracy {
                 cluster: k + 1,
                 reason: "its component covariates are collinear among the rows it holds".to_string(),
@@ -224,30 +229,40 @@ impl ComponentFamily for GaussianComponents {
                     self.coef[(k * q + a) * d + j] = beta[(a, j)];
                 }
             }
-            // Second pass: residual cross-products (more accurate than Y'VY − B'Z'VY).
-            s.fill(0.0);
-            for i in 0..data.n {
-                let v = data.weights[i] * tau[i * g + k];
+        }
+        // Pass 2: residual cross-products (more accurate than Y'VY − B'Z'VY).
+        let mut s = vec![0.0; g * d * d];
+        let mut r = vec![0.0; d];
+        for i in 0..data.n {
+            let z = &data.z[i * q..(i + 1) * q];
+            let y = &data.y[i * d..(i + 1) * d];
+            let c = data.weights[i];
+            for k in 0..g {
+                let v = c * tau[i * g + k];
                 if v == 0.0 {
                     continue;
                 }
-                self.mean(k, &data.z[i * q..(i + 1) * q], &mut mu);
-                let y = &data.y[i * d..(i + 1) * d];
-                for (m, yj) in mu.iter_mut().zip(y) {
-                    *m = yj - *m; // residual
+                self.mean(k, z, &mut r);
+                for (rj, yj) in r.iter_mut().zip(y) {
+                    *rj = yj - *rj;
                 }
+                let s_k = &mut s[k * d * d..(k + 1) * d * d];
                 for a in 0..d {
-                    let va = v * mu[a];
+                    let va = v * r[a];
                     for b in 0..=a {
-                        s[a * d + b] += va * mu[b];
+                        s_k[a * d + b] += va * r[b];
                     }
                 }
             }
+        }
+        for k in 0..g {
+            let s_k = &s[k * d * d..(k + 1) * d * d];
+            let sv = sum_v[k];
             let cov = DMatrix::from_fn(d, d, |a, b| {
                 if b <= a {
-                    s[a * d + b] / sum_v
+                    s_k[a * d + b] / sv
                 } else {
-                    s[b * d + a] / sum_v
+                    s_k[b * d + a] / sv
                 }
             });
             self.set_covariance(k, cov)?;
