@@ -402,7 +402,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         title: sim.title.clone().unwrap_or_else(|| "simulated data".into()),
         rows: rows as usize,
         seed,
-        output: base.join(sim.output.get_ref()),
+        output: crate::spec::resolve(&base, sim.output.get_ref()),
         id: sim.id.clone().unwrap_or_else(|| "id".into()),
         indicators,
         decimals,

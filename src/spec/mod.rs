@@ -224,6 +224,23 @@ pub fn load(path: &Path) -> Result<Study> {
     parse(path, &text)
 }
 
+/// Join a spec-relative path to the spec's folder and drop `a/..` pairs, so messages
+/// show `demo-data/x.csv` rather than `configs/../demo-data/x.csv`. Purely lexical.
+pub fn resolve(base: &Path, rel: &str) -> PathBuf {
+    use std::path::Component;
+    let mut out: Vec<Component> = Vec::new();
+    for c in base.join(rel).components() {
+        match c {
+            Component::CurDir => {}
+            Component::ParentDir if matches!(out.last(), Some(Component::Normal(_))) => {
+                out.pop();
+            }
+            other => out.push(other),
+        }
+    }
+    out.iter().collect()
+}
+
 /// Read a whole text file, with an input error that names it when that fails.
 pub fn read_text(path: &Path, what: &str) -> Result<String> {
     if path.is_dir() {
@@ -565,12 +582,12 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         }
     }
 
-    let output = study.output.as_ref().map(|o| base.join(o.get_ref()));
+    let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
     Ok(Study {
         spec_path: path.to_path_buf(),
         spec_text: text.to_string(),
         title,
-        data_path: base.join(data),
+        data_path: resolve(&base, data),
         data_span: study.data.span(),
         id,
         weights,
@@ -815,6 +832,11 @@ mod tests {
         assert_eq!(s.placements.len(), 1);
         assert_eq!(s.placements[0].clusters, vec![1, 2, 3]);
         assert_eq!(s.data_path, PathBuf::from("d.csv"));
+        assert_eq!(
+            resolve(Path::new("configs"), "../demo-data/x.csv"),
+            PathBuf::from("demo-data/x.csv")
+        );
+        assert_eq!(resolve(Path::new(""), "../x.csv"), PathBuf::from("../x.csv"));
         assert_eq!(s.variable_type("a"), Some(VariableType::Continuous));
     }
 

@@ -211,3 +211,82 @@ fn help_shows_an_example_for_every_command() {
         assert!(s.contains(&format!("cohortmix {cmd} ")), "{cmd}: {s}");
     }
 }
+
+#[test]
+fn degenerate_starts_are_recorded_and_the_run_goes_on() {
+    // 40 rows, 2 indicators, up to 6 clusters: many starts leave a cluster with fewer
+    // rows than its mean and covariance need.
+    let dir = tempfile::tempdir().unwrap();
+    let mut csv = String::from("id,a,b\n");
+    for i in 0..40 {
+        let x = (i % 7) as f64 + 0.1 * (i as f64).sin();
+        csv.push_str(&format!("{i},{x:.4},{:.4}\n", (i % 3) as f64 + 0.05 * i as f64));
+    }
+    std::fs::write(dir.path().join("d.csv"), csv).unwrap();
+    std::fs::write(
+        dir.path().join("s.toml"),
+        "[study]\ntitle = \"tiny\"\ndata = \"d.csv\"\nid = \"id\"\n[indicators]\ncolumns = [\"a\", \"b\"]\n[search]\nclusters = [1, 2, 5, 6]\nstarts = 10\n",
+    )
+    .unwrap();
+    let out = cohortmix(dir.path(), &["fit", "s.toml", "--out", "run"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let results: serde_json::Value = serde_json::from_slice(&read(&dir.path().join("run/results.json"))).unwrap();
+    let fits = results["fits"].as_array().unwrap();
+    assert_eq!(fits.len(), 4);
+    let degenerate_starts: usize = fits
+        .iter()
+        .flat_map(|f| f["starts"]["each"].as_array().unwrap())
+        .filter(|s| s["termination"]["status"] == "degenerate")
+        .inspect(|s| assert!(s["termination"]["reason"].as_str().unwrap().contains("cluster"), "{s}"))
+        .count();
+    assert!(degenerate_starts > 0, "expected some degenerate starts");
+    for f in fits {
+        if f["status"] == "degenerate" {
+            assert!(f["reason"].as_str().unwrap().starts_with("every start failed"), "{f}");
+            assert!(f["loglik"].is_null());
+        } else {
+            assert!(f["loglik"].is_number());
+        }
+    }
+    // The CSV table carries every fit, failed ones included.
+    assert_eq!(
+        String::from_utf8(read(&dir.path().join("run/models.csv")))
+            .unwrap()
+            .lines()
+            .count(),
+        5
+    );
+}
+
+#[test]
+fn equal_and_fixed_proportions_have_no_gating_parameters() {
+    let dir = small_study();
+    let spec = STUDY.replace(
+        "[[placement]]\nname = \"age in gating\"\ngating = [\"age\"]\n",
+        "[[placement]]\nname = \"equal\"\nproportions = \"equal\"\nclusters = [2]\n[[placement]]\nname = \"fixed\"\nproportions = [0.7, 0.3]\nclusters = [2]\n",
+    );
+    std::fs::write(dir.path().join("study.toml"), spec).unwrap();
+    let out = cohortmix(dir.path(), &["fit", "study.toml", "--out", "run"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let results: serde_json::Value = serde_json::from_slice(&read(&dir.path().join("run/results.json"))).unwrap();
+    let fit = |name: &str| {
+        results["fits"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|f| f["placement"] == name && f["clusters"] == 2)
+            .unwrap()
+            .clone()
+    };
+    let free = fit("unadjusted");
+    let (equal, fixed) = (fit("equal"), fit("fixed"));
+    // Two bivariate Gaussian clusters: 2 x (2 means + 3 covariances) = 10, plus 1 share.
+    assert_eq!(free["parameters"], 11);
+    assert_eq!(equal["parameters"], 10);
+    assert_eq!(fixed["parameters"], 10);
+    assert_eq!(equal["gating_model"], "equal proportions");
+    assert_eq!(fixed["gating_model"], "fixed proportions");
+    // Constraining the proportions cannot raise the maximum likelihood.
+    assert!(equal["loglik"].as_f64().unwrap() <= free["loglik"].as_f64().unwrap() + 1e-6);
+    assert!(fixed["loglik"].as_f64().unwrap() <= free["loglik"].as_f64().unwrap() + 1e-6);
+}
