@@ -228,8 +228,9 @@ pub fn load(path: &Path) -> Result<Study> {
 /// show `demo-data/x.csv` rather than `configs/../demo-data/x.csv`. Purely lexical.
 pub fn resolve(base: &Path, rel: &str) -> PathBuf {
     use std::path::Component;
+    let joined = base.join(rel);
     let mut out: Vec<Component> = Vec::new();
-    for c in base.join(rel).components() {
+    for c in joined.components() {
         match c {
             Component::CurDir => {}
             Component::ParentDir if matches!(out.last(), Some(Component::Normal(_))) => {
