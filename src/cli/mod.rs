@@ -113,14 +113,17 @@ pub fn load_study(spec_path: &Path) -> Result<(Study, Dataset, Vec<PreparedPlace
 }
 
 fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> Result<()> {
-    for pp in prepared {
+    for cell in fit::grid(study) {
+        let pp = &prepared[cell.placement];
         let fd = fit::fit_data(data, pp);
-        for &g in &pp.placement.clusters {
-            let k = fit::initial_model(&fd, &pp.placement, g, 0.0).n_params();
+        let g = cell.clusters;
+        {
+            let options = fit::ModelOptions::from_search(&study.search, cell.structure);
+            let k = fit::initial_model(&fd, &pp.placement, g, options).n_params();
             if data.n() <= k {
                 return Err(Error::input(
                     study
-                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters has {k} parameters", data.n(), pp.placement.name))
+                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters ({}) has {k} parameters", data.n(), pp.placement.name, cell.structure.describe()))
                         .help("fit fewer clusters, use fewer covariates, or use more data (the rows must outnumber the parameters)"),
                 ));
             }
@@ -171,15 +174,19 @@ fn check(spec_path: &Path) -> Result<()> {
         let _ = writeln!(out, "    gating terms:    {}", or_none(&terms(&pp.gating)));
         let _ = writeln!(out, "    component terms: {}", or_none(&terms(&pp.components)));
         for &g in &pp.placement.clusters {
-            let k = fit::initial_model(&fd, &pp.placement, g, 0.0).n_params();
-            let starts = if g == 1 { 1 } else { study.search.starts };
-            let _ = writeln!(
-                out,
-                "    {g} cluster{}: {k} parameters, {starts} start{}",
-                plural(g),
-                plural(starts)
-            );
-            total_fits += 1;
+            for &structure in &study.search.structures {
+                let options = fit::ModelOptions::from_search(&study.search, structure);
+                let k = fit::initial_model(&fd, &pp.placement, g, options).n_params();
+                let starts = if g == 1 { 1 } else { study.search.starts };
+                let _ = writeln!(
+                    out,
+                    "    {g} cluster{}, {}: {k} parameters, {starts} start{}",
+                    plural(g),
+                    structure.describe(),
+                    plural(starts)
+                );
+                total_fits += 1;
+            }
         }
     }
     let _ = writeln!(out, "{total_fits} fits in all");

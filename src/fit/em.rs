@@ -108,7 +108,7 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
         };
         out.damped += step.damped;
         let mut new_loglik = e_step(&model, data, &mut tau_next, Some(&mut stats_next));
-        let mut new_objective = new_loglik - model.gating.penalty();
+        let mut new_objective = new_loglik - model.penalty();
         if let Some(previous) = saved {
             // A Newton step without line search can overshoot; redo the iteration with
             // the bound step, which cannot lower the objective.
@@ -119,7 +119,7 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
                     return out.finish(model, tau, iteration - 1, t);
                 }
                 new_loglik = e_step(&model, data, &mut tau_next, Some(&mut stats_next));
-                new_objective = new_loglik - model.gating.penalty();
+                new_objective = new_loglik - model.penalty();
                 out.fallbacks += 1;
             }
         }

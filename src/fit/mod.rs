@@ -172,8 +172,31 @@ pub fn fit_data<'a>(data: &'a Dataset, prepared: &'a PreparedPlacement) -> FitDa
     }
 }
 
+/// How a fit's model is set up besides the placement and cluster count.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ModelOptions {
+    /// Covariance structure of the Gaussian components.
+    pub structure: CovarianceStructure,
+    /// Ridge penalty on gating slopes.
+    pub gating_ridge: f64,
+    /// Conjugate prior on covariances.
+    pub covariance_prior: bool,
+}
+
+impl ModelOptions {
+    /// Options of a study's search for one structure.
+    pub fn from_search(search: &crate::spec::Search, structure: CovarianceStructure) -> ModelOptions {
+        ModelOptions {
+            structure,
+            gating_ridge: search.gating_ridge,
+            covariance_prior: search.covariance_prior,
+        }
+    }
+}
+
 /// A model with the placement's structure and empty parameters.
-pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, ridge: f64) -> Model {
+pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, options: ModelOptions) -> Model {
+    let ridge = options.gating_ridge;
     let gating = if g == 1 {
         Gating::Equal { g: 1 }
     } else {
@@ -194,13 +217,17 @@ pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, ridge: f64) 
             },
         }
     };
-    let components = Components::Gaussian(GaussianComponents::new(fd, g, CovarianceStructure::Unconstrained));
+    let mut gaussian = GaussianComponents::new(fd, g, options.structure);
+    if options.covariance_prior {
+        gaussian = gaussian.with_default_prior(fd);
+    }
+    let components = Components::Gaussian(gaussian);
     Model { gating, components }
 }
 
 /// Label of a start's random stream.
-fn stream_label(placement: &str, g: usize, start: usize) -> String {
-    format!("start|{placement}|{g}|{start}")
+fn stream_label(placement: &str, g: usize, structure: &CovarianceStructure, start: usize) -> String {
+    format!("start|{placement}|{g}|{}|{start}", structure.describe())
 }
 
 /// Fit one placement at one cluster count from `starts` starts.
@@ -210,20 +237,25 @@ pub fn fit_cell(
     prepared: &PreparedPlacement,
     placement_index: usize,
     g: usize,
+    structure: CovarianceStructure,
 ) -> FitResult {
     let fd = fit_data(data, prepared);
     let settings = EmSettings {
         max_iterations: study.search.max_iterations,
         tolerance: study.search.tolerance,
     };
-    let mut template = initial_model(&fd, &prepared.placement, g, study.search.gating_ridge);
+    let options = ModelOptions::from_search(&study.search, structure);
+    let mut template = initial_model(&fd, &prepared.placement, g, options);
     template.gating.prepare_bound(fd.w, fd.weights);
     let n_starts = if g == 1 { 1 } else { study.search.starts };
     let runs: Vec<(StartRecord, Option<EmRun>)> = (0..n_starts)
         .into_par_iter()
         .map(|s| {
             let kind = StartKind::for_start(s, g);
-            let mut rng = Stream::new(study.seed, &stream_label(&prepared.placement.name, g, s + 1));
+            let mut rng = Stream::new(
+                study.seed,
+                &stream_label(&prepared.placement.name, g, &structure, s + 1),
+            );
             let tau = starts::partition(kind, fd.y, fd.d, fd.weights, g, &mut rng);
             let run = em::run(&fd, template.clone(), tau, settings);
             let usable = run.termination.usable();
@@ -263,7 +295,7 @@ pub fn fit_cell(
         placement_index,
         placement: prepared.placement.name.clone(),
         clusters: g,
-        structure: CovarianceStructure::Unconstrained,
+        structure,
         n_params: template.n_params(),
         n_rows: fd.n,
         starts: runs.into_iter().map(|(r, _)| r).collect(),
@@ -300,21 +332,26 @@ pub struct Cell {
     pub placement: usize,
     /// Cluster count.
     pub clusters: usize,
+    /// Covariance structure.
+    pub structure: CovarianceStructure,
 }
 
-/// Every cell of the grid, placements in spec order, cluster counts ascending.
+/// Every cell of the grid: placements in spec order, then cluster counts ascending, then
+/// structures in the spec's order.
 pub fn grid(study: &Study) -> Vec<Cell> {
-    study
-        .placements
-        .iter()
-        .enumerate()
-        .flat_map(|(i, p)| {
-            p.clusters.iter().map(move |&g| Cell {
-                placement: i,
-                clusters: g,
-            })
-        })
-        .collect()
+    let mut cells = Vec::new();
+    for (i, p) in study.placements.iter().enumerate() {
+        for &g in &p.clusters {
+            for &structure in &study.search.structures {
+                cells.push(Cell {
+                    placement: i,
+                    clusters: g,
+                    structure,
+                });
+            }
+        }
+    }
+    cells
 }
 
 /// Fit every cell; `progress` is called after each cell with (done, total, result).
@@ -328,7 +365,14 @@ pub fn fit_grid(
     let total = cells.len();
     let mut out = Vec::with_capacity(total);
     for (done, cell) in cells.iter().enumerate() {
-        let r = fit_cell(study, data, &prepared[cell.placement], cell.placement, cell.clusters);
+        let r = fit_cell(
+            study,
+            data,
+            &prepared[cell.placement],
+            cell.placement,
+            cell.clusters,
+            cell.structure,
+        );
         progress(done + 1, total, &r);
         out.push(r);
     }

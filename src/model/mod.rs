@@ -50,6 +50,12 @@ impl Model {
         self.gating.clusters()
     }
 
+    /// What EM subtracts from the log-likelihood: the gating ridge penalty minus the
+    /// log-prior of the components.
+    pub fn penalty(&self) -> f64 {
+        self.gating.penalty() - self.components.log_prior()
+    }
+
     /// Free parameters in all.
     pub fn n_params(&self) -> usize {
         self.gating.n_params() + self.components.n_params()

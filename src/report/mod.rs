@@ -78,6 +78,11 @@ pub struct StudySummary {
     pub tolerance: f64,
     /// Ridge penalty on gating slopes.
     pub gating_ridge: f64,
+    /// Covariance structures fitted, in words.
+    pub covariance_structures: Vec<String>,
+    /// Whether covariances are posterior-mode estimates under the conjugate prior of
+    /// Fraley & Raftery (2007).
+    pub covariance_prior: bool,
 }
 
 /// Missing values of one column.
@@ -116,7 +121,7 @@ pub struct FitRecord {
     /// Clusters.
     pub clusters: usize,
     /// Covariance structure, in words.
-    pub covariance: &'static str,
+    pub covariance: String,
     /// How the gating network is parameterised.
     pub gating_model: &'static str,
     /// `converged`, `iteration_cap`, `degenerate` or `numerical_fault`.
@@ -167,6 +172,8 @@ pub struct Chosen {
     pub placement: String,
     /// Clusters of its lowest-BIC fit.
     pub clusters: usize,
+    /// Covariance structure of that fit.
+    pub covariance: String,
     /// That BIC.
     pub bic: f64,
 }
@@ -295,6 +302,8 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
             max_iterations: study.search.max_iterations,
             tolerance: study.search.tolerance,
             gating_ridge: study.search.gating_ridge,
+            covariance_structures: study.search.structures.iter().map(|s| s.describe()).collect(),
+            covariance_prior: study.search.covariance_prior,
         },
         conventions: Conventions {
             bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",
@@ -317,12 +326,14 @@ pub fn chosen(fits: &[FitResult]) -> Vec<Chosen> {
         match out.iter_mut().find(|c| c.placement == f.placement) {
             Some(c) if bic < c.bic => {
                 c.clusters = f.clusters;
+                c.covariance = f.structure.describe();
                 c.bic = bic;
             }
             Some(_) => {}
             None => out.push(Chosen {
                 placement: f.placement.clone(),
                 clusters: f.clusters,
+                covariance: f.structure.describe(),
                 bic,
             }),
         }
@@ -359,7 +370,7 @@ pub fn models_csv(results: &Results) -> String {
             "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
             csv_field(&f.placement),
             f.clusters,
-            csv_field(f.covariance),
+            csv_field(&f.covariance),
             f.status,
             num(f.loglik),
             f.parameters,

@@ -33,6 +33,7 @@
 pub mod raw;
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
+use crate::model::family::{CovarianceStructure, Orientation, Shape, Volume};
 use raw::{RawPlacement, RawSpec, SList, SStr};
 use std::collections::BTreeMap;
 use std::ops::Range;
@@ -145,6 +146,10 @@ pub struct Search {
     pub tolerance: f64,
     /// Ridge penalty on the gating slopes (not the intercepts); 0 = none.
     pub gating_ridge: f64,
+    /// Covariance structures to fit (gaussian), in the order listed.
+    pub structures: Vec<CovarianceStructure>,
+    /// Whether covariances get the conjugate prior (posterior-mode estimates).
+    pub covariance_prior: bool,
 }
 
 /// A validated study spec: the only spec type the rest of the program sees.
@@ -522,9 +527,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 max_iterations: DEFAULT_MAX_ITERATIONS,
                 tolerance: DEFAULT_TOLERANCE,
                 gating_ridge: 0.0,
+                structures: vec![CovarianceStructure::UNCONSTRAINED],
+                covariance_prior: false,
             },
         ),
-        Some(s) => search_settings(&ctx, s.get_ref())?,
+        Some(s) => search_settings(&ctx, s.get_ref(), ind.columns.get_ref().len())?,
     };
 
     // [[placement]]
@@ -614,7 +621,7 @@ fn check_unique(ctx: &Ctx, cols: &[ColumnRef]) -> Result<()> {
     Ok(())
 }
 
-fn search_settings(ctx: &Ctx, s: &raw::RawSearch) -> Result<(Vec<usize>, Search)> {
+fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize>, Search)> {
     let clusters = match &s.clusters {
         None => vec![1, 2, 3],
         Some(c) => cluster_list(ctx, c, "[search].clusters")?,
@@ -656,9 +663,11 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch) -> Result<(Vec<usize>, Search)
             r
         }
     };
-    if let Some(cov) = &s.covariance {
-        check_covariance(ctx, cov)?;
-    }
+    let structures = match &s.covariance {
+        None => vec![CovarianceStructure::UNCONSTRAINED],
+        Some(cov) => covariance_structures(ctx, cov, d)?,
+    };
+    let covariance_prior = s.covariance_prior.as_ref().is_some_and(|v| *v.get_ref());
     Ok((
         clusters,
         Search {
@@ -666,48 +675,108 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch) -> Result<(Vec<usize>, Search)
             max_iterations,
             tolerance,
             gating_ridge,
+            structures,
+            covariance_prior,
         },
     ))
 }
 
-/// This version fits one covariance structure: everything varying across clusters.
-fn check_covariance(ctx: &Ctx, cov: &Spanned<toml::Value>) -> Result<()> {
-    let unsupported = || {
-        Error::input(
-            ctx.err(
-                cov.span(),
-                "only the unconstrained covariance structure is available in this version",
-            )
-            .help("write covariance = \"unconstrained\", or leave the key out"),
-        )
-    };
-    match cov.get_ref() {
-        toml::Value::String(s) if s == "unconstrained" => Ok(()),
-        toml::Value::String(s) => {
-            let mut d = ctx.err(cov.span(), format!("unknown covariance choice '{s}'"));
-            if let Some(w) = did_you_mean(s, ["unconstrained"]) {
-                d = d.help(format!("did you mean '{w}'?"));
-            }
-            Err(Error::input(d.help(
-                "available: \"unconstrained\" (volume, shape and orientation all varying)",
-            )))
+/// `covariance = "all" | "unconstrained" | [{ volume = ..., shape = ..., orientation = ... }, ...]`.
+///
+/// With one indicator only the volume can differ: "all" then means the two spherical
+/// structures, and a listed structure must be spherical.
+fn covariance_structures(ctx: &Ctx, cov: &Spanned<toml::Value>, d: usize) -> Result<Vec<CovarianceStructure>> {
+    let hint = "write covariance = \"all\", \"unconstrained\", or a list such as \
+                [{ volume = \"equal\", shape = \"varying\", orientation = \"axes\" }]";
+    let word_error = |key: &str, got: &str, options: &[&str]| {
+        let mut d = ctx.err(cov.span(), format!("unknown {key} '{got}' in [search].covariance"));
+        if let Some(w) = did_you_mean(got, options.iter().copied()) {
+            d = d.help(format!("did you mean '{w}'?"));
         }
+        Error::input(d.help(format!("{key}: {}", options.join(", "))))
+    };
+    let mut out: Vec<CovarianceStructure> = Vec::new();
+    match cov.get_ref() {
+        toml::Value::String(w) if w == "all" => {
+            out = CovarianceStructure::all()
+                .into_iter()
+                .filter(|s| d > 1 || s.fits_one_indicator())
+                .collect();
+        }
+        toml::Value::String(w) if w == "unconstrained" => out.push(CovarianceStructure::UNCONSTRAINED),
+        toml::Value::String(w) => return Err(word_error("covariance choice", w, &["all", "unconstrained"])),
         toml::Value::Array(items) => {
             for item in items {
-                let ok = item.as_table().is_some_and(|t| {
-                    t.len() == 3
-                        && ["volume", "shape", "orientation"]
-                            .iter()
-                            .all(|k| t.get(*k).and_then(|v| v.as_str()) == Some("varying"))
-                });
-                if !ok {
-                    return Err(unsupported());
+                let Some(t) = item.as_table() else {
+                    return Err(Error::input(
+                        ctx.err(cov.span(), "each covariance structure must be a table")
+                            .help(hint),
+                    ));
+                };
+                for k in t.keys() {
+                    if !["volume", "shape", "orientation"].contains(&k.as_str()) {
+                        return Err(word_error("key", k, &["volume", "shape", "orientation"]));
+                    }
                 }
+                let get = |k: &str| t.get(k).and_then(|v| v.as_str());
+                let volume = match get("volume") {
+                    Some("equal") => Volume::Equal,
+                    Some("varying") | None => Volume::Varying,
+                    Some(o) => return Err(word_error("volume", o, &["equal", "varying"])),
+                };
+                let shape = match get("shape") {
+                    Some("equal") => Shape::Equal,
+                    Some("varying") | None => Shape::Varying,
+                    Some("spherical") => Shape::Spherical,
+                    Some(o) => return Err(word_error("shape", o, &["equal", "varying", "spherical"])),
+                };
+                let orientation = match get("orientation") {
+                    Some("equal") => Orientation::Equal,
+                    Some("varying") | None => Orientation::Varying,
+                    Some("axes") => Orientation::Axes,
+                    Some(o) => return Err(word_error("orientation", o, &["equal", "varying", "axes"])),
+                };
+                if shape == Shape::Spherical && t.contains_key("orientation") {
+                    return Err(Error::input(
+                        ctx.err(cov.span(), "a spherical shape has no orientation")
+                            .help("leave out orientation for shape = \"spherical\""),
+                    ));
+                }
+                let s = CovarianceStructure::new(volume, shape, orientation);
+                if d == 1 && !s.fits_one_indicator() {
+                    return Err(Error::input(
+                        ctx.err(cov.span(), "with one indicator only the volume can differ between clusters")
+                            .help("use shape = \"spherical\" (with volume = \"equal\" or \"varying\"), or covariance = \"all\""),
+                    ));
+                }
+                if out.contains(&s) {
+                    return Err(Error::input(
+                        ctx.err(cov.span(), format!("the structure '{}' is listed twice", s.describe())),
+                    ));
+                }
+                out.push(s);
             }
-            Ok(())
+            if out.is_empty() {
+                return Err(Error::input(
+                    ctx.err(cov.span(), "[search].covariance lists no structure").help(hint),
+                ));
+            }
         }
-        _ => Err(unsupported()),
+        _ => {
+            return Err(Error::input(
+                ctx.err(cov.span(), "[search].covariance has the wrong kind of value")
+                    .help(hint),
+            ))
+        }
     }
+    if d == 1 && out == [CovarianceStructure::UNCONSTRAINED] {
+        out = vec![CovarianceStructure::new(
+            Volume::Varying,
+            Shape::Spherical,
+            Orientation::Axes,
+        )];
+    }
+    Ok(out)
 }
 
 fn placement(

@@ -132,6 +132,8 @@ pub struct RawSearch {
     pub gating_ridge: Option<Spanned<f64>>,
     /// Covariance structures (gaussian only).
     pub covariance: Option<Spanned<toml::Value>>,
+    /// Conjugate prior on covariances (posterior-mode estimates).
+    pub covariance_prior: Option<Spanned<bool>>,
 }
 
 /// `[[placement]]`.

@@ -3,8 +3,9 @@
 
 use cohortmix::data::{Column, Design};
 use cohortmix::fit::em::{self, EmSettings};
-use cohortmix::fit::initial_model;
 use cohortmix::fit::starts::{partition, StartKind};
+use cohortmix::fit::{initial_model, ModelOptions};
+use cohortmix::model::family::CovarianceStructure;
 use cohortmix::model::gating::{logit_objective, logit_score_hessian};
 use cohortmix::model::FitData;
 use cohortmix::rng::Stream;
@@ -62,15 +63,21 @@ fn problem(
 }
 
 proptest! {
-    #![proptest_config(ProptestConfig { cases: 48, .. ProptestConfig::default() })]
+    #![proptest_config(ProptestConfig { cases: 160, .. ProptestConfig::default() })]
 
-    /// The EM objective never falls by more than 1e-9·|loglik| between iterations.
+    /// The EM objective never falls by more than 1e-9·|loglik| between iterations, for
+    /// every covariance structure, with and without gating and component covariates and
+    /// the covariance prior.
     #[test]
     fn em_never_lowers_the_loglik(seed in 0u64..10_000, n in 30usize..160, d in 1usize..4, g in 1usize..5,
-                                  with_w: bool, with_z: bool, random_start: bool) {
+                                  with_w: bool, with_z: bool, random_start: bool, structure in 0usize..14,
+                                  prior: bool) {
         let (y, w, z, weights) = problem(seed, n, d, g, with_w, with_z);
         let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p() };
-        let model = initial_model(&fd, &placement(), g, 0.0);
+        let structure = CovarianceStructure::all()[structure];
+        let structure = if d == 1 && !structure.fits_one_indicator() { CovarianceStructure::all()[1] } else { structure };
+        let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: prior };
+        let model = initial_model(&fd, &placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");
         let tau = partition(kind, &y, d, &weights, g, &mut rng);

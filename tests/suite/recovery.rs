@@ -106,7 +106,14 @@ fn mixture_of_experts_parameters_are_recovered() {
     let study = spec::parse(&spec_path, STUDY).unwrap();
     let data = data::load(&study).unwrap();
     let prepared = fit::prepare(&study, &data).unwrap();
-    let result = fit::fit_cell(&study, &data, &prepared[0], 0, 3);
+    let result = fit::fit_cell(
+        &study,
+        &data,
+        &prepared[0],
+        0,
+        3,
+        cohortmix::model::family::CovarianceStructure::UNCONSTRAINED,
+    );
     let best = result.best.as_ref().expect("a usable fit");
     assert!(best.reaching >= 2, "best optimum reached by {} starts", best.reaching);
     let results = cohortmix::report::results(&study, &data, &prepared, std::slice::from_ref(&result));

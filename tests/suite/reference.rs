@@ -116,7 +116,7 @@ fn gaussian_components_match_statsmodels_wls_on_iris() {
         w: &vec![1.0; n],
         p: 1,
     };
-    let mut comps = GaussianComponents::new(&data, g, CovarianceStructure::Unconstrained);
+    let mut comps = GaussianComponents::new(&data, g, CovarianceStructure::UNCONSTRAINED);
     comps.m_step(&data, &tau).unwrap();
     let indicators = vec!["petal_length".to_string(), "petal_width".to_string()];
     let params = comps.parameters(Naming {

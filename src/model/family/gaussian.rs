@@ -4,6 +4,7 @@
 //! B_g = (Z'VZ)^-1 Z'VY, then Sigma_g = sum_i v_i r_i r_i' / sum_i v_i from the residuals
 //! r_i = y_i − B_g' z_i (the maximum-likelihood divisor, not n − p).
 
+use super::covariance::{self, CovarianceStructure};
 use super::{ComponentFamily, Degeneracy, Naming, Parameter};
 use crate::model::FitData;
 use nalgebra::DMatrix;
@@ -15,28 +16,15 @@ const LN_2PI: f64 = 1.837_877_066_409_345_5;
 /// variance, below which the cluster counts as collapsed.
 pub const COLLAPSE_RATIO: f64 = 1e-8;
 
-/// Covariance structure across clusters. This version offers the unconstrained one;
-/// the type is an enum so that constrained structures can join it.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum CovarianceStructure {
-    /// Volume, shape and orientation all varying across clusters.
-    Unconstrained,
-}
-
-impl CovarianceStructure {
-    /// Plain-words name used in every output.
-    pub fn describe(&self) -> &'static str {
-        match self {
-            CovarianceStructure::Unconstrained => "varying volume, varying shape, varying orientation",
-        }
-    }
-
-    /// Covariance parameters for d indicators and G clusters.
-    pub fn n_params(&self, d: usize, g: usize) -> usize {
-        match self {
-            CovarianceStructure::Unconstrained => g * d * (d + 1) / 2,
-        }
-    }
+/// A conjugate (inverse-Wishart) prior on each cluster covariance: the M-step then gives
+/// the posterior mode (Fraley & Raftery 2007), which keeps covariances away from
+/// singularity. Defaults there: `dof` = d + 2 and `scale` = the data covariance / G^(2/d).
+#[derive(Debug, Clone, PartialEq)]
+pub struct CovariancePrior {
+    /// Scale matrix Λ_p.
+    pub scale: DMatrix<f64>,
+    /// Degrees of freedom ν_p.
+    pub dof: f64,
 }
 
 /// Parameters of G Gaussian regression components.
@@ -60,6 +48,10 @@ pub struct GaussianComponents {
     log_det: Vec<f64>,
     /// Overall variance of each indicator, the yardstick for collapse.
     y_var: Vec<f64>,
+    /// Common orientation kept between M-steps (structures with one).
+    orientation: Option<DMatrix<f64>>,
+    /// Optional covariance prior.
+    pub prior: Option<CovariancePrior>,
 }
 
 impl GaussianComponents {
@@ -94,7 +86,36 @@ impl GaussianComponents {
             chol: vec![DMatrix::<f64>::identity(d, d).transpose().as_slice().to_vec(); g],
             log_det: vec![0.0; g],
             y_var,
+            orientation: None,
+            prior: None,
         }
+    }
+
+    /// Use the default conjugate prior of Fraley & Raftery (2007) for these data:
+    /// ν_p = d + 2, Λ_p = (weighted data covariance) / G^(2/d).
+    pub fn with_default_prior(mut self, data: &FitData) -> GaussianComponents {
+        let d = self.d;
+        let total: f64 = data.weights.iter().sum();
+        let mut mean = vec![0.0; d];
+        for (y, c) in data.y.chunks_exact(d).zip(data.weights) {
+            for (m, v) in mean.iter_mut().zip(y) {
+                *m += c * v / total;
+            }
+        }
+        let mut cov = DMatrix::<f64>::zeros(d, d);
+        for (y, c) in data.y.chunks_exact(d).zip(data.weights) {
+            for a in 0..d {
+                for b in 0..d {
+                    cov[(a, b)] += c * (y[a] - mean[a]) * (y[b] - mean[b]) / total;
+                }
+            }
+        }
+        let scale = cov / (self.g as f64).powf(2.0 / d as f64);
+        self.prior = Some(CovariancePrior {
+            scale,
+            dof: d as f64 + 2.0,
+        });
+        self
     }
 
     /// Set parameters directly (simulation truth, tests); fails if a covariance is not
@@ -255,16 +276,22 @@ impl ComponentFamily for GaussianComponents {
                 }
             }
         }
-        for k in 0..g {
-            let s_k = &s[k * d * d..(k + 1) * d * d];
-            let sv = sum_v[k];
-            let cov = DMatrix::from_fn(d, d, |a, b| {
-                if b <= a {
-                    s_k[a * d + b] / sv
-                } else {
-                    s_k[b * d + a] / sv
-                }
-            });
+        let mut scatter: Vec<DMatrix<f64>> = (0..g)
+            .map(|k| {
+                let s_k = &s[k * d * d..(k + 1) * d * d];
+                DMatrix::from_fn(d, d, |a, b| if b <= a { s_k[a * d + b] } else { s_k[b * d + a] })
+            })
+            .collect();
+        let mut n_eff = sum_v;
+        if let Some(prior) = &self.prior {
+            // Posterior mode: the structure's M-step on the augmented scatter.
+            for (w, n) in scatter.iter_mut().zip(n_eff.iter_mut()) {
+                *w += &prior.scale;
+                *n += prior.dof + d as f64 + 1.0;
+            }
+        }
+        let estimates = covariance::estimate(self.structure, &scatter, &n_eff, &self.cov, &mut self.orientation);
+        for (k, cov) in estimates.into_iter().enumerate() {
             self.set_covariance(k, cov)?;
         }
         Ok(())
@@ -272,6 +299,20 @@ impl ComponentFamily for GaussianComponents {
 
     fn n_params(&self) -> usize {
         self.g * self.q * self.d + self.structure.n_params(self.d, self.g)
+    }
+
+    fn log_prior(&self) -> f64 {
+        let Some(prior) = &self.prior else { return 0.0 };
+        let d = self.d as f64;
+        (0..self.g)
+            .map(|k| {
+                // Σ⁻¹ from the Cholesky factor: tr(Λ Σ⁻¹) = Σ_j |L⁻¹ λ_j|² over Λ's columns.
+                let l = DMatrix::from_row_slice(self.d, self.d, &self.chol[k]);
+                let inv = l.try_inverse().unwrap_or_else(|| DMatrix::identity(self.d, self.d));
+                let tr = (&inv * &prior.scale * inv.transpose()).trace();
+                -0.5 * (prior.dof + d + 1.0) * self.log_det[k] - 0.5 * tr
+            })
+            .sum()
     }
 
     fn permute(&mut self, order: &[usize]) {
@@ -284,6 +325,7 @@ impl ComponentFamily for GaussianComponents {
         self.cov = order.iter().map(|&k| self.cov[k].clone()).collect();
         self.chol = order.iter().map(|&k| self.chol[k].clone()).collect();
         self.log_det = order.iter().map(|&k| self.log_det[k]).collect();
+        // Clusters sharing one orientation keep it under relabelling.
     }
 
     fn parameters(&self, naming: Naming) -> Vec<Parameter> {

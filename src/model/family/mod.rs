@@ -5,9 +5,11 @@
 //! driver owns the loop; a family only answers these questions. [`Components`] is the
 //! closed set of families the program offers.
 
+pub mod covariance;
 mod gaussian;
 
-pub use gaussian::{CovarianceStructure, GaussianComponents};
+pub use covariance::{CovarianceStructure, Orientation, Shape, Volume};
+pub use gaussian::{CovariancePrior, GaussianComponents};
 
 use crate::model::FitData;
 
@@ -52,6 +54,11 @@ pub trait ComponentFamily {
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy>;
     /// Number of free parameters.
     fn n_params(&self) -> usize;
+    /// Log-density of the parameters' prior, up to a constant (0 without a prior); EM
+    /// maximises log-likelihood + log-prior.
+    fn log_prior(&self) -> f64 {
+        0.0
+    }
     /// Relabel clusters: new cluster k is old cluster `order[k]`.
     fn permute(&mut self, order: &[usize]);
     /// Parameters with names, on the original scale.
@@ -84,6 +91,11 @@ impl ComponentFamily for Components {
     fn permute(&mut self, order: &[usize]) {
         match self {
             Components::Gaussian(c) => c.permute(order),
+        }
+    }
+    fn log_prior(&self) -> f64 {
+        match self {
+            Components::Gaussian(c) => c.log_prior(),
         }
     }
     fn parameters(&self, naming: Naming) -> Vec<Parameter> {
