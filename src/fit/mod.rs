@@ -181,6 +181,8 @@ pub struct ModelOptions {
     pub gating_ridge: f64,
     /// Conjugate prior on covariances.
     pub covariance_prior: bool,
+    /// Variance floor relative to the smallest indicator variance (0 = off).
+    pub variance_floor: f64,
 }
 
 impl ModelOptions {
@@ -190,6 +192,7 @@ impl ModelOptions {
             structure,
             gating_ridge: search.gating_ridge,
             covariance_prior: search.covariance_prior,
+            variance_floor: search.variance_floor,
         }
     }
 }
@@ -221,6 +224,7 @@ pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, options: Mod
     if options.covariance_prior {
         gaussian = gaussian.with_default_prior(fd);
     }
+    gaussian.variance_floor = options.variance_floor;
     let components = Components::Gaussian(gaussian);
     Model { gating, components }
 }

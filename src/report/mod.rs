@@ -83,6 +83,8 @@ pub struct StudySummary {
     /// Whether covariances are posterior-mode estimates under the conjugate prior of
     /// Fraley & Raftery (2007).
     pub covariance_prior: bool,
+    /// Variance floor relative to the smallest indicator variance (0 = off).
+    pub variance_floor: f64,
 }
 
 /// Missing values of one column.
@@ -144,6 +146,9 @@ pub struct FitRecord {
     pub starts: StartSummary,
     /// Cluster shares of the best fit, cluster 1 first.
     pub shares: Option<Vec<f64>>,
+    /// Times the variance floor raised a covariance eigenvalue in the best start (0 when
+    /// the floor is off or never acted).
+    pub variance_floor_hits: usize,
     /// Every parameter, named, on the original scale.
     pub parameters_named: Vec<Parameter>,
 }
@@ -269,6 +274,9 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
                     each: f.starts.clone(),
                 },
                 shares: f.shares(&data.weights),
+                variance_floor_hits: f.best.as_ref().map_or(0, |b| match &b.run.model.components {
+                    crate::model::family::Components::Gaussian(c) => c.floor_hits,
+                }),
                 parameters_named,
             }
         })
@@ -304,6 +312,7 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
             gating_ridge: study.search.gating_ridge,
             covariance_structures: study.search.structures.iter().map(|s| s.describe()).collect(),
             covariance_prior: study.search.covariance_prior,
+            variance_floor: study.search.variance_floor,
         },
         conventions: Conventions {
             bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",

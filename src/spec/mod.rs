@@ -150,6 +150,8 @@ pub struct Search {
     pub structures: Vec<CovarianceStructure>,
     /// Whether covariances get the conjugate prior (posterior-mode estimates).
     pub covariance_prior: bool,
+    /// Floor on covariance eigenvalues relative to the smallest indicator variance; 0 = off.
+    pub variance_floor: f64,
 }
 
 /// A validated study spec: the only spec type the rest of the program sees.
@@ -529,6 +531,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 gating_ridge: 0.0,
                 structures: vec![CovarianceStructure::UNCONSTRAINED],
                 covariance_prior: false,
+                variance_floor: 0.0,
             },
         ),
         Some(s) => search_settings(&ctx, s.get_ref(), ind.columns.get_ref().len())?,
@@ -668,6 +671,22 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
         Some(cov) => covariance_structures(ctx, cov, d)?,
     };
     let covariance_prior = s.covariance_prior.as_ref().is_some_and(|v| *v.get_ref());
+    let variance_floor = match &s.variance_floor {
+        None => 0.0,
+        Some(v) => {
+            let f = *v.get_ref();
+            if !(0.0..1.0).contains(&f) {
+                return Err(Error::input(
+                    ctx.err(
+                        v.span(),
+                        format!("[search].variance_floor must be from 0 up to 1, not {f}"),
+                    )
+                    .help("it is a share of the smallest indicator variance; 1e-6 is a cautious value, 0 turns it off"),
+                ));
+            }
+            f
+        }
+    };
     Ok((
         clusters,
         Search {
@@ -677,6 +696,7 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
             gating_ridge,
             structures,
             covariance_prior,
+            variance_floor,
         },
     ))
 }

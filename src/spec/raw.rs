@@ -134,6 +134,8 @@ pub struct RawSearch {
     pub covariance: Option<Spanned<toml::Value>>,
     /// Conjugate prior on covariances (posterior-mode estimates).
     pub covariance_prior: Option<Spanned<bool>>,
+    /// Floor on covariance eigenvalues, relative to the smallest indicator variance.
+    pub variance_floor: Option<Spanned<f64>>,
 }
 
 /// `[[placement]]`.

@@ -6,3 +6,4 @@ pub mod common;
 pub mod properties;
 pub mod recovery;
 pub mod reference;
+pub mod structures;

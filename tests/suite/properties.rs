@@ -76,7 +76,7 @@ proptest! {
         let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p() };
         let structure = CovarianceStructure::all()[structure];
         let structure = if d == 1 && !structure.fits_one_indicator() { CovarianceStructure::all()[1] } else { structure };
-        let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: prior };
+        let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: prior, variance_floor: 0.0 };
         let model = initial_model(&fd, &placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");

@@ -445,4 +445,101 @@ mod tests {
         assert_eq!(count(V::Equal, S::Varying, O::Varying), 21);
         assert_eq!(count(V::Varying, S::Varying, O::Varying), 24);
     }
+
+    fn random_scatter(seed: u64, d: usize, g: usize) -> (Vec<DMatrix<f64>>, Vec<f64>) {
+        let mut s = crate::rng::Stream::new(seed, "scatter");
+        let mut w = Vec::new();
+        let mut n = Vec::new();
+        for _ in 0..g {
+            let rows = 20 + s.index(40);
+            let m = DMatrix::from_fn(rows, d, |_, j| s.normal() * (1.0 + j as f64) + 0.3 * s.normal());
+            w.push(m.transpose() * &m);
+            n.push(rows as f64);
+        }
+        (w, n)
+    }
+
+    fn commute(a: &DMatrix<f64>, b: &DMatrix<f64>) -> bool {
+        let ab = a * b;
+        (&ab - b * a).amax() <= 1e-6 * ab.amax()
+    }
+
+    fn shape(m: &DMatrix<f64>) -> DVector<f64> {
+        let v = eigen_desc(m).0;
+        &v / geo_mean(v.iter().copied())
+    }
+
+    /// Every structure's estimate satisfies its constraints and does not raise the M-step
+    /// objective above that of the previous estimate (the warm start).
+    #[test]
+    fn m_steps_respect_the_structure_and_never_lose_ground() {
+        for seed in 0..25u64 {
+            for d in [2usize, 3, 4] {
+                let g = 2 + (seed as usize % 3);
+                let (w_old, n_old) = random_scatter(seed, d, g);
+                let (w, n) = random_scatter(seed + 1000, d, g);
+                for s in CovarianceStructure::all() {
+                    let mut orient = None;
+                    let previous = estimate(s, &w_old, &n_old, &vec![DMatrix::identity(d, d); g], &mut orient);
+                    let sigma = estimate(s, &w, &n, &previous, &mut orient);
+                    let (before, after) = (objective(&w, &n, &previous), objective(&w, &n, &sigma));
+                    assert!(
+                        after <= before + 1e-9 * before.abs(),
+                        "{}: {after} > {before}",
+                        s.describe()
+                    );
+                    // Better than or equal to the unconstrained optimum's structure-free bound.
+                    let free = objective(
+                        &w,
+                        &n,
+                        &estimate(CovarianceStructure::UNCONSTRAINED, &w, &n, &previous, &mut None),
+                    );
+                    assert!(
+                        after >= free - 1e-9 * free.abs(),
+                        "{} beats the unconstrained optimum",
+                        s.describe()
+                    );
+                    let dets: Vec<f64> = sigma.iter().map(|m| m.determinant()).collect();
+                    if s.volume == Volume::Equal {
+                        assert!(
+                            dets.iter().all(|x| (x - dets[0]).abs() <= 1e-8 * dets[0]),
+                            "{}: {dets:?}",
+                            s.describe()
+                        );
+                    }
+                    match s.shape {
+                        Shape::Spherical => {
+                            for m in &sigma {
+                                assert!((m - DMatrix::identity(d, d) * m[(0, 0)]).amax() <= 1e-12 * m[(0, 0)]);
+                            }
+                        }
+                        Shape::Equal => {
+                            let a0 = shape(&sigma[0]);
+                            assert!(
+                                sigma.iter().all(|m| (shape(m) - &a0).amax() <= 1e-6 * a0.amax()),
+                                "{}",
+                                s.describe()
+                            );
+                        }
+                        Shape::Varying => {}
+                    }
+                    match s.orientation {
+                        Orientation::Axes => {
+                            for m in &sigma {
+                                assert!(
+                                    (m - DMatrix::from_diagonal(&m.diagonal())).amax() == 0.0,
+                                    "{}",
+                                    s.describe()
+                                );
+                            }
+                        }
+                        Orientation::Equal if s.shape != Shape::Spherical => {
+                            assert!(sigma.iter().all(|m| commute(m, &sigma[0])), "{}", s.describe());
+                        }
+                        _ => {}
+                    }
+                }
+            }
+        }
+    }
 }

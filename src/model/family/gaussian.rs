@@ -52,6 +52,10 @@ pub struct GaussianComponents {
     orientation: Option<DMatrix<f64>>,
     /// Optional covariance prior.
     pub prior: Option<CovariancePrior>,
+    /// Variance floor relative to the smallest indicator variance (0 = off).
+    pub variance_floor: f64,
+    /// How many times the floor raised an eigenvalue, over all M-steps.
+    pub floor_hits: usize,
 }
 
 impl GaussianComponents {
@@ -88,6 +92,8 @@ impl GaussianComponents {
             y_var,
             orientation: None,
             prior: None,
+            variance_floor: 0.0,
+            floor_hits: 0,
         }
     }
 
@@ -291,7 +297,18 @@ impl ComponentFamily for GaussianComponents {
             }
         }
         let estimates = covariance::estimate(self.structure, &scatter, &n_eff, &self.cov, &mut self.orientation);
-        for (k, cov) in estimates.into_iter().enumerate() {
+        let floor = self.variance_floor * self.y_var.iter().copied().fold(f64::INFINITY, f64::min);
+        for (k, mut cov) in estimates.into_iter().enumerate() {
+            if floor > 0.0 {
+                // Raise eigenvalues below the floor; counted, because the estimate then
+                // leaves the exact maximiser (and, for shared parts, the structure).
+                let e = nalgebra::SymmetricEigen::new(cov.clone());
+                if e.eigenvalues.iter().any(|v| *v < floor) {
+                    self.floor_hits += 1;
+                    let raised = e.eigenvalues.map(|v| v.max(floor));
+                    cov = &e.eigenvectors * DMatrix::from_diagonal(&raised) * e.eigenvectors.transpose();
+                }
+            }
             self.set_covariance(k, cov)?;
         }
         Ok(())
