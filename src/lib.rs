@@ -19,6 +19,7 @@
 #![allow(clippy::neg_cmp_op_on_partial_ord)]
 
 pub mod cli;
+pub mod compare;
 pub mod data;
 pub mod error;
 pub mod fit;

@@ -297,18 +297,29 @@ fn progress_line(r: &FitResult) -> String {
 }
 
 fn print_table(results: &report::Results) {
+    let several = results.study.covariance_structures.len() > 1;
+    let structure_header = if several {
+        format!(" {:<52}", "covariance")
+    } else {
+        String::new()
+    };
     println!("BIC = -2 loglik + parameters x ln(rows); smaller is better");
     println!(
-        "{:<36} {:>3} {:>14} {:>6} {:>14} {:>9}  status",
+        "{:<36} {:>3}{structure_header} {:>14} {:>6} {:>14} {:>9}  status",
         "placement", "G", "loglik", "params", "BIC", "best/all"
     );
     for f in &results.fits {
         let chosen = results
             .chosen
             .iter()
-            .any(|c| c.placement == f.placement && c.clusters == f.clusters);
+            .any(|c| c.placement == f.placement && c.clusters == f.clusters && c.covariance == f.covariance);
+        let structure = if several {
+            format!(" {:<52}", f.covariance)
+        } else {
+            String::new()
+        };
         println!(
-            "{:<36} {:>3} {:>14} {:>6} {:>14} {:>9}  {}{}",
+            "{:<36} {:>3}{structure} {:>14} {:>6} {:>14} {:>9}  {}{}",
             truncate(&f.placement, 36),
             f.clusters,
             f.loglik.map_or("-".into(), |v| format!("{v:.3}")),

@@ -185,6 +185,8 @@ pub struct Study {
     pub search: Search,
     /// Placements, in spec order.
     pub placements: Vec<Placement>,
+    /// How the comparison is made.
+    pub compare: crate::compare::CompareSettings,
 }
 
 impl Study {
@@ -594,6 +596,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
     }
 
     let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
+    let compare = compare_settings(&ctx, raw.compare.as_ref(), &placements)?;
     Ok(Study {
         spec_path: path.to_path_buf(),
         spec_text: text.to_string(),
@@ -609,7 +612,56 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         indicators,
         search,
         placements,
+        compare,
     })
+}
+
+fn compare_settings(
+    ctx: &Ctx,
+    raw: Option<&Spanned<raw::RawCompare>>,
+    placements: &[Placement],
+) -> Result<crate::compare::CompareSettings> {
+    let mut settings = crate::compare::CompareSettings {
+        reference: 0,
+        clusters: None,
+    };
+    let Some(raw) = raw else { return Ok(settings) };
+    let r = raw.get_ref();
+    if let Some(name) = &r.reference {
+        settings.reference = placements
+            .iter()
+            .position(|p| p.name == *name.get_ref())
+            .ok_or_else(|| {
+                let names: Vec<&str> = placements.iter().map(|p| p.name.as_str()).collect();
+                let mut d = ctx.err(
+                    name.span(),
+                    format!("[compare].reference names no placement: '{}'", name.get_ref()),
+                );
+                if let Some(s) = did_you_mean(name.get_ref(), names.iter().copied()) {
+                    d = d.help(format!("did you mean '{s}'?"));
+                }
+                Error::input(d.help(format!("placements: {}", names.join(", "))))
+            })?;
+    }
+    if let Some(c) = &r.clusters {
+        let g = positive(ctx, c, "[compare].clusters", 1)?;
+        if let Some(p) = placements.iter().find(|p| !p.clusters.contains(&g)) {
+            return Err(Error::input(
+                ctx.err(
+                    c.span(),
+                    format!(
+                        "[compare].clusters is {g}, but placement '{}' does not fit {g} clusters",
+                        p.name
+                    ),
+                )
+                .help(format!(
+                    "add {g} to [search].clusters (or to that placement's clusters)"
+                )),
+            ));
+        }
+        settings.clusters = Some(g);
+    }
+    Ok(settings)
 }
 
 fn check_unique(ctx: &Ctx, cols: &[ColumnRef]) -> Result<()> {

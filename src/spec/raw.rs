@@ -33,6 +33,19 @@ pub struct RawSpec {
     /// `[[placement]]`: where the covariates go.
     #[serde(default)]
     pub placement: Vec<Spanned<RawPlacement>>,
+    /// `[compare]`: how placements are compared.
+    #[serde(default)]
+    pub compare: Option<Spanned<RawCompare>>,
+}
+
+/// `[compare]`.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCompare {
+    /// Placement the others are aligned to (default: the first).
+    pub reference: Option<SStr>,
+    /// Cluster count used for every placement (default: each placement's lowest BIC).
+    pub clusters: Option<Spanned<i64>>,
 }
 
 /// `[study]`.

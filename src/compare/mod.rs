@@ -1,0 +1,680 @@
+//! The placement comparison: criteria, clusters aligned across placements, profiles,
+//! gating effects, cross-tables and sentences.
+//!
+//! For each placement the chosen fit (lowest BIC, or lowest BIC at the cluster count the
+//! spec fixes) is aligned to the reference placement's chosen fit by maximising agreement:
+//! the cross-table of summed posteriors C[a][b] = Σ_i c_i τ_ref(i, a) τ(i, b) goes through
+//! the Hungarian method, so a cluster keeps one number (and colour) everywhere. Clusters
+//! without a counterpart get new numbers after the reference's.
+//!
+//! Everything here is plain data for the report; no numbers are computed in the report.
+
+pub mod assign;
+
+use crate::data::{Dataset, Design};
+use crate::fit::{FitResult, PreparedPlacement};
+use crate::model::family::Components;
+use crate::model::gating::Gating;
+use serde::Serialize;
+
+/// What the spec's `[compare]` table says.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CompareSettings {
+    /// Index of the reference placement.
+    pub reference: usize,
+    /// Cluster count fixed for the comparison, if any.
+    pub clusters: Option<usize>,
+}
+
+/// One row of the criteria table.
+#[derive(Debug, Clone, Serialize)]
+pub struct Criteria {
+    /// Placement.
+    pub placement: String,
+    /// Clusters.
+    pub clusters: usize,
+    /// Covariance structure in words.
+    pub covariance: String,
+    /// How the fit ended.
+    pub status: String,
+    /// Log-likelihood.
+    pub loglik: Option<f64>,
+    /// Free parameters.
+    pub parameters: usize,
+    /// BIC (smaller is better).
+    pub bic: Option<f64>,
+    /// AIC (smaller is better).
+    pub aic: Option<f64>,
+    /// ICL = BIC + 2 × classification entropy (smaller is better; Biernacki, Celeux &
+    /// Govaert 2000).
+    pub icl: Option<f64>,
+    /// Approximate posterior probability of this model among the placement's fits,
+    /// exp(−ΔBIC/2) normalised.
+    pub bic_weight: Option<f64>,
+    /// Relative entropy 1 − EN/(n ln G): 1 = crisp classification (not defined for G = 1).
+    pub relative_entropy: Option<f64>,
+    /// Mean of the largest posterior among the rows assigned to each cluster.
+    pub average_posterior: Vec<f64>,
+    /// Smallest cluster share (weighted posterior).
+    pub smallest_share: Option<f64>,
+    /// Rows assigned (most likely) to the smallest cluster.
+    pub smallest_count: Option<usize>,
+    /// Starts within 1e-6 of the best.
+    pub starts_reaching_best: usize,
+    /// Starts run.
+    pub starts: usize,
+    /// Whether this fit is the one the comparison uses for its placement.
+    pub chosen: bool,
+}
+
+/// How one placement's chosen clusters map onto the aligned clusters.
+#[derive(Debug, Clone, Serialize)]
+pub struct Alignment {
+    /// Placement.
+    pub placement: String,
+    /// Clusters of its chosen fit.
+    pub clusters: usize,
+    /// Covariance structure of its chosen fit.
+    pub covariance: String,
+    /// For each fitted cluster (1-based order), its aligned number.
+    pub aligned: Vec<usize>,
+    /// For each fitted cluster, the share of its posterior weight that lies in the matched
+    /// reference cluster (None for clusters with no counterpart).
+    pub overlap: Vec<Option<f64>>,
+}
+
+/// One aligned cluster under one placement.
+#[derive(Debug, Clone, Serialize)]
+pub struct Profile {
+    /// Aligned cluster number.
+    pub cluster: usize,
+    /// Placement.
+    pub placement: String,
+    /// Weighted posterior share.
+    pub share: f64,
+    /// Rows whose most likely cluster it is.
+    pub count: usize,
+    /// Indicator means at the reference covariate values (sample mean of continuous and
+    /// count covariates, reference level of categorical and binary ones).
+    pub at_reference: Vec<f64>,
+    /// Indicator means averaged over the sample, weighted by the posterior.
+    pub population_averaged: Vec<f64>,
+}
+
+/// A gating effect as a relative risk ratio against aligned cluster 1.
+#[derive(Debug, Clone, Serialize)]
+pub struct GatingEffect {
+    /// Placement.
+    pub placement: String,
+    /// Aligned cluster compared with aligned cluster 1.
+    pub cluster: usize,
+    /// Gating term.
+    pub term: String,
+    /// exp(coefficient): multiplies the relative risk of the cluster versus cluster 1 per
+    /// unit of the term.
+    pub rrr: f64,
+}
+
+/// Most-likely clusters of two placements cross-tabulated (aligned numbers).
+#[derive(Debug, Clone, Serialize)]
+pub struct CrossTable {
+    /// Row placement.
+    pub rows: String,
+    /// Column placement.
+    pub columns: String,
+    /// Aligned numbers on the rows.
+    pub row_clusters: Vec<usize>,
+    /// Aligned numbers on the columns.
+    pub column_clusters: Vec<usize>,
+    /// Counts.
+    pub counts: Vec<Vec<usize>>,
+    /// Adjusted Rand index (Hubert & Arabie 1985).
+    pub adjusted_rand_index: f64,
+}
+
+/// A generated sentence with the table row it comes from.
+#[derive(Debug, Clone, Serialize)]
+pub struct Sentence {
+    /// The sentence.
+    pub text: String,
+    /// Where its numbers are: table and row.
+    pub source: String,
+    /// The numbers it quotes, as printed in that table.
+    pub numbers: Vec<String>,
+}
+
+/// The whole comparison.
+#[derive(Debug, Clone, Serialize)]
+pub struct Comparison {
+    /// Reference placement.
+    pub reference: String,
+    /// Cluster count fixed by the spec, if any.
+    pub fixed_clusters: Option<usize>,
+    /// How reference covariate values are set for profiles.
+    pub reference_values: String,
+    /// Indicator names.
+    pub indicators: Vec<String>,
+    /// Criteria, one row per fit.
+    pub criteria: Vec<Criteria>,
+    /// Alignment per placement (reference first).
+    pub alignments: Vec<Alignment>,
+    /// Profiles per aligned cluster and placement.
+    pub profiles: Vec<Profile>,
+    /// Gating effects.
+    pub gating_effects: Vec<GatingEffect>,
+    /// Cross-tables between each pair of placements.
+    pub cross_tables: Vec<CrossTable>,
+    /// Posterior certainty (largest posterior per row) histogram per placement: 10 bins on
+    /// [0, 1], weighted counts.
+    pub certainty: Vec<(String, Vec<f64>)>,
+    /// Generated sentences.
+    pub sentences: Vec<Sentence>,
+}
+
+/// Format a share as a percentage with one decimal, the way every table prints it.
+pub fn pct(x: f64) -> String {
+    format!("{:.1}%", 100.0 * x)
+}
+
+/// Format an indicator value the way every table prints it.
+pub fn val(x: f64) -> String {
+    format!("{x:.2}")
+}
+
+/// Format a relative risk ratio the way every table prints it.
+pub fn ratio(x: f64) -> String {
+    format!("{x:.3}")
+}
+
+fn most_likely(row: &[f64]) -> usize {
+    let mut best = 0;
+    for (k, v) in row.iter().enumerate() {
+        if *v > row[best] {
+            best = k;
+        }
+    }
+    best
+}
+
+fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Vec<Criteria> {
+    let mut out = Vec::new();
+    for (i, f) in fits.iter().enumerate() {
+        let g = f.clusters;
+        let (mut icl, mut rel, mut avg, mut smallest, mut smallest_n) = (None, None, Vec::new(), None, None);
+        if let Some(b) = &f.best {
+            let tau = &b.run.tau;
+            let en: f64 = tau
+                .chunks_exact(g)
+                .zip(weights)
+                .map(|(row, c)| -c * row.iter().filter(|t| **t > 0.0).map(|t| t * t.ln()).sum::<f64>())
+                .sum();
+            icl = f.bic().map(|bic| bic + 2.0 * en);
+            if g > 1 {
+                let total: f64 = weights.iter().sum();
+                rel = Some(1.0 - en / (total * (g as f64).ln()));
+            }
+            let mut sums = vec![0.0; g];
+            let mut counts = vec![0usize; g];
+            for row in tau.chunks_exact(g) {
+                let k = most_likely(row);
+                sums[k] += row[k];
+                counts[k] += 1;
+            }
+            avg = sums
+                .iter()
+                .zip(&counts)
+                .map(|(s, c)| if *c > 0 { s / *c as f64 } else { 0.0 })
+                .collect();
+            let shares = crate::fit::cluster_shares(tau, weights, g);
+            let k_min = (0..g).min_by(|a, b| shares[*a].total_cmp(&shares[*b])).unwrap_or(0);
+            smallest = Some(shares[k_min]);
+            smallest_n = Some(counts[k_min]);
+        }
+        out.push(Criteria {
+            placement: f.placement.clone(),
+            clusters: g,
+            covariance: f.structure.describe(),
+            status: f.termination().word().replace(' ', "_"),
+            loglik: f.loglik(),
+            parameters: f.n_params,
+            bic: f.bic(),
+            aic: f.aic(),
+            icl,
+            bic_weight: None,
+            relative_entropy: rel,
+            average_posterior: avg,
+            smallest_share: smallest,
+            smallest_count: smallest_n,
+            starts_reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
+            starts: f.starts.len(),
+            chosen: chosen.contains(&Some(i)),
+        });
+    }
+    // Posterior model probabilities within each placement.
+    let names: Vec<String> = out.iter().map(|c| c.placement.clone()).collect();
+    for name in names.iter() {
+        let best = out
+            .iter()
+            .filter(|c| &c.placement == name)
+            .filter_map(|c| c.bic)
+            .fold(f64::INFINITY, f64::min);
+        let total: f64 = out
+            .iter()
+            .filter(|c| &c.placement == name)
+            .filter_map(|c| c.bic)
+            .map(|b| (-(b - best) / 2.0).exp())
+            .sum();
+        for c in out.iter_mut().filter(|c| &c.placement == name) {
+            c.bic_weight = c.bic.map(|b| (-(b - best) / 2.0).exp() / total);
+        }
+    }
+    out
+}
+
+/// Index into `fits` of the chosen fit of each placement.
+pub fn chosen_fits(fits: &[FitResult], placements: usize, fixed: Option<usize>) -> Vec<Option<usize>> {
+    (0..placements)
+        .map(|p| {
+            fits.iter()
+                .enumerate()
+                .filter(|(_, f)| f.placement_index == p && fixed.is_none_or(|g| f.clusters == g))
+                .filter_map(|(i, f)| f.bic().map(|b| (i, b)))
+                .min_by(|a, b| a.1.total_cmp(&b.1))
+                .map(|(i, _)| i)
+        })
+        .collect()
+}
+
+/// The comparison of every placement's chosen fit against the reference placement's.
+pub fn compare(
+    data: &Dataset,
+    prepared: &[PreparedPlacement],
+    fits: &[FitResult],
+    settings: &CompareSettings,
+) -> Comparison {
+    let weights = &data.weights;
+    let chosen = chosen_fits(fits, prepared.len(), settings.clusters);
+    let criteria = criteria(fits, weights, &chosen);
+    let reference_fit = chosen[settings.reference];
+    let mut alignments = Vec::new();
+    let mut next_new = reference_fit.map_or(1, |i| fits[i].clusters + 1);
+    // Reference first, then the others in spec order.
+    let mut order: Vec<usize> = vec![settings.reference];
+    order.extend((0..prepared.len()).filter(|p| *p != settings.reference));
+    let mut labelled: Vec<(usize, &FitResult, Vec<usize>)> = Vec::new(); // (placement, fit, aligned per fitted cluster)
+    for &p in &order {
+        let Some(fi) = chosen[p] else { continue };
+        let f = &fits[fi];
+        let Some(best) = &f.best else { continue };
+        let g = f.clusters;
+        let (aligned, overlap) = match reference_fit.and_then(|r| fits[r].best.as_ref().map(|b| (r, b))) {
+            Some((r, rb)) if r != fi => {
+                let gr = fits[r].clusters;
+                let mut c = vec![vec![0.0; gr]; g];
+                for ((tr, to), w) in rb
+                    .run
+                    .tau
+                    .chunks_exact(gr)
+                    .zip(best.run.tau.chunks_exact(g))
+                    .zip(weights)
+                {
+                    for (b, cb) in c.iter_mut().enumerate() {
+                        for (a, cell) in cb.iter_mut().enumerate() {
+                            *cell += w * tr[a] * to[b];
+                        }
+                    }
+                }
+                let assignment = assign::max_weight_assignment(&c);
+                let mut aligned = Vec::with_capacity(g);
+                let mut overlap = Vec::with_capacity(g);
+                for (b, a) in assignment.iter().enumerate() {
+                    match a {
+                        Some(a) => {
+                            aligned.push(a + 1);
+                            let total: f64 = c[b].iter().sum();
+                            overlap.push(Some(if total > 0.0 { c[b][*a] / total } else { 0.0 }));
+                        }
+                        None => {
+                            aligned.push(next_new);
+                            next_new += 1;
+                            overlap.push(None);
+                        }
+                    }
+                }
+                (aligned, overlap)
+            }
+            _ => ((1..=g).collect(), vec![Some(1.0); g]),
+        };
+        alignments.push(Alignment {
+            placement: f.placement.clone(),
+            clusters: g,
+            covariance: f.structure.describe(),
+            aligned: aligned.clone(),
+            overlap,
+        });
+        labelled.push((p, f, aligned));
+    }
+
+    // Profiles and gating effects, by aligned cluster.
+    let mut profiles = Vec::new();
+    let mut gating_effects = Vec::new();
+    let mut certainty = Vec::new();
+    let d = data.d();
+    for (p, f, aligned) in &labelled {
+        let best = f.best.as_ref().expect("labelled fits have a best start");
+        let g = f.clusters;
+        let design = &prepared[*p].components;
+        let Components::Gaussian(comps) = &best.run.model.components;
+        let shares = crate::fit::cluster_shares(&best.run.tau, weights, g);
+        let mut counts = vec![0usize; g];
+        let mut hist = vec![0.0; 10];
+        for (row, w) in best.run.tau.chunks_exact(g).zip(weights) {
+            let k = most_likely(row);
+            counts[k] += 1;
+            hist[((row[k] * 10.0) as usize).min(9)] += w;
+        }
+        certainty.push((f.placement.clone(), hist));
+        let q = design.p();
+        for k in 0..g {
+            let at_reference: Vec<f64> = (0..d).map(|j| comps.coef[k * q * d + j]).collect();
+            let mut avg = vec![0.0; d];
+            let mut mu = vec![0.0; d];
+            let mut total = 0.0;
+            for ((z, row), w) in design.x.chunks_exact(q).zip(best.run.tau.chunks_exact(g)).zip(weights) {
+                comps.mean(k, z, &mut mu);
+                let v = w * row[k];
+                total += v;
+                for (a, m) in avg.iter_mut().zip(&mu) {
+                    *a += v * m;
+                }
+            }
+            for a in avg.iter_mut() {
+                *a /= total.max(f64::MIN_POSITIVE);
+            }
+            profiles.push(Profile {
+                cluster: aligned[k],
+                placement: f.placement.clone(),
+                share: shares[k],
+                count: counts[k],
+                at_reference,
+                population_averaged: avg,
+            });
+        }
+        gating_effects.extend(effects(
+            &best.run.model.gating,
+            &prepared[*p].gating,
+            aligned,
+            &f.placement,
+        ));
+    }
+    profiles.sort_by(|a, b| {
+        a.cluster
+            .cmp(&b.cluster)
+            .then(placement_rank(&order, prepared, &a.placement).cmp(&placement_rank(&order, prepared, &b.placement)))
+    });
+
+    // Cross-tables of most-likely aligned clusters, reference against each other placement
+    // and then every other pair.
+    let mut cross_tables = Vec::new();
+    let maps: Vec<(String, Vec<usize>)> = labelled
+        .iter()
+        .map(|(_, f, aligned)| {
+            let g = f.clusters;
+            let tau = &f.best.as_ref().expect("best").run.tau;
+            (
+                f.placement.clone(),
+                tau.chunks_exact(g).map(|row| aligned[most_likely(row)]).collect(),
+            )
+        })
+        .collect();
+    for i in 0..maps.len() {
+        for j in (i + 1)..maps.len() {
+            let (a, b) = (&maps[i], &maps[j]);
+            let mut rows: Vec<usize> = a.1.clone();
+            rows.sort_unstable();
+            rows.dedup();
+            let mut cols: Vec<usize> = b.1.clone();
+            cols.sort_unstable();
+            cols.dedup();
+            let mut counts = vec![vec![0usize; cols.len()]; rows.len()];
+            for (x, y) in a.1.iter().zip(&b.1) {
+                let r = rows.iter().position(|v| v == x).unwrap_or(0);
+                let c = cols.iter().position(|v| v == y).unwrap_or(0);
+                counts[r][c] += 1;
+            }
+            let ari = assign::adjusted_rand_index(&a.1, &b.1);
+            cross_tables.push(CrossTable {
+                rows: a.0.clone(),
+                columns: b.0.clone(),
+                row_clusters: rows,
+                column_clusters: cols,
+                counts,
+                adjusted_rand_index: ari,
+            });
+        }
+    }
+
+    let reference = prepared[settings.reference].placement.name.clone();
+    let sentences = sentences(
+        &reference,
+        &data.indicator_names,
+        &criteria,
+        &alignments,
+        &profiles,
+        &gating_effects,
+        &cross_tables,
+    );
+    Comparison {
+        reference,
+        fixed_clusters: settings.clusters,
+        reference_values: "indicator means at the reference covariate values: continuous and count covariates at their sample mean, categorical and binary ones at their reference level".into(),
+        indicators: data.indicator_names.clone(),
+        criteria,
+        alignments,
+        profiles,
+        gating_effects,
+        cross_tables,
+        certainty,
+        sentences,
+    }
+}
+
+fn placement_rank(order: &[usize], prepared: &[PreparedPlacement], name: &str) -> usize {
+    order
+        .iter()
+        .position(|p| prepared[*p].placement.name == name)
+        .unwrap_or(usize::MAX)
+}
+
+/// Gating effects against aligned cluster 1 (or, when the placement has no counterpart of
+/// it, against its own cluster 1), per unit on the original scale.
+fn effects(gating: &Gating, design: &Design, aligned: &[usize], placement: &str) -> Vec<GatingEffect> {
+    let Gating::Logit { g, p, gamma, .. } = gating else {
+        return Vec::new();
+    };
+    let (g, p) = (*g, *p);
+    // Full coefficient rows on the original scale, fitted cluster 1 = 0.
+    let rows: Vec<Vec<f64>> = (0..g)
+        .map(|k| {
+            if k == 0 {
+                vec![0.0; p]
+            } else {
+                design.to_original_scale(&gamma[(k - 1) * p..k * p])
+            }
+        })
+        .collect();
+    let base = aligned.iter().position(|a| *a == 1).unwrap_or(0);
+    let mut out = Vec::new();
+    let mut order: Vec<usize> = (0..g).filter(|k| *k != base).collect();
+    order.sort_by_key(|k| aligned[*k]);
+    for k in order {
+        for (j, term) in design.terms.iter().enumerate().skip(1) {
+            out.push(GatingEffect {
+                placement: placement.to_string(),
+                cluster: aligned[k],
+                term: term.name.clone(),
+                rrr: (rows[k][j] - rows[base][j]).exp(),
+            });
+        }
+    }
+    out
+}
+
+fn sentences(
+    reference: &str,
+    indicators: &[String],
+    criteria: &[Criteria],
+    alignments: &[Alignment],
+    profiles: &[Profile],
+    effects: &[GatingEffect],
+    tables: &[CrossTable],
+) -> Vec<Sentence> {
+    let mut out = Vec::new();
+    // Model choice.
+    for c in criteria.iter().filter(|c| c.chosen) {
+        out.push(Sentence {
+            text: format!(
+                "Under '{}' the comparison uses {} clusters ({}), BIC {:.1}.",
+                c.placement,
+                c.clusters,
+                c.covariance,
+                c.bic.unwrap_or(f64::NAN)
+            ),
+            source: format!("criteria table, placement '{}', {} clusters", c.placement, c.clusters),
+            numbers: vec![format!("{:.1}", c.bic.unwrap_or(f64::NAN))],
+        });
+    }
+    // Largest change of a cluster's share against the reference.
+    let mut best_share: Option<(f64, &Profile, &Profile)> = None;
+    for p in profiles.iter().filter(|p| p.placement != reference) {
+        if let Some(r) = profiles
+            .iter()
+            .find(|r| r.placement == reference && r.cluster == p.cluster)
+        {
+            let diff = (p.share - r.share).abs();
+            if best_share.is_none_or(|(d, _, _)| diff > d) {
+                best_share = Some((diff, r, p));
+            }
+        }
+    }
+    if let Some((_, r, p)) = best_share {
+        let verb = if p.share > r.share { "grows" } else { "shrinks" };
+        out.push(Sentence {
+            text: format!(
+                "The largest shift in size: cluster {} {verb} from {} of the cohort under '{}' to {} under '{}'.",
+                p.cluster,
+                pct(r.share),
+                reference,
+                pct(p.share),
+                p.placement
+            ),
+            source: format!("cluster sizes table, row 'cluster {}'", p.cluster),
+            numbers: vec![pct(r.share), pct(p.share)],
+        });
+    }
+    // Largest change of a profile value (population-averaged), in units of that
+    // indicator's spread across the reference clusters' values.
+    let mut best_profile: Option<(f64, &Profile, &Profile, usize)> = None;
+    for p in profiles.iter().filter(|p| p.placement != reference) {
+        if let Some(r) = profiles
+            .iter()
+            .find(|r| r.placement == reference && r.cluster == p.cluster)
+        {
+            for j in 0..indicators.len() {
+                let diff = (p.population_averaged[j] - r.population_averaged[j]).abs();
+                if best_profile.is_none_or(|(d, _, _, _)| diff > d) {
+                    best_profile = Some((diff, r, p, j));
+                }
+            }
+        }
+    }
+    if let Some((_, r, p, j)) = best_profile {
+        out.push(Sentence {
+            text: format!(
+                "The largest shift in a profile: cluster {}'s average {} is {} under '{}' and {} under '{}'.",
+                p.cluster,
+                indicators[j],
+                val(r.population_averaged[j]),
+                reference,
+                val(p.population_averaged[j]),
+                p.placement
+            ),
+            source: format!(
+                "profiles table, row 'cluster {}', column '{}'",
+                p.cluster, indicators[j]
+            ),
+            numbers: vec![val(r.population_averaged[j]), val(p.population_averaged[j])],
+        });
+    }
+    // Gating effects: a sign change between placements, else the strongest effect.
+    let mut flip = None;
+    'outer: for a in effects {
+        for b in effects {
+            if a.placement < b.placement
+                && a.cluster == b.cluster
+                && a.term == b.term
+                && (a.rrr - 1.0) * (b.rrr - 1.0) < 0.0
+            {
+                flip = Some((a, b));
+                break 'outer;
+            }
+        }
+    }
+    if let Some((a, b)) = flip {
+        out.push(Sentence {
+            text: format!(
+                "The effect of {} on belonging to cluster {} rather than cluster 1 changes direction: relative risk ratio {} per unit under '{}', {} under '{}'.",
+                a.term, a.cluster, ratio(a.rrr), a.placement, ratio(b.rrr), b.placement
+            ),
+            source: format!("gating effects table, rows 'cluster {}, {}'", a.cluster, a.term),
+            numbers: vec![ratio(a.rrr), ratio(b.rrr)],
+        });
+    } else if let Some(e) = effects
+        .iter()
+        .max_by(|a, b| a.rrr.ln().abs().total_cmp(&b.rrr.ln().abs()))
+    {
+        let word = if e.rrr > 1.0 { "raises" } else { "lowers" };
+        out.push(Sentence {
+            text: format!(
+                "Under '{}', each unit of {} {word} the relative risk of cluster {} against cluster 1 by a factor of {}.",
+                e.placement, e.term, e.cluster, ratio(e.rrr)
+            ),
+            source: format!("gating effects table, row 'cluster {}, {}', placement '{}'", e.cluster, e.term, e.placement),
+            numbers: vec![ratio(e.rrr)],
+        });
+    }
+    // Clusters with no counterpart.
+    for a in alignments {
+        for (k, o) in a.overlap.iter().enumerate() {
+            if o.is_none() {
+                let share = profiles
+                    .iter()
+                    .find(|p| p.placement == a.placement && p.cluster == a.aligned[k])
+                    .map_or(0.0, |p| p.share);
+                out.push(Sentence {
+                    text: format!(
+                        "'{}' has a cluster with no counterpart under '{}': cluster {} ({}).",
+                        a.placement,
+                        reference,
+                        a.aligned[k],
+                        pct(share)
+                    ),
+                    source: format!("cluster sizes table, row 'cluster {}'", a.aligned[k]),
+                    numbers: vec![pct(share)],
+                });
+            }
+        }
+    }
+    // Agreement with the reference.
+    for t in tables.iter().filter(|t| t.rows == reference) {
+        out.push(Sentence {
+            text: format!(
+                "Most-likely clusters under '{}' and '{}' agree with an adjusted Rand index of {:.3}.",
+                t.rows, t.columns, t.adjusted_rand_index
+            ),
+            source: format!("cross-table '{}' × '{}'", t.rows, t.columns),
+            numbers: vec![format!("{:.3}", t.adjusted_rand_index)],
+        });
+    }
+    out
+}
