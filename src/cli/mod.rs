@@ -16,6 +16,7 @@ const EXAMPLES: &str = "\
 Examples:
   cohortmix check configs/demo.toml       validate the spec against its data, show the plan
   cohortmix fit configs/demo.toml         fit every placement and cluster count
+  cohortmix compare configs/demo.toml     fit, then compare placements: report.html
   cohortmix simulate demo-data/respiratory-truth.toml
                                           write data drawn from a stated truth
 
@@ -49,6 +50,18 @@ pub enum Command {
 The run folder gets results.json, models.csv, memberships.csv and manifest.json.\n\
 Default folder: [study].output in the spec, else runs/<spec name> here.")]
     Fit {
+        /// The study spec (TOML).
+        spec: PathBuf,
+        /// Run folder (overrides [study].output).
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+    },
+    /// Fit what the spec lists, then compare the placements: aligned clusters, profiles,
+    /// effects, agreement; writes report.html and summary.md beside the fit outputs.
+    #[command(after_help = "Example:\n  cohortmix compare configs/demo.toml\n\n\
+The run folder gets report.html (one self-contained page), summary.md, and results.json\n\
+with a \"comparison\" section, besides models.csv, memberships.csv and manifest.json.")]
+    Compare {
         /// The study spec (TOML).
         spec: PathBuf,
         /// Run folder (overrides [study].output).
@@ -98,7 +111,8 @@ pub fn run(cli: Cli) -> Result<()> {
     }
     match cli.command {
         Command::Check { spec } => check(&spec),
-        Command::Fit { spec, out } => fit_command(&spec, out.as_deref()),
+        Command::Fit { spec, out } => fit_command(&spec, out.as_deref(), false),
+        Command::Compare { spec, out } => fit_command(&spec, out.as_deref(), true),
         Command::Simulate { spec, out } => simulate_command(&spec, out.as_deref()),
     }
 }
@@ -224,7 +238,7 @@ pub fn run_folder(study: &Study, out: Option<&Path>) -> PathBuf {
     PathBuf::from("runs").join(stem)
 }
 
-fn fit_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
+fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> Result<()> {
     let t0 = Instant::now();
     let (study, data, prepared) = load_study(spec_path)?;
     let folder = run_folder(&study, out);
@@ -240,7 +254,14 @@ fn fit_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
         eprintln!("[{done}/{total}] {}", progress_line(r));
     });
     let seconds_fitting = t1.elapsed().as_secs_f64();
-    let results = report::results(&study, &data, &prepared, &fits);
+    let mut results = report::results(&study, &data, &prepared, &fits);
+    let mut pages = Vec::new();
+    if with_comparison {
+        let comparison = crate::compare::compare(&data, &prepared, &fits, &study.compare);
+        pages.push(("summary.md", report::document::markdown(&results, &comparison)));
+        pages.push(("report.html", report::document::html(&results, &comparison)));
+        results.comparison = Some(comparison);
+    }
     let json = serde_json::to_string_pretty(&results)
         .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode results: {e}"))))?;
     let manifest = Manifest {
@@ -264,10 +285,24 @@ fn fit_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
         report::memberships_csv(&data, &fits, &results.chosen),
     );
     files.add("manifest.json", manifest + "\n");
+    for (name, text) in &pages {
+        files.add(name, text.as_bytes());
+    }
     files.commit(&folder)?;
     print_table(&results);
+    if let Some(c) = &results.comparison {
+        println!("What changes between placements:");
+        for sentence in &c.sentences {
+            println!("  - {}", sentence.text);
+        }
+    }
+    let names = if with_comparison {
+        "report.html, summary.md, results.json, models.csv, memberships.csv, manifest.json"
+    } else {
+        "results.json, models.csv, memberships.csv, manifest.json"
+    };
     println!(
-        "wrote {} (results.json, models.csv, memberships.csv, manifest.json) in {:.1} s",
+        "wrote {} ({names}) in {:.1} s",
         folder.display(),
         t0.elapsed().as_secs_f64()
     );

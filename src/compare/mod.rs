@@ -132,6 +132,25 @@ pub struct CrossTable {
     pub adjusted_rand_index: f64,
 }
 
+/// Membership probabilities against one continuous gating covariate, with the other
+/// covariates at their reference values (one curve set per level of a categorical
+/// gating covariate, when there is one).
+#[derive(Debug, Clone, Serialize)]
+pub struct EffectCurve {
+    /// Placement.
+    pub placement: String,
+    /// The covariate on the x axis.
+    pub covariate: String,
+    /// The categorical covariate and level this curve set is for, if any.
+    pub level: Option<(String, String)>,
+    /// Covariate values.
+    pub x: Vec<f64>,
+    /// Aligned cluster numbers, in the order of `probabilities`.
+    pub clusters: Vec<usize>,
+    /// `probabilities[c][i]`: probability of aligned cluster `clusters[c]` at `x[i]`.
+    pub probabilities: Vec<Vec<f64>>,
+}
+
 /// A generated sentence with the table row it comes from.
 #[derive(Debug, Clone, Serialize)]
 pub struct Sentence {
@@ -167,6 +186,8 @@ pub struct Comparison {
     /// Posterior certainty (largest posterior per row) histogram per placement: 10 bins on
     /// [0, 1], weighted counts.
     pub certainty: Vec<(String, Vec<f64>)>,
+    /// Effect curves of gating covariates.
+    pub effect_curves: Vec<EffectCurve>,
     /// Generated sentences.
     pub sentences: Vec<Sentence>,
 }
@@ -358,6 +379,7 @@ pub fn compare(
     // Profiles and gating effects, by aligned cluster.
     let mut profiles = Vec::new();
     let mut gating_effects = Vec::new();
+    let mut effect_curves = Vec::new();
     let mut certainty = Vec::new();
     let d = data.d();
     for (p, f, aligned) in &labelled {
@@ -401,6 +423,13 @@ pub fn compare(
             });
         }
         gating_effects.extend(effects(
+            &best.run.model.gating,
+            &prepared[*p].gating,
+            aligned,
+            &f.placement,
+        ));
+        effect_curves.extend(curves(
+            data,
             &best.run.model.gating,
             &prepared[*p].gating,
             aligned,
@@ -475,8 +504,74 @@ pub fn compare(
         gating_effects,
         cross_tables,
         certainty,
+        effect_curves,
         sentences,
     }
+}
+
+/// Effect curves for the first continuous gating covariate, by the levels of the first
+/// categorical one.
+fn curves(data: &Dataset, gating: &Gating, design: &Design, aligned: &[usize], placement: &str) -> Vec<EffectCurve> {
+    use crate::data::Column;
+    let Gating::Logit { g, p, gamma, .. } = gating else {
+        return Vec::new();
+    };
+    let (g, p) = (*g, *p);
+    let x_term = design.terms.iter().position(|t| {
+        t.covariate.as_ref().is_some_and(|c| matches!(data.columns.get(c), Some(Column::Numeric { kind, .. }) if *kind != crate::spec::VariableType::Binary))
+    });
+    let Some(xj) = x_term else { return Vec::new() };
+    let x_name = design.terms[xj].covariate.clone().unwrap_or_default();
+    let Some(Column::Numeric { values, .. }) = data.columns.get(&x_name) else {
+        return Vec::new();
+    };
+    let (lo, hi) = values
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(*v), b.max(*v)));
+    let xs: Vec<f64> = (0..=40).map(|i| lo + (hi - lo) * i as f64 / 40.0).collect();
+    // Levels of the first categorical gating covariate (reference level = all dummies 0).
+    let by = design.terms.iter().find_map(|t| {
+        let c = t.covariate.as_ref()?;
+        match data.columns.get(c) {
+            Some(Column::Categorical { levels, reference, .. }) => Some((c.clone(), levels.clone(), *reference)),
+            _ => None,
+        }
+    });
+    let settings: Vec<Option<(String, String)>> = match &by {
+        None => vec![None],
+        Some((c, levels, _)) => levels.iter().map(|l| Some((c.clone(), l.clone()))).collect(),
+    };
+    let mut order: Vec<usize> = (0..g).collect();
+    order.sort_by_key(|k| aligned[*k]);
+    let mut out = Vec::new();
+    for level in settings {
+        let mut probs = vec![Vec::with_capacity(xs.len()); g];
+        let mut lp = vec![0.0; g];
+        for x in &xs {
+            let mut w = vec![0.0; p];
+            w[0] = 1.0;
+            let t = &design.terms[xj];
+            w[xj] = (x - t.center) / t.scale;
+            if let Some((c, l)) = &level {
+                if let Some(j) = design.terms.iter().position(|t| t.name == format!("{c}={l}")) {
+                    w[j] = 1.0;
+                }
+            }
+            crate::model::gating::log_softmax_row(gamma, p, &w, &mut lp);
+            for (k, pr) in probs.iter_mut().enumerate() {
+                pr.push(lp[k].exp());
+            }
+        }
+        out.push(EffectCurve {
+            placement: placement.to_string(),
+            covariate: x_name.clone(),
+            level,
+            x: xs.clone(),
+            clusters: order.iter().map(|k| aligned[*k]).collect(),
+            probabilities: order.iter().map(|k| probs[*k].clone()).collect(),
+        });
+    }
+    out
 }
 
 fn placement_rank(order: &[usize], prepared: &[PreparedPlacement], name: &str) -> usize {

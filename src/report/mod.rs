@@ -6,6 +6,10 @@
 //! folder and renamed into place at the end, so a failed or interrupted run never leaves a
 //! half-written file and never touches the previous run's files before it has succeeded.
 
+pub mod document;
+pub mod svg;
+pub mod tables;
+
 use crate::data::{Dataset, Design};
 use crate::error::{Diagnostic, Error, Result};
 use crate::fit::{FitResult, PreparedPlacement};
@@ -34,6 +38,9 @@ pub struct Results {
     pub fits: Vec<FitRecord>,
     /// The lowest-BIC fit of each placement.
     pub chosen: Vec<Chosen>,
+    /// The placement comparison (written by `compare`, absent after `fit`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub comparison: Option<crate::compare::Comparison>,
 }
 
 /// Program identity.
@@ -324,6 +331,7 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
         },
         fits: records,
         chosen: chosen(fits),
+        comparison: None,
     }
 }
 

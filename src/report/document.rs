@@ -1,0 +1,411 @@
+//! `summary.md` and `report.html`: the same tables and sentences, two renderings.
+
+use super::svg::{self, cluster_colour, esc, Series};
+use super::tables::{tables, Table};
+use super::Results;
+use crate::compare::Comparison;
+use std::fmt::Write as _;
+
+/// The cautions every report carries.
+pub const CAUTIONS: [&str; 5] = [
+    "Clusters are model-based summaries of the data, not diagnoses.",
+    "They can be driven by the modelling assumptions: the indicators chosen, the covariance structure, where covariates are placed.",
+    "Small clusters need replication in other data before they are taken seriously.",
+    "Nothing here is clinical advice; use and interpretation defer to local practice and ethics review.",
+    "The demo data are simulated and describe no real people.",
+];
+
+/// The reporting checklist, filled from the run (items follow the spirit of the GRoLTS
+/// checklist of van de Schoot et al. 2017, in our own words).
+pub fn checklist(results: &Results, c: &Comparison) -> Vec<(String, String)> {
+    let s = &results.study;
+    let missing: Vec<String> = s
+        .missing_by_column
+        .iter()
+        .filter(|m| m.missing > 0)
+        .map(|m| format!("{}: {}", m.column, m.missing))
+        .collect();
+    let mut placements = Vec::new();
+    let mut seen = Vec::new();
+    for f in &results.fits {
+        if !seen.contains(&f.placement) {
+            seen.push(f.placement.clone());
+            placements.push(format!(
+                "'{}': membership (gating) {}; within clusters (components) {}",
+                f.placement,
+                if f.gating_covariates.is_empty() {
+                    "none".to_string()
+                } else {
+                    f.gating_covariates.join(", ")
+                },
+                if f.component_covariates.is_empty() {
+                    "none".to_string()
+                } else {
+                    f.component_covariates.join(", ")
+                }
+            ));
+        }
+    }
+    let counts: Vec<usize> = {
+        let mut v: Vec<usize> = results.fits.iter().map(|f| f.clusters).collect();
+        v.sort_unstable();
+        v.dedup();
+        v
+    };
+    let sizes: Vec<String> = c
+        .criteria
+        .iter()
+        .filter(|r| r.chosen)
+        .map(|r| {
+            format!(
+                "'{}': {} clusters, smallest {}",
+                r.placement,
+                r.clusters,
+                r.smallest_share.map_or("–".into(), crate::compare::pct)
+            )
+        })
+        .collect();
+    let entropy: Vec<String> = c
+        .criteria
+        .iter()
+        .filter(|r| r.chosen)
+        .map(|r| {
+            format!(
+                "'{}': {}",
+                r.placement,
+                r.relative_entropy.map_or("–".into(), |e| format!("{e:.3}"))
+            )
+        })
+        .collect();
+    vec![
+        ("Indicators".into(), format!("{} ({} family)", s.indicators.join(", "), s.family)),
+        ("Rows".into(), format!("{} read, {} used, {} excluded for a missing value", s.rows_read, s.rows_used, s.rows_excluded)),
+        ("Missing data".into(), if missing.is_empty() { "none in the columns used".into() } else { format!("rows missing any used value were excluded ({})", missing.join(", ")) }),
+        ("Case weights".into(), s.weights.clone().unwrap_or_else(|| "none".into())),
+        ("Covariates and their placement".into(), placements.join("; ")),
+        ("Cluster counts fitted (including 1)".into(), counts.iter().map(usize::to_string).collect::<Vec<_>>().join(", ")),
+        ("Covariance structures".into(), s.covariance_structures.join("; ")),
+        ("Estimation".into(), format!("EM, {} starts per fit (random partitions and k-means++-type seeding), up to {} iterations, relative tolerance {:e}, seed {}", s.starts, s.max_iterations, s.tolerance, s.seed)),
+        ("Regularisation".into(), format!("gating ridge {}; covariance prior {}; variance floor {}", s.gating_ridge, if s.covariance_prior { "on" } else { "off" }, s.variance_floor)),
+        ("Model choice".into(), match c.fixed_clusters { Some(g) => format!("cluster count fixed at {g} by the spec; lowest BIC among structures"), None => "lowest BIC per placement; AIC, ICL and BIC weights reported".into() }),
+        ("Chosen models and cluster sizes".into(), sizes.join("; ")),
+        ("Classification quality (relative entropy)".into(), entropy.join("; ")),
+        ("Software".into(), format!("cohortmix {}", results.program.version)),
+    ]
+}
+
+fn md_table(out: &mut String, t: &Table) {
+    let _ = writeln!(out, "*{}*\n", t.note);
+    let _ = writeln!(
+        out,
+        "| {} |",
+        t.header.iter().map(|h| md_cell(h)).collect::<Vec<_>>().join(" | ")
+    );
+    let _ = writeln!(out, "|{}|", vec!["---"; t.header.len()].join("|"));
+    for r in &t.rows {
+        let _ = writeln!(
+            out,
+            "| {} |",
+            r.iter().map(|c| md_cell(c)).collect::<Vec<_>>().join(" | ")
+        );
+    }
+    out.push('\n');
+}
+
+fn md_cell(s: &str) -> String {
+    s.replace('|', "\\|").replace('\n', " ")
+}
+
+/// `summary.md`.
+pub fn markdown(results: &Results, c: &Comparison) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "# {}\n", results.study.title);
+    let _ = writeln!(
+        s,
+        "Placement comparison by cohortmix {}. Reference placement: '{}'.\n",
+        results.program.version, c.reference
+    );
+    s.push_str("> **Cautions.** ");
+    s.push_str(&CAUTIONS.join(" "));
+    s.push_str("\n\n## What changes between placements\n\n");
+    for sentence in &c.sentences {
+        let _ = writeln!(s, "- {} *(see {})*", sentence.text, sentence.source);
+    }
+    s.push('\n');
+    for t in tables(c) {
+        let _ = writeln!(s, "## {}\n", capitalise(&t.name));
+        md_table(&mut s, &t);
+    }
+    s.push_str("## Reporting checklist\n\n");
+    for (k, v) in checklist(results, c) {
+        let _ = writeln!(s, "- **{}**: {}", k, v);
+    }
+    s
+}
+
+fn capitalise(s: &str) -> String {
+    let mut c = s.chars();
+    c.next()
+        .map_or_else(String::new, |f| f.to_uppercase().chain(c).collect())
+}
+
+fn html_table(out: &mut String, t: &Table) {
+    let _ = write!(
+        out,
+        "<p class=\"note\">{}</p><div class=\"scroll\"><table><thead><tr>",
+        esc(&t.note)
+    );
+    for h in &t.header {
+        let _ = write!(out, "<th>{}</th>", esc(h));
+    }
+    out.push_str("</tr></thead><tbody>");
+    for r in &t.rows {
+        out.push_str("<tr>");
+        for (i, cell) in r.iter().enumerate() {
+            let swatch = if i == 0 {
+                cell.strip_prefix("cluster ").and_then(|k| k.parse::<usize>().ok())
+            } else {
+                None
+            };
+            match swatch {
+                Some(k) => {
+                    let _ = write!(
+                        out,
+                        "<td><span class=\"sw\" style=\"background:{}\"></span>{}</td>",
+                        cluster_colour(k),
+                        esc(cell)
+                    );
+                }
+                None => {
+                    let _ = write!(out, "<td>{}</td>", esc(cell));
+                }
+            }
+        }
+        out.push_str("</tr>");
+    }
+    out.push_str("</tbody></table></div>");
+}
+
+const CSS: &str = "body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#111;line-height:1.45}\
+h1{font-size:1.6em}h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #ccc}\
+table{border-collapse:collapse;font-size:.85em;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:3px 6px;text-align:left;vertical-align:top}\
+th{background:#eee}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
+.caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff8f2}\
+.sw{display:inline-block;width:.8em;height:.8em;margin-right:.35em;border:1px solid #000;vertical-align:middle}\
+svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
+svg.small{width:300px;height:auto;display:inline-block;margin:.3em}\
+svg.grid{max-width:420px;height:auto;display:inline-block;margin:.3em}\
+svg text.ct{font-size:14px;font-weight:600}svg text.tk{font-size:11px}\
+@media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}}";
+
+/// `report.html`: one self-contained page (inline CSS and SVG, no scripts, nothing fetched).
+pub fn html(results: &Results, c: &Comparison) -> String {
+    let mut s = String::new();
+    let title = esc(&results.study.title);
+    let _ = write!(s, "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{title}</title><style>{CSS}</style></head><body>");
+    let _ = write!(s, "<h1>{title}</h1><p>Placement comparison by cohortmix {}. Reference placement: <b>{}</b>. Data: {} ({} rows used of {}).</p>", esc(results.program.version), esc(&c.reference), esc(&results.study.data_file), results.study.rows_used, results.study.rows_read);
+    s.push_str("<div class=\"caution\"><b>Cautions.</b><ul>");
+    for caution in CAUTIONS {
+        let _ = write!(s, "<li>{}</li>", esc(caution));
+    }
+    s.push_str("</ul></div>");
+    s.push_str("<h2>What changes between placements</h2><ul>");
+    for sentence in &c.sentences {
+        let _ = write!(
+            s,
+            "<li>{} <span class=\"note\">(see {})</span></li>",
+            esc(&sentence.text),
+            esc(&sentence.source)
+        );
+    }
+    s.push_str("</ul>");
+
+    let all = tables(c);
+    let find = |name: &str| all.iter().find(|t| t.name == name);
+
+    s.push_str("<h2>Model choice</h2>");
+    s.push_str(&criteria_chart(c));
+    if let Some(t) = find("criteria table") {
+        html_table(&mut s, t);
+    }
+
+    s.push_str("<h2>Clusters aligned across placements</h2>");
+    if let Some(t) = find("alignment table") {
+        html_table(&mut s, t);
+    }
+    s.push_str("<h2>Cluster sizes</h2>");
+    let rows: Vec<(String, Vec<(usize, f64)>)> = c
+        .alignments
+        .iter()
+        .map(|a| {
+            (
+                a.placement.clone(),
+                c.profiles
+                    .iter()
+                    .filter(|p| p.placement == a.placement)
+                    .map(|p| (p.cluster, p.share))
+                    .collect(),
+            )
+        })
+        .collect();
+    s.push_str(&svg::stacked_shares(
+        "Cluster shares per placement (segment label: aligned cluster · share)",
+        &rows,
+    ));
+    if let Some(t) = find("cluster sizes table") {
+        html_table(&mut s, t);
+    }
+
+    s.push_str("<h2>Profiles</h2>");
+    s.push_str(&profile_grid(c));
+    if let Some(t) = find("profiles table") {
+        html_table(&mut s, t);
+    }
+
+    if let Some(t) = find("gating effects table") {
+        s.push_str("<h2>Gating effects</h2>");
+        html_table(&mut s, t);
+        for curve in &c.effect_curves {
+            let series: Vec<Series> = curve
+                .clusters
+                .iter()
+                .zip(&curve.probabilities)
+                .enumerate()
+                .map(|(i, (k, pr))| Series {
+                    name: format!("cluster {k}"),
+                    points: curve.x.iter().copied().zip(pr.iter().copied()).collect(),
+                    colour: cluster_colour(*k).to_string(),
+                    style: i,
+                })
+                .collect();
+            let level = curve
+                .level
+                .as_ref()
+                .map_or_else(String::new, |(v, l)| format!(", {v} = {l}"));
+            let title = format!(
+                "'{}': membership probability by {}{level} (other covariates at reference)",
+                curve.placement, curve.covariate
+            );
+            s.push_str(&svg::line_chart(
+                &title,
+                &curve.covariate,
+                "probability",
+                &series,
+                false,
+            ));
+        }
+    }
+
+    s.push_str("<h2>Agreement between placements</h2>");
+    for t in &c.cross_tables {
+        s.push_str(&svg::shaded_grid(
+            &format!("'{}' × '{}'", t.rows, t.columns),
+            &t.rows,
+            &t.columns,
+            &t.row_clusters,
+            &t.column_clusters,
+            &t.counts,
+        ));
+    }
+    for t in all.iter().filter(|t| t.name.starts_with("cross-table")) {
+        let _ = write!(s, "<h3>{}</h3>", esc(&t.name));
+        html_table(&mut s, t);
+    }
+
+    s.push_str("<h2>Posterior certainty</h2><p class=\"note\">Weighted count of rows by their largest posterior probability; mass near 1 means crisp membership.</p>");
+    for (placement, bins) in &c.certainty {
+        s.push_str(&svg::histogram(placement, bins));
+    }
+
+    s.push_str("<h2>Reporting checklist</h2><table><tbody>");
+    for (k, v) in checklist(results, c) {
+        let _ = write!(s, "<tr><th>{}</th><td>{}</td></tr>", esc(&k), esc(&v));
+    }
+    s.push_str("</tbody></table>");
+    let _ = write!(
+        s,
+        "<p class=\"note\">Spec: {}. BIC = −2 loglik + parameters × ln(rows); smaller is better.</p></body></html>\n",
+        esc(&results.study.spec_file)
+    );
+    s
+}
+
+fn criteria_chart(c: &Comparison) -> String {
+    let mut series = Vec::new();
+    for (i, a) in c.alignments.iter().enumerate() {
+        let mut pts: Vec<(f64, f64)> = Vec::new();
+        let mut gs: Vec<usize> = c
+            .criteria
+            .iter()
+            .filter(|r| r.placement == a.placement)
+            .map(|r| r.clusters)
+            .collect();
+        gs.sort_unstable();
+        gs.dedup();
+        for g in gs {
+            let best = c
+                .criteria
+                .iter()
+                .filter(|r| r.placement == a.placement && r.clusters == g)
+                .filter_map(|r| r.bic)
+                .fold(f64::INFINITY, f64::min);
+            if best.is_finite() {
+                pts.push((g as f64, best));
+            }
+        }
+        series.push(Series {
+            name: a.placement.clone(),
+            points: pts,
+            colour: svg::PALETTE[(i + 4) % svg::PALETTE.len()].to_string(),
+            style: i,
+        });
+    }
+    svg::line_chart(
+        "BIC against the number of clusters (best structure at each count; smaller is better)",
+        "clusters",
+        "BIC",
+        &series,
+        true,
+    )
+}
+
+fn profile_grid(c: &Comparison) -> String {
+    let mut s = String::from("<p class=\"note\">Averaged profile per aligned cluster; marker shape = placement: ");
+    for (i, a) in c.alignments.iter().enumerate() {
+        let _ = write!(
+            s,
+            "<svg width=\"14\" height=\"14\" viewBox=\"0 0 14 14\">{}</svg> {} ",
+            svg::marker(i, 7.0, 7.0, "#777"),
+            esc(&a.placement)
+        );
+    }
+    s.push_str("</p>");
+    let mut clusters: Vec<usize> = c.profiles.iter().map(|p| p.cluster).collect();
+    clusters.sort_unstable();
+    clusters.dedup();
+    for (j, ind) in c.indicators.iter().enumerate() {
+        let values: Vec<f64> = c.profiles.iter().map(|p| p.population_averaged[j]).collect();
+        let lo = values.iter().copied().fold(f64::INFINITY, f64::min);
+        let hi = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+        let pad = 0.05 * (hi - lo).max(1e-9);
+        let rows: Vec<(String, &'static str, Vec<(usize, f64)>)> = clusters
+            .iter()
+            .map(|k| {
+                let marks = c
+                    .alignments
+                    .iter()
+                    .enumerate()
+                    .filter_map(|(i, a)| {
+                        c.profiles
+                            .iter()
+                            .find(|p| p.cluster == *k && p.placement == a.placement)
+                            .map(|p| (i, p.population_averaged[j]))
+                    })
+                    .collect();
+                (format!("cluster {k}"), cluster_colour(*k), marks)
+            })
+            .collect();
+        s.push_str(&svg::dot_rows(ind, &rows, lo - pad, hi + pad));
+    }
+    s
+}

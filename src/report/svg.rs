@@ -1,0 +1,489 @@
+//! Small inline SVG charts for the report. No numerics beyond placing marks.
+//!
+//! Colours follow the Okabe–Ito palette (readable by colour-blind readers); every series
+//! also has its own marker shape or dash pattern and a direct label, so charts stay readable
+//! in greyscale and in print.
+
+use std::fmt::Write as _;
+
+/// Okabe–Ito colours; aligned cluster k uses `PALETTE[(k - 1) % len]`.
+pub const PALETTE: [&str; 8] = [
+    "#0072B2", "#E69F00", "#009E73", "#CC79A7", "#D55E00", "#56B4E9", "#F0E442", "#000000",
+];
+
+/// Colour of aligned cluster `k` (1-based).
+pub fn cluster_colour(k: usize) -> &'static str {
+    PALETTE[(k.max(1) - 1) % PALETTE.len()]
+}
+
+/// Dash pattern of series `i`.
+pub fn dash(i: usize) -> &'static str {
+    ["", "6 3", "2 3", "8 3 2 3", "1 2"][i % 5]
+}
+
+/// Escape text for HTML and SVG.
+pub fn esc(s: &str) -> String {
+    let mut out = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '"' => out.push_str("&quot;"),
+            '\'' => out.push_str("&#39;"),
+            _ => out.push(c),
+        }
+    }
+    out
+}
+
+/// A marker of shape `i` at (x, y).
+pub fn marker(i: usize, x: f64, y: f64, fill: &str) -> String {
+    let r = 4.5;
+    match i % 5 {
+        0 => format!(r##"<circle cx="{x:.1}" cy="{y:.1}" r="{r}" fill="{fill}" stroke="#000" stroke-width="0.8"/>"##),
+        1 => format!(
+            r##"<rect x="{:.1}" y="{:.1}" width="{}" height="{}" fill="{fill}" stroke="#000" stroke-width="0.8"/>"##,
+            x - r,
+            y - r,
+            2.0 * r,
+            2.0 * r
+        ),
+        2 => format!(
+            r##"<path d="M{x:.1},{:.1} L{:.1},{:.1} L{:.1},{:.1} Z" fill="{fill}" stroke="#000" stroke-width="0.8"/>"##,
+            y - r - 1.0,
+            x + r + 1.0,
+            y + r,
+            x - r - 1.0,
+            y + r
+        ),
+        3 => format!(
+            r##"<path d="M{x:.1},{:.1} L{:.1},{y:.1} L{x:.1},{:.1} L{:.1},{y:.1} Z" fill="{fill}" stroke="#000" stroke-width="0.8"/>"##,
+            y - r - 1.0,
+            x + r + 1.0,
+            y + r + 1.0,
+            x - r - 1.0
+        ),
+        _ => format!(
+            r##"<path d="M{:.1},{:.1} L{:.1},{:.1} M{:.1},{:.1} L{:.1},{:.1}" stroke="{fill}" stroke-width="2.5"/>"##,
+            x - r,
+            y - r,
+            x + r,
+            y + r,
+            x - r,
+            y + r,
+            x + r,
+            y - r
+        ),
+    }
+}
+
+/// Nice tick values covering [lo, hi].
+pub fn ticks(lo: f64, hi: f64, n: usize) -> Vec<f64> {
+    if !(hi > lo) {
+        return vec![lo];
+    }
+    let raw = (hi - lo) / n as f64;
+    let mag = 10f64.powf(raw.log10().floor());
+    let step = [1.0, 2.0, 2.5, 5.0, 10.0]
+        .iter()
+        .map(|m| m * mag)
+        .find(|s| *s >= raw)
+        .unwrap_or(raw);
+    let start = (lo / step).ceil() * step;
+    let mut out = Vec::new();
+    let mut t = start;
+    while t <= hi + 1e-9 * step {
+        out.push(t);
+        t += step;
+    }
+    out
+}
+
+fn fmt_tick(v: f64) -> String {
+    if v.abs() >= 1000.0 {
+        format!("{v:.0}")
+    } else if (v - v.round()).abs() < 1e-9 {
+        format!("{v:.0}")
+    } else {
+        format!("{v:.2}").trim_end_matches('0').to_string()
+    }
+}
+
+/// One series of a line chart.
+pub struct Series {
+    /// Legend text.
+    pub name: String,
+    /// Points.
+    pub points: Vec<(f64, f64)>,
+    /// Colour.
+    pub colour: String,
+    /// Marker shape and dash index.
+    pub style: usize,
+}
+
+/// A line chart with markers, axis labels and a legend below.
+pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], integer_x: bool) -> String {
+    let (w, h) = (640.0, 300.0);
+    let (l, r, t, b) = (80.0, 20.0, 30.0, 45.0);
+    let legend_h = 18.0 * series.len() as f64 + 6.0;
+    let pts = series.iter().flat_map(|s| s.points.iter());
+    let (mut x0, mut x1, mut y0, mut y1) = (f64::INFINITY, f64::NEG_INFINITY, f64::INFINITY, f64::NEG_INFINITY);
+    for (x, y) in pts {
+        x0 = x0.min(*x);
+        x1 = x1.max(*x);
+        y0 = y0.min(*y);
+        y1 = y1.max(*y);
+    }
+    if !x0.is_finite() {
+        return String::new();
+    }
+    if x1 <= x0 {
+        x1 = x0 + 1.0;
+    }
+    if y1 <= y0 {
+        y1 = y0 + 1.0;
+    }
+    let pad = 0.05 * (y1 - y0);
+    let (y0, y1) = (y0 - pad, y1 + pad);
+    let sx = |x: f64| l + (x - x0) / (x1 - x0) * (w - l - r);
+    let sy = |y: f64| t + (1.0 - (y - y0) / (y1 - y0)) * (h - t - b);
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {}" role="img" aria-label="{}" class="chart">"#,
+        h + legend_h,
+        esc(title)
+    );
+    let _ = write!(s, r#"<text x="{l}" y="18" class="ct">{}</text>"#, esc(title));
+    let _ = write!(
+        s,
+        r##"<rect x="{l}" y="{t}" width="{}" height="{}" fill="none" stroke="#999"/>"##,
+        w - l - r,
+        h - t - b
+    );
+    for v in ticks(y0, y1, 5) {
+        let y = sy(v);
+        let _ = write!(
+            s,
+            r##"<line x1="{l}" x2="{}" y1="{y:.1}" y2="{y:.1}" stroke="#ddd"/><text x="{}" y="{:.1}" class="tk" text-anchor="end">{}</text>"##,
+            w - r,
+            l - 6.0,
+            y + 4.0,
+            fmt_tick(v)
+        );
+    }
+    let xt: Vec<f64> = if integer_x {
+        (x0.round() as i64..=x1.round() as i64).map(|v| v as f64).collect()
+    } else {
+        ticks(x0, x1, 6)
+    };
+    for v in xt {
+        let x = sx(v);
+        let _ = write!(
+            s,
+            r#"<text x="{x:.1}" y="{}" class="tk" text-anchor="middle">{}</text>"#,
+            h - b + 16.0,
+            fmt_tick(v)
+        );
+    }
+    let _ = write!(
+        s,
+        r#"<text x="{}" y="{}" class="tk" text-anchor="middle">{}</text>"#,
+        (l + w - r) / 2.0,
+        h - 8.0,
+        esc(x_label)
+    );
+    let _ = write!(
+        s,
+        r#"<text x="14" y="{}" class="tk" text-anchor="middle" transform="rotate(-90 14 {})">{}</text>"#,
+        (t + h - b) / 2.0,
+        (t + h - b) / 2.0,
+        esc(y_label)
+    );
+    for se in series {
+        let path: Vec<String> = se
+            .points
+            .iter()
+            .map(|(x, y)| format!("{:.1},{:.1}", sx(*x), sy(*y)))
+            .collect();
+        let _ = write!(
+            s,
+            r#"<polyline points="{}" fill="none" stroke="{}" stroke-width="2" stroke-dasharray="{}"/>"#,
+            path.join(" "),
+            se.colour,
+            dash(se.style)
+        );
+        for (x, y) in &se.points {
+            s.push_str(&marker(se.style, sx(*x), sy(*y), &se.colour));
+        }
+    }
+    for (i, se) in series.iter().enumerate() {
+        let y = h + 12.0 + 18.0 * i as f64;
+        let _ = write!(
+            s,
+            r#"<line x1="{l}" x2="{}" y1="{y}" y2="{y}" stroke="{}" stroke-width="2" stroke-dasharray="{}"/>"#,
+            l + 30.0,
+            se.colour,
+            dash(se.style)
+        );
+        s.push_str(&marker(se.style, l + 15.0, y, &se.colour));
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="{}" class="tk">{}</text>"#,
+            l + 38.0,
+            y + 4.0,
+            esc(&se.name)
+        );
+    }
+    s.push_str("</svg>");
+    s
+}
+
+/// Horizontal 100% stacked bars: one bar per row label, segments (cluster, share).
+pub fn stacked_shares(title: &str, rows: &[(String, Vec<(usize, f64)>)]) -> String {
+    let w = 640.0;
+    let l = 230.0;
+    let bar = 26.0;
+    let h = 40.0 + rows.len() as f64 * (bar + 12.0);
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="chart">"#,
+        esc(title)
+    );
+    let _ = write!(s, r#"<text x="10" y="18" class="ct">{}</text>"#, esc(title));
+    for (i, (label, segs)) in rows.iter().enumerate() {
+        let y = 32.0 + i as f64 * (bar + 12.0);
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="{}" class="tk" text-anchor="end">{}</text>"#,
+            l - 8.0,
+            y + bar / 2.0 + 4.0,
+            esc(&truncate(label, 34))
+        );
+        let mut x = l;
+        for (k, share) in segs {
+            let width = share * (w - l - 10.0);
+            let fill = cluster_colour(*k);
+            let _ = write!(
+                s,
+                r##"<rect x="{x:.1}" y="{y}" width="{width:.1}" height="{bar}" fill="{fill}" stroke="#fff" stroke-width="1"/>"##
+            );
+            if width > 34.0 {
+                let text_fill = if matches!(*k % PALETTE.len(), 2 | 7) {
+                    "#000"
+                } else {
+                    "#fff"
+                };
+                let _ = write!(
+                    s,
+                    r#"<text x="{:.1}" y="{}" class="tk" fill="{text_fill}" text-anchor="middle">{} · {:.0}%</text>"#,
+                    x + width / 2.0,
+                    y + bar / 2.0 + 4.0,
+                    k,
+                    100.0 * share
+                );
+            }
+            x += width;
+        }
+    }
+    s.push_str("</svg>");
+    s
+}
+
+/// A shaded grid: cells shaded by their share of the row, with counts written in.
+pub fn shaded_grid(
+    title: &str,
+    row_title: &str,
+    col_title: &str,
+    rows: &[usize],
+    cols: &[usize],
+    counts: &[Vec<usize>],
+) -> String {
+    let cell = 46.0;
+    let (l, t) = (110.0, 56.0);
+    let w = l + cell * cols.len() as f64 + 20.0;
+    let h = t + cell * rows.len() as f64 + 20.0;
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="grid">"#,
+        esc(title)
+    );
+    let _ = write!(
+        s,
+        r#"<text x="4" y="16" class="tk">{}</text>"#,
+        esc(&truncate(title, 60))
+    );
+    let _ = write!(
+        s,
+        r#"<text x="{l}" y="32" class="tk">columns: {}</text>"#,
+        esc(&truncate(col_title, 40))
+    );
+    for (j, c) in cols.iter().enumerate() {
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{}" class="tk" text-anchor="middle">{c}</text>"#,
+            l + cell * (j as f64 + 0.5),
+            t - 6.0
+        );
+    }
+    let _ = write!(
+        s,
+        r#"<text x="4" y="{}" class="tk">rows: {}</text>"#,
+        t - 6.0,
+        esc(&truncate(row_title, 14))
+    );
+    for (i, r) in rows.iter().enumerate() {
+        let total: usize = counts[i].iter().sum();
+        let y = t + cell * i as f64;
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="{:.1}" class="tk" text-anchor="end">cluster {r}</text>"#,
+            l - 6.0,
+            y + cell / 2.0 + 4.0
+        );
+        for (j, n) in counts[i].iter().enumerate() {
+            let share = if total > 0 { *n as f64 / total as f64 } else { 0.0 };
+            let grey = (255.0 - 200.0 * share).round() as u8;
+            let x = l + cell * j as f64;
+            let ink = if share > 0.55 { "#fff" } else { "#000" };
+            let _ = write!(
+                s,
+                r##"<rect x="{x:.1}" y="{y:.1}" width="{cell}" height="{cell}" fill="rgb({grey},{grey},{grey})" stroke="#888"/>"##
+            );
+            let _ = write!(
+                s,
+                r#"<text x="{:.1}" y="{:.1}" class="tk" fill="{ink}" text-anchor="middle">{n}</text>"#,
+                x + cell / 2.0,
+                y + cell / 2.0 + 4.0
+            );
+        }
+    }
+    s.push_str("</svg>");
+    s
+}
+
+/// Small bar chart of a 10-bin histogram on [0, 1].
+pub fn histogram(title: &str, bins: &[f64]) -> String {
+    let (w, h) = (300.0, 160.0);
+    let (l, b, t) = (36.0, 30.0, 26.0);
+    let top = bins.iter().copied().fold(0.0, f64::max).max(f64::MIN_POSITIVE);
+    let bw = (w - l - 10.0) / bins.len() as f64;
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="small">"#,
+        esc(title)
+    );
+    let _ = write!(
+        s,
+        r#"<text x="4" y="16" class="tk">{}</text>"#,
+        esc(&truncate(title, 44))
+    );
+    for (i, v) in bins.iter().enumerate() {
+        let bh = v / top * (h - t - b);
+        let x = l + i as f64 * bw;
+        let _ = write!(
+            s,
+            r##"<rect x="{x:.1}" y="{:.1}" width="{:.1}" height="{bh:.1}" fill="#0072B2" stroke="#fff"/>"##,
+            h - b - bh,
+            bw - 1.0
+        );
+    }
+    for (i, lab) in ["0", "0.5", "1"].iter().enumerate() {
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{}" class="tk" text-anchor="middle">{lab}</text>"#,
+            l + i as f64 * 5.0 * bw,
+            h - b + 14.0
+        );
+    }
+    let _ = write!(
+        s,
+        r#"<text x="{}" y="{}" class="tk" text-anchor="middle">largest posterior per row</text>"#,
+        (l + w) / 2.0,
+        h - 4.0
+    );
+    s.push_str("</svg>");
+    s
+}
+
+/// Dot rows: for each row label, markers (style, value) on a shared axis.
+pub fn dot_rows(title: &str, rows: &[(String, &'static str, Vec<(usize, f64)>)], lo: f64, hi: f64) -> String {
+    let w = 300.0;
+    let l = 80.0;
+    let row_h = 22.0;
+    let h = 44.0 + rows.len() as f64 * row_h;
+    let (lo, hi) = if hi > lo { (lo, hi) } else { (lo - 1.0, hi + 1.0) };
+    let sx = |v: f64| l + (v - lo) / (hi - lo) * (w - l - 14.0);
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="small">"#,
+        esc(title)
+    );
+    let _ = write!(
+        s,
+        r#"<text x="4" y="16" class="tk">{}</text>"#,
+        esc(&truncate(title, 44))
+    );
+    for (i, (label, colour, marks)) in rows.iter().enumerate() {
+        let y = 30.0 + i as f64 * row_h;
+        let _ = write!(
+            s,
+            r##"<line x1="{l}" x2="{}" y1="{y}" y2="{y}" stroke="#ddd"/>"##,
+            w - 14.0
+        );
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="{}" class="tk" text-anchor="end">{}</text>"#,
+            l - 6.0,
+            y + 4.0,
+            esc(label)
+        );
+        for (style, v) in marks {
+            s.push_str(&marker(*style, sx(*v), y, colour));
+        }
+    }
+    let y = h - 8.0;
+    for v in ticks(lo, hi, 3) {
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{y}" class="tk" text-anchor="middle">{}</text>"#,
+            sx(v),
+            fmt_tick(v)
+        );
+    }
+    s.push_str("</svg>");
+    s
+}
+
+fn truncate(s: &str, n: usize) -> String {
+    if s.chars().count() <= n {
+        s.to_string()
+    } else {
+        s.chars().take(n - 1).chain(std::iter::once('…')).collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn escaping_covers_markup_and_quotes() {
+        assert_eq!(
+            esc(r#"<script>"a" & 'b'</script>"#),
+            "&lt;script&gt;&quot;a&quot; &amp; &#39;b&#39;&lt;/script&gt;"
+        );
+    }
+
+    #[test]
+    fn ticks_are_round() {
+        let t = ticks(0.0, 1.0, 5);
+        assert_eq!(t.len(), 6);
+        assert!((t[0] - 0.0).abs() < 1e-12 && (t[5] - 1.0).abs() < 1e-12);
+    }
+}

@@ -1,0 +1,182 @@
+//! The comparison's tables, built once and rendered to Markdown and HTML.
+
+use crate::compare::{pct, ratio, val, Comparison};
+
+/// A table: caption, header and rows of text cells.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Table {
+    /// Name the sentences refer to (e.g. "cluster sizes table").
+    pub name: String,
+    /// One-line explanation shown above it.
+    pub note: String,
+    /// Column headers.
+    pub header: Vec<String>,
+    /// Rows.
+    pub rows: Vec<Vec<String>>,
+}
+
+fn opt(x: Option<f64>, digits: usize) -> String {
+    x.map_or_else(|| "–".to_string(), |v| format!("{v:.digits$}"))
+}
+
+/// Every table of the comparison, in report order.
+pub fn tables(c: &Comparison) -> Vec<Table> {
+    let mut out = Vec::new();
+    let placements: Vec<String> = c.alignments.iter().map(|a| a.placement.clone()).collect();
+
+    out.push(Table {
+        name: "criteria table".into(),
+        note: "BIC, AIC and ICL: smaller is better. BIC weight: approximate posterior probability of the model among its placement's fits. ✓ marks the fit each placement is compared with.".into(),
+        header: ["placement", "clusters", "covariance", "loglik", "parameters", "BIC", "AIC", "ICL", "BIC weight", "relative entropy", "mean top posterior by cluster", "smallest cluster", "starts at best", "status", "compared"]
+            .iter()
+            .map(|s| s.to_string())
+            .collect(),
+        rows: c
+            .criteria
+            .iter()
+            .map(|r| {
+                vec![
+                    r.placement.clone(),
+                    r.clusters.to_string(),
+                    r.covariance.clone(),
+                    opt(r.loglik, 1),
+                    r.parameters.to_string(),
+                    opt(r.bic, 1),
+                    opt(r.aic, 1),
+                    opt(r.icl, 1),
+                    opt(r.bic_weight, 3),
+                    opt(r.relative_entropy, 3),
+                    r.average_posterior.iter().map(|v| format!("{v:.2}")).collect::<Vec<_>>().join(" / "),
+                    match (r.smallest_share, r.smallest_count) {
+                        (Some(s), Some(n)) => format!("{} ({n} rows)", pct(s)),
+                        _ => "–".into(),
+                    },
+                    format!("{}/{}", r.starts_reaching_best, r.starts),
+                    r.status.replace('_', " "),
+                    if r.chosen { "✓".into() } else { String::new() },
+                ]
+            })
+            .collect(),
+    });
+
+    let mut rows = Vec::new();
+    for a in &c.alignments {
+        let mut order: Vec<usize> = (0..a.aligned.len()).collect();
+        order.sort_by_key(|k| a.aligned[*k]);
+        for k in order {
+            let (al, ov) = (&a.aligned[k], &a.overlap[k]);
+            rows.push(vec![
+                a.placement.clone(),
+                format!("{} ({} clusters, {})", k + 1, a.clusters, a.covariance),
+                format!("cluster {al}"),
+                ov.map_or_else(|| "no counterpart: new".to_string(), pct),
+            ]);
+        }
+    }
+    out.push(Table {
+        name: "alignment table".into(),
+        note: format!("Each placement's clusters matched to those of '{}' by the largest total posterior agreement (Hungarian method); overlap = share of the fitted cluster's weight in its matched reference cluster.", c.reference),
+        header: vec!["placement".into(), "fitted cluster".into(), "aligned as".into(), "overlap".into()],
+        rows,
+    });
+
+    let mut clusters: Vec<usize> = c.profiles.iter().map(|p| p.cluster).collect();
+    clusters.sort_unstable();
+    clusters.dedup();
+    let mut header = vec!["cluster".to_string()];
+    header.extend(placements.iter().cloned());
+    out.push(Table {
+        name: "cluster sizes table".into(),
+        note: "Share of the (weighted) cohort by posterior, and rows whose most likely cluster it is.".into(),
+        header,
+        rows: clusters
+            .iter()
+            .map(|k| {
+                let mut row = vec![format!("cluster {k}")];
+                for pl in &placements {
+                    row.push(
+                        c.profiles
+                            .iter()
+                            .find(|p| p.cluster == *k && &p.placement == pl)
+                            .map_or_else(|| "–".into(), |p| format!("{} ({} rows)", pct(p.share), p.count)),
+                    );
+                }
+                row
+            })
+            .collect(),
+    });
+
+    let mut header = vec!["cluster".to_string(), "placement".to_string(), "share".to_string()];
+    for i in &c.indicators {
+        header.push(format!("{i} at reference"));
+        header.push(format!("{i} averaged"));
+    }
+    out.push(Table {
+        name: "profiles table".into(),
+        note: format!(
+            "Indicator means per aligned cluster: {}; and averaged over the sample, weighted by each row's posterior.",
+            c.reference_values
+        ),
+        header,
+        rows: c
+            .profiles
+            .iter()
+            .map(|p| {
+                let mut row = vec![format!("cluster {}", p.cluster), p.placement.clone(), pct(p.share)];
+                for (a, b) in p.at_reference.iter().zip(&p.population_averaged) {
+                    row.push(val(*a));
+                    row.push(val(*b));
+                }
+                row
+            })
+            .collect(),
+    });
+
+    let with_gating: Vec<&String> = placements
+        .iter()
+        .filter(|p| c.gating_effects.iter().any(|e| &e.placement == *p))
+        .collect();
+    if !with_gating.is_empty() {
+        let mut keys: Vec<(usize, String)> = c.gating_effects.iter().map(|e| (e.cluster, e.term.clone())).collect();
+        keys.sort();
+        keys.dedup();
+        let mut header = vec!["cluster vs cluster 1".to_string(), "term".to_string()];
+        header.extend(with_gating.iter().map(|p| p.to_string()));
+        out.push(Table {
+            name: "gating effects table".into(),
+            note: "Relative risk ratios exp(γ): how one unit of the term multiplies the risk of belonging to the cluster rather than aligned cluster 1. Confidence intervals come with the inference work.".into(),
+            header,
+            rows: keys
+                .iter()
+                .map(|(k, term)| {
+                    let mut row = vec![format!("cluster {k}"), term.clone()];
+                    for pl in &with_gating {
+                        row.push(c.gating_effects.iter().find(|e| e.cluster == *k && &e.term == term && &e.placement == *pl).map_or_else(|| "–".into(), |e| ratio(e.rrr)));
+                    }
+                    row
+                })
+                .collect(),
+        });
+    }
+
+    for t in &c.cross_tables {
+        let mut header = vec![format!("{} \\ {}", t.rows, t.columns)];
+        header.extend(t.column_clusters.iter().map(|k| format!("cluster {k}")));
+        out.push(Table {
+            name: format!("cross-table '{}' × '{}'", t.rows, t.columns),
+            note: format!("Rows by most likely cluster; adjusted Rand index {:.3} (Hubert & Arabie 1985; 1 = the same partition).", t.adjusted_rand_index),
+            header,
+            rows: t
+                .row_clusters
+                .iter()
+                .zip(&t.counts)
+                .map(|(k, cs)| {
+                    let mut row = vec![format!("cluster {k}")];
+                    row.extend(cs.iter().map(|n| n.to_string()));
+                    row
+                })
+                .collect(),
+        });
+    }
+    out
+}

@@ -1,0 +1,281 @@
+//! The placement comparison: agreement measures against outside references, alignment,
+//! the report's safety and its sentences.
+
+use super::common::root;
+use cohortmix::compare::{self, assign};
+use cohortmix::{data, fit, report, simulate, spec};
+use serde_json::Value;
+
+fn fixture() -> Value {
+    serde_json::from_str(&std::fs::read_to_string(root("tests/reference/agreement.json")).unwrap()).unwrap()
+}
+
+/// Source: scikit-learn's adjusted_rand_score on fixed label vectors
+/// (tests/reference/make_agreement.py).
+#[test]
+fn adjusted_rand_index_matches_scikit_learn() {
+    for case in fixture()["adjusted_rand_index"].as_array().unwrap() {
+        let to = |v: &Value| {
+            v.as_array()
+                .unwrap()
+                .iter()
+                .map(|x| x.as_u64().unwrap() as usize)
+                .collect::<Vec<_>>()
+        };
+        let (a, b) = (to(&case["a"]), to(&case["b"]));
+        let want = case["ari"].as_f64().unwrap();
+        let got = assign::adjusted_rand_index(&a, &b);
+        assert!((got - want).abs() <= 1e-12 * want.abs().max(1.0), "{got} vs {want}");
+    }
+}
+
+/// Source: scipy.optimize.linear_sum_assignment(maximize=True) on seeded random matrices.
+#[test]
+fn assignment_matches_scipy() {
+    for case in fixture()["assignment"].as_array().unwrap() {
+        let w: Vec<Vec<f64>> = case["weights"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|r| r.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect())
+            .collect();
+        let got = assign::max_weight_assignment(&w);
+        let total: f64 = got.iter().enumerate().map(|(r, c)| w[r][c.unwrap()]).sum();
+        assert!((total - case["total"].as_f64().unwrap()).abs() < 1e-9);
+        let cols: Vec<usize> = case["columns"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|x| x.as_u64().unwrap() as usize)
+            .collect();
+        assert_eq!(got.iter().map(|c| c.unwrap()).collect::<Vec<_>>(), cols);
+    }
+}
+
+const TRUTH: &str = r#"
+[simulation]
+rows = 900
+seed = 8
+output = "three.csv"
+id = "pid"
+indicators = ["y1", "y2"]
+[[covariate]]
+name = "age"
+distribution = "normal"
+mean = 50
+sd = 10
+[[covariate]]
+name = "group"
+distribution = "categorical"
+levels = ["a", "b"]
+shares = [0.5, 0.5]
+[[cluster]]
+name = "one"
+mean = { y1 = 0, y2 = 0 }
+sd = { y1 = 1, y2 = 1 }
+[[cluster]]
+name = "two"
+gating = { intercept = -2.0, age = 0.04 }
+mean = { y1 = 6, y2 = 0 }
+sd = { y1 = 1, y2 = 1 }
+[[cluster]]
+name = "three"
+gating = { intercept = -0.5 }
+mean = { y1 = 0, y2 = 7 }
+sd = { y1 = 1, y2 = 1 }
+"#;
+
+fn study(placements: &str) -> (tempfile::TempDir, spec::Study) {
+    let dir = tempfile::tempdir().unwrap();
+    let truth = simulate::parse(&dir.path().join("t.toml"), TRUTH).unwrap();
+    std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
+    let text = format!(
+        "[study]\ntitle = \"t\"\ndata = \"three.csv\"\nid = \"pid\"\n[variables]\nage = \"continuous\"\ngroup = \"categorical\"\n[indicators]\ncolumns = [\"y1\", \"y2\"]\n[search]\nstarts = 6\n{placements}"
+    );
+    let s = spec::parse(&dir.path().join("s.toml"), &text).unwrap();
+    (dir, s)
+}
+
+fn run(s: &spec::Study) -> (data::Dataset, Vec<fit::PreparedPlacement>, Vec<fit::FitResult>) {
+    let d = data::load(s).unwrap();
+    let p = fit::prepare(s, &d).unwrap();
+    let f = fit::fit_grid(s, &d, &p, |_, _, _| {});
+    (d, p, f)
+}
+
+/// The aligned tables (not the criteria and alignment tables, which list fitted labels).
+fn aligned_tables_text(c: &compare::Comparison) -> String {
+    report::tables::tables(c)
+        .iter()
+        .filter(|t| t.name != "criteria table" && t.name != "alignment table")
+        .map(|t| {
+            format!(
+                "{}\n{}\n{}\n{}",
+                t.name,
+                t.note,
+                t.header.join("|"),
+                t.rows.iter().map(|r| r.join("|")).collect::<Vec<_>>().join("\n")
+            )
+        })
+        .collect::<Vec<_>>()
+        .join("\n")
+}
+
+/// Relabelling the clusters of a fitted model changes nothing in the aligned tables.
+#[test]
+fn permuting_fitted_labels_leaves_the_aligned_tables_unchanged() {
+    let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [3]\n");
+    let (d, p, mut fits) = run(&s);
+    let before = aligned_tables_text(&compare::compare(&d, &p, &fits, &s.compare));
+    for order in [[2usize, 0, 1], [1, 2, 0], [0, 2, 1]] {
+        let f = fits.iter_mut().find(|f| f.placement == "gated").unwrap();
+        let best = f.best.as_mut().unwrap();
+        best.run.model.permute(&order);
+        let g = 3;
+        let old = best.run.tau.clone();
+        for (new, old) in best.run.tau.chunks_exact_mut(g).zip(old.chunks_exact(g)) {
+            for (k, &o) in order.iter().enumerate() {
+                new[k] = old[o];
+            }
+        }
+        let after = aligned_tables_text(&compare::compare(&d, &p, &fits, &s.compare));
+        assert_eq!(before, after, "tables changed under permutation {order:?}");
+    }
+}
+
+/// A placement with one more cluster than the reference (the truth has three; the
+/// reference is held at two, merging two of them): the extra cluster is shown as new.
+#[test]
+fn an_extra_cluster_is_shown_without_a_counterpart() {
+    let (_dir, s) =
+        study("[[placement]]\nname = \"two\"\nclusters = [2]\n[[placement]]\nname = \"three\"\nclusters = [3]\n");
+    let (d, p, fits) = run(&s);
+    let c = compare::compare(&d, &p, &fits, &s.compare);
+    let three = c.alignments.iter().find(|a| a.placement == "three").unwrap();
+    assert_eq!(three.overlap.iter().filter(|o| o.is_none()).count(), 1, "{three:?}");
+    assert!(three.aligned.contains(&3));
+    let matched: Vec<f64> = three.overlap.iter().flatten().copied().collect();
+    assert!(
+        matched.iter().all(|o| *o > 0.95),
+        "well-separated clusters overlap almost fully: {matched:?}"
+    );
+    assert!(
+        c.sentences
+            .iter()
+            .any(|s| s.text.contains("no counterpart") && s.text.contains("cluster 3")),
+        "{:?}",
+        c.sentences
+    );
+    let alignment = report::tables::tables(&c)
+        .into_iter()
+        .find(|t| t.name == "alignment table")
+        .unwrap();
+    assert!(alignment.rows.iter().any(|r| r[3] == "no counterpart: new"));
+}
+
+/// Every number a sentence quotes is printed in the tables it points to.
+#[test]
+fn sentences_cite_numbers_found_in_the_tables() {
+    let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [2, 3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [2, 3]\n[[placement]]\nname = \"shifted\"\ncomponents = [\"age\"]\nclusters = [2, 3]\n");
+    let (d, p, fits) = run(&s);
+    let c = compare::compare(&d, &p, &fits, &s.compare);
+    assert!(c.sentences.len() >= 4, "{:?}", c.sentences);
+    let tables = report::tables::tables(&c);
+    for sentence in &c.sentences {
+        let table = tables
+            .iter()
+            .find(|t| sentence.source.starts_with(&t.name))
+            .unwrap_or_else(|| panic!("no table for '{}'", sentence.source));
+        let text = format!(
+            "{}\n{}",
+            table.note,
+            table.rows.iter().map(|r| r.join("|")).collect::<Vec<_>>().join("\n")
+        );
+        assert!(!sentence.numbers.is_empty());
+        for n in &sentence.numbers {
+            assert!(
+                sentence.text.contains(n.as_str()),
+                "'{}' does not quote {n}",
+                sentence.text
+            );
+            assert!(
+                text.contains(n.as_str()),
+                "{n} from '{}' is not in the {}",
+                sentence.text,
+                table.name
+            );
+        }
+    }
+}
+
+/// Tags that report.html may contain; anything else (a script above all) fails.
+const ALLOWED_TAGS: &[&str] = &[
+    "doctype", "html", "head", "meta", "title", "style", "body", "h1", "h2", "h3", "p", "b", "div", "ul", "li", "span",
+    "table", "thead", "tbody", "tr", "th", "td", "svg", "text", "rect", "line", "polyline", "circle", "path",
+];
+
+fn tag_names(html: &str) -> Vec<String> {
+    let bytes = html.as_bytes();
+    let mut out = Vec::new();
+    let mut i = 0;
+    while i < bytes.len() {
+        if bytes[i] == b'<' {
+            let mut j = i + 1;
+            if j < bytes.len() && (bytes[j] == b'/' || bytes[j] == b'!') {
+                j += 1;
+            }
+            let start = j;
+            while j < bytes.len() && bytes[j].is_ascii_alphanumeric() {
+                j += 1;
+            }
+            out.push(html[start..j].to_ascii_lowercase());
+            i = j;
+        } else {
+            i += 1;
+        }
+    }
+    out
+}
+
+/// Column names and levels with markup, quotes and ampersands appear as text.
+#[test]
+fn names_from_the_data_are_escaped_in_the_report() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut csv = String::from("id,\"<script>alert(1)</script>\",\"a&b \"\"q\"\"\",y2\n");
+    let mut s = cohortmix::rng::Stream::new(1, "html");
+    for i in 0..300 {
+        let k = i % 2;
+        // The second level, "y"&z, sorts first and so is the reference level.
+        let level = if i % 3 == 0 { "<b>x</b>" } else { "\"\"\"y\"\"&z\"" };
+        csv.push_str(&format!(
+            "{i},{level},{:.3},{:.3}\n",
+            5.0 * k as f64 + s.normal(),
+            s.normal()
+        ));
+    }
+    std::fs::write(dir.path().join("d.csv"), csv).unwrap();
+    let spec_text = "[study]\ntitle = \"<i>T</i> & co\"\ndata = \"d.csv\"\nid = \"id\"\n[variables]\n\"<script>alert(1)</script>\" = \"categorical\"\n[indicators]\ncolumns = [\"a&b \\\"q\\\"\", \"y2\"]\n[search]\nclusters = [2]\nstarts = 4\n[[placement]]\nname = \"<script>p</script>\"\n[[placement]]\nname = \"gate's & <co>\"\ngating = [\"<script>alert(1)</script>\"]\n";
+    std::fs::write(dir.path().join("s.toml"), spec_text).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_cohortmix"))
+        .args(["compare", "s.toml", "--out", "run"])
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let html = std::fs::read_to_string(dir.path().join("run/report.html")).unwrap();
+    for tag in tag_names(&html) {
+        assert!(ALLOWED_TAGS.contains(&tag.as_str()), "unexpected tag <{tag}>");
+    }
+    assert!(html.contains("&lt;script&gt;alert(1)&lt;/script&gt;"));
+    assert!(html.contains("a&amp;b &quot;q&quot;"));
+    assert!(html.contains("&lt;b&gt;x&lt;/b&gt;"));
+    assert!(html.contains("gate&#39;s &amp; &lt;co&gt;"));
+    assert!(
+        !html.contains("http://")
+            || html
+                .matches("http://")
+                .all(|_| html.contains("xmlns=\"http://www.w3.org/2000/svg\"")),
+        "only the SVG namespace may name a URL"
+    );
+    assert!(!html.contains("https://"));
+}
