@@ -65,8 +65,7 @@ pub fn max_weight_assignment(weights: &[Vec<f64>]) -> Vec<Option<usize>> {
         }
     }
     let mut out = vec![None; rows];
-    for j in 1..=n {
-        let r = p[j];
+    for (j, &r) in p.iter().enumerate().skip(1) {
         if r >= 1 && r <= rows && j <= cols {
             out[r - 1] = Some(j - 1);
         }

@@ -639,33 +639,41 @@ fn sentences(
             numbers: vec![format!("{:.1}", c.bic.unwrap_or(f64::NAN))],
         });
     }
-    // Largest change of a cluster's share against the reference.
-    let mut best_share: Option<(f64, &Profile, &Profile)> = None;
+    // Largest change of a cluster's share against the reference, per placement.
+    let mut others: Vec<&str> = Vec::new();
     for p in profiles.iter().filter(|p| p.placement != reference) {
-        if let Some(r) = profiles
-            .iter()
-            .find(|r| r.placement == reference && r.cluster == p.cluster)
-        {
-            let diff = (p.share - r.share).abs();
-            if best_share.is_none_or(|(d, _, _)| diff > d) {
-                best_share = Some((diff, r, p));
-            }
+        if !others.contains(&p.placement.as_str()) {
+            others.push(&p.placement);
         }
     }
-    if let Some((_, r, p)) = best_share {
-        let verb = if p.share > r.share { "grows" } else { "shrinks" };
-        out.push(Sentence {
-            text: format!(
-                "The largest shift in size: cluster {} {verb} from {} of the cohort under '{}' to {} under '{}'.",
-                p.cluster,
-                pct(r.share),
-                reference,
-                pct(p.share),
-                p.placement
-            ),
-            source: format!("cluster sizes table, row 'cluster {}'", p.cluster),
-            numbers: vec![pct(r.share), pct(p.share)],
-        });
+    for other in others {
+        let mut best_share: Option<(f64, &Profile, &Profile)> = None;
+        for p in profiles.iter().filter(|p| p.placement == other) {
+            if let Some(r) = profiles
+                .iter()
+                .find(|r| r.placement == reference && r.cluster == p.cluster)
+            {
+                let diff = (p.share - r.share).abs();
+                if best_share.is_none_or(|(d, _, _)| diff > d) {
+                    best_share = Some((diff, r, p));
+                }
+            }
+        }
+        if let Some((_, r, p)) = best_share {
+            let verb = if p.share > r.share { "grows" } else { "shrinks" };
+            out.push(Sentence {
+                text: format!(
+                    "Against '{}', the largest change in size under '{}': cluster {} {verb} from {} of the cohort to {}.",
+                    reference,
+                    p.placement,
+                    p.cluster,
+                    pct(r.share),
+                    pct(p.share)
+                ),
+                source: format!("cluster sizes table, row 'cluster {}'", p.cluster),
+                numbers: vec![pct(r.share), pct(p.share)],
+            });
+        }
     }
     // Largest change of a profile value (population-averaged), in units of that
     // indicator's spread across the reference clusters' values.

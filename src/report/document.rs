@@ -196,6 +196,7 @@ svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
 svg.small{width:300px;height:auto;display:inline-block;margin:.3em}\
 svg.grid{max-width:420px;height:auto;display:inline-block;margin:.3em}\
 svg text.ct{font-size:14px;font-weight:600}svg text.tk{font-size:11px}\
+p.cap{font-weight:600;font-size:.9em;margin:1em 0 0}.curves svg.chart{max-width:520px;display:inline-block}\
 @media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}}";
 
 /// `report.html`: one self-contained page (inline CSS and SVG, no scripts, nothing fetched).
@@ -265,6 +266,7 @@ pub fn html(results: &Results, c: &Comparison) -> String {
     if let Some(t) = find("gating effects table") {
         s.push_str("<h2>Gating effects</h2>");
         html_table(&mut s, t);
+        s.push_str("<div class=\"curves\">");
         for curve in &c.effect_curves {
             let series: Vec<Series> = curve
                 .clusters
@@ -322,9 +324,9 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         let _ = write!(s, "<tr><th>{}</th><td>{}</td></tr>", esc(&k), esc(&v));
     }
     s.push_str("</tbody></table>");
-    let _ = write!(
+    let _ = writeln!(
         s,
-        "<p class=\"note\">Spec: {}. BIC = −2 loglik + parameters × ln(rows); smaller is better.</p></body></html>\n",
+        "<p class=\"note\">Spec: {}. BIC = −2 loglik + parameters × ln(rows); smaller is better.</p></body></html>",
         esc(&results.study.spec_file)
     );
     s
@@ -388,7 +390,7 @@ fn profile_grid(c: &Comparison) -> String {
         let lo = values.iter().copied().fold(f64::INFINITY, f64::min);
         let hi = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
         let pad = 0.05 * (hi - lo).max(1e-9);
-        let rows: Vec<(String, &'static str, Vec<(usize, f64)>)> = clusters
+        let rows: Vec<svg::DotRow> = clusters
             .iter()
             .map(|k| {
                 let marks = c

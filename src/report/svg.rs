@@ -16,6 +16,9 @@ pub fn cluster_colour(k: usize) -> &'static str {
     PALETTE[(k.max(1) - 1) % PALETTE.len()]
 }
 
+/// Colours for placements (no yellow: too faint on white for lines).
+pub const PLACEMENT_COLOURS: [&str; 5] = ["#D55E00", "#56B4E9", "#000000", "#CC79A7", "#009E73"];
+
 /// Dash pattern of series `i`.
 pub fn dash(i: usize) -> &'static str {
     ["", "6 3", "2 3", "8 3 2 3", "1 2"][i % 5]
@@ -101,9 +104,7 @@ pub fn ticks(lo: f64, hi: f64, n: usize) -> Vec<f64> {
 }
 
 fn fmt_tick(v: f64) -> String {
-    if v.abs() >= 1000.0 {
-        format!("{v:.0}")
-    } else if (v - v.round()).abs() < 1e-9 {
+    if v.abs() >= 1000.0 || (v - v.round()).abs() < 1e-9 {
         format!("{v:.0}")
     } else {
         format!("{v:.2}").trim_end_matches('0').to_string()
@@ -124,8 +125,8 @@ pub struct Series {
 
 /// A line chart with markers, axis labels and a legend below.
 pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], integer_x: bool) -> String {
-    let (w, h) = (640.0, 300.0);
-    let (l, r, t, b) = (80.0, 20.0, 30.0, 45.0);
+    let (w, h) = (640.0, 280.0);
+    let (l, r, t, b) = (80.0, 20.0, 10.0, 45.0);
     let legend_h = 18.0 * series.len() as f64 + 6.0;
     let pts = series.iter().flat_map(|s| s.points.iter());
     let (mut x0, mut x1, mut y0, mut y1) = (f64::INFINITY, f64::NEG_INFINITY, f64::INFINITY, f64::NEG_INFINITY);
@@ -214,7 +215,9 @@ pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], 
             se.colour,
             dash(se.style)
         );
-        for (x, y) in &se.points {
+        // Many points: a marker every fifth one keeps the line readable.
+        let every = if se.points.len() > 12 { 5 } else { 1 };
+        for (x, y) in se.points.iter().step_by(every) {
             s.push_str(&marker(se.style, sx(*x), sy(*y), &se.colour));
         }
     }
@@ -410,8 +413,11 @@ pub fn histogram(title: &str, bins: &[f64]) -> String {
     s
 }
 
+/// One row of a dot chart: label, colour, and (marker style, value) marks.
+pub type DotRow = (String, &'static str, Vec<(usize, f64)>);
+
 /// Dot rows: for each row label, markers (style, value) on a shared axis.
-pub fn dot_rows(title: &str, rows: &[(String, &'static str, Vec<(usize, f64)>)], lo: f64, hi: f64) -> String {
+pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
     let w = 300.0;
     let l = 80.0;
     let row_h = 22.0;

@@ -24,7 +24,8 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
     let mut out = Vec::new();
     let placements: Vec<String> = c.alignments.iter().map(|a| a.placement.clone()).collect();
 
-    out.push(Table {
+    let one_structure = c.criteria.iter().all(|r| r.covariance == c.criteria[0].covariance);
+    let mut criteria = Table {
         name: "criteria table".into(),
         note: "BIC, AIC and ICL: smaller is better. BIC weight: approximate posterior probability of the model among its placement's fits. ✓ marks the fit each placement is compared with.".into(),
         header: ["placement", "clusters", "covariance", "loglik", "parameters", "BIC", "AIC", "ICL", "BIC weight", "relative entropy", "mean top posterior by cluster", "smallest cluster", "starts at best", "status", "compared"]
@@ -57,7 +58,19 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 ]
             })
             .collect(),
-    });
+    };
+    if one_structure && !c.criteria.is_empty() {
+        // Every fit has the same covariance structure: say it once.
+        criteria.note = format!(
+            "{} Covariance structure of every fit: {}.",
+            criteria.note, c.criteria[0].covariance
+        );
+        criteria.header.remove(2);
+        for r in criteria.rows.iter_mut() {
+            r.remove(2);
+        }
+    }
+    out.push(criteria);
 
     let mut rows = Vec::new();
     for a in &c.alignments {
@@ -67,7 +80,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
             let (al, ov) = (&a.aligned[k], &a.overlap[k]);
             rows.push(vec![
                 a.placement.clone(),
-                format!("{} ({} clusters, {})", k + 1, a.clusters, a.covariance),
+                format!("{} of {}", k + 1, a.clusters),
                 format!("cluster {al}"),
                 ov.map_or_else(|| "no counterpart: new".to_string(), pct),
             ]);
