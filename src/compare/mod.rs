@@ -709,17 +709,21 @@ fn sentences(
             numbers: vec![val(r.population_averaged[j]), val(p.population_averaged[j])],
         });
     }
-    // Gating effects: a sign change between placements, else the strongest effect.
-    let mut flip = None;
-    'outer: for a in effects {
+    // Gating effects: a change of direction between placements, counted only when both
+    // effects are at least 5% per unit away from no effect (the clearest one is reported);
+    // else the strongest effect.
+    let strength = |a: &GatingEffect, b: &GatingEffect| a.rrr.ln().abs().min(b.rrr.ln().abs());
+    let mut flip: Option<(&GatingEffect, &GatingEffect)> = None;
+    for a in effects {
         for b in effects {
             if a.placement < b.placement
                 && a.cluster == b.cluster
                 && a.term == b.term
                 && (a.rrr - 1.0) * (b.rrr - 1.0) < 0.0
+                && strength(a, b) >= 1.05f64.ln()
+                && flip.is_none_or(|(x, y)| strength(a, b) > strength(x, y))
             {
                 flip = Some((a, b));
-                break 'outer;
             }
         }
     }
