@@ -130,6 +130,9 @@ pub struct CrossTable {
     pub counts: Vec<Vec<usize>>,
     /// Adjusted Rand index (Hubert & Arabie 1985).
     pub adjusted_rand_index: f64,
+    /// Per row cluster: share of its rows with the same aligned cluster in the column
+    /// placement (None when that placement has no such cluster).
+    pub agreement: Vec<Option<f64>>,
 }
 
 /// Membership probabilities against one continuous gating covariate, with the other
@@ -472,6 +475,16 @@ pub fn compare(
                 counts[r][c] += 1;
             }
             let ari = assign::adjusted_rand_index(&a.1, &b.1);
+            let agreement = rows
+                .iter()
+                .zip(&counts)
+                .map(|(r, cs)| {
+                    let total: usize = cs.iter().sum();
+                    cols.iter()
+                        .position(|c| c == r)
+                        .map(|j| cs[j] as f64 / total.max(1) as f64)
+                })
+                .collect();
             cross_tables.push(CrossTable {
                 rows: a.0.clone(),
                 columns: b.0.clone(),
@@ -479,6 +492,7 @@ pub fn compare(
                 column_clusters: cols,
                 counts,
                 adjusted_rand_index: ari,
+                agreement,
             });
         }
     }

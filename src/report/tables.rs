@@ -175,17 +175,20 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
     for t in &c.cross_tables {
         let mut header = vec![format!("{} \\ {}", t.rows, t.columns)];
         header.extend(t.column_clusters.iter().map(|k| format!("cluster {k}")));
+        header.push("same cluster".to_string());
         out.push(Table {
             name: format!("cross-table '{}' × '{}'", t.rows, t.columns),
-            note: format!("Rows by most likely cluster; adjusted Rand index {:.3} (Hubert & Arabie 1985; 1 = the same partition).", t.adjusted_rand_index),
+            note: format!("Rows by most likely cluster; same cluster = share of the row cluster's rows in the same aligned cluster in the column placement; adjusted Rand index {:.3} (Hubert & Arabie 1985; 1 = the same partition).", t.adjusted_rand_index),
             header,
             rows: t
                 .row_clusters
                 .iter()
                 .zip(&t.counts)
-                .map(|(k, cs)| {
+                .zip(&t.agreement)
+                .map(|((k, cs), agree)| {
                     let mut row = vec![format!("cluster {k}")];
                     row.extend(cs.iter().map(|n| n.to_string()));
+                    row.push(agree.map_or_else(|| "–".to_string(), pct));
                     row
                 })
                 .collect(),

@@ -171,6 +171,18 @@ fn an_extra_cluster_is_shown_without_a_counterpart() {
         .find(|t| t.name == "alignment table")
         .unwrap();
     assert!(alignment.rows.iter().any(|r| r[3] == "no counterpart: new"));
+    // Per-cluster agreement: the unmerged reference cluster keeps (nearly) all its rows;
+    // the merged one loses the rows that went to the new cluster.
+    let t = &c.cross_tables[0];
+    let agree: Vec<f64> = t
+        .agreement
+        .iter()
+        .map(|a| a.expect("both reference clusters have a counterpart"))
+        .collect();
+    assert!(
+        agree.iter().copied().fold(0.0, f64::max) > 0.98 && agree.iter().copied().fold(1.0, f64::min) < 0.8,
+        "{agree:?}"
+    );
 }
 
 /// Every number a sentence quotes is printed in the tables it points to.
