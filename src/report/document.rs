@@ -358,12 +358,12 @@ fn criteria_chart(c: &Comparison) -> String {
         series.push(Series {
             name: a.placement.clone(),
             points: pts,
-            colour: svg::PALETTE[(i + 4) % svg::PALETTE.len()].to_string(),
+            colour: svg::PLACEMENT_COLOURS[i % svg::PLACEMENT_COLOURS.len()].to_string(),
             style: i,
         });
     }
     svg::line_chart(
-        "BIC against the number of clusters (best structure at each count; smaller is better)",
+        "BIC against the number of clusters, per placement (best structure at each count; smaller is better)",
         "clusters",
         "BIC",
         &series,

@@ -150,13 +150,15 @@ pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], 
     let sx = |x: f64| l + (x - x0) / (x1 - x0) * (w - l - r);
     let sy = |y: f64| t + (1.0 - (y - y0) / (y1 - y0)) * (h - t - b);
     let mut s = String::new();
+    // The title is an HTML caption above the chart, so long titles wrap instead of being cut.
+    let _ = write!(s, r#"<p class="cap">{}</p>"#, esc(title));
     let _ = write!(
         s,
         r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {}" role="img" aria-label="{}" class="chart">"#,
         h + legend_h,
         esc(title)
     );
-    let _ = write!(s, r#"<text x="{l}" y="18" class="ct">{}</text>"#, esc(title));
+
     let _ = write!(
         s,
         r##"<rect x="{l}" y="{t}" width="{}" height="{}" fill="none" stroke="#999"/>"##,
