@@ -355,7 +355,7 @@ fn print_table(results: &report::Results) {
         };
         println!(
             "{:<36} {:>3}{structure} {:>14} {:>6} {:>14} {:>9}  {}{}",
-            truncate(&f.placement, 36),
+            report::svg::truncate(&f.placement, 36),
             f.clusters,
             f.loglik.map_or("-".into(), |v| format!("{v:.3}")),
             f.parameters,
@@ -364,14 +364,6 @@ fn print_table(results: &report::Results) {
             f.status,
             if chosen { "  <- lowest BIC" } else { "" }
         );
-    }
-}
-
-fn truncate(s: &str, n: usize) -> String {
-    if s.chars().count() <= n {
-        s.to_string()
-    } else {
-        s.chars().take(n - 1).chain(std::iter::once('…')).collect()
     }
 }
 

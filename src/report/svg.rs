@@ -252,12 +252,7 @@ pub fn stacked_shares(title: &str, rows: &[(String, Vec<(usize, f64)>)]) -> Stri
     let bar = 26.0;
     let h = 40.0 + rows.len() as f64 * (bar + 12.0);
     let mut s = String::new();
-    let _ = write!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="chart">"#,
-        esc(title)
-    );
-    let _ = write!(s, r#"<text x="10" y="18" class="ct">{}</text>"#, esc(title));
+    open_svg(&mut s, (w, h), title, "chart", Some((10.0, 18.0, "ct", usize::MAX)));
     for (i, (label, segs)) in rows.iter().enumerate() {
         let y = 32.0 + i as f64 * (bar + 12.0);
         let _ = write!(
@@ -311,16 +306,7 @@ pub fn shaded_grid(
     let w = l + cell * cols.len() as f64 + 20.0;
     let h = t + cell * rows.len() as f64 + 20.0;
     let mut s = String::new();
-    let _ = write!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="grid">"#,
-        esc(title)
-    );
-    let _ = write!(
-        s,
-        r#"<text x="4" y="16" class="tk">{}</text>"#,
-        esc(&truncate(title, 60))
-    );
+    open_svg(&mut s, (w, h), title, "grid", Some((4.0, 16.0, "tk", 60)));
     let _ = write!(
         s,
         r#"<text x="{l}" y="32" class="tk">columns: {}</text>"#,
@@ -377,16 +363,7 @@ pub fn histogram(title: &str, bins: &[f64]) -> String {
     let top = bins.iter().copied().fold(0.0, f64::max).max(f64::MIN_POSITIVE);
     let bw = (w - l - 10.0) / bins.len() as f64;
     let mut s = String::new();
-    let _ = write!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="small">"#,
-        esc(title)
-    );
-    let _ = write!(
-        s,
-        r#"<text x="4" y="16" class="tk">{}</text>"#,
-        esc(&truncate(title, 44))
-    );
+    open_svg(&mut s, (w, h), title, "small", Some((4.0, 16.0, "tk", 44)));
     for (i, v) in bins.iter().enumerate() {
         let bh = v / top * (h - t - b);
         let x = l + i as f64 * bw;
@@ -427,16 +404,7 @@ pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
     let (lo, hi) = if hi > lo { (lo, hi) } else { (lo - 1.0, hi + 1.0) };
     let sx = |v: f64| l + (v - lo) / (hi - lo) * (w - l - 14.0);
     let mut s = String::new();
-    let _ = write!(
-        s,
-        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="small">"#,
-        esc(title)
-    );
-    let _ = write!(
-        s,
-        r#"<text x="4" y="16" class="tk">{}</text>"#,
-        esc(&truncate(title, 44))
-    );
+    open_svg(&mut s, (w, h), title, "small", Some((4.0, 16.0, "tk", 44)));
     for (i, (label, colour, marks)) in rows.iter().enumerate() {
         let y = 30.0 + i as f64 * row_h;
         let _ = write!(
@@ -468,7 +436,25 @@ pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
     s
 }
 
-fn truncate(s: &str, n: usize) -> String {
+/// Open an `<svg>` of size (w, h) labelled `title`; optionally write the title inside at
+/// (x, y) with a text class, cut to a number of characters.
+fn open_svg(s: &mut String, (w, h): (f64, f64), title: &str, class: &str, inner: Option<(f64, f64, &str, usize)>) {
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" role="img" aria-label="{}" class="{class}">"#,
+        esc(title)
+    );
+    if let Some((x, y, text_class, max)) = inner {
+        let _ = write!(
+            s,
+            r#"<text x="{x}" y="{y}" class="{text_class}">{}</text>"#,
+            esc(&truncate(title, max))
+        );
+    }
+}
+
+/// Cut text to `n` characters, ending with an ellipsis when cut.
+pub fn truncate(s: &str, n: usize) -> String {
     if s.chars().count() <= n {
         s.to_string()
     } else {
