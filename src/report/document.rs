@@ -189,7 +189,7 @@ fn html_table(out: &mut String, t: &Table) {
 const CSS: &str = "body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#111;line-height:1.45}\
 h1{font-size:1.6em}h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #ccc}\
 table{border-collapse:collapse;font-size:.85em;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:3px 6px;text-align:left;vertical-align:top}\
-th{background:#eee}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
+th{background:#ececec}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
 .caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff8f2}\
 .sw{display:inline-block;width:.8em;height:.8em;margin-right:.35em;border:1px solid #000;vertical-align:middle}\
 svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
