@@ -47,3 +47,16 @@ pub fn digits(a: f64, b: f64) -> f64 {
         -((a - b).abs() / b.abs().max(f64::MIN_POSITIVE)).log10()
     }
 }
+
+/// A placement with estimated proportions and no covariate lists, for tests that build
+/// their designs by hand (the design decides whether the gating network has covariates).
+pub fn free_placement() -> cohortmix::spec::Placement {
+    cohortmix::spec::Placement {
+        name: "test".into(),
+        gating: vec![],
+        components: vec![],
+        proportions: cohortmix::spec::Proportions::Free,
+        clusters: vec![],
+        clusters_span: 0..0,
+    }
+}

@@ -9,21 +9,8 @@ use cohortmix::model::family::CovarianceStructure;
 use cohortmix::model::gating::{logit_objective, logit_score_hessian};
 use cohortmix::model::FitData;
 use cohortmix::rng::Stream;
-use cohortmix::spec::{Placement, Proportions, VariableType};
+use cohortmix::spec::VariableType;
 use proptest::prelude::*;
-
-/// A placement with estimated proportions; the design decides whether the gating network
-/// has covariates (a logit) or not (free shares).
-fn placement() -> Placement {
-    Placement {
-        name: "p".into(),
-        gating: vec![],
-        components: vec![],
-        proportions: Proportions::Free,
-        clusters: vec![],
-        clusters_span: 0..0,
-    }
-}
 
 /// A random problem: n rows, d indicators drawn from a loose g-group mixture, with one
 /// gating and one component covariate when asked.
@@ -77,7 +64,7 @@ proptest! {
         let structure = CovarianceStructure::all()[structure];
         let structure = if d == 1 && !structure.fits_one_indicator() { CovarianceStructure::all()[1] } else { structure };
         let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: prior, variance_floor: 0.0 };
-        let model = initial_model(&fd, &placement(), g, options);
+        let model = initial_model(&fd, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");
         let tau = partition(kind, &y, d, &weights, g, &mut rng);

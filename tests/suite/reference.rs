@@ -168,7 +168,6 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
     use cohortmix::fit::{initial_model, ModelOptions};
     use cohortmix::model::family::{Components, Orientation, Shape, Volume};
     use cohortmix::rng::Stream;
-    use cohortmix::spec::{Placement, Proportions};
 
     let reference = fixture("mixture_iris.json");
     let confirmed = fixture("mixture_iris_confirmed.json");
@@ -195,14 +194,7 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
     };
     let floor = 1e-3 * reference["pooled_min_eigenvalue"].as_f64().unwrap();
     let min_rows = reference["exclusion_rule"]["min_rows"].as_f64().unwrap();
-    let placement = Placement {
-        name: "iris".into(),
-        gating: vec![],
-        components: vec![],
-        proportions: Proportions::Free,
-        clusters: vec![],
-        clusters_span: 0..0,
-    };
+    let placement = super::common::free_placement();
     let mut compared = 0;
     for case in reference["cases"].as_array().unwrap() {
         if !case["well_defined"].as_bool().unwrap() {

@@ -7,7 +7,6 @@ use cohortmix::fit::{initial_model, ModelOptions};
 use cohortmix::model::family::{Components, CovarianceStructure, Orientation, Shape, Volume};
 use cohortmix::model::FitData;
 use cohortmix::rng::Stream;
-use cohortmix::spec::{Placement, Proportions};
 use nalgebra::{DMatrix, DVector};
 
 const D: usize = 3;
@@ -74,14 +73,7 @@ fn best_fit(y: &[f64], n: usize, s: CovarianceStructure, starts: usize) -> EmRun
         w: &ones,
         p: 1,
     };
-    let placement = Placement {
-        name: "s".into(),
-        gating: vec![],
-        components: vec![],
-        proportions: Proportions::Free,
-        clusters: vec![],
-        clusters_span: 0..0,
-    };
+    let placement = super::common::free_placement();
     let options = ModelOptions {
         structure: s,
         gating_ridge: 0.0,
@@ -246,14 +238,7 @@ fn the_variance_floor_acts_and_is_counted() {
         w: &ones,
         p: 1,
     };
-    let placement = Placement {
-        name: "f".into(),
-        gating: vec![],
-        components: vec![],
-        proportions: Proportions::Free,
-        clusters: vec![],
-        clusters_span: 0..0,
-    };
+    let placement = super::common::free_placement();
     // The smallest within-cluster eigenvalue of the truth is 1/3 of the unit volume; the
     // smallest indicator variance over both clusters is far larger, so 5% of it bites.
     let min_var = (0..D)
