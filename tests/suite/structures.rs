@@ -1,6 +1,5 @@
 //! The 14 covariance structures on data simulated from each of them.
 
-use cohortmix::data::Design;
 use cohortmix::fit::em::{self, EmRun, EmSettings};
 use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
@@ -61,7 +60,19 @@ fn simulate(s: CovarianceStructure, n: usize, seed: u64) -> (Vec<f64>, Vec<usize
     (y, labels)
 }
 
-fn best_fit(y: &[f64], n: usize, s: CovarianceStructure, starts: usize) -> EmRun {
+/// Options for a plain fit of one structure (no prior, no floor).
+fn plain(s: CovarianceStructure) -> ModelOptions {
+    ModelOptions {
+        structure: s,
+        gating_ridge: 0.0,
+        covariance_prior: false,
+        variance_floor: 0.0,
+    }
+}
+
+/// The best usable run of `starts` starts (no covariates, G clusters).
+fn best_fit(y: &[f64], n: usize, options: ModelOptions, starts: usize) -> EmRun {
+    let s = options.structure;
     let ones = vec![1.0; n];
     let data = FitData {
         n,
@@ -74,13 +85,6 @@ fn best_fit(y: &[f64], n: usize, s: CovarianceStructure, starts: usize) -> EmRun
         p: 1,
     };
     let placement = super::common::free_placement();
-    let options = ModelOptions {
-        structure: s,
-        gating_ridge: 0.0,
-        covariance_prior: false,
-        variance_floor: 0.0,
-    };
-    let _ = Design::intercept(n);
     (0..starts)
         .filter_map(|i| {
             let mut rng = Stream::new(17, &format!("fit|{}|{i}", s.describe()));
@@ -112,7 +116,7 @@ fn each_structure_recovers_its_own_truth() {
     let n = 10_000;
     for s in CovarianceStructure::all() {
         let (y, _) = simulate(s, n, 1);
-        let run = best_fit(&y, n, s, 6);
+        let run = best_fit(&y, n, plain(s), 6);
         let Components::Gaussian(c) = &run.model.components;
         // Match clusters by the first mean (0 versus 7).
         let order: Vec<usize> = if c.coef[0] < c.coef[D] { vec![0, 1] } else { vec![1, 0] };
@@ -143,7 +147,7 @@ fn constrained_fits_never_beat_the_structures_that_contain_them() {
     );
     let fits: Vec<(CovarianceStructure, f64)> = CovarianceStructure::all()
         .into_iter()
-        .map(|s| (s, best_fit(&y, n, s, 6).loglik))
+        .map(|s| (s, best_fit(&y, n, plain(s), 6).loglik))
         .collect();
     let ll = |s: CovarianceStructure| fits.iter().find(|(t, _)| *t == s).unwrap().1;
     let all_equal = ll(CovarianceStructure::new(
@@ -192,7 +196,7 @@ fn bic_chooses_the_true_structure_in_most_seeds() {
             let (y, _) = simulate(truth_s, n, 100 + seed);
             let chosen = CovarianceStructure::all()
                 .into_iter()
-                .map(|s| (s, bic(&best_fit(&y, n, s, 4), n)))
+                .map(|s| (s, bic(&best_fit(&y, n, plain(s), 4), n)))
                 .min_by(|a, b| a.1.total_cmp(&b.1))
                 .unwrap()
                 .0;
@@ -227,18 +231,6 @@ fn the_variance_floor_acts_and_is_counted() {
         n,
         9,
     );
-    let ones = vec![1.0; n];
-    let data = FitData {
-        n,
-        weights: &ones,
-        y: &y,
-        d: D,
-        z: &ones,
-        q: 1,
-        w: &ones,
-        p: 1,
-    };
-    let placement = super::common::free_placement();
     // The smallest within-cluster eigenvalue of the truth is 1/3 of the unit volume; the
     // smallest indicator variance over both clusters is far larger, so 5% of it bites.
     let min_var = (0..D)
@@ -248,22 +240,14 @@ fn the_variance_floor_acts_and_is_counted() {
         })
         .fold(f64::INFINITY, f64::min);
     let floor = 0.05;
-    let options = ModelOptions {
-        structure: s,
-        gating_ridge: 0.0,
-        covariance_prior: false,
-        variance_floor: floor,
-    };
-    let mut rng = Stream::new(3, "floor");
-    let tau = partition(StartKind::SeededCentres, &y, D, &ones, G, &mut rng);
-    let run = em::run(
-        &data,
-        initial_model(&data, &placement, G, options),
-        tau,
-        EmSettings {
-            max_iterations: 500,
-            tolerance: 1e-10,
+    let run = best_fit(
+        &y,
+        n,
+        ModelOptions {
+            variance_floor: floor,
+            ..plain(s)
         },
+        1,
     );
     assert!(run.termination.usable(), "{:?}", run.termination);
     let Components::Gaussian(c) = &run.model.components;
