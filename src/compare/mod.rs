@@ -210,7 +210,8 @@ pub fn ratio(x: f64) -> String {
     format!("{x:.3}")
 }
 
-fn most_likely(row: &[f64]) -> usize {
+/// Index of the largest posterior in a row (the first on ties).
+pub fn most_likely(row: &[f64]) -> usize {
     let mut best = 0;
     for (k, v) in row.iter().enumerate() {
         if *v > row[best] {

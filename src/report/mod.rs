@@ -425,11 +425,7 @@ pub fn memberships_csv(data: &Dataset, fits: &[FitResult], chosen: &[Chosen]) ->
         let g = f.clusters;
         let name = csv_field(&f.placement);
         for (id, row) in data.ids.iter().zip(best.run.tau.chunks_exact(g)) {
-            let most = row
-                .iter()
-                .enumerate()
-                .fold((0, f64::NEG_INFINITY), |b, (k, t)| if *t > b.1 { (k, *t) } else { b })
-                .0;
+            let most = crate::compare::most_likely(row);
             let _ = write!(s, "{name},{g},{},{}", csv_field(id), most + 1);
             for t in row {
                 let _ = write!(s, ",{t:.6}");
