@@ -132,7 +132,7 @@ fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> 
         let fd = fit::fit_data(data, pp);
         let g = cell.clusters;
         {
-            let options = fit::ModelOptions::from_search(&study.search, cell.structure);
+            let options = fit::ModelOptions::for_study(&study, cell.structure);
             let k = fit::initial_model(&fd, &pp.placement, g, options).n_params();
             if data.n() <= k {
                 return Err(Error::input(
@@ -189,7 +189,7 @@ fn check(spec_path: &Path) -> Result<()> {
         let _ = writeln!(out, "    component terms: {}", or_none(&terms(&pp.components)));
         for &g in &pp.placement.clusters {
             for &structure in &study.search.structures {
-                let options = fit::ModelOptions::from_search(&study.search, structure);
+                let options = fit::ModelOptions::for_study(&study, structure);
                 let k = fit::initial_model(&fd, &pp.placement, g, options).n_params();
                 let starts = if g == 1 { 1 } else { study.search.starts };
                 let _ = writeln!(

@@ -13,7 +13,6 @@ pub mod assign;
 
 use crate::data::{Dataset, Design};
 use crate::fit::{FitResult, PreparedPlacement};
-use crate::model::family::Components;
 use crate::model::gating::Gating;
 use serde::Serialize;
 
@@ -94,10 +93,11 @@ pub struct Profile {
     pub share: f64,
     /// Rows whose most likely cluster it is.
     pub count: usize,
-    /// Indicator means at the reference covariate values (sample mean of continuous and
-    /// count covariates, reference level of categorical and binary ones).
+    /// Profile values (see [`Comparison::indicators`]) at the reference covariate values
+    /// (sample mean of continuous and count covariates, reference level of categorical
+    /// and binary ones).
     pub at_reference: Vec<f64>,
-    /// Indicator means averaged over the sample, weighted by the posterior.
+    /// Profile values averaged over the sample, weighted by the posterior.
     pub population_averaged: Vec<f64>,
 }
 
@@ -174,7 +174,9 @@ pub struct Comparison {
     pub fixed_clusters: Option<usize>,
     /// How reference covariate values are set for profiles.
     pub reference_values: String,
-    /// Indicator names.
+    /// Profile columns: a continuous indicator's name (its mean), `item=level` (that
+    /// level's probability; binary items show level 1 only) or `count (rate)` (events per
+    /// unit of exposure, or the mean count without an exposure).
     pub indicators: Vec<String>,
     /// Criteria, one row per fit.
     pub criteria: Vec<Criteria>,
@@ -385,12 +387,9 @@ pub fn compare(
     let mut gating_effects = Vec::new();
     let mut effect_curves = Vec::new();
     let mut certainty = Vec::new();
-    let d = data.d();
     for (p, f, aligned) in &labelled {
         let best = f.best.as_ref().expect("labelled fits have a best start");
         let g = f.clusters;
-        let design = &prepared[*p].components;
-        let Components::Gaussian(comps) = &best.run.model.components;
         let shares = crate::fit::cluster_shares(&best.run.tau, weights, g);
         let mut counts = vec![0usize; g];
         let mut hist = vec![0.0; 10];
@@ -400,23 +399,8 @@ pub fn compare(
             hist[((row[k] * 10.0) as usize).min(9)] += w;
         }
         certainty.push((f.placement.clone(), hist));
-        let q = design.p();
         for k in 0..g {
-            let at_reference: Vec<f64> = (0..d).map(|j| comps.coef[k * q * d + j]).collect();
-            let mut avg = vec![0.0; d];
-            let mut mu = vec![0.0; d];
-            let mut total = 0.0;
-            for ((z, row), w) in design.x.chunks_exact(q).zip(best.run.tau.chunks_exact(g)).zip(weights) {
-                comps.mean(k, z, &mut mu);
-                let v = w * row[k];
-                total += v;
-                for (a, m) in avg.iter_mut().zip(&mu) {
-                    *a += v * m;
-                }
-            }
-            for a in avg.iter_mut() {
-                *a /= total.max(f64::MIN_POSITIVE);
-            }
+            let (at_reference, avg) = cluster_profile(data, &prepared[*p], best, k);
             profiles.push(Profile {
                 cluster: aligned[k],
                 placement: f.placement.clone(),
@@ -511,8 +495,8 @@ pub fn compare(
     Comparison {
         reference,
         fixed_clusters: settings.clusters,
-        reference_values: "indicator means at the reference covariate values: continuous and count covariates at their sample mean, categorical and binary ones at their reference level".into(),
-        indicators: data.indicator_names.clone(),
+        reference_values: "profiles at the reference covariate values: continuous and count covariates at their sample mean, categorical and binary ones at their reference level".into(),
+        indicators: profile_columns(data),
         criteria,
         alignments,
         profiles,
@@ -522,6 +506,89 @@ pub fn compare(
         effect_curves,
         sentences,
     }
+}
+
+/// Item levels shown in profiles: level 1 of a binary item, every level otherwise.
+fn shown_levels(levels: &[String]) -> Vec<usize> {
+    if levels.len() == 2 {
+        vec![1]
+    } else {
+        (0..levels.len()).collect()
+    }
+}
+
+/// The profile columns of a dataset, in indicator-block order: continuous indicators,
+/// item levels, count rates.
+pub fn profile_columns(data: &Dataset) -> Vec<String> {
+    let mut out = data.gaussian_names.clone();
+    if let Some(b) = &data.items {
+        for (name, levels) in b.names.iter().zip(&b.levels) {
+            for l in shown_levels(levels) {
+                out.push(format!("{name}={}", levels[l]));
+            }
+        }
+    }
+    if let Some(b) = &data.counts {
+        out.extend(b.names.iter().map(|n| format!("{n} (rate)")));
+    }
+    out
+}
+
+/// Profile of fitted cluster k: values at the reference covariate values and averaged
+/// over the sample with posterior weights, in [`profile_columns`] order.
+fn cluster_profile(data: &Dataset, pp: &PreparedPlacement, best: &crate::fit::BestFit, k: usize) -> (Vec<f64>, Vec<f64>) {
+    let g = best.run.model.clusters();
+    let comps = &best.run.model.components;
+    let tau = &best.run.tau;
+    let weights = &data.weights;
+    let mut at_ref = Vec::new();
+    let mut avg_fns: Vec<Box<dyn Fn(usize) -> f64 + '_>> = Vec::new();
+    if let Some(gc) = &comps.gaussian {
+        let (d, q) = (gc.d, gc.q);
+        at_ref.extend((0..d).map(|j| gc.coef[k * q * d + j]));
+        for j in 0..d {
+            avg_fns.push(Box::new(move |i| {
+                let z = &pp.gaussian.x[i * q..(i + 1) * q];
+                (0..q).map(|a| z[a] * gc.coef[(k * q + a) * d + j]).sum()
+            }));
+        }
+    }
+    let qz = pp.components.p();
+    if let (Some(ic), Some(b)) = (&comps.items, &data.items) {
+        for (j, levels) in b.levels.iter().enumerate() {
+            let reference = ic.reference_probabilities(j, k);
+            for l in shown_levels(levels) {
+                at_ref.push(reference[l]);
+                avg_fns.push(Box::new(move |i| {
+                    let mut eta = Vec::new();
+                    ic.log_probability(j, k, &pp.components.x[i * qz..(i + 1) * qz], l, &mut eta).exp()
+                }));
+            }
+        }
+    }
+    if let Some(cc) = &comps.counts {
+        for c in 0..cc.names.len() {
+            let q = cc.terms[c].len();
+            at_ref.push(cc.coef[c][k * q].exp());
+            avg_fns.push(Box::new(move |i| cc.eta(c, k, &pp.components.x[i * qz..(i + 1) * qz]).exp()));
+        }
+    }
+    let mut avg = vec![0.0; avg_fns.len()];
+    let mut total = 0.0;
+    for (i, w) in weights.iter().enumerate() {
+        let v = w * tau[i * g + k];
+        if v == 0.0 {
+            continue;
+        }
+        total += v;
+        for (a, f) in avg.iter_mut().zip(&avg_fns) {
+            *a += v * f(i);
+        }
+    }
+    for a in avg.iter_mut() {
+        *a /= total.max(f64::MIN_POSITIVE);
+    }
+    (at_ref, avg)
 }
 
 /// Effect curves for the first continuous gating covariate, by the levels of the first

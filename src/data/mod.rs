@@ -13,7 +13,7 @@ mod design;
 pub use design::{Design, DesignError, Term};
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
-use crate::spec::{read_text, ColumnRef, Study, VariableType};
+use crate::spec::{read_text, ColumnRef, IndicatorKind, Study, VariableType};
 use sha2::{Digest, Sha256};
 use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
@@ -59,12 +59,64 @@ pub struct Dataset {
     pub ids: Vec<String>,
     /// Case weights of the rows kept (1 without a weight column).
     pub weights: Vec<f64>,
-    /// Indicator names.
+    /// Every indicator name, in spec order.
     pub indicator_names: Vec<String>,
-    /// Indicators, row-major: `y[i * d + j]`.
+    /// How each indicator is modelled (same order).
+    pub indicator_kinds: Vec<IndicatorKind>,
+    /// Names of the continuous (gaussian) indicators, in spec order.
+    pub gaussian_names: Vec<String>,
+    /// Continuous indicators, row-major: `y[i * d + j]` with d = `gaussian_names.len()`.
     pub y: Vec<f64>,
+    /// Binary and categorical item indicators, if any.
+    pub items: Option<ItemBlock>,
+    /// Count indicators, if any.
+    pub counts: Option<CountBlock>,
     /// Covariate columns by name.
     pub columns: BTreeMap<String, Column>,
+}
+
+/// Marks a missing item value in [`ItemBlock::codes`].
+pub const MISSING_ITEM: u16 = u16::MAX;
+
+/// Item indicators: level codes per row, missing values kept (missing at random).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ItemBlock {
+    /// Item names, in spec order.
+    pub names: Vec<String>,
+    /// Levels of each item; code l means `levels[j][l]`. Code 0 is the baseline of the
+    /// item logits (for a binary item, 0).
+    pub levels: Vec<Vec<String>>,
+    /// Codes, row-major n×J; [`MISSING_ITEM`] where the value is missing.
+    pub codes: Vec<u16>,
+    /// Missing item values in the rows used.
+    pub missing_values: usize,
+}
+
+impl ItemBlock {
+    /// Number of items.
+    pub fn len(&self) -> usize {
+        self.names.len()
+    }
+
+    /// True when there are no items.
+    pub fn is_empty(&self) -> bool {
+        self.names.is_empty()
+    }
+}
+
+/// Count indicators and the optional exposure.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CountBlock {
+    /// Count names, in spec order.
+    pub names: Vec<String>,
+    /// Counts, row-major n×C.
+    pub y: Vec<f64>,
+    /// log(y!) of every count, row-major n×C.
+    pub ln_factorial: Vec<f64>,
+    /// Exposure column name.
+    pub exposure: Option<String>,
+    /// log(exposure) per row: the offset of every count regression.
+    pub log_exposure: Option<Vec<f64>>,
 }
 
 impl Dataset {
@@ -73,9 +125,49 @@ impl Dataset {
         self.ids.len()
     }
 
-    /// Number of indicators.
+    /// Number of continuous (gaussian) indicators.
     pub fn d(&self) -> usize {
-        self.indicator_names.len()
+        self.gaussian_names.len()
+    }
+
+    /// Every indicator as numbers, for seeding starts by distance (row-major, with its
+    /// column count): continuous indicators as they are, a binary item as 0/1, a
+    /// categorical item as one 0/1 column per level, a count as log(1 + y); a missing item
+    /// value takes the item's observed mean. Seeding standardises each column.
+    pub fn seeding_matrix(&self) -> (Vec<f64>, usize) {
+        let n = self.n();
+        let mut cols: Vec<Vec<f64>> = (0..self.d()).map(|j| (0..n).map(|i| self.y[i * self.d() + j]).collect()).collect();
+        if let Some(b) = &self.items {
+            let nj = b.len();
+            for (j, levels) in b.levels.iter().enumerate() {
+                let shown: Vec<usize> = if levels.len() == 2 { vec![1] } else { (0..levels.len()).collect() };
+                for l in shown {
+                    let raw: Vec<Option<f64>> = (0..n)
+                        .map(|i| {
+                            let c = b.codes[i * nj + j];
+                            (c != MISSING_ITEM).then(|| f64::from(u8::from(usize::from(c) == l)))
+                        })
+                        .collect();
+                    let seen: Vec<f64> = raw.iter().flatten().copied().collect();
+                    let mean = seen.iter().sum::<f64>() / seen.len().max(1) as f64;
+                    cols.push(raw.into_iter().map(|v| v.unwrap_or(mean)).collect());
+                }
+            }
+        }
+        if let Some(b) = &self.counts {
+            let nc = b.names.len();
+            for c in 0..nc {
+                cols.push((0..n).map(|i| b.y[i * nc + c].ln_1p()).collect());
+            }
+        }
+        let m = cols.len();
+        let mut out = vec![0.0; n * m];
+        for (j, col) in cols.iter().enumerate() {
+            for (i, v) in col.iter().enumerate() {
+                out[i * m + j] = *v;
+            }
+        }
+        (out, m)
     }
 
     /// Design matrix for a list of covariates (intercept first).
@@ -141,9 +233,10 @@ fn is_missing(s: &str) -> bool {
 /// Role of a needed column.
 #[derive(Clone, Copy, PartialEq)]
 enum Role {
-    Indicator,
+    Indicator(IndicatorKind),
     Covariate,
     Weight,
+    Exposure,
     Id,
 }
 
@@ -256,12 +349,29 @@ pub fn load(study: &Study) -> Result<Dataset> {
         }
         if nd.role != Role::Id {
             missing_by_column.push((nd.col.name.clone(), missing));
+            if nd.role == Role::Indicator(IndicatorKind::Item) {
+                continue; // a missing item value is skipped in that row's likelihood
+            }
             for (i, c) in cells[k].iter().enumerate() {
                 if c.is_none() {
                     keep[i] = false;
                 }
             }
         }
+    }
+    // A row with no indicator value at all carries no information about the clusters.
+    let item_ks: Vec<usize> = (0..needed.len())
+        .filter(|k| needed[*k].role == Role::Indicator(IndicatorKind::Item))
+        .collect();
+    if item_ks.len() == study.indicators.len() {
+        let mut empty = 0;
+        for (i, kp) in keep.iter_mut().enumerate() {
+            if *kp && item_ks.iter().all(|k| cells[*k][i].is_none()) {
+                *kp = false;
+                empty += 1;
+            }
+        }
+        missing_by_column.push(("(every item missing)".to_string(), empty));
     }
     let rows_used = keep.iter().filter(|k| **k).count();
     if rows_used == 0 {
@@ -273,7 +383,7 @@ pub fn load(study: &Study) -> Result<Dataset> {
 
     let mut ids = Vec::with_capacity(rows_used);
     let mut weights = vec![1.0; rows_used];
-    let d = study.indicators.len();
+    let d = study.indicators_of(IndicatorKind::Gaussian).len();
     let mut y = vec![0.0; rows_used * d];
     let mut columns = BTreeMap::new();
     let mut id_seen: HashMap<String, usize> = HashMap::new();
@@ -295,9 +405,38 @@ pub fn load(study: &Study) -> Result<Dataset> {
         }
         ids.push(id);
     }
-    let mut ind_pos = 0;
+    let mut gaussian_pos = 0;
+    let mut count_pos = 0;
+    let mut item_pos = 0;
+    let n_items = study.indicators_of(IndicatorKind::Item).len();
+    let n_counts = study.indicators_of(IndicatorKind::Count).len();
+    let mut items = (n_items > 0).then(|| ItemBlock {
+        names: Vec::new(),
+        levels: Vec::new(),
+        codes: vec![MISSING_ITEM; rows_used * n_items],
+        missing_values: 0,
+    });
+    let mut counts = (n_counts > 0).then(|| CountBlock {
+        names: Vec::new(),
+        y: vec![0.0; rows_used * n_counts],
+        ln_factorial: Vec::new(),
+        exposure: None,
+        log_exposure: None,
+    });
     for (k, nd) in needed.iter().enumerate() {
         if nd.role == Role::Id {
+            continue;
+        }
+        if nd.role == Role::Indicator(IndicatorKind::Item) {
+            let block = items.as_mut().expect("items were counted");
+            let (levels, codes) = parse_item(&raw, study, nd, &lines, &cells[k], &keep)?;
+            for (i, c) in codes.iter().enumerate() {
+                block.codes[i * n_items + item_pos] = *c;
+            }
+            block.missing_values += codes.iter().filter(|c| **c == MISSING_ITEM).count();
+            block.names.push(nd.col.name.clone());
+            block.levels.push(levels);
+            item_pos += 1;
             continue;
         }
         let kept: Vec<(usize, &str)> = lines
@@ -309,14 +448,46 @@ pub fn load(study: &Study) -> Result<Dataset> {
             .collect();
         let parsed = parse_column(&raw, study, nd, &kept)?;
         match nd.role {
-            Role::Indicator => {
+            Role::Indicator(IndicatorKind::Gaussian) => {
                 let Column::Numeric { values, .. } = &parsed else {
-                    unreachable!("indicators are numeric")
+                    unreachable!("continuous indicators are numeric")
                 };
                 for (i, v) in values.iter().enumerate() {
-                    y[i * d + ind_pos] = *v;
+                    y[i * d + gaussian_pos] = *v;
                 }
-                ind_pos += 1;
+                gaussian_pos += 1;
+            }
+            Role::Indicator(IndicatorKind::Count) => {
+                let Column::Numeric { values, .. } = &parsed else {
+                    unreachable!("counts are numeric")
+                };
+                let block = counts.as_mut().expect("counts were counted");
+                for (i, v) in values.iter().enumerate() {
+                    block.y[i * n_counts + count_pos] = *v;
+                }
+                block.names.push(nd.col.name.clone());
+                count_pos += 1;
+            }
+            Role::Indicator(IndicatorKind::Item) => unreachable!("items are parsed above"),
+            Role::Exposure => {
+                let Column::Numeric { values, .. } = parsed else {
+                    unreachable!("exposure is numeric")
+                };
+                for ((l, _), e) in kept.iter().zip(&values) {
+                    if !(*e > 0.0) {
+                        return Err(Error::input(
+                            Diagnostic::new(format!(
+                                "exposure {e} in column '{}' is not positive",
+                                nd.col.name
+                            ))
+                            .at(raw.field_location(*l, nd.index))
+                            .help("exposure is person-time and must be above 0; leave the cell empty to drop the row"),
+                        ));
+                    }
+                }
+                let block = counts.as_mut().expect("an exposure needs counts");
+                block.exposure = Some(nd.col.name.clone());
+                block.log_exposure = Some(values.iter().map(|e| e.ln()).collect());
             }
             Role::Weight => {
                 let Column::Numeric { values, .. } = parsed else {
@@ -346,6 +517,9 @@ pub fn load(study: &Study) -> Result<Dataset> {
         }
     }
 
+    if let Some(b) = counts.as_mut() {
+        b.ln_factorial = b.y.iter().map(|y| statrs::function::factorial::ln_factorial(*y as u64)).collect();
+    }
     Ok(Dataset {
         path: path.to_path_buf(),
         sha256,
@@ -355,7 +529,15 @@ pub fn load(study: &Study) -> Result<Dataset> {
         ids,
         weights,
         indicator_names: study.indicators.iter().map(|c| c.name.clone()).collect(),
+        indicator_kinds: study.indicator_kinds.clone(),
+        gaussian_names: study
+            .indicators_of(IndicatorKind::Gaussian)
+            .iter()
+            .map(|c| c.name.clone())
+            .collect(),
         y,
+        items,
+        counts,
         columns,
     })
 }
@@ -387,7 +569,7 @@ fn needed_columns(study: &Study, header: &[String]) -> Result<Vec<Needed>> {
         let index = find(c)?;
         let kind = match role {
             Role::Id => VariableType::Categorical { reference: None, levels: None },
-            Role::Weight => VariableType::Continuous,
+            Role::Weight | Role::Exposure => VariableType::Continuous,
             _ => study.variable_type(&c.name).ok_or_else(|| {
                 Error::input(
                     study
@@ -413,8 +595,11 @@ fn needed_columns(study: &Study, header: &[String]) -> Result<Vec<Needed>> {
     if let Some(w) = &study.weights {
         add(w, Role::Weight)?;
     }
-    for c in &study.indicators {
-        add(c, Role::Indicator)?;
+    for (c, k) in study.indicators.iter().zip(&study.indicator_kinds) {
+        add(c, Role::Indicator(*k))?;
+    }
+    if let Some(e) = &study.exposure {
+        add(e, Role::Exposure)?;
     }
     for c in study.all_covariates() {
         add(c, Role::Covariate)?;
@@ -532,6 +717,110 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
             })
         }
     }
+}
+
+/// Parse an item column over the rows kept: its levels and a code per kept row
+/// ([`MISSING_ITEM`] where missing). Binary items have levels "0" and "1"; categorical
+/// ones the levels declared in `[variables]`, else those found, in natural order.
+fn parse_item(
+    raw: &Raw,
+    study: &Study,
+    nd: &Needed,
+    lines: &[usize],
+    cells: &[Option<String>],
+    keep: &[bool],
+) -> Result<(Vec<String>, Vec<u16>)> {
+    let name = &nd.col.name;
+    let present: Vec<(usize, &str)> = lines
+        .iter()
+        .zip(cells)
+        .zip(keep)
+        .filter(|(_, k)| **k)
+        .filter_map(|((l, c), _)| c.as_deref().map(|v| (*l, v)))
+        .collect();
+    let levels: Vec<String> = match &nd.kind {
+        VariableType::Binary => {
+            for (line, v) in &present {
+                let ok = v.parse::<f64>().is_ok_and(|x| x == 0.0 || x == 1.0);
+                if !ok {
+                    return Err(Error::input(
+                        Diagnostic::new(format!("'{v}' in binary item '{name}' is not 0 or 1"))
+                            .at(raw.field_location(*line, nd.index))
+                            .help(format!("code '{name}' as 0/1, or declare it categorical")),
+                    ));
+                }
+            }
+            vec!["0".to_string(), "1".to_string()]
+        }
+        VariableType::Categorical { levels, reference } => {
+            let mut found: Vec<String> = Vec::new();
+            for (_, v) in &present {
+                if !found.iter().any(|f| f == v) {
+                    found.push(v.to_string());
+                }
+            }
+            let mut order = match levels {
+                Some(ls) => {
+                    if let Some((l, v)) = present.iter().find(|(_, v)| !ls.iter().any(|x| x == v)) {
+                        let mut h = format!("the levels declared in [variables] are: {}", ls.join(", "));
+                        if let Some(s) = did_you_mean(v, ls.iter().map(String::as_str)) {
+                            h = format!("did you mean '{s}'? {h}");
+                        }
+                        return Err(Error::input(
+                            Diagnostic::new(format!("'{v}' is not a level of item '{name}'"))
+                                .at(raw.field_location(*l, nd.index))
+                                .help(h),
+                        ));
+                    }
+                    ls.clone()
+                }
+                None => sort_levels(found),
+            };
+            if let Some(r) = reference {
+                // The reference level is the logits' baseline: put it first.
+                if let Some(pos) = order.iter().position(|l| l == r) {
+                    let lv = order.remove(pos);
+                    order.insert(0, lv);
+                }
+            }
+            order
+        }
+        other => unreachable!("an item is binary or categorical, not {}", other.word()),
+    };
+    if levels.len() > usize::from(MISSING_ITEM) {
+        return Err(Error::input(study.error_at(
+            nd.col.span.clone(),
+            format!("item '{name}' has {} levels; at most {} are supported", levels.len(), MISSING_ITEM),
+        )));
+    }
+    let seen: std::collections::BTreeSet<&str> = present.iter().map(|(_, v)| *v).collect();
+    if seen.len() < 2 {
+        return Err(Error::input(
+            study
+                .error_at(
+                    nd.col.span.clone(),
+                    format!(
+                        "item '{name}' takes only one value ('{}') in the rows used, so it cannot tell clusters apart",
+                        seen.iter().next().copied().unwrap_or("")
+                    ),
+                )
+                .help("leave it out of [indicators].columns"),
+        ));
+    }
+    let codes = lines
+        .iter()
+        .zip(cells)
+        .zip(keep)
+        .filter(|(_, k)| **k)
+        .map(|((_, c), _)| match c.as_deref() {
+            None => MISSING_ITEM,
+            Some(v) => match &nd.kind {
+                VariableType::Binary => u16::from(v.parse::<f64>().is_ok_and(|x| x == 1.0)),
+                _ => levels.iter().position(|l| l == v).map_or(MISSING_ITEM, |p| p as u16),
+            },
+        })
+        .collect();
+    Ok((levels, codes))
 }
 
 /// Levels in natural order: numerically when every level is a number, else by text.

@@ -10,7 +10,7 @@ pub mod starts;
 
 use crate::data::{Dataset, Design};
 use crate::error::{Error, Result};
-use crate::model::family::{Components, CovarianceStructure, GaussianComponents};
+use crate::model::family::{Components, CountComponents, CovarianceStructure, GaussianComponents, ItemComponents};
 use crate::model::gating::Gating;
 use crate::model::{FitData, Model};
 use crate::rng::Stream;
@@ -29,8 +29,31 @@ pub struct PreparedPlacement {
     pub placement: Placement,
     /// Gating design (intercept alone when the placement has no gating covariates).
     pub gating: Design,
-    /// Component design.
+    /// The whole component design: every component covariate (items and counts use
+    /// columns of it).
     pub components: Design,
+    /// Design of the gaussian block: the component covariates that act on the continuous
+    /// indicators.
+    pub gaussian: Design,
+    /// Per item, the columns of `components` its logits use (intercept first).
+    pub item_terms: Vec<Vec<usize>>,
+    /// Levels per item.
+    pub item_levels: Vec<usize>,
+    /// Per count, the columns of `components` its regression uses (intercept first).
+    pub count_terms: Vec<Vec<usize>>,
+}
+
+/// Columns of `design` that act on `indicator` under `placement`: the intercept and every
+/// term of a covariate that acts on it.
+fn terms_for(design: &Design, placement: &Placement, indicator: &str) -> Vec<usize> {
+    (0..design.p())
+        .filter(|a| {
+            design.terms[*a]
+                .covariate
+                .as_ref()
+                .is_none_or(|c| placement.acts_on(c, indicator))
+        })
+        .collect()
 }
 
 /// Build the designs of every placement; a constant or collinear covariate set is an
@@ -40,7 +63,7 @@ pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> 
         .placements
         .iter()
         .map(|p| {
-            let design = |cols: &[crate::spec::ColumnRef]| -> Result<Design> {
+            let design = |cols: &[&crate::spec::ColumnRef]| -> Result<Design> {
                 let names: Vec<String> = cols.iter().map(|c| c.name.clone()).collect();
                 data.design(&names).map_err(|e| {
                     let at = cols
@@ -51,10 +74,33 @@ pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> 
                     Error::input(study.error_at(span, format!("in placement '{}': {}", p.name, e.message)))
                 })
             };
+            let components = design(&p.components.iter().collect::<Vec<_>>())?;
+            let gaussian = match data.gaussian_names.first() {
+                Some(first) => design(
+                    &p.components
+                        .iter()
+                        .filter(|c| p.acts_on(&c.name, first))
+                        .collect::<Vec<_>>(),
+                )?,
+                None => Design::intercept(data.n()),
+            };
+            let item_terms = data.items.as_ref().map_or_else(Vec::new, |b| {
+                b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
+            });
+            let count_terms = data.counts.as_ref().map_or_else(Vec::new, |b| {
+                b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
+            });
             Ok(PreparedPlacement {
                 placement: p.clone(),
-                gating: design(&p.gating)?,
-                components: design(&p.components)?,
+                gating: design(&p.gating.iter().collect::<Vec<_>>())?,
+                components,
+                gaussian,
+                item_terms,
+                item_levels: data
+                    .items
+                    .as_ref()
+                    .map_or_else(Vec::new, |b| b.levels.iter().map(Vec::len).collect()),
+                count_terms,
             })
         })
         .collect()
@@ -160,15 +206,34 @@ pub fn cluster_shares(tau: &[f64], weights: &[f64], g: usize) -> Vec<f64> {
 
 /// The arrays of one placement over a dataset.
 pub fn fit_data<'a>(data: &'a Dataset, prepared: &'a PreparedPlacement) -> FitData<'a> {
+    let comp = &prepared.components;
     FitData {
         n: data.n(),
         weights: &data.weights,
         y: &data.y,
         d: data.d(),
-        z: &prepared.components.x,
-        q: prepared.components.p(),
+        z: &prepared.gaussian.x,
+        q: prepared.gaussian.p(),
         w: &prepared.gating.x,
         p: prepared.gating.p(),
+        items: data.items.as_ref().map(|b| crate::model::ItemData {
+            names: &b.names,
+            codes: &b.codes,
+            levels: &prepared.item_levels,
+            z: &comp.x,
+            qz: comp.p(),
+            terms: &prepared.item_terms,
+        }),
+        counts: data.counts.as_ref().map(|b| crate::model::CountData {
+            names: &b.names,
+            y: &b.y,
+            ln_factorial: &b.ln_factorial,
+            c: b.names.len(),
+            z: &comp.x,
+            qz: comp.p(),
+            terms: &prepared.count_terms,
+            log_exposure: b.log_exposure.as_deref(),
+        }),
     }
 }
 
@@ -183,6 +248,8 @@ pub struct ModelOptions {
     pub covariance_prior: bool,
     /// Variance floor relative to the smallest indicator variance (0 = off).
     pub variance_floor: f64,
+    /// Pseudo-count per item and cluster (0 = none).
+    pub smoothing: f64,
 }
 
 impl ModelOptions {
@@ -193,6 +260,15 @@ impl ModelOptions {
             gating_ridge: search.gating_ridge,
             covariance_prior: search.covariance_prior,
             variance_floor: search.variance_floor,
+            smoothing: 0.0,
+        }
+    }
+
+    /// Options of a study's fits for one structure.
+    pub fn for_study(study: &Study, structure: CovarianceStructure) -> ModelOptions {
+        ModelOptions {
+            smoothing: study.smoothing,
+            ..ModelOptions::from_search(&study.search, structure)
         }
     }
 }
@@ -220,12 +296,23 @@ pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, options: Mod
             },
         }
     };
-    let mut gaussian = GaussianComponents::new(fd, g, options.structure);
-    if options.covariance_prior {
-        gaussian = gaussian.with_default_prior(fd);
-    }
-    gaussian.variance_floor = options.variance_floor;
-    let components = Components::Gaussian(gaussian);
+    let gaussian = (fd.d > 0).then(|| {
+        let mut gaussian = GaussianComponents::new(fd, g, options.structure);
+        if options.covariance_prior {
+            gaussian = gaussian.with_default_prior(fd);
+        }
+        gaussian.variance_floor = options.variance_floor;
+        gaussian
+    });
+    let items = fd
+        .items
+        .map(|it| ItemComponents::new(fd, g, it.names.to_vec(), options.smoothing));
+    let counts = fd.counts.map(|ct| CountComponents::new(fd, g, ct.names.to_vec()));
+    let components = Components {
+        gaussian,
+        items,
+        counts,
+    };
     Model { gating, components }
 }
 
@@ -248,10 +335,11 @@ pub fn fit_cell(
         max_iterations: study.search.max_iterations,
         tolerance: study.search.tolerance,
     };
-    let options = ModelOptions::from_search(&study.search, structure);
+    let options = ModelOptions::for_study(study, structure);
     let mut template = initial_model(&fd, &prepared.placement, g, options);
     template.gating.prepare_bound(fd.w, fd.weights);
     let n_starts = if g == 1 { 1 } else { study.search.starts };
+    let (seeding, seeding_d) = data.seeding_matrix();
     let runs: Vec<(StartRecord, Option<EmRun>)> = (0..n_starts)
         .into_par_iter()
         .map(|s| {
@@ -260,7 +348,7 @@ pub fn fit_cell(
                 study.seed,
                 &stream_label(&prepared.placement.name, g, &structure, s + 1),
             );
-            let tau = starts::partition(kind, fd.y, fd.d, fd.weights, g, &mut rng);
+            let tau = starts::partition(kind, &seeding, seeding_d, fd.weights, g, &mut rng);
             let run = em::run(&fd, template.clone(), tau, settings);
             let usable = run.termination.usable();
             let record = StartRecord {

@@ -10,29 +10,72 @@
 
 pub mod family;
 pub mod gating;
+pub mod glm;
 
 use family::{ComponentFamily, Components, Degeneracy};
 use gating::{Gating, GatingStats};
 
 /// The arrays one fit reads. All row-major.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, Default)]
 pub struct FitData<'a> {
     /// Rows.
     pub n: usize,
     /// Case weights (length n).
     pub weights: &'a [f64],
-    /// Indicators, n×d.
+    /// Continuous (gaussian) indicators, n×d.
     pub y: &'a [f64],
-    /// Indicator count.
+    /// Continuous indicator count (0 without a gaussian block).
     pub d: usize,
-    /// Component design, n×q (intercept first).
+    /// Design of the gaussian block, n×q (intercept first).
     pub z: &'a [f64],
-    /// Component design columns.
+    /// Gaussian design columns.
     pub q: usize,
     /// Gating design, n×p (intercept first).
     pub w: &'a [f64],
     /// Gating design columns.
     pub p: usize,
+    /// Item indicators, when the family has them.
+    pub items: Option<ItemData<'a>>,
+    /// Count indicators, when the family has them.
+    pub counts: Option<CountData<'a>>,
+}
+
+/// The arrays of the item block.
+#[derive(Debug, Clone, Copy)]
+pub struct ItemData<'a> {
+    /// Item names (for messages).
+    pub names: &'a [String],
+    /// Level codes, n×J row-major; [`crate::data::MISSING_ITEM`] where missing.
+    pub codes: &'a [u16],
+    /// Levels per item (J entries).
+    pub levels: &'a [usize],
+    /// The placement's component design, n×qz (intercept first).
+    pub z: &'a [f64],
+    /// Its columns.
+    pub qz: usize,
+    /// Per item, the design columns its logits use (column 0, the intercept, first).
+    pub terms: &'a [Vec<usize>],
+}
+
+/// The arrays of the count block.
+#[derive(Debug, Clone, Copy)]
+pub struct CountData<'a> {
+    /// Count names (for messages).
+    pub names: &'a [String],
+    /// Counts, n×C row-major.
+    pub y: &'a [f64],
+    /// log(y!) per entry, n×C.
+    pub ln_factorial: &'a [f64],
+    /// Number of count columns.
+    pub c: usize,
+    /// The placement's component design, n×qz (intercept first).
+    pub z: &'a [f64],
+    /// Its columns.
+    pub qz: usize,
+    /// Per count column, the design columns its regression uses (intercept first).
+    pub terms: &'a [Vec<usize>],
+    /// log exposure per row (the offset), if an exposure is given.
+    pub log_exposure: Option<&'a [f64]>,
 }
 
 /// Parameters of one mixture of experts.

@@ -156,6 +156,10 @@ pub struct FitRecord {
     /// Times the variance floor raised a covariance eigenvalue in the best start (0 when
     /// the floor is off or never acted).
     pub variance_floor_hits: usize,
+    /// With item smoothing on: (cluster, item, level) cells of the best start with no
+    /// posterior weight, whose probability smoothing held off 0 (absent without smoothing).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub item_cells_held_off_zero: Option<usize>,
     /// Every parameter, named, on the original scale.
     pub parameters_named: Vec<Parameter>,
 }
@@ -248,9 +252,12 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
             let (parameters_named, gating_model) = match &f.best {
                 Some(b) => {
                     let mut ps = gating_parameters(&b.run.model.gating, &pp.gating);
+                    let item_levels = data.items.as_ref().map_or(&[][..], |b| &b.levels[..]);
                     ps.extend(b.run.model.components.parameters(Naming {
-                        indicators: &data.indicator_names,
-                        design: &pp.components,
+                        indicators: &data.gaussian_names,
+                        design: &pp.gaussian,
+                        components: &pp.components,
+                        item_levels,
                     }));
                     (ps, gating_word(&b.run.model.gating))
                 }
@@ -281,8 +288,10 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
                     each: f.starts.clone(),
                 },
                 shares: f.shares(&data.weights),
-                variance_floor_hits: f.best.as_ref().map_or(0, |b| match &b.run.model.components {
-                    crate::model::family::Components::Gaussian(c) => c.floor_hits,
+                variance_floor_hits: f.best.as_ref().map_or(0, |b| b.run.model.components.floor_hits()),
+                item_cells_held_off_zero: f.best.as_ref().and_then(|b| {
+                    let items = b.run.model.components.items.as_ref()?;
+                    (items.smoothing > 0.0).then_some(items.empty_cells)
                 }),
                 parameters_named,
             }

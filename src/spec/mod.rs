@@ -95,6 +95,13 @@ pub struct ColumnRef {
 pub enum FamilyKind {
     /// Multivariate normal regression within each cluster.
     Gaussian,
+    /// Binary and categorical items, independent given the cluster (latent class model).
+    Items,
+    /// Poisson log-linear regressions, independent given the cluster.
+    Counts,
+    /// Blocks of the above formed by each indicator's declared type, independent given
+    /// the cluster.
+    Mixed,
 }
 
 impl FamilyKind {
@@ -102,6 +109,34 @@ impl FamilyKind {
     pub fn word(&self) -> &'static str {
         match self {
             FamilyKind::Gaussian => "gaussian",
+            FamilyKind::Items => "items",
+            FamilyKind::Counts => "counts",
+            FamilyKind::Mixed => "mixed",
+        }
+    }
+
+    /// Every family word, for messages.
+    pub const WORDS: [&'static str; 4] = ["gaussian", "items", "counts", "mixed"];
+}
+
+/// How one indicator is modelled inside a cluster, from the family and its declared type.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum IndicatorKind {
+    /// A continuous indicator in the Gaussian block.
+    Gaussian,
+    /// A binary or categorical item.
+    Item,
+    /// A count in the Poisson block.
+    Count,
+}
+
+impl IndicatorKind {
+    /// Plain word.
+    pub fn word(&self) -> &'static str {
+        match self {
+            IndicatorKind::Gaussian => "gaussian",
+            IndicatorKind::Item => "item",
+            IndicatorKind::Count => "count",
         }
     }
 }
@@ -133,6 +168,18 @@ pub struct Placement {
     pub clusters: Vec<usize>,
     /// Where the cluster counts were written (the placement's own key, else [search]).
     pub clusters_span: Range<usize>,
+    /// Component covariates restricted to some indicators (`acts_on`); a component
+    /// covariate not listed acts on every indicator.
+    pub acts_on: BTreeMap<String, Vec<String>>,
+}
+
+impl Placement {
+    /// Whether component covariate `covariate` acts on indicator `indicator`.
+    pub fn acts_on(&self, covariate: &str, indicator: &str) -> bool {
+        self.acts_on
+            .get(covariate)
+            .is_none_or(|list| list.iter().any(|i| i == indicator))
+    }
 }
 
 /// Search settings shared by all placements.
@@ -181,6 +228,12 @@ pub struct Study {
     pub family: FamilyKind,
     /// Indicator columns.
     pub indicators: Vec<ColumnRef>,
+    /// How each indicator is modelled (same order as `indicators`).
+    pub indicator_kinds: Vec<IndicatorKind>,
+    /// Exposure (person-time) column of count indicators.
+    pub exposure: Option<ColumnRef>,
+    /// Pseudo-count spread over each item's levels in every cluster (0 = none).
+    pub smoothing: f64,
     /// Search settings.
     pub search: Search,
     /// Placements, in spec order.
@@ -195,13 +248,27 @@ impl Study {
         Diagnostic::new(message).at(Location::from_span(&self.spec_path, &self.spec_text, span))
     }
 
-    /// The type of a column: declared, or continuous for a gaussian indicator.
+    /// The type of a column: declared, or for an undeclared indicator the family's
+    /// natural type (gaussian: continuous, items: categorical, counts: count).
     pub fn variable_type(&self, name: &str) -> Option<VariableType> {
         if let Some((t, _)) = self.variables.get(name) {
             return Some(t.clone());
         }
         let is_indicator = self.indicators.iter().any(|c| c.name == name);
-        (is_indicator && self.family == FamilyKind::Gaussian).then_some(VariableType::Continuous)
+        if !is_indicator {
+            return None;
+        }
+        default_indicator_type(self.family)
+    }
+
+    /// Names of the indicators of one kind, in spec order.
+    pub fn indicators_of(&self, kind: IndicatorKind) -> Vec<&ColumnRef> {
+        self.indicators
+            .iter()
+            .zip(&self.indicator_kinds)
+            .filter(|(_, k)| **k == kind)
+            .map(|(c, _)| c)
+            .collect()
     }
 
     /// Every covariate used by any placement, in first-use order, without repeats.
@@ -470,21 +537,15 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         None => FamilyKind::Gaussian,
         Some(f) => match f.get_ref().as_str() {
             "gaussian" => FamilyKind::Gaussian,
-            "items" | "counts" | "mixed" => {
-                return Err(Error::input(
-                    ctx.err(
-                        f.span(),
-                        format!("family '{}' is not available in this version", f.get_ref()),
-                    )
-                    .help("available: gaussian"),
-                ))
-            }
+            "items" => FamilyKind::Items,
+            "counts" => FamilyKind::Counts,
+            "mixed" => FamilyKind::Mixed,
             other => {
                 let mut d = ctx.err(f.span(), format!("unknown family '{other}'"));
-                if let Some(s) = did_you_mean(other, ["gaussian", "items", "counts", "mixed"]) {
+                if let Some(s) = did_you_mean(other, FamilyKind::WORDS) {
                     d = d.help(format!("did you mean '{s}'?"));
                 }
-                return Err(Error::input(d.help("families: gaussian")));
+                return Err(Error::input(d.help(format!("families: {}", FamilyKind::WORDS.join(", ")))));
             }
         },
     };
@@ -496,26 +557,46 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         ));
     }
     check_unique(&ctx, &indicators)?;
-    for c in &indicators {
-        if let Some((t, _)) = variables.get(&c.name) {
-            if family == FamilyKind::Gaussian && *t != VariableType::Continuous {
-                return Err(Error::input(
-                    ctx.err(
-                        c.span.clone(),
-                        format!(
-                            "indicator '{}' is declared {}, but the gaussian family needs continuous indicators",
-                            c.name,
-                            t.word()
-                        ),
-                    )
-                    .help(format!(
-                        "declare {} = \"continuous\" in [variables], or drop it from the indicators",
-                        c.name
-                    )),
-                ));
-            }
+    let indicator_kinds = indicators
+        .iter()
+        .map(|c| indicator_kind(&ctx, family, c, variables.get(&c.name).map(|(t, _)| t)))
+        .collect::<Result<Vec<_>>>()?;
+    let has_counts = indicator_kinds.contains(&IndicatorKind::Count);
+    let has_items = indicator_kinds.contains(&IndicatorKind::Item);
+    let exposure = ind.exposure.as_ref().map(|e| column_ref(e, "[indicators].exposure"));
+    if let Some(e) = &exposure {
+        if !has_counts {
+            return Err(Error::input(
+                ctx.err(e.span.clone(), "[indicators].exposure is given, but no indicator is a count")
+                    .help("an exposure (person-time) column belongs to count indicators; remove it"),
+            ));
+        }
+        if indicators.iter().any(|c| c.name == e.name) {
+            return Err(Error::input(ctx.err(
+                e.span.clone(),
+                format!("'{}' is an indicator and cannot also be the exposure", e.name),
+            )));
         }
     }
+    let smoothing = match &ind.smoothing {
+        None => 0.0,
+        Some(v) => {
+            let a = *v.get_ref();
+            if !(a.is_finite() && a >= 0.0) {
+                return Err(Error::input(
+                    ctx.err(v.span(), format!("[indicators].smoothing must be zero or positive, not {a}"))
+                        .help("it is a pseudo-count per item and cluster; 1 is a mild value, 0 turns it off"),
+                ));
+            }
+            if a > 0.0 && !has_items {
+                return Err(Error::input(
+                    ctx.err(v.span(), "[indicators].smoothing is given, but no indicator is an item")
+                        .help("smoothing keeps item probabilities off 0 and 1; remove it"),
+                ));
+            }
+            a
+        }
+    };
 
     // [search]
     let default_span = raw
@@ -536,7 +617,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 variance_floor: 0.0,
             },
         ),
-        Some(s) => search_settings(&ctx, s.get_ref(), ind.columns.get_ref().len())?,
+        Some(s) => search_settings(
+            &ctx,
+            s.get_ref(),
+            indicator_kinds.iter().filter(|k| **k == IndicatorKind::Gaussian).count(),
+        )?,
     };
 
     // [[placement]]
@@ -549,10 +634,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
             proportions: Proportions::Free,
             clusters: default_clusters.clone(),
             clusters_span: default_span.clone(),
+            acts_on: BTreeMap::new(),
         });
     }
     for p in &raw.placement {
-        let placement = placement(&ctx, p, &default_clusters, &default_span, &indicators)?;
+        let placement = placement(&ctx, p, &default_clusters, &default_span, &indicators, &indicator_kinds)?;
         if let Some(first) = placements.iter().find(|q: &&Placement| q.name == placement.name) {
             let _ = first;
             return Err(Error::input(
@@ -568,7 +654,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
 
     let id = study.id.as_ref().map(|s| column_ref(s, "[study].id"));
     let weights = study.weights.as_ref().map(|s| column_ref(s, "[study].weights"));
-    for special in id.iter().chain(weights.iter()) {
+    for special in id.iter().chain(weights.iter()).chain(exposure.iter()) {
         for p in &placements {
             if let Some(c) = p.gating.iter().chain(&p.components).find(|c| c.name == special.name) {
                 return Err(Error::input(
@@ -610,6 +696,9 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         variables,
         family,
         indicators,
+        indicator_kinds,
+        exposure,
+        smoothing,
         search,
         placements,
         compare,
@@ -857,6 +946,7 @@ fn placement(
     default_clusters: &[usize],
     default_span: &Range<usize>,
     indicators: &[ColumnRef],
+    kinds: &[IndicatorKind],
 ) -> Result<Placement> {
     let r = p.get_ref();
     let name = r.name.get_ref().trim().to_string();
@@ -947,6 +1037,7 @@ fn placement(
             .help("remove the gating list, or remove the proportions key (default \"free\")"),
         ));
     }
+    let acts_on = acts_on(ctx, r, &components, indicators, kinds)?;
     Ok(Placement {
         name,
         gating,
@@ -954,7 +1045,138 @@ fn placement(
         proportions,
         clusters,
         clusters_span,
+        acts_on,
     })
+}
+
+/// `acts_on = { covariate = ["indicator", ...] }`: each key a component covariate of the
+/// placement, each value a non-empty list of indicators. Gaussian indicators share one
+/// regression design, so a covariate acts on all of them or on none.
+fn acts_on(
+    ctx: &Ctx,
+    r: &RawPlacement,
+    components: &[ColumnRef],
+    indicators: &[ColumnRef],
+    kinds: &[IndicatorKind],
+) -> Result<BTreeMap<String, Vec<String>>> {
+    let mut out = BTreeMap::new();
+    let Some(table) = &r.acts_on else { return Ok(out) };
+    for (covariate, list) in table.get_ref() {
+        if !components.iter().any(|c| &c.name == covariate) {
+            let names: Vec<&str> = components.iter().map(|c| c.name.as_str()).collect();
+            let mut d = ctx.err(
+                table.span(),
+                format!("acts_on names '{covariate}', which is not one of this placement's component covariates"),
+            );
+            if let Some(s) = did_you_mean(covariate, names.iter().copied()) {
+                d = d.help(format!("did you mean '{s}'?"));
+            }
+            return Err(Error::input(d.help(if names.is_empty() {
+                "add it to components = [...] first".to_string()
+            } else {
+                format!("component covariates here: {}", names.join(", "))
+            })));
+        }
+        let targets = column_list(&Some(list.clone()), "[placement].acts_on");
+        if targets.is_empty() {
+            return Err(Error::input(
+                ctx.err(list.span(), format!("acts_on lists no indicator for '{covariate}'"))
+                    .help("name at least one indicator, or leave the covariate out of components"),
+            ));
+        }
+        check_unique(ctx, &targets)?;
+        for t in &targets {
+            if !indicators.iter().any(|i| i.name == t.name) {
+                let mut d = ctx.err(t.span.clone(), format!("'{}' in acts_on is not an indicator", t.name));
+                if let Some(s) = did_you_mean(&t.name, indicators.iter().map(|i| i.name.as_str())) {
+                    d = d.help(format!("did you mean '{s}'?"));
+                }
+                return Err(Error::input(d));
+            }
+        }
+        let gaussian: Vec<&ColumnRef> = indicators
+            .iter()
+            .zip(kinds)
+            .filter(|(_, k)| **k == IndicatorKind::Gaussian)
+            .map(|(c, _)| c)
+            .collect();
+        let hit = gaussian.iter().filter(|g| targets.iter().any(|t| t.name == g.name)).count();
+        if hit > 0 && hit < gaussian.len() {
+            return Err(Error::input(
+                ctx.err(
+                    list.span(),
+                    format!("'{covariate}' acts on some but not all of the continuous indicators"),
+                )
+                .help(format!(
+                    "continuous indicators share one regression, so list all of them ({}) or none",
+                    gaussian.iter().map(|g| g.name.as_str()).collect::<Vec<_>>().join(", ")
+                )),
+            ));
+        }
+        out.insert(covariate.clone(), targets.into_iter().map(|t| t.name).collect());
+    }
+    Ok(out)
+}
+
+/// The natural type of an undeclared indicator in each family (mixed needs declarations).
+fn default_indicator_type(family: FamilyKind) -> Option<VariableType> {
+    match family {
+        FamilyKind::Gaussian => Some(VariableType::Continuous),
+        FamilyKind::Items => Some(VariableType::Categorical {
+            reference: None,
+            levels: None,
+        }),
+        FamilyKind::Counts => Some(VariableType::Count),
+        FamilyKind::Mixed => None,
+    }
+}
+
+/// How an indicator is modelled, from the family and its declared type.
+fn indicator_kind(ctx: &Ctx, family: FamilyKind, c: &ColumnRef, declared: Option<&VariableType>) -> Result<IndicatorKind> {
+    let t = match (declared, default_indicator_type(family)) {
+        (Some(t), _) => t.clone(),
+        (None, Some(t)) => t,
+        (None, None) => {
+            return Err(Error::input(
+                ctx.err(c.span.clone(), format!("indicator '{}' has no type in [variables]", c.name))
+                    .help(format!(
+                        "the mixed family forms its blocks by type: add {} = \"continuous\", \"binary\", \"categorical\" or \"count\" under [variables]",
+                        c.name
+                    )),
+            ))
+        }
+    };
+    let kind = match &t {
+        VariableType::Continuous => IndicatorKind::Gaussian,
+        VariableType::Binary | VariableType::Categorical { .. } => IndicatorKind::Item,
+        VariableType::Count => IndicatorKind::Count,
+    };
+    let wanted = match family {
+        FamilyKind::Gaussian => Some((IndicatorKind::Gaussian, "continuous")),
+        FamilyKind::Items => Some((IndicatorKind::Item, "binary or categorical")),
+        FamilyKind::Counts => Some((IndicatorKind::Count, "count")),
+        FamilyKind::Mixed => None,
+    };
+    if let Some((k, words)) = wanted {
+        if k != kind {
+            return Err(Error::input(
+                ctx.err(
+                    c.span.clone(),
+                    format!(
+                        "indicator '{}' is declared {}, but the {} family needs {words} indicators",
+                        c.name,
+                        t.word(),
+                        family.word()
+                    ),
+                )
+                .help(format!(
+                    "declare its type to match, use family = \"mixed\", or drop it from the indicators ({})",
+                    c.name
+                )),
+            ));
+        }
+    }
+    Ok(kind)
 }
 
 #[cfg(test)]

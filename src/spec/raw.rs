@@ -123,10 +123,15 @@ impl<'de> Deserialize<'de> for RawVariable {
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawIndicators {
-    /// Component family; `gaussian` by default.
+    /// Component family: `gaussian` (default), `items`, `counts` or `mixed`.
     pub family: Option<SStr>,
     /// The indicator columns.
     pub columns: SList,
+    /// Person-time column for count indicators: its log is an offset (counts and mixed).
+    pub exposure: Option<SStr>,
+    /// Pseudo-count spread over an item's levels in every cluster, keeping item
+    /// probabilities off 0 and 1 (items and mixed); 0 or absent = none.
+    pub smoothing: Option<Spanned<f64>>,
 }
 
 /// `[search]`.
@@ -165,4 +170,7 @@ pub struct RawPlacement {
     pub proportions: Option<Spanned<toml::Value>>,
     /// Cluster counts for this placement instead of `[search].clusters`.
     pub clusters: Option<Spanned<Vec<Spanned<i64>>>>,
+    /// Which indicators a component covariate acts on, e.g. `{ age = ["cough", "wheeze"] }`;
+    /// a covariate not named here acts on every indicator.
+    pub acts_on: Option<Spanned<BTreeMap<String, SList>>>,
 }

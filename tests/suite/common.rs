@@ -58,5 +58,6 @@ pub fn free_placement() -> cohortmix::spec::Placement {
         proportions: cohortmix::spec::Proportions::Free,
         clusters: vec![],
         clusters_span: 0..0,
+        acts_on: Default::default(),
     }
 }

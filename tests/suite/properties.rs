@@ -60,10 +60,10 @@ proptest! {
                                   with_w: bool, with_z: bool, random_start: bool, structure in 0usize..14,
                                   prior: bool) {
         let (y, w, z, weights) = problem(seed, n, d, g, with_w, with_z);
-        let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p() };
+        let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p() , ..Default::default()};
         let structure = CovarianceStructure::all()[structure];
         let structure = if d == 1 && !structure.fits_one_indicator() { CovarianceStructure::all()[1] } else { structure };
-        let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: prior, variance_floor: 0.0 };
+        let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: prior, variance_floor: 0.0, smoothing: 0.0 };
         let model = initial_model(&fd, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");

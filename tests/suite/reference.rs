@@ -114,7 +114,7 @@ fn gaussian_components_match_statsmodels_wls_on_iris() {
         z: &design.x,
         q: design.p(),
         w: &vec![1.0; n],
-        p: 1,
+        p: 1, ..Default::default()
     };
     let mut comps = GaussianComponents::new(&data, g, CovarianceStructure::UNCONSTRAINED);
     comps.m_step(&data, &tau).unwrap();
@@ -122,6 +122,8 @@ fn gaussian_components_match_statsmodels_wls_on_iris() {
     let params = comps.parameters(Naming {
         indicators: &indicators,
         design: &design,
+        components: &design,
+        item_levels: &[],
     });
     let terms = ["intercept", "sepal_length", "sepal_width"];
     let mut worst = 16.0f64;
@@ -166,7 +168,7 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
     use cohortmix::fit::em::{self, EmSettings};
     use cohortmix::fit::starts::{partition, StartKind};
     use cohortmix::fit::{initial_model, ModelOptions};
-    use cohortmix::model::family::{Components, Orientation, Shape, Volume};
+    use cohortmix::model::family::{Orientation, Shape, Volume};
     use cohortmix::rng::Stream;
 
     let reference = fixture("mixture_iris.json");
@@ -190,7 +192,7 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
         z: &ones,
         q: 1,
         w: &ones,
-        p: 1,
+        p: 1, ..Default::default()
     };
     let floor = 1e-3 * reference["pooled_min_eigenvalue"].as_f64().unwrap();
     let min_rows = reference["exclusion_rule"]["min_rows"].as_f64().unwrap();
@@ -213,6 +215,7 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
             gating_ridge: 0.0,
             covariance_prior: false,
             variance_floor: 0.0,
+            smoothing: 0.0,
         };
         let mut best = f64::NEG_INFINITY;
         let mut best_model = None;
@@ -233,7 +236,7 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
             if !run.termination.usable() {
                 continue;
             }
-            let Components::Gaussian(comps) = &run.model.components;
+            let comps = run.model.components.gaussian.as_ref().expect("a gaussian block");
             let admissible = comps
                 .cov
                 .iter()

@@ -3,7 +3,7 @@
 use cohortmix::fit::em::{self, EmRun, EmSettings};
 use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
-use cohortmix::model::family::{Components, CovarianceStructure, Orientation, Shape, Volume};
+use cohortmix::model::family::{CovarianceStructure, Orientation, Shape, Volume};
 use cohortmix::model::FitData;
 use cohortmix::rng::Stream;
 use nalgebra::{DMatrix, DVector};
@@ -67,6 +67,7 @@ fn plain(s: CovarianceStructure) -> ModelOptions {
         gating_ridge: 0.0,
         covariance_prior: false,
         variance_floor: 0.0,
+        smoothing: 0.0,
     }
 }
 
@@ -82,7 +83,7 @@ fn best_fit(y: &[f64], n: usize, options: ModelOptions, starts: usize) -> EmRun 
         z: &ones,
         q: 1,
         w: &ones,
-        p: 1,
+        p: 1, ..Default::default()
     };
     let placement = super::common::free_placement();
     (0..starts)
@@ -117,7 +118,7 @@ fn each_structure_recovers_its_own_truth() {
     for s in CovarianceStructure::all() {
         let (y, _) = simulate(s, n, 1);
         let run = best_fit(&y, n, plain(s), 6);
-        let Components::Gaussian(c) = &run.model.components;
+        let c = run.model.components.gaussian.as_ref().expect("a gaussian block");
         // Match clusters by the first mean (0 versus 7).
         let order: Vec<usize> = if c.coef[0] < c.coef[D] { vec![0, 1] } else { vec![1, 0] };
         let want = truth(s);
@@ -250,7 +251,7 @@ fn the_variance_floor_acts_and_is_counted() {
         1,
     );
     assert!(run.termination.usable(), "{:?}", run.termination);
-    let Components::Gaussian(c) = &run.model.components;
+    let c = run.model.components.gaussian.as_ref().expect("a gaussian block");
     assert!(c.floor_hits > 0, "the floor never acted");
     for cov in &c.cov {
         let smallest = cov.clone().symmetric_eigenvalues().min();

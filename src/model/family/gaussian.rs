@@ -167,7 +167,7 @@ impl GaussianComponents {
 }
 
 impl ComponentFamily for GaussianComponents {
-    fn log_density(&self, data: &FitData, out: &mut [f64]) {
+    fn add_log_density(&self, data: &FitData, out: &mut [f64]) {
         let (d, g, q) = (self.d, self.g, self.q);
         let mut mu = vec![0.0; d];
         let mut u = vec![0.0; d];
@@ -196,7 +196,7 @@ impl ComponentFamily for GaussianComponents {
                     u[r] = s / row[r];
                     quad += u[r] * u[r];
                 }
-                out[i * g + k] = base - 0.5 * quad;
+                out[i * g + k] += base - 0.5 * quad;
             }
         }
     }

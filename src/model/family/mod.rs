@@ -5,11 +5,15 @@
 //! driver owns the loop; a family only answers these questions. [`Components`] is the
 //! closed set of families the program offers.
 
+pub mod counts;
 pub mod covariance;
 mod gaussian;
+pub mod items;
 
+pub use counts::CountComponents;
 pub use covariance::{CovarianceStructure, Orientation, Shape, Volume};
 pub use gaussian::{CovariancePrior, GaussianComponents};
+pub use items::ItemComponents;
 
 use crate::model::FitData;
 
@@ -25,7 +29,8 @@ pub struct Degeneracy {
 /// A named parameter value on the original scale of the data.
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct Parameter {
-    /// `gating`, `mean` or `covariance`.
+    /// `gating`, `mean`, `covariance`, `item_probability`, `item_logit`, `count_rate` or
+    /// `count_log_rate`.
     pub block: &'static str,
     /// 1-based cluster.
     pub cluster: usize,
@@ -37,19 +42,23 @@ pub struct Parameter {
     pub value: f64,
 }
 
-/// What the family needs to say for output: names of indicators and terms.
+/// What the families need to say for output: names of indicators, levels and terms.
 #[derive(Debug, Clone, Copy)]
 pub struct Naming<'a> {
-    /// Indicator names.
+    /// Continuous (gaussian) indicator names.
     pub indicators: &'a [String],
-    /// Component design.
+    /// Design of the gaussian block.
     pub design: &'a crate::data::Design,
+    /// The placement's whole component design (items and counts pick columns of it).
+    pub components: &'a crate::data::Design,
+    /// Level names of each item.
+    pub item_levels: &'a [Vec<String>],
 }
 
 /// The operations the EM driver needs from a component family.
 pub trait ComponentFamily {
-    /// Fill `out` (n×G, row-major) with log f_g(y_i | z_i).
-    fn log_density(&self, data: &FitData, out: &mut [f64]);
+    /// Add log f_g(y_i | z_i) of this family's indicators to `out` (n×G, row-major).
+    fn add_log_density(&self, data: &FitData, out: &mut [f64]);
     /// Maximise the expected complete-data log-likelihood given responsibilities (n×G).
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy>;
     /// Number of free parameters.
@@ -65,42 +74,84 @@ pub trait ComponentFamily {
     fn parameters(&self, naming: Naming) -> Vec<Parameter>;
 }
 
-/// The families offered.
-#[derive(Debug, Clone, PartialEq)]
-pub enum Components {
-    /// Multivariate normal regressions.
-    Gaussian(GaussianComponents),
+/// The component model: blocks of indicators, independent given the cluster. The
+/// gaussian, items and counts families have one block; the mixed family has several.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Components {
+    /// Continuous indicators: multivariate normal regressions.
+    pub gaussian: Option<GaussianComponents>,
+    /// Binary and categorical items.
+    pub items: Option<ItemComponents>,
+    /// Counts: Poisson regressions.
+    pub counts: Option<CountComponents>,
+}
+
+impl Components {
+    /// Fill `out` (n×G) with the log-density of every block, summed.
+    pub fn log_density(&self, data: &FitData, out: &mut [f64]) {
+        out.fill(0.0);
+        self.add_log_density(data, out);
+    }
+
+    /// The blocks present, as trait objects.
+    fn blocks(&self) -> Vec<&dyn ComponentFamily> {
+        let mut v: Vec<&dyn ComponentFamily> = Vec::new();
+        if let Some(b) = &self.gaussian {
+            v.push(b);
+        }
+        if let Some(b) = &self.items {
+            v.push(b);
+        }
+        if let Some(b) = &self.counts {
+            v.push(b);
+        }
+        v
+    }
+
+    fn blocks_mut(&mut self) -> Vec<&mut dyn ComponentFamily> {
+        let mut v: Vec<&mut dyn ComponentFamily> = Vec::new();
+        if let Some(b) = &mut self.gaussian {
+            v.push(b);
+        }
+        if let Some(b) = &mut self.items {
+            v.push(b);
+        }
+        if let Some(b) = &mut self.counts {
+            v.push(b);
+        }
+        v
+    }
+
+    /// Times the variance floor acted (0 without a gaussian block).
+    pub fn floor_hits(&self) -> usize {
+        self.gaussian.as_ref().map_or(0, |c| c.floor_hits)
+    }
 }
 
 impl ComponentFamily for Components {
-    fn log_density(&self, data: &FitData, out: &mut [f64]) {
-        match self {
-            Components::Gaussian(c) => c.log_density(data, out),
+    fn add_log_density(&self, data: &FitData, out: &mut [f64]) {
+        for b in self.blocks() {
+            b.add_log_density(data, out);
         }
     }
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
-        match self {
-            Components::Gaussian(c) => c.m_step(data, tau),
+        for b in self.blocks_mut() {
+            b.m_step(data, tau)?;
         }
+        Ok(())
     }
     fn n_params(&self) -> usize {
-        match self {
-            Components::Gaussian(c) => c.n_params(),
-        }
+        self.blocks().iter().map(|b| b.n_params()).sum()
     }
     fn permute(&mut self, order: &[usize]) {
-        match self {
-            Components::Gaussian(c) => c.permute(order),
+        for b in self.blocks_mut() {
+            b.permute(order);
         }
     }
     fn log_prior(&self) -> f64 {
-        match self {
-            Components::Gaussian(c) => c.log_prior(),
-        }
+        self.blocks().iter().map(|b| b.log_prior()).sum()
     }
     fn parameters(&self, naming: Naming) -> Vec<Parameter> {
-        match self {
-            Components::Gaussian(c) => c.parameters(naming),
-        }
+        self.blocks().iter().flat_map(|b| b.parameters(naming)).collect()
     }
 }
