@@ -63,6 +63,30 @@ impl Stream {
         r * theta.cos()
     }
 
+    /// A Poisson(mean) draw by inversion (sequential search from 0). Means above 500 are
+    /// drawn as sums of Poisson(500) pieces (Poisson variables add), so exp(−mean) never
+    /// underflows.
+    pub fn poisson(&mut self, mean: f64) -> u64 {
+        const PIECE: f64 = 500.0;
+        let mut rest = mean.max(0.0);
+        let mut total = 0;
+        while rest > 0.0 {
+            let m = rest.min(PIECE);
+            rest -= m;
+            let u = self.uniform();
+            let mut k = 0u64;
+            let mut p = (-m).exp();
+            let mut cdf = p;
+            while u >= cdf && p > 0.0 {
+                k += 1;
+                p *= m / k as f64;
+                cdf += p;
+            }
+            total += k;
+        }
+        total
+    }
+
     /// An index drawn with probabilities proportional to `weights` (not all zero).
     pub fn weighted_index(&mut self, weights: &[f64]) -> usize {
         let total: f64 = weights.iter().sum();
@@ -98,6 +122,20 @@ mod tests {
         let mut other = Stream::new(7, "y");
         assert_eq!(a, b);
         assert_ne!(a[0], other.uniform());
+    }
+
+    #[test]
+    fn poisson_draws_have_the_right_mean_and_variance() {
+        for mean in [0.3, 4.0, 1234.5] {
+            let mut s = Stream::new(2, "poisson");
+            let n = 50_000;
+            let draws: Vec<f64> = (0..n).map(|_| s.poisson(mean) as f64).collect();
+            let m = draws.iter().sum::<f64>() / n as f64;
+            let v = draws.iter().map(|x| (x - m).powi(2)).sum::<f64>() / n as f64;
+            // Standard error of the mean is sqrt(mean/n); allow 5 of them.
+            assert!((m - mean).abs() < 5.0 * (mean / n as f64).sqrt(), "mean {m} vs {mean}");
+            assert!((v / mean - 1.0).abs() < 0.05, "variance {v} vs {mean}");
+        }
     }
 
     #[test]

@@ -61,7 +61,16 @@ struct RawSimulation {
     seed: Option<Spanned<i64>>,
     output: Spanned<String>,
     id: Option<String>,
-    indicators: Spanned<Vec<String>>,
+    #[serde(default)]
+    indicators: Option<Spanned<Vec<String>>>,
+    #[serde(default)]
+    items: Vec<String>,
+    #[serde(default)]
+    item_levels: BTreeMap<String, Vec<String>>,
+    #[serde(default)]
+    counts: Vec<String>,
+    exposure: Option<Spanned<String>>,
+    missing_items: Option<Spanned<f64>>,
     decimals: Option<Spanned<i64>>,
     truth_column: Option<String>,
 }
@@ -87,10 +96,25 @@ struct RawCovariate {
 struct RawCluster {
     name: String,
     gating: Option<Spanned<BTreeMap<String, f64>>>,
+    #[serde(default = "empty")]
     mean: Spanned<BTreeMap<String, f64>>,
     effects: Option<Spanned<BTreeMap<String, BTreeMap<String, f64>>>>,
+    #[serde(default = "empty")]
     sd: Spanned<BTreeMap<String, f64>>,
     correlation: Option<Spanned<toml::Value>>,
+    #[serde(default = "empty")]
+    item_probability: Spanned<BTreeMap<String, toml::Value>>,
+    #[serde(default = "empty")]
+    item_effects: Spanned<BTreeMap<String, BTreeMap<String, toml::Value>>>,
+    #[serde(default = "empty")]
+    rate: Spanned<BTreeMap<String, f64>>,
+    #[serde(default = "empty")]
+    count_effects: Spanned<BTreeMap<String, BTreeMap<String, f64>>>,
+}
+
+/// An absent table: empty, with no span.
+fn empty<T: Default>() -> Spanned<T> {
+    Spanned::new(0..0, T::default())
 }
 
 /// How a covariate is drawn.
@@ -154,6 +178,14 @@ pub struct SimCluster {
     pub effects: Vec<BTreeMap<String, f64>>,
     /// Covariance.
     pub covariance: DMatrix<f64>,
+    /// Per item, the baseline log odds of levels 1.. against level 0 (covariates at 0).
+    pub item_logits: Vec<Vec<f64>>,
+    /// Per item and level 1.., covariate effects on those log odds, by term.
+    pub item_effects: Vec<Vec<BTreeMap<String, f64>>>,
+    /// Per count, the log rate per unit of exposure (covariates at 0).
+    pub log_rate: Vec<f64>,
+    /// Per count, effects on the log rate, by term.
+    pub count_effects: Vec<BTreeMap<String, f64>>,
 }
 
 /// A validated truth spec.
@@ -171,6 +203,14 @@ pub struct Truth {
     pub id: String,
     /// Indicator names.
     pub indicators: Vec<String>,
+    /// Items: name and levels (a binary item has levels "0" and "1").
+    pub items: Vec<(String, Vec<String>)>,
+    /// Count names.
+    pub counts: Vec<String>,
+    /// The covariate that is the counts' exposure (person-time), if any.
+    pub exposure: Option<String>,
+    /// Share of item values written as missing, completely at random.
+    pub missing_items: f64,
     /// Decimals for indicators.
     pub decimals: usize,
     /// Column with the true cluster, if wanted.
@@ -222,13 +262,45 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         Some(d) => *d.get_ref() as usize,
         None => 2,
     };
-    let indicators = sim.indicators.get_ref().clone();
-    if indicators.is_empty() {
+    let indicators = sim.indicators.as_ref().map_or_else(Vec::new, |v| v.get_ref().clone());
+    if indicators.is_empty() && sim.items.is_empty() && sim.counts.is_empty() {
         return Err(Error::input(err(
-            sim.indicators.span(),
-            "[simulation].indicators is empty".into(),
+            raw.simulation.span(),
+            "the truth has no indicators".into(),
+        )
+        .help("list continuous indicators (indicators = [...]), items (items = [...]) or counts (counts = [...])")));
+    }
+    let items: Vec<(String, Vec<String>)> = sim
+        .items
+        .iter()
+        .map(|name| {
+            let levels = sim
+                .item_levels
+                .get(name)
+                .cloned()
+                .unwrap_or_else(|| vec!["0".to_string(), "1".to_string()]);
+            (name.clone(), levels)
+        })
+        .collect();
+    if let Some(name) = sim.item_levels.keys().find(|k| !sim.items.contains(k)) {
+        return Err(Error::input(err(
+            raw.simulation.span(),
+            format!("item_levels names '{name}', which is not in items"),
         )));
     }
+    if let Some((name, _)) = items.iter().find(|(_, l)| l.len() < 2) {
+        return Err(Error::input(err(
+            raw.simulation.span(),
+            format!("item '{name}' needs at least two levels"),
+        )));
+    }
+    let missing_items = match &sim.missing_items {
+        Some(m) if !(0.0..1.0).contains(m.get_ref()) => {
+            return Err(Error::input(err(m.span(), "missing_items must be a share from 0 up to 1".into())))
+        }
+        Some(m) => *m.get_ref(),
+        None => 0.0,
+    };
 
     let mut covariates = Vec::new();
     for c in &raw.covariate {
@@ -315,6 +387,25 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         });
     }
 
+    let exposure = match &sim.exposure {
+        None => None,
+        Some(e) => {
+            let c = covariates.iter().find(|c| c.name == *e.get_ref()).ok_or_else(|| {
+                Error::input(err(e.span(), format!("exposure '{}' is not a [[covariate]]", e.get_ref())))
+            })?;
+            let positive = match &c.draw {
+                Draw::Normal { min, .. } | Draw::Uniform { min, .. } => *min > 0.0,
+                _ => false,
+            };
+            if !positive || sim.counts.is_empty() {
+                return Err(Error::input(
+                    err(e.span(), "the exposure must be a normal or uniform covariate with min > 0, and counts must be listed".into())
+                        .help("exposure is person-time: give it min = 0.5 (say)"),
+                ));
+            }
+            Some(e.get_ref().clone())
+        }
+    };
     let terms = term_names(&covariates);
     let check_terms = |map: &BTreeMap<String, f64>, span: Range<usize>, allow_intercept: bool| -> Result<()> {
         for k in map.keys() {
@@ -357,13 +448,34 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
                 .iter()
                 .map(|i| {
                     m.get_ref().get(i).copied().ok_or_else(|| {
-                        Error::input(err(m.span(), format!("cluster '{}' gives no {key} for '{i}'", r.name)))
+                        let at = if m.span().is_empty() { c.span() } else { m.span() };
+                        Error::input(err(at, format!("cluster '{}' gives no {key} for '{i}'", r.name)))
                     })
                 })
                 .collect()
         };
         let mean = per_indicator(&r.mean, "mean")?;
         let sd = per_indicator(&r.sd, "sd")?;
+        let (item_logits, item_effects) = cluster_items(r, &items, &check_terms, &err)?;
+        let mut log_rate = Vec::new();
+        let mut count_effects = Vec::new();
+        for name in &sim.counts {
+            let rate = r.rate.get_ref().get(name).copied().ok_or_else(|| {
+                Error::input(err(c.span(), format!("cluster '{}' gives no rate for count '{name}'", r.name)))
+            })?;
+            if !(rate > 0.0) {
+                return Err(Error::input(err(r.rate.span(), "every rate must be positive".into())));
+            }
+            log_rate.push(rate.ln());
+            let e = r.count_effects.get_ref().get(name).cloned().unwrap_or_default();
+            check_terms(&e, r.count_effects.span(), false)?;
+            count_effects.push(e);
+        }
+        for key in r.rate.get_ref().keys().chain(r.count_effects.get_ref().keys()) {
+            if !sim.counts.contains(key) {
+                return Err(Error::input(err(c.span(), format!("'{key}' is not a count of the truth"))));
+            }
+        }
         if sd.iter().any(|s| !(*s > 0.0)) {
             return Err(Error::input(err(r.sd.span(), "every sd must be positive".into())));
         }
@@ -383,7 +495,7 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         let corr = correlation(r.correlation.as_ref(), d)
             .map_err(|m| Error::input(err(r.correlation.as_ref().map_or(c.span(), Spanned::span), m)))?;
         let covariance = DMatrix::from_fn(d, d, |a, b| corr[(a, b)] * sd[a] * sd[b]);
-        if covariance.clone().cholesky().is_none() {
+        if d > 0 && covariance.clone().cholesky().is_none() {
             return Err(Error::input(err(
                 c.span(),
                 format!("the covariance of cluster '{}' is not positive definite", r.name),
@@ -395,6 +507,10 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
             mean,
             effects,
             covariance,
+            item_logits,
+            item_effects,
+            log_rate,
+            count_effects,
         });
     }
     let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
@@ -405,11 +521,86 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         output: crate::spec::resolve(&base, sim.output.get_ref()),
         id: sim.id.clone().unwrap_or_else(|| "id".into()),
         indicators,
+        items,
+        counts: sim.counts.clone(),
+        exposure,
+        missing_items,
         decimals,
         truth_column: sim.truth_column.clone(),
         covariates,
         clusters,
     })
+}
+
+type TermCheck<'a> = dyn Fn(&BTreeMap<String, f64>, Range<usize>, bool) -> Result<()> + 'a;
+
+/// A cluster's item probabilities and effects: per item the log odds of levels 1..
+/// against level 0, and per item and level the effects by term.
+#[allow(clippy::type_complexity)]
+fn cluster_items(
+    r: &RawCluster,
+    items: &[(String, Vec<String>)],
+    check_terms: &TermCheck,
+    err: &dyn Fn(Range<usize>, String) -> Diagnostic,
+) -> Result<(Vec<Vec<f64>>, Vec<Vec<BTreeMap<String, f64>>>)> {
+    let number = |v: &toml::Value| v.as_float().or_else(|| v.as_integer().map(|i| i as f64));
+    let span = r.item_probability.span();
+    let mut logits = Vec::new();
+    let mut effects = Vec::new();
+    for (name, levels) in items {
+        let l = levels.len();
+        let value = r.item_probability.get_ref().get(name).ok_or_else(|| {
+            Error::input(err(span.clone(), format!("cluster '{}' gives no item_probability for '{name}'", r.name)))
+        })?;
+        let probs: Vec<f64> = match (value, l) {
+            (v, 2) if number(v).is_some() => {
+                let p = number(v).unwrap_or(0.5);
+                vec![1.0 - p, p]
+            }
+            (toml::Value::Array(a), _) if a.len() == l => a.iter().map(|x| number(x).unwrap_or(-1.0)).collect(),
+            _ => {
+                return Err(Error::input(err(
+                    span.clone(),
+                    format!("item_probability of '{name}' must be P(1) for a binary item, or {l} level probabilities"),
+                )))
+            }
+        };
+        if probs.iter().any(|p| !(*p > 0.0 && *p < 1.0)) || (probs.iter().sum::<f64>() - 1.0).abs() > 1e-9 {
+            return Err(Error::input(err(
+                span.clone(),
+                format!("item probabilities of '{name}' must lie strictly between 0 and 1 and add up to 1"),
+            )));
+        }
+        logits.push(probs[1..].iter().map(|p| (p / probs[0]).ln()).collect());
+        let mut per_level = vec![BTreeMap::new(); l - 1];
+        if let Some(map) = r.item_effects.get_ref().get(name) {
+            for (term, v) in map {
+                let values: Vec<f64> = match v {
+                    toml::Value::Array(a) if a.len() == l - 1 => a.iter().map(|x| number(x).unwrap_or(f64::NAN)).collect(),
+                    other if number(other).is_some() && l == 2 => vec![number(other).unwrap_or(0.0)],
+                    _ => {
+                        return Err(Error::input(err(
+                            r.item_effects.span(),
+                            format!("the effect of '{term}' on '{name}' must be one log odds ratio per level after the first ({})", l - 1),
+                        )))
+                    }
+                };
+                for (lv, b) in values.into_iter().enumerate() {
+                    per_level[lv].insert(term.clone(), b);
+                }
+            }
+            for m in &per_level {
+                check_terms(m, r.item_effects.span(), false)?;
+            }
+        }
+        effects.push(per_level);
+    }
+    for key in r.item_probability.get_ref().keys().chain(r.item_effects.get_ref().keys()) {
+        if !items.iter().any(|(n, _)| n == key) {
+            return Err(Error::input(err(span.clone(), format!("'{key}' is not an item of the truth"))));
+        }
+    }
+    Ok((logits, effects))
 }
 
 fn correlation(v: Option<&Spanned<toml::Value>>, d: usize) -> std::result::Result<DMatrix<f64>, String> {
@@ -475,6 +666,8 @@ pub fn generate(truth: &Truth) -> Simulated {
     let mut header = vec![csv_field(&truth.id)];
     header.extend(truth.covariates.iter().map(|c| csv_field(&c.name)));
     header.extend(truth.indicators.iter().map(|c| csv_field(c)));
+    header.extend(truth.items.iter().map(|(c, _)| csv_field(c)));
+    header.extend(truth.counts.iter().map(|c| csv_field(c)));
     if let Some(t) = &truth.truth_column {
         header.push(csv_field(t));
     }
@@ -522,6 +715,25 @@ pub fn generate(truth: &Truth) -> Simulated {
             let noise: f64 = (0..=j).map(|c| chol[k][(j, c)] * e[c]).sum();
             let y = cl.mean[j] + linear(&cl.effects[j], &term_values) + noise;
             row.push(format!("{:.*}", truth.decimals, y));
+        }
+        for (j, (_, levels)) in truth.items.iter().enumerate() {
+            let mut eta = vec![0.0];
+            for (base, effects) in cl.item_logits[j].iter().zip(&cl.item_effects[j]) {
+                eta.push(base + linear(effects, &term_values));
+            }
+            let m = eta.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+            let probs: Vec<f64> = eta.iter().map(|e| (e - m).exp()).collect();
+            let level = rng.weighted_index(&probs);
+            let missing = truth.missing_items > 0.0 && rng.uniform() < truth.missing_items;
+            row.push(if missing { String::new() } else { levels[level].clone() });
+        }
+        for c in 0..truth.counts.len() {
+            let exposure = truth
+                .exposure
+                .as_ref()
+                .map_or(1.0, |e| term_values.get(e).copied().unwrap_or(1.0));
+            let mean = (cl.log_rate[c] + linear(&cl.count_effects[c], &term_values)).exp() * exposure;
+            row.push(rng.poisson(mean).to_string());
         }
         if truth.truth_column.is_some() {
             row.push((k + 1).to_string());

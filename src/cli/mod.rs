@@ -137,7 +137,7 @@ fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> 
             if data.n() <= k {
                 return Err(Error::input(
                     study
-                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters ({}) has {k} parameters", data.n(), pp.placement.name, cell.structure.describe()))
+                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters ({}) has {k} parameters", data.n(), pp.placement.name, fit::covariance_label(&cell.structure, data.d() > 0)))
                         .help("fit fewer clusters, use fewer covariates, or use more data (the rows must outnumber the parameters)"),
                 ));
             }
@@ -196,7 +196,7 @@ fn check(spec_path: &Path) -> Result<()> {
                     out,
                     "    {g} cluster{}, {}: {k} parameters, {starts} start{}",
                     plural(g),
-                    structure.describe(),
+                    fit::covariance_label(&structure, data.d() > 0),
                     plural(starts)
                 );
                 total_fits += 1;

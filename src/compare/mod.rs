@@ -260,7 +260,7 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Ve
         out.push(Criteria {
             placement: f.placement.clone(),
             clusters: g,
-            covariance: f.structure.describe(),
+            covariance: f.covariance(),
             status: f.termination().word().replace(' ', "_"),
             loglik: f.loglik(),
             parameters: f.n_params,
@@ -375,7 +375,7 @@ pub fn compare(
         alignments.push(Alignment {
             placement: f.placement.clone(),
             clusters: g,
-            covariance: f.structure.describe(),
+            covariance: f.covariance(),
             aligned: aligned.clone(),
             overlap,
         });

@@ -143,6 +143,8 @@ pub struct FitResult {
     pub clusters: usize,
     /// Covariance structure of the Gaussian components.
     pub structure: CovarianceStructure,
+    /// Whether the model has a gaussian block (else the structure means nothing).
+    pub has_gaussian: bool,
     /// Free parameters.
     pub n_params: usize,
     /// Rows used (the n in BIC).
@@ -153,7 +155,24 @@ pub struct FitResult {
     pub best: Option<BestFit>,
 }
 
+/// The words for a fit's covariance structure, or that there is none.
+pub fn covariance_label(structure: &CovarianceStructure, has_gaussian: bool) -> String {
+    if has_gaussian {
+        structure.describe()
+    } else {
+        NO_COVARIANCE.to_string()
+    }
+}
+
+/// The covariance label of fits without continuous indicators.
+pub const NO_COVARIANCE: &str = "no continuous indicators";
+
 impl FitResult {
+    /// The covariance structure in words, or that there is none.
+    pub fn covariance(&self) -> String {
+        covariance_label(&self.structure, self.has_gaussian)
+    }
+
     /// How the fit ended: the best start's termination, or why every start failed.
     pub fn termination(&self) -> Termination {
         match &self.best {
@@ -388,6 +407,7 @@ pub fn fit_cell(
         placement: prepared.placement.name.clone(),
         clusters: g,
         structure,
+        has_gaussian: fd.d > 0,
         n_params: template.n_params(),
         n_rows: fd.n,
         starts: runs.into_iter().map(|(r, _)| r).collect(),

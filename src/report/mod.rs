@@ -92,6 +92,14 @@ pub struct StudySummary {
     pub covariance_prior: bool,
     /// Variance floor relative to the smallest indicator variance (0 = off).
     pub variance_floor: f64,
+    /// How each indicator is modelled: `gaussian`, `item` or `count`, in `indicators` order.
+    pub indicator_kinds: Vec<&'static str>,
+    /// Item values missing in the rows used (skipped in those rows' likelihood).
+    pub item_values_missing: usize,
+    /// Pseudo-count per item and cluster keeping item probabilities off 0 and 1 (0 = none).
+    pub item_smoothing: f64,
+    /// Exposure (person-time) column of the counts, whose log is their offset.
+    pub exposure: Option<String>,
 }
 
 /// Missing values of one column.
@@ -269,7 +277,7 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
                 gating_covariates: pp.placement.gating.iter().map(|c| c.name.clone()).collect(),
                 component_covariates: pp.placement.components.iter().map(|c| c.name.clone()).collect(),
                 clusters: f.clusters,
-                covariance: f.structure.describe(),
+                covariance: f.covariance(),
                 gating_model,
                 status: status_word(&termination),
                 reason: termination.reason().map(str::to_string),
@@ -326,9 +334,18 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
             max_iterations: study.search.max_iterations,
             tolerance: study.search.tolerance,
             gating_ridge: study.search.gating_ridge,
-            covariance_structures: study.search.structures.iter().map(|s| s.describe()).collect(),
+            covariance_structures: study
+                .search
+                .structures
+                .iter()
+                .map(|s| crate::fit::covariance_label(s, data.d() > 0))
+                .collect(),
             covariance_prior: study.search.covariance_prior,
             variance_floor: study.search.variance_floor,
+            indicator_kinds: data.indicator_kinds.iter().map(|k| k.word()).collect(),
+            item_values_missing: data.items.as_ref().map_or(0, |b| b.missing_values),
+            item_smoothing: study.smoothing,
+            exposure: study.exposure.as_ref().map(|e| e.name.clone()),
         },
         conventions: Conventions {
             bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",
@@ -352,14 +369,14 @@ pub fn chosen(fits: &[FitResult]) -> Vec<Chosen> {
         match out.iter_mut().find(|c| c.placement == f.placement) {
             Some(c) if bic < c.bic => {
                 c.clusters = f.clusters;
-                c.covariance = f.structure.describe();
+                c.covariance = f.covariance();
                 c.bic = bic;
             }
             Some(_) => {}
             None => out.push(Chosen {
                 placement: f.placement.clone(),
                 clusters: f.clusters,
-                covariance: f.structure.describe(),
+                covariance: f.covariance(),
                 bic,
             }),
         }

@@ -624,6 +624,22 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         )?,
     };
 
+    // With one continuous indicator only the variance can differ between clusters.
+    let n_gaussian = indicator_kinds.iter().filter(|k| **k == IndicatorKind::Gaussian).count();
+    let mut search = search;
+    if n_gaussian == 1 && search.structures == [CovarianceStructure::UNCONSTRAINED] {
+        search.structures = vec![CovarianceStructure::new(Volume::Varying, Shape::Spherical, Orientation::Axes)];
+    }
+    if n_gaussian == 0 && search.structures.len() > 1 {
+        return Err(Error::input(
+            ctx.err(
+                raw.search.as_ref().map_or(0..0, |s| s.span()),
+                "[search].covariance lists structures, but no indicator is continuous",
+            )
+            .help("remove covariance from [search]: it applies to continuous indicators only"),
+        ));
+    }
+
     // [[placement]]
     let mut placements = Vec::new();
     if raw.placement.is_empty() {
