@@ -4,6 +4,7 @@ pub mod bad_inputs;
 pub mod cli;
 pub mod common;
 pub mod comparison;
+pub mod families;
 pub mod properties;
 pub mod recovery;
 pub mod reference;
