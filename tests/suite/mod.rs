@@ -5,6 +5,7 @@ pub mod cli;
 pub mod common;
 pub mod comparison;
 pub mod families;
+pub mod family_recovery;
 pub mod properties;
 pub mod recovery;
 pub mod reference;
