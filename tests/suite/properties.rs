@@ -5,7 +5,7 @@ use cohortmix::data::{Column, Design};
 use cohortmix::fit::em::{self, EmSettings};
 use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
-use cohortmix::model::family::CovarianceStructure;
+use cohortmix::model::family::{ComponentFamily, CovarianceStructure};
 use cohortmix::model::gating::{logit_objective, logit_score_hessian};
 use cohortmix::model::FitData;
 use cohortmix::rng::Stream;
@@ -108,5 +108,237 @@ proptest! {
                 prop_assert!((numeric - hess[(j, i)]).abs() <= 1e-5 * (1.0 + hess[(j, i)].abs()), "hessian ({j},{i}): {} vs {numeric}", hess[(j, i)]);
             }
         }
+    }
+}
+
+/// A random problem for the item, count and mixed families: `family` 0 = items (three
+/// binary items and one with three levels), 1 = counts (two, with an exposure), 2 = mixed
+/// (one continuous indicator, two binary items, one count). One covariate x, in the
+/// gating network and/or acting on every indicator.
+struct BlockProblem {
+    n: usize,
+    weights: Vec<f64>,
+    y: Vec<f64>,
+    d: usize,
+    codes: Vec<u16>,
+    levels: Vec<usize>,
+    item_names: Vec<String>,
+    counts: Vec<f64>,
+    ln_factorial: Vec<f64>,
+    count_names: Vec<String>,
+    log_exposure: Vec<f64>,
+    w: Design,
+    z: Design,
+    item_terms: Vec<Vec<usize>>,
+    count_terms: Vec<Vec<usize>>,
+    seeding: Vec<f64>,
+    seeding_d: usize,
+}
+
+fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, with_z: bool) -> BlockProblem {
+    let mut s = Stream::new(seed, "blocks");
+    let x: Vec<f64> = (0..n).map(|_| s.normal()).collect();
+    let group: Vec<usize> = (0..n).map(|_| s.index(g)).collect();
+    let weights: Vec<f64> = (0..n).map(|_| 0.5 + s.uniform()).collect();
+    let (n_gauss, levels, n_counts): (usize, Vec<usize>, usize) = match family {
+        0 => (0, vec![2, 2, 2, 3], 0),
+        1 => (0, vec![], 2),
+        _ => (1, vec![2, 2], 1),
+    };
+    let y: Vec<f64> = (0..n).map(|i| 2.0 * group[i] as f64 + 0.5 * x[i] + s.normal()).take(n * n_gauss).collect();
+    let mut codes = Vec::new();
+    for i in 0..n {
+        for l in &levels {
+            let lean = (group[i] + 1) as f64 / (g + 1) as f64;
+            let u = s.uniform();
+            let c = if u < 0.05 { cohortmix::data::MISSING_ITEM } else if u < lean { (l - 1) as u16 } else { s.index(*l) as u16 };
+            codes.push(c);
+        }
+    }
+    let log_exposure: Vec<f64> = (0..n).map(|_| (0.5 + 2.0 * s.uniform()).ln()).collect();
+    let mut counts = Vec::new();
+    for i in 0..n {
+        for c in 0..n_counts {
+            let mean = ((0.3 + group[i] as f64 + 0.2 * c as f64) * (0.2 * x[i]).exp()) * log_exposure[i].exp();
+            counts.push(s.poisson(mean) as f64);
+        }
+    }
+    let ln_factorial = counts.iter().map(|v| statrs::function::factorial::ln_factorial(*v as u64)).collect();
+    let col = Column::Numeric { kind: VariableType::Continuous, values: x };
+    let design = |on: bool| if on { Design::from_columns(n, &[("x", &col)]).unwrap() } else { Design::intercept(n) };
+    let (w, z) = (design(with_w), design(with_z));
+    let all: Vec<usize> = (0..z.p()).collect();
+    let mut seeding = Vec::new();
+    let seeding_d = n_gauss + levels.len() + n_counts;
+    for i in 0..n {
+        seeding.extend(y.get(i..i + n_gauss).unwrap_or(&[]).iter().copied());
+        seeding.extend(codes[i * levels.len()..(i + 1) * levels.len()].iter().map(|c| f64::from(*c % 8)));
+        seeding.extend(counts[i * n_counts..(i + 1) * n_counts].iter().map(|c| c.ln_1p()));
+    }
+    BlockProblem {
+        n,
+        weights,
+        y,
+        d: n_gauss,
+        item_terms: vec![all.clone(); levels.len()],
+        count_terms: vec![all; n_counts],
+        item_names: (0..levels.len()).map(|j| format!("item{j}")).collect(),
+        count_names: (0..n_counts).map(|j| format!("count{j}")).collect(),
+        codes,
+        levels,
+        counts,
+        ln_factorial,
+        log_exposure,
+        w,
+        z,
+        seeding,
+        seeding_d,
+    }
+}
+
+impl BlockProblem {
+    fn data(&self) -> FitData<'_> {
+        FitData {
+            n: self.n,
+            weights: &self.weights,
+            y: &self.y,
+            d: self.d,
+            z: &self.z.x,
+            q: self.z.p(),
+            w: &self.w.x,
+            p: self.w.p(),
+            items: (!self.levels.is_empty()).then(|| cohortmix::model::ItemData {
+                names: &self.item_names,
+                codes: &self.codes,
+                levels: &self.levels,
+                z: &self.z.x,
+                qz: self.z.p(),
+                terms: &self.item_terms,
+            }),
+            counts: (!self.count_names.is_empty()).then(|| cohortmix::model::CountData {
+                names: &self.count_names,
+                y: &self.counts,
+                ln_factorial: &self.ln_factorial,
+                c: self.count_names.len(),
+                z: &self.z.x,
+                qz: self.z.p(),
+                terms: &self.count_terms,
+                log_exposure: Some(&self.log_exposure),
+            }),
+        }
+    }
+}
+
+/// Σ_i c_i Σ_k τ_ik log f_k(y_i): the component part of EM's expected complete-data
+/// log-likelihood.
+fn expected_complete(comps: &impl ComponentFamily, data: &FitData, tau: &[f64], g: usize) -> f64 {
+    let mut out = vec![0.0; data.n * g];
+    comps.add_log_density(data, &mut out);
+    out.iter().zip(tau).enumerate().map(|(i, (o, t))| if *t > 0.0 { data.weights[i / g] * t * o } else { 0.0 }).sum()
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 96, .. ProptestConfig::default() })]
+
+    /// EM never lowers the objective for the items, counts and mixed families, with and
+    /// without covariates in the gating network and the components, with and without item
+    /// smoothing, from random and seeded starts.
+    #[test]
+    fn em_never_lowers_the_loglik_for_items_counts_and_mixed(seed in 0u64..10_000, n in 40usize..150, family in 0usize..3, g in 1usize..4,
+                                                             with_w: bool, with_z: bool, random_start: bool, smoothing in prop_oneof![Just(0.0), Just(1.0)]) {
+        let pb = block_problem(seed, n, family, g, with_w, with_z);
+        let fd = pb.data();
+        let options = ModelOptions { structure: CovarianceStructure::UNCONSTRAINED, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing };
+        let model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
+        let mut rng = Stream::new(seed, "start");
+        let tau = partition(kind, &pb.seeding, pb.seeding_d, &pb.weights, g, &mut rng);
+        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-13 });
+        for pair in run.trace.windows(2) {
+            prop_assert!(pair[1] >= pair[0] - 1e-9 * pair[0].abs(), "fell from {} to {} ({:?})", pair[0], pair[1], run.termination);
+        }
+    }
+
+    /// Score and negative Hessian of the weighted Poisson objective match central finite
+    /// differences.
+    #[test]
+    fn poisson_derivatives_match_finite_differences(seed in 0u64..10_000) {
+        let mut s = Stream::new(seed, "poisson-fd");
+        let (n, q) = (30, 3);
+        let x: Vec<f64> = (0..n * q).map(|i| if i % q == 0 { 1.0 } else { s.normal() }).collect();
+        let y: Vec<f64> = (0..n).map(|_| s.poisson(2.0) as f64).collect();
+        let offset: Vec<f64> = (0..n).map(|_| 0.3 * s.normal()).collect();
+        let v: Vec<f64> = (0..n).map(|_| s.uniform()).collect();
+        let beta: Vec<f64> = (0..q).map(|_| 0.3 * s.normal()).collect();
+        let rows = cohortmix::model::glm::PoissonRows { x: &x, q, y: &y, offset: Some(&offset), weights: &v };
+        let (obj, score, neg) = rows.derivatives(&beta);
+        prop_assert!((obj - rows.objective(&beta)).abs() <= 1e-12 * obj.abs().max(1.0));
+        let h = 1e-5;
+        for a in 0..q {
+            let (mut up, mut dn) = (beta.clone(), beta.clone());
+            up[a] += h;
+            dn[a] -= h;
+            let numeric = (rows.objective(&up) - rows.objective(&dn)) / (2.0 * h);
+            prop_assert!((numeric - score[a]).abs() <= 1e-6 * (1.0 + score[a].abs()), "score {a}: {} vs {numeric}", score[a]);
+            let (_, su, _) = rows.derivatives(&up);
+            let (_, sd, _) = rows.derivatives(&dn);
+            for b in 0..q {
+                let numeric = -(su[b] - sd[b]) / (2.0 * h);
+                prop_assert!((numeric - neg[(b, a)]).abs() <= 1e-5 * (1.0 + neg[(b, a)].abs()), "hessian ({b},{a})");
+            }
+        }
+    }
+
+    /// Every family's M-step maximises its part of the expected complete-data
+    /// log-likelihood: after repeated M-steps with the responsibilities held fixed, the
+    /// central finite-difference gradient with respect to every regression coefficient
+    /// (gaussian means, item logits, count log rates) is zero.
+    #[test]
+    fn m_steps_reach_a_zero_finite_difference_gradient(seed in 0u64..10_000, family in 0usize..3, g in 1usize..3) {
+        let pb = block_problem(seed, 150, family, g, false, true);
+        let fd = pb.data();
+        let options = ModelOptions { structure: CovarianceStructure::UNCONSTRAINED, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing: 0.0 };
+        let mut model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let mut rng = Stream::new(seed, "fixed tau");
+        let tau: Vec<f64> = (0..pb.n * g).map(|_| 0.2 + rng.uniform()).collect::<Vec<_>>()
+            .chunks(g).flat_map(|r| { let t: f64 = r.iter().sum(); r.iter().map(move |v| v / t).collect::<Vec<_>>() }).collect();
+        for _ in 0..80 {
+            prop_assume!(model.components.m_step(&fd, &tau).is_ok());
+        }
+        let h = 1e-6;
+        let mut checked = 0;
+        let comps = model.components.clone();
+        let q0 = expected_complete(&comps, &fd, &tau, g);
+        let mut gradient = |perturb: &dyn Fn(&mut cohortmix::model::family::Components, f64)| {
+            let (mut up, mut dn) = (comps.clone(), comps.clone());
+            perturb(&mut up, h);
+            perturb(&mut dn, -h);
+            checked += 1;
+            (expected_complete(&up, &fd, &tau, g) - expected_complete(&dn, &fd, &tau, g)) / (2.0 * h)
+        };
+        let tol = 1e-5 * q0.abs().max(1.0);
+        if let Some(gc) = &comps.gaussian {
+            for i in 0..gc.coef.len() {
+                let d = gradient(&|c, e| c.gaussian.as_mut().unwrap().coef[i] += e);
+                prop_assert!(d.abs() <= tol, "gaussian coefficient {i}: gradient {d}");
+            }
+        }
+        if let Some(ic) = &comps.items {
+            for j in 0..ic.coef.len() {
+                for i in 0..ic.coef[j].len() {
+                    let d = gradient(&|c, e| c.items.as_mut().unwrap().coef[j][i] += e);
+                    prop_assert!(d.abs() <= tol, "item {j} logit coefficient {i}: gradient {d}");
+                }
+            }
+        }
+        if let Some(cc) = &comps.counts {
+            for j in 0..cc.coef.len() {
+                for i in 0..cc.coef[j].len() {
+                    let d = gradient(&|c, e| c.counts.as_mut().unwrap().coef[j][i] += e);
+                    prop_assert!(d.abs() <= tol, "count {j} coefficient {i}: gradient {d}");
+                }
+            }
+        }
+        prop_assert!(checked > 0);
     }
 }

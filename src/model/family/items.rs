@@ -200,6 +200,27 @@ impl ComponentFamily for ItemComponents {
         Ok(())
     }
 
+    /// Smoothing acts as a prior: α/L pseudo-observations of each level at the reference
+    /// covariate values, i.e. log prior = Σ_k Σ_j Σ_l (α/L_j) log P_kj(l | z_ref). EM then
+    /// maximises log-likelihood + log prior (a posterior mode), which is what it traces.
+    fn log_prior(&self) -> f64 {
+        if self.smoothing == 0.0 {
+            return 0.0;
+        }
+        let mut total = 0.0;
+        for k in 0..self.g {
+            for (j, l) in self.levels.iter().enumerate() {
+                let a = self.smoothing / *l as f64;
+                total += self
+                    .reference_probabilities(j, k)
+                    .iter()
+                    .map(|p| a * p.ln())
+                    .sum::<f64>();
+            }
+        }
+        total
+    }
+
     fn n_params(&self) -> usize {
         self.g
             * self
