@@ -187,6 +187,9 @@ fn check(spec_path: &Path) -> Result<()> {
         let _ = writeln!(out, "  placement '{}'", pp.placement.name);
         let _ = writeln!(out, "    gating terms:    {}", or_none(&terms(&pp.gating)));
         let _ = writeln!(out, "    component terms: {}", or_none(&terms(&pp.components)));
+        for (covariate, targets) in &pp.placement.acts_on {
+            let _ = writeln!(out, "      {covariate} acts only on: {}", targets.join(", "));
+        }
         for &g in &pp.placement.clusters {
             for &structure in &study.search.structures {
                 let options = fit::ModelOptions::for_study(&study, structure);

@@ -759,6 +759,22 @@ fn sentences(
     }
     // Largest change of a profile value (population-averaged), in units of that
     // indicator's spread across the reference clusters' values.
+    // Columns differ in units (a mean in % predicted, a probability, a rate), so each
+    // shift is measured against that column's range over the reference clusters.
+    let spread: Vec<f64> = (0..indicators.len())
+        .map(|j| {
+            let values = profiles
+                .iter()
+                .filter(|r| r.placement == reference)
+                .map(|r| r.population_averaged[j]);
+            let (lo, hi) = values.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(v), b.max(v)));
+            if hi > lo {
+                hi - lo
+            } else {
+                1.0
+            }
+        })
+        .collect();
     let mut best_profile: Option<(f64, &Profile, &Profile, usize)> = None;
     for p in profiles.iter().filter(|p| p.placement != reference) {
         if let Some(r) = profiles
@@ -766,7 +782,7 @@ fn sentences(
             .find(|r| r.placement == reference && r.cluster == p.cluster)
         {
             for j in 0..indicators.len() {
-                let diff = (p.population_averaged[j] - r.population_averaged[j]).abs();
+                let diff = (p.population_averaged[j] - r.population_averaged[j]).abs() / spread[j];
                 if best_profile.is_none_or(|(d, _, _, _)| diff > d) {
                     best_profile = Some((diff, r, p, j));
                 }

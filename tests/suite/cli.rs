@@ -186,20 +186,27 @@ fn check_prints_the_plan() {
 #[test]
 fn the_demo_data_is_what_its_truth_spec_generates() {
     let dir = tempfile::tempdir().unwrap();
-    let out = cohortmix(
-        dir.path(),
-        &[
-            "simulate",
-            root("demo-data/respiratory-truth.toml").to_str().unwrap(),
-            "--out",
-            "demo.csv",
-        ],
-    );
+    for (truth, data) in [
+        ("demo-data/respiratory-truth.toml", "demo-data/respiratory.csv"),
+        ("demo-data/symptoms-truth.toml", "demo-data/symptoms.csv"),
+    ] {
+        let out = cohortmix(dir.path(), &["simulate", root(truth).to_str().unwrap(), "--out", "demo.csv"]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        assert_eq!(read(&dir.path().join("demo.csv")), read(&root(data)), "{data}");
+    }
+}
+
+/// The mixed-family demo runs end to end, checks its items and counts, and reports the
+/// missing item values and the exposure.
+#[test]
+fn the_symptom_demo_compares_its_placements() {
+    let dir = tempfile::tempdir().unwrap();
+    let spec = root("configs/symptoms.toml");
+    let out = cohortmix(dir.path(), &["check", spec.to_str().unwrap()]);
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    assert_eq!(
-        read(&dir.path().join("demo.csv")),
-        read(&root("demo-data/respiratory.csv"))
-    );
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(stdout.contains("indicators (mixed)"), "{stdout}");
+    assert!(stdout.contains("component terms: smoker"), "{stdout}");
 }
 
 #[test]
