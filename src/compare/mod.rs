@@ -483,9 +483,10 @@ pub fn compare(
     }
 
     let reference = prepared[settings.reference].placement.name.clone();
+    let columns = profile_columns(data);
     let sentences = sentences(
         &reference,
-        &data.indicator_names,
+        &columns,
         &criteria,
         &alignments,
         &profiles,
@@ -496,7 +497,7 @@ pub fn compare(
         reference,
         fixed_clusters: settings.clusters,
         reference_values: "profiles at the reference covariate values: continuous and count covariates at their sample mean, categorical and binary ones at their reference level".into(),
-        indicators: profile_columns(data),
+        indicators: columns,
         criteria,
         alignments,
         profiles,
