@@ -132,7 +132,7 @@ fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> 
         let fd = fit::fit_data(data, pp);
         let g = cell.clusters;
         {
-            let options = fit::ModelOptions::for_study(&study, cell.structure);
+            let options = fit::ModelOptions::for_study(study, cell.structure);
             let k = fit::initial_model(&fd, &pp.placement, g, options).n_params();
             if data.n() <= k {
                 return Err(Error::input(
