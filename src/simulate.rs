@@ -264,11 +264,11 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
     };
     let indicators = sim.indicators.as_ref().map_or_else(Vec::new, |v| v.get_ref().clone());
     if indicators.is_empty() && sim.items.is_empty() && sim.counts.is_empty() {
-        return Err(Error::input(err(
-            raw.simulation.span(),
-            "the truth has no indicators".into(),
-        )
-        .help("list continuous indicators (indicators = [...]), items (items = [...]) or counts (counts = [...])")));
+        return Err(Error::input(
+            err(raw.simulation.span(), "the truth has no indicators".into()).help(
+                "list continuous indicators (indicators = [...]), items (items = [...]) or counts (counts = [...])",
+            ),
+        ));
     }
     let items: Vec<(String, Vec<String>)> = sim
         .items
@@ -296,7 +296,10 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
     }
     let missing_items = match &sim.missing_items {
         Some(m) if !(0.0..1.0).contains(m.get_ref()) => {
-            return Err(Error::input(err(m.span(), "missing_items must be a share from 0 up to 1".into())))
+            return Err(Error::input(err(
+                m.span(),
+                "missing_items must be a share from 0 up to 1".into(),
+            )))
         }
         Some(m) => *m.get_ref(),
         None => 0.0,
@@ -391,7 +394,10 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         None => None,
         Some(e) => {
             let c = covariates.iter().find(|c| c.name == *e.get_ref()).ok_or_else(|| {
-                Error::input(err(e.span(), format!("exposure '{}' is not a [[covariate]]", e.get_ref())))
+                Error::input(err(
+                    e.span(),
+                    format!("exposure '{}' is not a [[covariate]]", e.get_ref()),
+                ))
             })?;
             let positive = match &c.draw {
                 Draw::Normal { min, .. } | Draw::Uniform { min, .. } => *min > 0.0,
@@ -399,8 +405,12 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
             };
             if !positive || sim.counts.is_empty() {
                 return Err(Error::input(
-                    err(e.span(), "the exposure must be a normal or uniform covariate with min > 0, and counts must be listed".into())
-                        .help("exposure is person-time: give it min = 0.5 (say)"),
+                    err(
+                        e.span(),
+                        "the exposure must be a normal or uniform covariate with min > 0, and counts must be listed"
+                            .into(),
+                    )
+                    .help("exposure is person-time: give it min = 0.5 (say)"),
                 ));
             }
             Some(e.get_ref().clone())
@@ -461,7 +471,10 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         let mut count_effects = Vec::new();
         for name in &sim.counts {
             let rate = r.rate.get_ref().get(name).copied().ok_or_else(|| {
-                Error::input(err(c.span(), format!("cluster '{}' gives no rate for count '{name}'", r.name)))
+                Error::input(err(
+                    c.span(),
+                    format!("cluster '{}' gives no rate for count '{name}'", r.name),
+                ))
             })?;
             if !(rate > 0.0) {
                 return Err(Error::input(err(r.rate.span(), "every rate must be positive".into())));
@@ -473,7 +486,10 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         }
         for key in r.rate.get_ref().keys().chain(r.count_effects.get_ref().keys()) {
             if !sim.counts.contains(key) {
-                return Err(Error::input(err(c.span(), format!("'{key}' is not a count of the truth"))));
+                return Err(Error::input(err(
+                    c.span(),
+                    format!("'{key}' is not a count of the truth"),
+                )));
             }
         }
         if sd.iter().any(|s| !(*s > 0.0)) {
@@ -550,7 +566,10 @@ fn cluster_items(
     for (name, levels) in items {
         let l = levels.len();
         let value = r.item_probability.get_ref().get(name).ok_or_else(|| {
-            Error::input(err(span.clone(), format!("cluster '{}' gives no item_probability for '{name}'", r.name)))
+            Error::input(err(
+                span.clone(),
+                format!("cluster '{}' gives no item_probability for '{name}'", r.name),
+            ))
         })?;
         let probs: Vec<f64> = match (value, l) {
             (v, 2) if number(v).is_some() => {
@@ -595,9 +614,17 @@ fn cluster_items(
         }
         effects.push(per_level);
     }
-    for key in r.item_probability.get_ref().keys().chain(r.item_effects.get_ref().keys()) {
+    for key in r
+        .item_probability
+        .get_ref()
+        .keys()
+        .chain(r.item_effects.get_ref().keys())
+    {
         if !items.iter().any(|(n, _)| n == key) {
-            return Err(Error::input(err(span.clone(), format!("'{key}' is not an item of the truth"))));
+            return Err(Error::input(err(
+                span.clone(),
+                format!("'{key}' is not an item of the truth"),
+            )));
         }
     }
     Ok((logits, effects))

@@ -537,7 +537,12 @@ pub fn profile_columns(data: &Dataset) -> Vec<String> {
 
 /// Profile of fitted cluster k: values at the reference covariate values and averaged
 /// over the sample with posterior weights, in [`profile_columns`] order.
-fn cluster_profile(data: &Dataset, pp: &PreparedPlacement, best: &crate::fit::BestFit, k: usize) -> (Vec<f64>, Vec<f64>) {
+fn cluster_profile(
+    data: &Dataset,
+    pp: &PreparedPlacement,
+    best: &crate::fit::BestFit,
+    k: usize,
+) -> (Vec<f64>, Vec<f64>) {
     let g = best.run.model.clusters();
     let comps = &best.run.model.components;
     let tau = &best.run.tau;
@@ -562,7 +567,8 @@ fn cluster_profile(data: &Dataset, pp: &PreparedPlacement, best: &crate::fit::Be
                 at_ref.push(reference[l]);
                 avg_fns.push(Box::new(move |i| {
                     let mut eta = Vec::new();
-                    ic.log_probability(j, k, &pp.components.x[i * qz..(i + 1) * qz], l, &mut eta).exp()
+                    ic.log_probability(j, k, &pp.components.x[i * qz..(i + 1) * qz], l, &mut eta)
+                        .exp()
                 }));
             }
         }
@@ -571,7 +577,9 @@ fn cluster_profile(data: &Dataset, pp: &PreparedPlacement, best: &crate::fit::Be
         for c in 0..cc.names.len() {
             let q = cc.terms[c].len();
             at_ref.push(cc.coef[c][k * q].exp());
-            avg_fns.push(Box::new(move |i| cc.eta(c, k, &pp.components.x[i * qz..(i + 1) * qz]).exp()));
+            avg_fns.push(Box::new(move |i| {
+                cc.eta(c, k, &pp.components.x[i * qz..(i + 1) * qz]).exp()
+            }));
         }
     }
     let mut avg = vec![0.0; avg_fns.len()];

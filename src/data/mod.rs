@@ -136,11 +136,17 @@ impl Dataset {
     /// value takes the item's observed mean. Seeding standardises each column.
     pub fn seeding_matrix(&self) -> (Vec<f64>, usize) {
         let n = self.n();
-        let mut cols: Vec<Vec<f64>> = (0..self.d()).map(|j| (0..n).map(|i| self.y[i * self.d() + j]).collect()).collect();
+        let mut cols: Vec<Vec<f64>> = (0..self.d())
+            .map(|j| (0..n).map(|i| self.y[i * self.d() + j]).collect())
+            .collect();
         if let Some(b) = &self.items {
             let nj = b.len();
             for (j, levels) in b.levels.iter().enumerate() {
-                let shown: Vec<usize> = if levels.len() == 2 { vec![1] } else { (0..levels.len()).collect() };
+                let shown: Vec<usize> = if levels.len() == 2 {
+                    vec![1]
+                } else {
+                    (0..levels.len()).collect()
+                };
                 for l in shown {
                     let raw: Vec<Option<f64>> = (0..n)
                         .map(|i| {
@@ -476,12 +482,11 @@ pub fn load(study: &Study) -> Result<Dataset> {
                 for ((l, _), e) in kept.iter().zip(&values) {
                     if !(*e > 0.0) {
                         return Err(Error::input(
-                            Diagnostic::new(format!(
-                                "exposure {e} in column '{}' is not positive",
-                                nd.col.name
-                            ))
-                            .at(raw.field_location(*l, nd.index))
-                            .help("exposure is person-time and must be above 0; leave the cell empty to drop the row"),
+                            Diagnostic::new(format!("exposure {e} in column '{}' is not positive", nd.col.name))
+                                .at(raw.field_location(*l, nd.index))
+                                .help(
+                                    "exposure is person-time and must be above 0; leave the cell empty to drop the row",
+                                ),
                         ));
                     }
                 }
@@ -518,7 +523,10 @@ pub fn load(study: &Study) -> Result<Dataset> {
     }
 
     if let Some(b) = counts.as_mut() {
-        b.ln_factorial = b.y.iter().map(|y| statrs::function::factorial::ln_factorial(*y as u64)).collect();
+        b.ln_factorial =
+            b.y.iter()
+                .map(|y| statrs::function::factorial::ln_factorial(*y as u64))
+                .collect();
     }
     Ok(Dataset {
         path: path.to_path_buf(),
@@ -790,7 +798,11 @@ fn parse_item(
     if levels.len() > usize::from(MISSING_ITEM) {
         return Err(Error::input(study.error_at(
             nd.col.span.clone(),
-            format!("item '{name}' has {} levels; at most {} are supported", levels.len(), MISSING_ITEM),
+            format!(
+                "item '{name}' has {} levels; at most {} are supported",
+                levels.len(),
+                MISSING_ITEM
+            ),
         )));
     }
     let seen: std::collections::BTreeSet<&str> = present.iter().map(|(_, v)| *v).collect();

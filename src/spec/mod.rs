@@ -545,7 +545,9 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 if let Some(s) = did_you_mean(other, FamilyKind::WORDS) {
                     d = d.help(format!("did you mean '{s}'?"));
                 }
-                return Err(Error::input(d.help(format!("families: {}", FamilyKind::WORDS.join(", ")))));
+                return Err(Error::input(
+                    d.help(format!("families: {}", FamilyKind::WORDS.join(", "))),
+                ));
             }
         },
     };
@@ -567,8 +569,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
     if let Some(e) = &exposure {
         if !has_counts {
             return Err(Error::input(
-                ctx.err(e.span.clone(), "[indicators].exposure is given, but no indicator is a count")
-                    .help("an exposure (person-time) column belongs to count indicators; remove it"),
+                ctx.err(
+                    e.span.clone(),
+                    "[indicators].exposure is given, but no indicator is a count",
+                )
+                .help("an exposure (person-time) column belongs to count indicators; remove it"),
             ));
         }
         if indicators.iter().any(|c| c.name == e.name) {
@@ -584,8 +589,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
             let a = *v.get_ref();
             if !(a.is_finite() && a >= 0.0) {
                 return Err(Error::input(
-                    ctx.err(v.span(), format!("[indicators].smoothing must be zero or positive, not {a}"))
-                        .help("it is a pseudo-count per item and cluster; 1 is a mild value, 0 turns it off"),
+                    ctx.err(
+                        v.span(),
+                        format!("[indicators].smoothing must be zero or positive, not {a}"),
+                    )
+                    .help("it is a pseudo-count per item and cluster; 1 is a mild value, 0 turns it off"),
                 ));
             }
             if a > 0.0 && !has_items {
@@ -620,15 +628,25 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         Some(s) => search_settings(
             &ctx,
             s.get_ref(),
-            indicator_kinds.iter().filter(|k| **k == IndicatorKind::Gaussian).count(),
+            indicator_kinds
+                .iter()
+                .filter(|k| **k == IndicatorKind::Gaussian)
+                .count(),
         )?,
     };
 
     // With one continuous indicator only the variance can differ between clusters.
-    let n_gaussian = indicator_kinds.iter().filter(|k| **k == IndicatorKind::Gaussian).count();
+    let n_gaussian = indicator_kinds
+        .iter()
+        .filter(|k| **k == IndicatorKind::Gaussian)
+        .count();
     let mut search = search;
     if n_gaussian == 1 && search.structures == [CovarianceStructure::UNCONSTRAINED] {
-        search.structures = vec![CovarianceStructure::new(Volume::Varying, Shape::Spherical, Orientation::Axes)];
+        search.structures = vec![CovarianceStructure::new(
+            Volume::Varying,
+            Shape::Spherical,
+            Orientation::Axes,
+        )];
     }
     if n_gaussian == 0 && search.structures.len() > 1 {
         return Err(Error::input(
@@ -1116,7 +1134,10 @@ fn acts_on(
             .filter(|(_, k)| **k == IndicatorKind::Gaussian)
             .map(|(c, _)| c)
             .collect();
-        let hit = gaussian.iter().filter(|g| targets.iter().any(|t| t.name == g.name)).count();
+        let hit = gaussian
+            .iter()
+            .filter(|g| targets.iter().any(|t| t.name == g.name))
+            .count();
         if hit > 0 && hit < gaussian.len() {
             return Err(Error::input(
                 ctx.err(
@@ -1148,7 +1169,12 @@ fn default_indicator_type(family: FamilyKind) -> Option<VariableType> {
 }
 
 /// How an indicator is modelled, from the family and its declared type.
-fn indicator_kind(ctx: &Ctx, family: FamilyKind, c: &ColumnRef, declared: Option<&VariableType>) -> Result<IndicatorKind> {
+fn indicator_kind(
+    ctx: &Ctx,
+    family: FamilyKind,
+    c: &ColumnRef,
+    declared: Option<&VariableType>,
+) -> Result<IndicatorKind> {
     let t = match (declared, default_indicator_type(family)) {
         (Some(t), _) => t.clone(),
         (None, Some(t)) => t,

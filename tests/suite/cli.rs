@@ -190,7 +190,10 @@ fn the_demo_data_is_what_its_truth_spec_generates() {
         ("demo-data/respiratory-truth.toml", "demo-data/respiratory.csv"),
         ("demo-data/symptoms-truth.toml", "demo-data/symptoms.csv"),
     ] {
-        let out = cohortmix(dir.path(), &["simulate", root(truth).to_str().unwrap(), "--out", "demo.csv"]);
+        let out = cohortmix(
+            dir.path(),
+            &["simulate", root(truth).to_str().unwrap(), "--out", "demo.csv"],
+        );
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
         assert_eq!(read(&dir.path().join("demo.csv")), read(&root(data)), "{data}");
     }

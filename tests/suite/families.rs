@@ -22,7 +22,10 @@ fn categorical(values: &[String]) -> Column {
         _ => a.cmp(b),
     });
     levels.dedup();
-    let codes = values.iter().map(|v| levels.iter().position(|l| l == v).unwrap() as u32).collect();
+    let codes = values
+        .iter()
+        .map(|v| levels.iter().position(|l| l == v).unwrap() as u32)
+        .collect();
     Column::Categorical {
         levels,
         reference: 0,
@@ -62,7 +65,10 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
     let named: Vec<(&str, &Column)> = ["type", "year", "period"].iter().copied().zip(columns.iter()).collect();
     let design = Design::from_columns(n, &named).unwrap();
     let y = parsed(&header, &cols, "incidents");
-    let ln_factorial: Vec<f64> = y.iter().map(|v| statrs::function::factorial::ln_factorial(*v as u64)).collect();
+    let ln_factorial: Vec<f64> = y
+        .iter()
+        .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
+        .collect();
     let log_service: Vec<f64> = parsed(&header, &cols, "service").iter().map(|s| s.ln()).collect();
     let weights = parsed(&header, &cols, "weight");
     let labels: Vec<usize> = parsed(&header, &cols, "cluster").iter().map(|v| *v as usize).collect();
@@ -100,7 +106,12 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
     comps.add_log_density(&data, &mut ll);
     let mut worst = 16.0f64;
     for (k, case) in reference["ships_poisson"].as_array().unwrap().iter().enumerate() {
-        for (term, want) in case["terms"].as_array().unwrap().iter().zip(floats(&case["coefficients"])) {
+        for (term, want) in case["terms"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .zip(floats(&case["coefficients"]))
+        {
             let got = params
                 .iter()
                 .find(|p| p.block == "count_log_rate" && p.cluster == k + 1 && p.term.as_deref() == term.as_str())
@@ -108,7 +119,10 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
                 .value;
             worst = worst.min(digits(got, want));
         }
-        let loglik: f64 = (0..n).filter(|i| labels[*i] == k).map(|i| weights[i] * ll[i * 2 + k]).sum();
+        let loglik: f64 = (0..n)
+            .filter(|i| labels[*i] == k)
+            .map(|i| weights[i] * ll[i * 2 + k])
+            .sum();
         worst = worst.min(digits(loglik, case["loglik"].as_f64().unwrap()));
     }
     println!("ships Poisson: coefficients and loglik agree to {worst:.1} significant digits");
@@ -140,8 +154,15 @@ fn item_logits_match_statsmodels_on_birthwt() {
         ("race", 3usize, "birthwt_race_mnlogit", false, vec![0usize, 1, 2]),
     ] {
         let offset = if item == "race" { 1 } else { 0 };
-        let codes: Vec<u16> = parsed(&header, &cols, item).iter().map(|v| *v as u16 - offset).collect();
-        let weights = if weighted { parsed(&header, &cols, "weight") } else { vec![1.0; n] };
+        let codes: Vec<u16> = parsed(&header, &cols, item)
+            .iter()
+            .map(|v| *v as u16 - offset)
+            .collect();
+        let weights = if weighted {
+            parsed(&header, &cols, "weight")
+        } else {
+            vec![1.0; n]
+        };
         let names = vec![item.to_string()];
         let level_counts = vec![levels];
         let term_lists = vec![terms.clone()];
@@ -195,7 +216,10 @@ fn item_logits_match_statsmodels_on_birthwt() {
             }
             let mut ll = vec![0.0; n * 2];
             comps.add_log_density(&data, &mut ll);
-            let loglik: f64 = (0..n).filter(|i| labels[*i] == k).map(|i| weights[i] * ll[i * 2 + k]).sum();
+            let loglik: f64 = (0..n)
+                .filter(|i| labels[*i] == k)
+                .map(|i| weights[i] * ll[i * 2 + k])
+                .sum();
             worst = worst.min(digits(loglik, case["loglik"].as_f64().unwrap()));
         }
     }
@@ -270,7 +294,12 @@ fn best_latent_class_loglik(codes: &[u16], counts: &[f64], j: usize, g: usize) -
 /// G² = 2 Σ n log(n / fitted) = 2 (Σ n log(n/N) − loglik) for pattern counts n.
 fn g_squared(counts: &[f64], loglik: f64) -> f64 {
     let total: f64 = counts.iter().sum();
-    2.0 * (counts.iter().filter(|n| **n > 0.0).map(|n| n * (n / total).ln()).sum::<f64>() - loglik)
+    2.0 * (counts
+        .iter()
+        .filter(|n| **n > 0.0)
+        .map(|n| n * (n / total).ln())
+        .sum::<f64>()
+        - loglik)
 }
 
 /// Published latent class table: Stouffer & Toby's (1951) four role-conflict items, 216
@@ -292,11 +321,17 @@ fn latent_class_models_reproduce_the_stouffer_toby_analysis() {
     let (ll2, mut shares) = best_latent_class_loglik(&codes, &counts, 4, 2);
     shares.sort_by(f64::total_cmp);
     let g2 = g_squared(&counts, ll2);
-    println!("two classes: G2 {g2:.4} (published 2.72, 6 df), classes {:.4} / {:.4}", shares[0], shares[1]);
+    println!(
+        "two classes: G2 {g2:.4} (published 2.72, 6 df), classes {:.4} / {:.4}",
+        shares[0], shares[1]
+    );
     assert!((g2 - 2.72).abs() < 0.005, "G2 {g2}");
     // 15 cell degrees of freedom minus 1 + 2·4 parameters.
     assert_eq!(15 - (1 + 2 * 4), 6);
-    assert!((shares[0] - 0.28).abs() < 0.005 && (shares[1] - 0.72).abs() < 0.005, "{shares:?}");
+    assert!(
+        (shares[0] - 0.28).abs() < 0.005 && (shares[1] - 0.72).abs() < 0.005,
+        "{shares:?}"
+    );
 
     // Saturated case: three binary items, two classes, 7 parameters for 7 cell degrees of
     // freedom: the fit reproduces the table, so loglik = Σ n log(n/N) (pure arithmetic).
@@ -351,7 +386,10 @@ fn missing_items_are_skipped_in_the_likelihood() {
         variance_floor: 0.0,
         smoothing: 0.0,
     };
-    let seeding: Vec<f64> = codes.iter().map(|c| if *c == MISSING_ITEM { 0.5 } else { f64::from(*c) }).collect();
+    let seeding: Vec<f64> = codes
+        .iter()
+        .map(|c| if *c == MISSING_ITEM { 0.5 } else { f64::from(*c) })
+        .collect();
     let mut rng = Stream::new(3, "missing");
     let tau = partition(StartKind::SeededCentres, &seeding, 4, &counts, 2, &mut rng);
     let run = em::run(

@@ -34,7 +34,12 @@ decimals = 2
 
 /// Simulate, fit one placement at the true cluster count, and return the named
 /// parameters with `order[t]` = the fitted cluster (1-based) matched to true cluster t.
-fn fit_truth(truth_text: &str, study_text: &str, g: usize, starts_reaching: usize) -> (simulate::Truth, Vec<Parameter>, Vec<usize>) {
+fn fit_truth(
+    truth_text: &str,
+    study_text: &str,
+    g: usize,
+    starts_reaching: usize,
+) -> (simulate::Truth, Vec<Parameter>, Vec<usize>) {
     let dir = tempfile::tempdir().unwrap();
     let truth = simulate::parse(&dir.path().join("truth.toml"), truth_text).unwrap();
     let sim = simulate::generate(&truth);
@@ -43,8 +48,15 @@ fn fit_truth(truth_text: &str, study_text: &str, g: usize, starts_reaching: usiz
     let data = data::load(&study).unwrap();
     let prepared = fit::prepare(&study, &data).unwrap();
     let result = fit::fit_cell(&study, &data, &prepared[0], 0, g, CovarianceStructure::UNCONSTRAINED);
-    let best = result.best.as_ref().unwrap_or_else(|| panic!("no usable fit: {:?}", result.termination()));
-    assert!(best.reaching >= starts_reaching, "best optimum reached by {} starts", best.reaching);
+    let best = result
+        .best
+        .as_ref()
+        .unwrap_or_else(|| panic!("no usable fit: {:?}", result.termination()));
+    assert!(
+        best.reaching >= starts_reaching,
+        "best optimum reached by {} starts",
+        best.reaching
+    );
     assert_eq!(data.rows_excluded, 0);
     // Cross-table of fitted posteriors against true labels; every row is used.
     let mut table = vec![vec![0.0; g]; g];
@@ -65,7 +77,9 @@ fn fit_truth(truth_text: &str, study_text: &str, g: usize, starts_reaching: usiz
 fn value(params: &[Parameter], block: &str, cluster: usize, indicator: Option<&str>, term: Option<&str>) -> f64 {
     params
         .iter()
-        .find(|p| p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term)
+        .find(|p| {
+            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
+        })
         .unwrap_or_else(|| panic!("no parameter {block} {cluster} {indicator:?} {term:?}"))
         .value
 }
@@ -76,7 +90,10 @@ struct Checks(Vec<String>, bool);
 impl Checks {
     fn check(&mut self, what: String, got: f64, want: f64, tol: f64) {
         let ok = (got - want).abs() <= tol;
-        self.0.push(format!("{}{what}: fitted {got:.4}, true {want:.4}, tolerance {tol}", if ok { "" } else { "FAIL " }));
+        self.0.push(format!(
+            "{}{what}: fitted {got:.4}, true {want:.4}, tolerance {tol}",
+            if ok { "" } else { "FAIL " }
+        ));
         self.1 &= ok;
     }
     fn finish(self) {
@@ -88,7 +105,13 @@ impl Checks {
 /// Gating coefficients against the true reference cluster: the fitted logit is
 /// re-referenced to the cluster matched with true cluster 1.
 fn check_gating(c: &mut Checks, truth: &simulate::Truth, params: &[Parameter], order: &[usize], terms: &[(&str, f64)]) {
-    let gating = |k: usize, term: &str| if k == 1 { 0.0 } else { value(params, "gating", k, None, Some(term)) };
+    let gating = |k: usize, term: &str| {
+        if k == 1 {
+            0.0
+        } else {
+            value(params, "gating", k, None, Some(term))
+        }
+    };
     for t in 1..truth.clusters.len() {
         for (term, tol) in terms {
             let got = gating(order[t], term) - gating(order[0], term);
@@ -174,9 +197,20 @@ fn check_items(missing: f64, widen: f64) {
             }
         }
         let got = value(&params, "item_logit", k, Some("a=1"), Some("smoker"));
-        c.check(format!("cluster {t} direct effect of smoker on a"), got, 0.9, 0.35 * widen);
+        c.check(
+            format!("cluster {t} direct effect of smoker on a"),
+            got,
+            0.9,
+            0.35 * widen,
+        );
     }
-    check_gating(&mut c, &truth, &params, &order, &[("age", 0.012 * widen), ("smoker", 0.25 * widen)]);
+    check_gating(
+        &mut c,
+        &truth,
+        &params,
+        &order,
+        &[("age", 0.012 * widen), ("smoker", 0.25 * widen)],
+    );
     c.finish();
 }
 
@@ -325,13 +359,28 @@ acts_on = { age = ["fev1"], smoker = ["spells"] }
     let mut c = Checks(Vec::new(), true);
     for (t, cl) in truth.clusters.iter().enumerate() {
         let k = order[t];
-        c.check(format!("cluster {t} fev1 intercept"), value(&params, "mean", k, Some("fev1"), Some("intercept")), cl.mean[0], 1.5);
-        c.check(format!("cluster {t} fev1 age effect"), value(&params, "mean", k, Some("fev1"), Some("age")), -0.3, 0.04);
+        c.check(
+            format!("cluster {t} fev1 intercept"),
+            value(&params, "mean", k, Some("fev1"), Some("intercept")),
+            cl.mean[0],
+            1.5,
+        );
+        c.check(
+            format!("cluster {t} fev1 age effect"),
+            value(&params, "mean", k, Some("fev1"), Some("age")),
+            -0.3,
+            0.04,
+        );
         let sd = value(&params, "covariance", k, Some("fev1"), None).sqrt();
         c.check(format!("cluster {t} fev1 sd"), sd, cl.covariance[(0, 0)].sqrt(), 0.5);
         for (j, (name, _)) in truth.items.iter().enumerate() {
             let want = 1.0 / (1.0 + (-cl.item_logits[j][0]).exp());
-            c.check(format!("cluster {t} P({name}=1)"), value(&params, "item_probability", k, Some(&format!("{name}=1")), None), want, 0.03);
+            c.check(
+                format!("cluster {t} P({name}=1)"),
+                value(&params, "item_probability", k, Some(&format!("{name}=1")), None),
+                want,
+                0.03,
+            );
         }
         let got = value(&params, "count_rate", k, Some("spells"), None).ln();
         c.check(format!("cluster {t} log rate of spells"), got, cl.log_rate[0], 0.1);

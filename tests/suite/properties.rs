@@ -145,13 +145,22 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
         1 => (0, vec![], 2),
         _ => (1, vec![2, 2], 1),
     };
-    let y: Vec<f64> = (0..n).map(|i| 2.0 * group[i] as f64 + 0.5 * x[i] + s.normal()).take(n * n_gauss).collect();
+    let y: Vec<f64> = (0..n)
+        .map(|i| 2.0 * group[i] as f64 + 0.5 * x[i] + s.normal())
+        .take(n * n_gauss)
+        .collect();
     let mut codes = Vec::new();
     for i in 0..n {
         for l in &levels {
             let lean = (group[i] + 1) as f64 / (g + 1) as f64;
             let u = s.uniform();
-            let c = if u < 0.05 { cohortmix::data::MISSING_ITEM } else if u < lean { (l - 1) as u16 } else { s.index(*l) as u16 };
+            let c = if u < 0.05 {
+                cohortmix::data::MISSING_ITEM
+            } else if u < lean {
+                (l - 1) as u16
+            } else {
+                s.index(*l) as u16
+            };
             codes.push(c);
         }
     }
@@ -163,16 +172,32 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
             counts.push(s.poisson(mean) as f64);
         }
     }
-    let ln_factorial = counts.iter().map(|v| statrs::function::factorial::ln_factorial(*v as u64)).collect();
-    let col = Column::Numeric { kind: VariableType::Continuous, values: x };
-    let design = |on: bool| if on { Design::from_columns(n, &[("x", &col)]).unwrap() } else { Design::intercept(n) };
+    let ln_factorial = counts
+        .iter()
+        .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
+        .collect();
+    let col = Column::Numeric {
+        kind: VariableType::Continuous,
+        values: x,
+    };
+    let design = |on: bool| {
+        if on {
+            Design::from_columns(n, &[("x", &col)]).unwrap()
+        } else {
+            Design::intercept(n)
+        }
+    };
     let (w, z) = (design(with_w), design(with_z));
     let all: Vec<usize> = (0..z.p()).collect();
     let mut seeding = Vec::new();
     let seeding_d = n_gauss + levels.len() + n_counts;
     for i in 0..n {
         seeding.extend(y.get(i..i + n_gauss).unwrap_or(&[]).iter().copied());
-        seeding.extend(codes[i * levels.len()..(i + 1) * levels.len()].iter().map(|c| f64::from(*c % 8)));
+        seeding.extend(
+            codes[i * levels.len()..(i + 1) * levels.len()]
+                .iter()
+                .map(|c| f64::from(*c % 8)),
+        );
         seeding.extend(counts[i * n_counts..(i + 1) * n_counts].iter().map(|c| c.ln_1p()));
     }
     BlockProblem {
@@ -234,7 +259,11 @@ impl BlockProblem {
 fn expected_complete(comps: &impl ComponentFamily, data: &FitData, tau: &[f64], g: usize) -> f64 {
     let mut out = vec![0.0; data.n * g];
     comps.add_log_density(data, &mut out);
-    out.iter().zip(tau).enumerate().map(|(i, (o, t))| if *t > 0.0 { data.weights[i / g] * t * o } else { 0.0 }).sum()
+    out.iter()
+        .zip(tau)
+        .enumerate()
+        .map(|(i, (o, t))| if *t > 0.0 { data.weights[i / g] * t * o } else { 0.0 })
+        .sum()
 }
 
 proptest! {

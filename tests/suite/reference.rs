@@ -114,7 +114,8 @@ fn gaussian_components_match_statsmodels_wls_on_iris() {
         z: &design.x,
         q: design.p(),
         w: &vec![1.0; n],
-        p: 1, ..Default::default()
+        p: 1,
+        ..Default::default()
     };
     let mut comps = GaussianComponents::new(&data, g, CovarianceStructure::UNCONSTRAINED);
     comps.m_step(&data, &tau).unwrap();
@@ -192,7 +193,8 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
         z: &ones,
         q: 1,
         w: &ones,
-        p: 1, ..Default::default()
+        p: 1,
+        ..Default::default()
     };
     let floor = 1e-3 * reference["pooled_min_eigenvalue"].as_f64().unwrap();
     let min_rows = reference["exclusion_rule"]["min_rows"].as_f64().unwrap();

@@ -83,7 +83,8 @@ fn best_fit(y: &[f64], n: usize, options: ModelOptions, starts: usize) -> EmRun 
         z: &ones,
         q: 1,
         w: &ones,
-        p: 1, ..Default::default()
+        p: 1,
+        ..Default::default()
     };
     let placement = super::common::free_placement();
     (0..starts)

@@ -55,12 +55,24 @@ impl ItemComponents {
         let log_prob = levels
             .iter()
             .zip(&terms)
-            .map(|(l, t)| if t.len() == 1 { vec![-(*l as f64).ln(); g * l] } else { Vec::new() })
+            .map(|(l, t)| {
+                if t.len() == 1 {
+                    vec![-(*l as f64).ln(); g * l]
+                } else {
+                    Vec::new()
+                }
+            })
             .collect();
         let coef = levels
             .iter()
             .zip(&terms)
-            .map(|(l, t)| if t.len() == 1 { Vec::new() } else { vec![0.0; g * (l - 1) * t.len()] })
+            .map(|(l, t)| {
+                if t.len() == 1 {
+                    Vec::new()
+                } else {
+                    vec![0.0; g * (l - 1) * t.len()]
+                }
+            })
             .collect();
         ItemComponents {
             g,
@@ -100,7 +112,9 @@ impl ItemComponents {
         let mut z = vec![0.0; self.terms[j].iter().copied().max().unwrap_or(0) + 1];
         z[0] = 1.0;
         let mut eta = Vec::new();
-        (0..l).map(|lv| self.log_probability(j, k, &z, lv, &mut eta).exp()).collect()
+        (0..l)
+            .map(|lv| self.log_probability(j, k, &z, lv, &mut eta).exp())
+            .collect()
     }
 }
 
