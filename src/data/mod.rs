@@ -630,25 +630,7 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
     };
     match &nd.kind {
         VariableType::Categorical { reference, levels } => {
-            let mut found: Vec<String> = Vec::new();
-            for (_, v) in kept {
-                if !found.iter().any(|f| f == v) {
-                    found.push(v.to_string());
-                }
-            }
-            let order = match levels {
-                Some(ls) => {
-                    if let Some((l, v)) = kept.iter().find(|(_, v)| !ls.iter().any(|x| x == v)) {
-                        let mut h = format!("the levels declared in [variables] are: {}", ls.join(", "));
-                        if let Some(s) = did_you_mean(v, ls.iter().map(String::as_str)) {
-                            h = format!("did you mean '{s}'? {h}");
-                        }
-                        return Err(bad(*l, format!("'{v}' is not a level of '{name}'"), h));
-                    }
-                    ls.clone()
-                }
-                None => sort_levels(found.clone()),
-            };
+            let (order, found) = level_order(raw, nd, levels.as_deref(), kept, &format!("'{name}'"))?;
             let used: Vec<&String> = order.iter().filter(|l| found.contains(l)).collect();
             if used.len() < 2 {
                 return Err(Error::input(
@@ -761,29 +743,7 @@ fn parse_item(
             vec!["0".to_string(), "1".to_string()]
         }
         VariableType::Categorical { levels, reference } => {
-            let mut found: Vec<String> = Vec::new();
-            for (_, v) in &present {
-                if !found.iter().any(|f| f == v) {
-                    found.push(v.to_string());
-                }
-            }
-            let mut order = match levels {
-                Some(ls) => {
-                    if let Some((l, v)) = present.iter().find(|(_, v)| !ls.iter().any(|x| x == v)) {
-                        let mut h = format!("the levels declared in [variables] are: {}", ls.join(", "));
-                        if let Some(s) = did_you_mean(v, ls.iter().map(String::as_str)) {
-                            h = format!("did you mean '{s}'? {h}");
-                        }
-                        return Err(Error::input(
-                            Diagnostic::new(format!("'{v}' is not a level of item '{name}'"))
-                                .at(raw.field_location(*l, nd.index))
-                                .help(h),
-                        ));
-                    }
-                    ls.clone()
-                }
-                None => sort_levels(found),
-            };
+            let (mut order, _) = level_order(raw, nd, levels.as_deref(), &present, &format!("item '{name}'"))?;
             if let Some(r) = reference {
                 // The reference level is the logits' baseline: put it first.
                 if let Some(pos) = order.iter().position(|l| l == r) {
@@ -833,6 +793,43 @@ fn parse_item(
         })
         .collect();
     Ok((levels, codes))
+}
+
+/// The levels of a categorical column over its present values `kept`, and the levels
+/// found there (in order of appearance): the declared `levels` when given (a value outside
+/// them is an error naming its line and column; `what` names the column in it), else the
+/// levels found in natural order.
+fn level_order(
+    raw: &Raw,
+    nd: &Needed,
+    levels: Option<&[String]>,
+    kept: &[(usize, &str)],
+    what: &str,
+) -> Result<(Vec<String>, Vec<String>)> {
+    let mut found: Vec<String> = Vec::new();
+    for (_, v) in kept {
+        if !found.iter().any(|f| f == v) {
+            found.push(v.to_string());
+        }
+    }
+    let order = match levels {
+        Some(ls) => {
+            if let Some((l, v)) = kept.iter().find(|(_, v)| !ls.iter().any(|x| x == v)) {
+                let mut h = format!("the levels declared in [variables] are: {}", ls.join(", "));
+                if let Some(s) = did_you_mean(v, ls.iter().map(String::as_str)) {
+                    h = format!("did you mean '{s}'? {h}");
+                }
+                return Err(Error::input(
+                    Diagnostic::new(format!("'{v}' is not a level of {what}"))
+                        .at(raw.field_location(*l, nd.index))
+                        .help(h),
+                ));
+            }
+            ls.to_vec()
+        }
+        None => sort_levels(found.clone()),
+    };
+    Ok((order, found))
 }
 
 /// Levels in natural order: numerically when every level is a number, else by text.
