@@ -509,22 +509,13 @@ pub fn compare(
     }
 }
 
-/// Item levels shown in profiles: level 1 of a binary item, every level otherwise.
-fn shown_levels(levels: &[String]) -> Vec<usize> {
-    if levels.len() == 2 {
-        vec![1]
-    } else {
-        (0..levels.len()).collect()
-    }
-}
-
 /// The profile columns of a dataset, in indicator-block order: continuous indicators,
 /// item levels, count rates.
 pub fn profile_columns(data: &Dataset) -> Vec<String> {
     let mut out = data.gaussian_names.clone();
     if let Some(b) = &data.items {
         for (name, levels) in b.names.iter().zip(&b.levels) {
-            for l in shown_levels(levels) {
+            for l in crate::data::ItemBlock::shown_levels(levels) {
                 out.push(format!("{name}={}", levels[l]));
             }
         }
@@ -563,7 +554,7 @@ fn cluster_profile(
     if let (Some(ic), Some(b)) = (&comps.items, &data.items) {
         for (j, levels) in b.levels.iter().enumerate() {
             let reference = ic.reference_probabilities(j, k);
-            for l in shown_levels(levels) {
+            for l in crate::data::ItemBlock::shown_levels(levels) {
                 at_ref.push(reference[l]);
                 avg_fns.push(Box::new(move |i| {
                     let mut eta = Vec::new();

@@ -102,6 +102,16 @@ impl ItemBlock {
     pub fn is_empty(&self) -> bool {
         self.names.is_empty()
     }
+
+    /// The levels that stand for an item in profiles and in seeding distances: level 1 of
+    /// a binary item (level 0 is its complement), every level otherwise.
+    pub fn shown_levels(levels: &[String]) -> Vec<usize> {
+        if levels.len() == 2 {
+            vec![1]
+        } else {
+            (0..levels.len()).collect()
+        }
+    }
 }
 
 /// Count indicators and the optional exposure.
@@ -109,12 +119,12 @@ impl ItemBlock {
 pub struct CountBlock {
     /// Count names, in spec order.
     pub names: Vec<String>,
-    /// Counts, row-major n×C.
+    /// Counts, column by column: count c of row i at `y[c * n + i]`.
     pub y: Vec<f64>,
-    /// log(y!) of every count, row-major n×C.
+    /// log(y!) of every count, laid out as `y`.
     pub ln_factorial: Vec<f64>,
-    /// Exposure column name.
-    pub exposure: Option<String>,
+    /// Exposure (person-time) per row, if the spec names an exposure column.
+    pub exposure: Option<Vec<f64>>,
     /// log(exposure) per row: the offset of every count regression.
     pub log_exposure: Option<Vec<f64>>,
 }
@@ -142,12 +152,7 @@ impl Dataset {
         if let Some(b) = &self.items {
             let nj = b.len();
             for (j, levels) in b.levels.iter().enumerate() {
-                let shown: Vec<usize> = if levels.len() == 2 {
-                    vec![1]
-                } else {
-                    (0..levels.len()).collect()
-                };
-                for l in shown {
+                for l in ItemBlock::shown_levels(levels) {
                     let raw: Vec<Option<f64>> = (0..n)
                         .map(|i| {
                             let c = b.codes[i * nj + j];
@@ -161,10 +166,7 @@ impl Dataset {
             }
         }
         if let Some(b) = &self.counts {
-            let nc = b.names.len();
-            for c in 0..nc {
-                cols.push((0..n).map(|i| b.y[i * nc + c].ln_1p()).collect());
-            }
+            cols.extend(b.y.chunks_exact(n).map(|col| col.iter().map(|y| y.ln_1p()).collect()));
         }
         let m = cols.len();
         let mut out = vec![0.0; n * m];
@@ -468,9 +470,7 @@ pub fn load(study: &Study) -> Result<Dataset> {
                     unreachable!("counts are numeric")
                 };
                 let block = counts.as_mut().expect("counts were counted");
-                for (i, v) in values.iter().enumerate() {
-                    block.y[i * n_counts + count_pos] = *v;
-                }
+                block.y[count_pos * rows_used..(count_pos + 1) * rows_used].copy_from_slice(values);
                 block.names.push(nd.col.name.clone());
                 count_pos += 1;
             }
@@ -491,8 +491,8 @@ pub fn load(study: &Study) -> Result<Dataset> {
                     }
                 }
                 let block = counts.as_mut().expect("an exposure needs counts");
-                block.exposure = Some(nd.col.name.clone());
                 block.log_exposure = Some(values.iter().map(|e| e.ln()).collect());
+                block.exposure = Some(values);
             }
             Role::Weight => {
                 let Column::Numeric { values, .. } = parsed else {

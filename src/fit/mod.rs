@@ -10,6 +10,7 @@ pub mod starts;
 
 use crate::data::{Dataset, Design};
 use crate::error::{Error, Result};
+use crate::model::family::items::ItemRows;
 use crate::model::family::{Components, CountComponents, CovarianceStructure, GaussianComponents, ItemComponents};
 use crate::model::gating::Gating;
 use crate::model::{FitData, Model};
@@ -41,6 +42,10 @@ pub struct PreparedPlacement {
     pub item_levels: Vec<usize>,
     /// Per count, the columns of `components` its regression uses (intercept first).
     pub count_terms: Vec<Vec<usize>>,
+    /// Per item, the arrays its M-step reuses at every EM iteration.
+    pub item_rows: Vec<ItemRows>,
+    /// Per count with covariates, its design on its columns (empty without covariates).
+    pub count_x: Vec<Vec<f64>>,
 }
 
 /// Columns of `design` that act on `indicator` under `placement`: the intercept and every
@@ -90,17 +95,33 @@ pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> 
             let count_terms = data.counts.as_ref().map_or_else(Vec::new, |b| {
                 b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
             });
+            let item_levels: Vec<usize> = data
+                .items
+                .as_ref()
+                .map_or_else(Vec::new, |b| b.levels.iter().map(Vec::len).collect());
+            let item_rows = data.items.as_ref().map_or_else(Vec::new, |b| {
+                ItemRows::build(&b.codes, &item_levels, &components.x, components.p(), &item_terms)
+            });
+            let count_x = count_terms
+                .iter()
+                .map(|cols| {
+                    if cols.len() > 1 {
+                        crate::model::design_rows(&components.x, components.p(), cols)
+                    } else {
+                        Vec::new()
+                    }
+                })
+                .collect();
             Ok(PreparedPlacement {
                 placement: p.clone(),
                 gating: design(&p.gating.iter().collect::<Vec<_>>())?,
                 components,
                 gaussian,
                 item_terms,
-                item_levels: data
-                    .items
-                    .as_ref()
-                    .map_or_else(Vec::new, |b| b.levels.iter().map(Vec::len).collect()),
+                item_levels,
                 count_terms,
+                item_rows,
+                count_x,
             })
         })
         .collect()
@@ -242,15 +263,17 @@ pub fn fit_data<'a>(data: &'a Dataset, prepared: &'a PreparedPlacement) -> FitDa
             z: &comp.x,
             qz: comp.p(),
             terms: &prepared.item_terms,
+            rows: &prepared.item_rows,
         }),
         counts: data.counts.as_ref().map(|b| crate::model::CountData {
             names: &b.names,
             y: &b.y,
             ln_factorial: &b.ln_factorial,
-            c: b.names.len(),
             z: &comp.x,
             qz: comp.p(),
             terms: &prepared.count_terms,
+            x: &prepared.count_x,
+            exposure: b.exposure.as_deref(),
             log_exposure: b.log_exposure.as_deref(),
         }),
     }

@@ -55,6 +55,8 @@ pub struct ItemData<'a> {
     pub qz: usize,
     /// Per item, the design columns its logits use (column 0, the intercept, first).
     pub terms: &'a [Vec<usize>],
+    /// Per item, the arrays its M-step reuses at every EM iteration.
+    pub rows: &'a [family::items::ItemRows],
 }
 
 /// The arrays of the count block.
@@ -62,20 +64,30 @@ pub struct ItemData<'a> {
 pub struct CountData<'a> {
     /// Count names (for messages).
     pub names: &'a [String],
-    /// Counts, n×C row-major.
+    /// Counts, column by column: count c of row i at `y[c * n + i]`.
     pub y: &'a [f64],
-    /// log(y!) per entry, n×C.
+    /// log(y!) of every count, laid out as `y`.
     pub ln_factorial: &'a [f64],
-    /// Number of count columns.
-    pub c: usize,
     /// The placement's component design, n×qz (intercept first).
     pub z: &'a [f64],
     /// Its columns.
     pub qz: usize,
     /// Per count column, the design columns its regression uses (intercept first).
     pub terms: &'a [Vec<usize>],
+    /// Per count column with covariates, its design on those columns (n×q, row-major;
+    /// empty for a count without covariates), built once by [`design_rows`].
+    pub x: &'a [Vec<f64>],
+    /// Exposure per row, if an exposure is given.
+    pub exposure: Option<&'a [f64]>,
     /// log exposure per row (the offset), if an exposure is given.
     pub log_exposure: Option<&'a [f64]>,
+}
+
+/// Rows of a row-major design `z` (n×qz) restricted to the columns `cols`, row-major.
+pub fn design_rows(z: &[f64], qz: usize, cols: &[usize]) -> Vec<f64> {
+    z.chunks_exact(qz)
+        .flat_map(|row| cols.iter().map(|a| row[*a]))
+        .collect()
 }
 
 /// Parameters of one mixture of experts.

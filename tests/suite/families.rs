@@ -6,6 +6,7 @@ use cohortmix::data::{Column, Design, MISSING_ITEM};
 use cohortmix::fit::em::{self, EmSettings};
 use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
+use cohortmix::model::family::items::ItemRows;
 use cohortmix::model::family::{ComponentFamily, CountComponents, CovarianceStructure, ItemComponents, Naming};
 use cohortmix::model::{CountData, FitData, ItemData};
 use cohortmix::rng::Stream;
@@ -69,7 +70,8 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
         .iter()
         .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
         .collect();
-    let log_service: Vec<f64> = parsed(&header, &cols, "service").iter().map(|s| s.ln()).collect();
+    let service = parsed(&header, &cols, "service");
+    let log_service: Vec<f64> = service.iter().map(|s| s.ln()).collect();
     let weights = parsed(&header, &cols, "weight");
     let labels: Vec<usize> = parsed(&header, &cols, "cluster").iter().map(|v| *v as usize).collect();
     let terms = vec![(0..design.p()).collect::<Vec<_>>()];
@@ -83,10 +85,11 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
             names: &names,
             y: &y,
             ln_factorial: &ln_factorial,
-            c: 1,
             z: &design.x,
             qz: design.p(),
             terms: &terms,
+            x: &[design.x.clone()],
+            exposure: Some(&service),
             log_exposure: Some(&log_service),
         }),
         ..Default::default()
@@ -166,6 +169,7 @@ fn item_logits_match_statsmodels_on_birthwt() {
         let names = vec![item.to_string()];
         let level_counts = vec![levels];
         let term_lists = vec![terms.clone()];
+        let item_rows = ItemRows::build(&codes, &level_counts, &design.x, design.p(), &term_lists);
         let data = FitData {
             n,
             weights: &weights,
@@ -178,6 +182,7 @@ fn item_logits_match_statsmodels_on_birthwt() {
                 z: &design.x,
                 qz: design.p(),
                 terms: &term_lists,
+                rows: &item_rows,
             }),
             ..Default::default()
         };
@@ -248,6 +253,7 @@ fn best_latent_class_loglik(codes: &[u16], counts: &[f64], j: usize, g: usize) -
     let terms = vec![vec![0usize]; j];
     let names: Vec<String> = (0..j).map(|i| format!("item{i}")).collect();
     let ones = vec![1.0; n];
+    let item_rows = ItemRows::build(codes, &levels, &ones, 1, &terms);
     let data = FitData {
         n,
         weights: counts,
@@ -260,6 +266,7 @@ fn best_latent_class_loglik(codes: &[u16], counts: &[f64], j: usize, g: usize) -
             z: &ones,
             qz: 1,
             terms: &terms,
+            rows: &item_rows,
         }),
         ..Default::default()
     };
@@ -364,6 +371,7 @@ fn missing_items_are_skipped_in_the_likelihood() {
     let terms = vec![vec![0usize]; 4];
     let names: Vec<String> = (0..4).map(|i| format!("item{i}")).collect();
     let ones = vec![1.0; n];
+    let item_rows = ItemRows::build(&codes, &levels, &ones, 1, &terms);
     let data = FitData {
         n,
         weights: &counts,
@@ -376,6 +384,7 @@ fn missing_items_are_skipped_in_the_likelihood() {
             z: &ones,
             qz: 1,
             terms: &terms,
+            rows: &item_rows,
         }),
         ..Default::default()
     };

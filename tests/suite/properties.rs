@@ -5,9 +5,10 @@ use cohortmix::data::{Column, Design};
 use cohortmix::fit::em::{self, EmSettings};
 use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
+use cohortmix::model::family::items::ItemRows;
 use cohortmix::model::family::{ComponentFamily, CovarianceStructure};
 use cohortmix::model::gating::{logit_objective, logit_score_hessian};
-use cohortmix::model::FitData;
+use cohortmix::model::{design_rows, FitData};
 use cohortmix::rng::Stream;
 use cohortmix::spec::VariableType;
 use proptest::prelude::*;
@@ -131,6 +132,9 @@ struct BlockProblem {
     z: Design,
     item_terms: Vec<Vec<usize>>,
     count_terms: Vec<Vec<usize>>,
+    item_rows: Vec<ItemRows>,
+    count_x: Vec<Vec<f64>>,
+    exposure: Vec<f64>,
     seeding: Vec<f64>,
     seeding_d: usize,
 }
@@ -172,7 +176,12 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
             counts.push(s.poisson(mean) as f64);
         }
     }
-    let ln_factorial = counts
+    // The model reads counts column by column.
+    let counts_by_column: Vec<f64> = (0..n_counts)
+        .flat_map(|c| (0..n).map(move |i| (i, c)))
+        .map(|(i, c)| counts[i * n_counts + c])
+        .collect();
+    let ln_factorial = counts_by_column
         .iter()
         .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
         .collect();
@@ -200,18 +209,32 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
         );
         seeding.extend(counts[i * n_counts..(i + 1) * n_counts].iter().map(|c| c.ln_1p()));
     }
+    let item_terms = vec![all.clone(); levels.len()];
+    let count_terms = vec![all.clone(); n_counts];
     BlockProblem {
         n,
         weights,
         y,
         d: n_gauss,
-        item_terms: vec![all.clone(); levels.len()],
-        count_terms: vec![all; n_counts],
+        item_rows: ItemRows::build(&codes, &levels, &z.x, z.p(), &item_terms),
+        count_x: count_terms
+            .iter()
+            .map(|cols| {
+                if cols.len() > 1 {
+                    design_rows(&z.x, z.p(), cols)
+                } else {
+                    Vec::new()
+                }
+            })
+            .collect(),
+        exposure: log_exposure.iter().map(|v| v.exp()).collect(),
+        item_terms,
+        count_terms,
         item_names: (0..levels.len()).map(|j| format!("item{j}")).collect(),
         count_names: (0..n_counts).map(|j| format!("count{j}")).collect(),
         codes,
         levels,
-        counts,
+        counts: counts_by_column,
         ln_factorial,
         log_exposure,
         w,
@@ -239,15 +262,17 @@ impl BlockProblem {
                 z: &self.z.x,
                 qz: self.z.p(),
                 terms: &self.item_terms,
+                rows: &self.item_rows,
             }),
             counts: (!self.count_names.is_empty()).then(|| cohortmix::model::CountData {
                 names: &self.count_names,
                 y: &self.counts,
                 ln_factorial: &self.ln_factorial,
-                c: self.count_names.len(),
                 z: &self.z.x,
                 qz: self.z.p(),
                 terms: &self.count_terms,
+                x: &self.count_x,
+                exposure: Some(&self.exposure),
                 log_exposure: Some(&self.log_exposure),
             }),
         }

@@ -62,14 +62,14 @@ impl CountComponents {
 impl ComponentFamily for CountComponents {
     fn add_log_density(&self, data: &FitData, out: &mut [f64]) {
         let ct = data.counts.expect("count data");
-        let (g, nc, qz) = (self.g, self.terms.len(), ct.qz);
-        for i in 0..data.n {
+        let (g, nc, qz, n) = (self.g, self.terms.len(), ct.qz, data.n);
+        for i in 0..n {
             let z = &ct.z[i * qz..(i + 1) * qz];
             let offset = ct.log_exposure.map_or(0.0, |o| o[i]);
             let row = &mut out[i * g..(i + 1) * g];
             for c in 0..nc {
-                let y = ct.y[i * nc + c];
-                let lf = ct.ln_factorial[i * nc + c];
+                let y = ct.y[c * n + i];
+                let lf = ct.ln_factorial[c * n + i];
                 for (k, o) in row.iter_mut().enumerate() {
                     let eta = self.eta(c, k, z) + offset;
                     *o += if y == 0.0 { -eta.exp() } else { y * eta - eta.exp() - lf };
@@ -80,25 +80,23 @@ impl ComponentFamily for CountComponents {
 
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
         let ct = data.counts.expect("count data");
-        let (g, nc, qz, n) = (self.g, self.terms.len(), ct.qz, data.n);
-        let exposure: Vec<f64> = match ct.log_exposure {
-            Some(o) => o.iter().map(|v| v.exp()).collect(),
-            None => vec![1.0; n],
+        let (g, nc, n) = (self.g, self.terms.len(), data.n);
+        let ones;
+        let exposure = match ct.exposure {
+            Some(e) => e,
+            None => {
+                ones = vec![1.0; n];
+                &ones
+            }
         };
         for c in 0..nc {
             let q = self.terms[c].len();
-            let y: Vec<f64> = (0..n).map(|i| ct.y[i * nc + c]).collect();
-            let x: Vec<f64> = if q > 1 {
-                (0..n)
-                    .flat_map(|i| self.terms[c].iter().map(move |a| ct.z[i * qz + a]))
-                    .collect()
-            } else {
-                Vec::new()
-            };
+            let y = &ct.y[c * n..(c + 1) * n];
+            let x = &ct.x[c];
             for k in 0..g {
                 let v: Vec<f64> = (0..n).map(|i| data.weights[i] * tau[i * g + k]).collect();
-                let sy: f64 = v.iter().zip(&y).map(|(a, b)| a * b).sum();
-                let se: f64 = v.iter().zip(&exposure).map(|(a, b)| a * b).sum();
+                let sy: f64 = v.iter().zip(y).map(|(a, b)| a * b).sum();
+                let se: f64 = v.iter().zip(exposure).map(|(a, b)| a * b).sum();
                 if !(se > 0.0) {
                     return Err(Degeneracy {
                         cluster: k + 1,
@@ -126,9 +124,9 @@ impl ComponentFamily for CountComponents {
                     start[0] = (sy / se).ln();
                 }
                 let rows = PoissonRows {
-                    x: &x,
+                    x,
                     q,
-                    y: &y,
+                    y,
                     offset: ct.log_exposure,
                     weights: &v,
                 };

@@ -140,15 +140,15 @@ impl ComponentFamily for ItemComponents {
 
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
         let it = data.items.expect("item data");
-        let (g, nj, qz, n) = (self.g, self.levels.len(), it.qz, data.n);
+        let (g, nj) = (self.g, self.levels.len());
         let alpha = self.smoothing;
         self.empty_cells = 0;
-        for j in 0..nj {
+        for (j, fixed) in it.rows.iter().enumerate() {
             let l = self.levels[j];
-            let observed: Vec<usize> = (0..n).filter(|i| it.codes[i * nj + j] != MISSING_ITEM).collect();
+            let observed = &fixed.observed;
             if self.terms[j].len() == 1 {
                 let mut counts = vec![0.0; g * l];
-                for &i in &observed {
+                for &i in observed {
                     let c = usize::from(it.codes[i * nj + j]);
                     for k in 0..g {
                         counts[k * l + c] += data.weights[i] * tau[i * g + k];
@@ -169,21 +169,11 @@ impl ComponentFamily for ItemComponents {
                 }
                 continue;
             }
-            // Direct effects: a baseline-category logit per cluster on the item's terms.
+            // Direct effects: a baseline-category logit per cluster on the item's terms,
+            // with the smoothing's pseudo-observations as extra rows when it is on.
             let q = self.terms[j].len();
-            let pseudo = if alpha > 0.0 { l } else { 0 };
-            let rows = observed.len() + pseudo;
-            let mut x = Vec::with_capacity(rows * q);
-            let mut onehot = vec![0.0; rows * l];
-            for (r, &i) in observed.iter().enumerate() {
-                x.extend(self.terms[j].iter().map(|a| it.z[i * qz + a]));
-                onehot[r * l + usize::from(it.codes[i * nj + j])] = 1.0;
-            }
-            for lv in 0..pseudo {
-                x.push(1.0);
-                x.extend(std::iter::repeat_n(0.0, q - 1));
-                onehot[(observed.len() + lv) * l + lv] = 1.0;
-            }
+            let rows = observed.len() + if alpha > 0.0 { l } else { 0 };
+            let (x, onehot) = (&fixed.x[..rows * q], &fixed.onehot[..rows * l]);
             let mut v = vec![alpha / l as f64; rows];
             for k in 0..g {
                 let mut cell = vec![0.0; l];
@@ -198,7 +188,7 @@ impl ComponentFamily for ItemComponents {
                 self.empty_cells += cell.iter().filter(|c| **c <= 1e-12 * total).count();
                 let block = (k * (l - 1) * q)..((k + 1) * (l - 1) * q);
                 let start = self.coef[j][block.clone()].to_vec();
-                let fit = fit_multinomial_logit(&x, q, &onehot, l, &v, 0.0, &start, 1);
+                let fit = fit_multinomial_logit(x, q, onehot, l, &v, 0.0, &start, 1);
                 if fit.gamma.iter().any(|b| !(b.abs() <= SEPARATION_LOGIT)) {
                     return Err(Degeneracy {
                         cluster: k + 1,
@@ -304,6 +294,54 @@ impl ItemComponents {
             cluster: k + 1,
             reason: format!("no row in it has a value of item '{}'", self.names[j]),
         }
+    }
+}
+
+/// The arrays of one item's M-step that stay fixed during EM, built once per placement
+/// by [`ItemRows::build`].
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct ItemRows {
+    /// Rows where the item is observed.
+    pub observed: Vec<usize>,
+    /// Items with covariates: the observed rows' design on the item's terms, then one
+    /// pseudo-row per level at the reference values (intercept alone) for smoothing;
+    /// (observed + L)×q, row-major. Empty for items without covariates.
+    pub x: Vec<f64>,
+    /// The matching one-hot responses, (observed + L)×L. Empty without covariates.
+    pub onehot: Vec<f64>,
+}
+
+impl ItemRows {
+    /// One entry per item, from the level codes (n×J), levels per item, the component
+    /// design (n×qz) and each item's design columns.
+    pub fn build(codes: &[u16], levels: &[usize], z: &[f64], qz: usize, terms: &[Vec<usize>]) -> Vec<ItemRows> {
+        let nj = levels.len();
+        let n = if nj == 0 { 0 } else { codes.len() / nj };
+        (0..nj)
+            .map(|j| {
+                let (l, cols) = (levels[j], &terms[j]);
+                let observed: Vec<usize> = (0..n).filter(|i| codes[i * nj + j] != MISSING_ITEM).collect();
+                if cols.len() == 1 {
+                    return ItemRows {
+                        observed,
+                        ..ItemRows::default()
+                    };
+                }
+                let rows = observed.len() + l;
+                let mut x = Vec::with_capacity(rows * cols.len());
+                let mut onehot = vec![0.0; rows * l];
+                for (r, &i) in observed.iter().enumerate() {
+                    x.extend(cols.iter().map(|a| z[i * qz + a]));
+                    onehot[r * l + usize::from(codes[i * nj + j])] = 1.0;
+                }
+                for lv in 0..l {
+                    x.push(1.0);
+                    x.extend(std::iter::repeat_n(0.0, cols.len() - 1));
+                    onehot[(observed.len() + lv) * l + lv] = 1.0;
+                }
+                ItemRows { observed, x, onehot }
+            })
+            .collect()
     }
 }
 
