@@ -13,6 +13,7 @@ pub mod assign;
 
 use crate::data::{Dataset, Design};
 use crate::fit::{FitResult, PreparedPlacement};
+use crate::model::family::Components;
 use crate::model::gating::Gating;
 use serde::Serialize;
 
@@ -536,59 +537,55 @@ fn cluster_profile(
 ) -> (Vec<f64>, Vec<f64>) {
     let g = best.run.model.clusters();
     let comps = &best.run.model.components;
-    let tau = &best.run.tau;
-    let weights = &data.weights;
-    let mut at_ref = Vec::new();
-    let mut avg_fns: Vec<Box<dyn Fn(usize) -> f64 + '_>> = Vec::new();
-    if let Some(gc) = &comps.gaussian {
-        let (d, q) = (gc.d, gc.q);
-        at_ref.extend((0..d).map(|j| gc.coef[k * q * d + j]));
-        for j in 0..d {
-            avg_fns.push(Box::new(move |i| {
-                let z = &pp.gaussian.x[i * q..(i + 1) * q];
-                (0..q).map(|a| z[a] * gc.coef[(k * q + a) * d + j]).sum()
-            }));
-        }
-    }
-    let qz = pp.components.p();
-    if let (Some(ic), Some(b)) = (&comps.items, &data.items) {
-        for (j, levels) in b.levels.iter().enumerate() {
-            let reference = ic.reference_probabilities(j, k);
-            for l in crate::data::ItemBlock::shown_levels(levels) {
-                at_ref.push(reference[l]);
-                avg_fns.push(Box::new(move |i| {
-                    let mut eta = Vec::new();
-                    ic.log_probability(j, k, &pp.components.x[i * qz..(i + 1) * qz], l, &mut eta)
-                        .exp()
-                }));
-            }
-        }
-    }
-    if let Some(cc) = &comps.counts {
-        for c in 0..cc.names.len() {
-            let q = cc.terms[c].len();
-            at_ref.push(cc.coef[c][k * q].exp());
-            avg_fns.push(Box::new(move |i| {
-                cc.eta(c, k, &pp.components.x[i * qz..(i + 1) * qz]).exp()
-            }));
-        }
-    }
-    let mut avg = vec![0.0; avg_fns.len()];
+    let levels = data.items.as_ref().map(|b| &b.levels[..]);
+    let (qg, qz) = (pp.gaussian.p(), pp.components.p());
+    // On the fitting scale the reference covariate values are the intercept alone.
+    let unit = |q: usize| (0..q).map(|a| f64::from(u8::from(a == 0))).collect::<Vec<f64>>();
+    let mut at_reference = Vec::new();
+    profile_at(comps, levels, k, &unit(qg), &unit(qz), &mut at_reference);
+    let mut avg = vec![0.0; at_reference.len()];
+    let mut row = Vec::with_capacity(avg.len());
     let mut total = 0.0;
-    for (i, w) in weights.iter().enumerate() {
-        let v = w * tau[i * g + k];
+    for (i, w) in data.weights.iter().enumerate() {
+        let v = w * best.run.tau[i * g + k];
         if v == 0.0 {
             continue;
         }
         total += v;
-        for (a, f) in avg.iter_mut().zip(&avg_fns) {
-            *a += v * f(i);
+        let (zg, z) = (
+            &pp.gaussian.x[i * qg..(i + 1) * qg],
+            &pp.components.x[i * qz..(i + 1) * qz],
+        );
+        profile_at(comps, levels, k, zg, z, &mut row);
+        for (a, r) in avg.iter_mut().zip(&row) {
+            *a += v * r;
         }
     }
     for a in avg.iter_mut() {
         *a /= total.max(f64::MIN_POSITIVE);
     }
-    (at_ref, avg)
+    (at_reference, avg)
+}
+
+/// Cluster k's profile values (in [`profile_columns`] order) at one row's designs: `zg`
+/// for the gaussian block, `z` the whole component design (items and counts).
+fn profile_at(comps: &Components, levels: Option<&[Vec<String>]>, k: usize, zg: &[f64], z: &[f64], out: &mut Vec<f64>) {
+    out.clear();
+    if let Some(gc) = &comps.gaussian {
+        out.resize(gc.d, 0.0);
+        gc.mean(k, zg, out);
+    }
+    if let (Some(ic), Some(levels)) = (&comps.items, levels) {
+        let mut eta = Vec::new();
+        for (j, item_levels) in levels.iter().enumerate() {
+            for l in crate::data::ItemBlock::shown_levels(item_levels) {
+                out.push(ic.log_probability(j, k, z, l, &mut eta).exp());
+            }
+        }
+    }
+    if let Some(cc) = &comps.counts {
+        out.extend((0..cc.names.len()).map(|c| cc.eta(c, k, z).exp()));
+    }
 }
 
 /// Effect curves for the first continuous gating covariate, by the levels of the first

@@ -607,6 +607,10 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
     };
 
     // [search]
+    let n_gaussian = indicator_kinds
+        .iter()
+        .filter(|k| **k == IndicatorKind::Gaussian)
+        .count();
     let default_span = raw
         .search
         .as_ref()
@@ -625,21 +629,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 variance_floor: 0.0,
             },
         ),
-        Some(s) => search_settings(
-            &ctx,
-            s.get_ref(),
-            indicator_kinds
-                .iter()
-                .filter(|k| **k == IndicatorKind::Gaussian)
-                .count(),
-        )?,
+        Some(s) => search_settings(&ctx, s.get_ref(), n_gaussian)?,
     };
 
-    // With one continuous indicator only the variance can differ between clusters.
-    let n_gaussian = indicator_kinds
-        .iter()
-        .filter(|k| **k == IndicatorKind::Gaussian)
-        .count();
+    // With one continuous indicator only the variance can differ between clusters: the
+    // unconstrained structure (the default, or asked for) is then the spherical one.
     let mut search = search;
     if n_gaussian == 1 && search.structures == [CovarianceStructure::UNCONSTRAINED] {
         search.structures = vec![CovarianceStructure::new(
@@ -879,7 +873,8 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
 /// `covariance = "all" | "unconstrained" | [{ volume = ..., shape = ..., orientation = ... }, ...]`.
 ///
 /// With one indicator only the volume can differ: "all" then means the two spherical
-/// structures, and a listed structure must be spherical.
+/// structures, and a listed structure must be spherical (`validate` maps "unconstrained"
+/// to the spherical one).
 fn covariance_structures(ctx: &Ctx, cov: &Spanned<toml::Value>, d: usize) -> Result<Vec<CovarianceStructure>> {
     let hint = "write covariance = \"all\", \"unconstrained\", or a list such as \
                 [{ volume = \"equal\", shape = \"varying\", orientation = \"axes\" }]";
@@ -963,13 +958,6 @@ fn covariance_structures(ctx: &Ctx, cov: &Spanned<toml::Value>, d: usize) -> Res
                     .help(hint),
             ))
         }
-    }
-    if d == 1 && out == [CovarianceStructure::UNCONSTRAINED] {
-        out = vec![CovarianceStructure::new(
-            Volume::Varying,
-            Shape::Spherical,
-            Orientation::Axes,
-        )];
     }
     Ok(out)
 }
@@ -1268,6 +1256,24 @@ mod tests {
         ))
         .unwrap();
         assert_eq!(ok.placements[0].proportions, Proportions::Fixed(vec![0.5, 0.5]));
+    }
+
+    #[test]
+    fn one_continuous_indicator_fits_the_spherical_structure() {
+        let one = "[study]\ntitle = \"t\"\ndata = \"d.csv\"\n[indicators]\ncolumns = [\"a\"]\n";
+        let spherical = vec![CovarianceStructure::new(
+            Volume::Varying,
+            Shape::Spherical,
+            Orientation::Axes,
+        )];
+        assert_eq!(spec(one).unwrap().search.structures, spherical);
+        let asked = spec(&format!("{one}[search]\ncovariance = \"unconstrained\"\n")).unwrap();
+        assert_eq!(asked.search.structures, spherical);
+        // Two continuous indicators keep the unconstrained default.
+        assert_eq!(
+            spec(BASE).unwrap().search.structures,
+            vec![CovarianceStructure::UNCONSTRAINED]
+        );
     }
 
     #[test]
