@@ -61,3 +61,20 @@ pub fn free_placement() -> cohortmix::spec::Placement {
         acts_on: Default::default(),
     }
 }
+
+/// The value of a named parameter (panics, naming it, when there is none).
+pub fn param_value(
+    params: &[cohortmix::model::family::Parameter],
+    block: &str,
+    cluster: usize,
+    indicator: Option<&str>,
+    term: Option<&str>,
+) -> f64 {
+    params
+        .iter()
+        .find(|p| {
+            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
+        })
+        .unwrap_or_else(|| panic!("no parameter {block} {cluster} {indicator:?} {term:?}"))
+        .value
+}

@@ -47,6 +47,14 @@ fn hard(labels: &[usize], g: usize) -> Vec<f64> {
     tau
 }
 
+/// Weighted log-likelihood of the rows labelled k, from two-cluster log-densities `ll`.
+fn hard_loglik(ll: &[f64], labels: &[usize], weights: &[f64], k: usize) -> f64 {
+    (0..labels.len())
+        .filter(|i| labels[*i] == k)
+        .map(|i| weights[i] * ll[i * 2 + k])
+        .sum()
+}
+
 fn parsed(header: &[String], cols: &[Vec<String>], name: &str) -> Vec<f64> {
     col(header, cols, name).iter().map(|v| v.parse().unwrap()).collect()
 }
@@ -115,18 +123,13 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
             .iter()
             .zip(floats(&case["coefficients"]))
         {
-            let got = params
-                .iter()
-                .find(|p| p.block == "count_log_rate" && p.cluster == k + 1 && p.term.as_deref() == term.as_str())
-                .unwrap_or_else(|| panic!("no coefficient {term}"))
-                .value;
+            let got = param_value(&params, "count_log_rate", k + 1, Some("incidents"), term.as_str());
             worst = worst.min(digits(got, want));
         }
-        let loglik: f64 = (0..n)
-            .filter(|i| labels[*i] == k)
-            .map(|i| weights[i] * ll[i * 2 + k])
-            .sum();
-        worst = worst.min(digits(loglik, case["loglik"].as_f64().unwrap()));
+        worst = worst.min(digits(
+            hard_loglik(&ll, &labels, &weights, k),
+            case["loglik"].as_f64().unwrap(),
+        ));
     }
     println!("ships Poisson: coefficients and loglik agree to {worst:.1} significant digits");
     assert!(worst >= 6.0, "only {worst:.1} digits");
@@ -206,26 +209,17 @@ fn item_logits_match_statsmodels_on_birthwt() {
             for (lv, coefs) in per_level.iter().enumerate() {
                 let level = &level_names[0][lv + 1];
                 for (term, want) in case["terms"].as_array().unwrap().iter().zip(coefs) {
-                    let got = params
-                        .iter()
-                        .find(|p| {
-                            p.block == "item_logit"
-                                && p.cluster == k + 1
-                                && p.indicator.as_deref() == Some(&format!("{item}={level}"))
-                                && p.term.as_deref() == term.as_str()
-                        })
-                        .unwrap_or_else(|| panic!("no {item}={level} {term}"))
-                        .value;
+                    let indicator = format!("{item}={level}");
+                    let got = param_value(&params, "item_logit", k + 1, Some(&indicator), term.as_str());
                     worst = worst.min(digits(got, *want));
                 }
             }
             let mut ll = vec![0.0; n * 2];
             comps.add_log_density(&data, &mut ll);
-            let loglik: f64 = (0..n)
-                .filter(|i| labels[*i] == k)
-                .map(|i| weights[i] * ll[i * 2 + k])
-                .sum();
-            worst = worst.min(digits(loglik, case["loglik"].as_f64().unwrap()));
+            worst = worst.min(digits(
+                hard_loglik(&ll, &labels, &weights, k),
+                case["loglik"].as_f64().unwrap(),
+            ));
         }
     }
     println!("birthwt logits: coefficients and logliks agree to {worst:.1} significant digits");

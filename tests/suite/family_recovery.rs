@@ -74,15 +74,7 @@ fn fit_truth(
     (truth, results.fits[0].parameters_named.clone(), order)
 }
 
-fn value(params: &[Parameter], block: &str, cluster: usize, indicator: Option<&str>, term: Option<&str>) -> f64 {
-    params
-        .iter()
-        .find(|p| {
-            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
-        })
-        .unwrap_or_else(|| panic!("no parameter {block} {cluster} {indicator:?} {term:?}"))
-        .value
-}
+use super::common::param_value as value;
 
 /// Collects checks; fails with every line printed.
 struct Checks(Vec<String>, bool);

@@ -81,21 +81,7 @@ gating = ["age", "exposure"]
 components = ["smoker"]
 "#;
 
-fn value(
-    params: &[cohortmix::model::family::Parameter],
-    block: &str,
-    cluster: usize,
-    indicator: Option<&str>,
-    term: Option<&str>,
-) -> f64 {
-    params
-        .iter()
-        .find(|p| {
-            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
-        })
-        .unwrap_or_else(|| panic!("no parameter {block} {cluster} {indicator:?} {term:?}"))
-        .value
-}
+use super::common::param_value as value;
 
 #[test]
 fn mixture_of_experts_parameters_are_recovered() {
