@@ -23,6 +23,7 @@ pub mod compare;
 pub mod data;
 pub mod error;
 pub mod fit;
+pub mod inference;
 pub mod model;
 pub mod report;
 pub mod rng;

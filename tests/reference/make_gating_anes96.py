@@ -7,6 +7,7 @@ constant; reference level 0). statsmodels' MNLogit ignores weights, so the frequ
 weighted reference replicates each row by its weight (1 + row index mod 3).
 
 Writes anes96.csv (the data, with the weight column) and gating_anes96.json (coefficients
+and their standard errors (statsmodels' bse: the inverse Hessian of the log-likelihood)
 per outcome level 1..6 in regressor order, and the log-likelihood).
 
 Run: python make_gating_anes96.py [OUTPUT_FOLDER]   (default: this script's folder)
@@ -36,7 +37,11 @@ def fit(yy, xx):
     model = sm.MNLogit(yy, sm.add_constant(xx))
     res = model.fit(method="newton", maxiter=200, tol=1e-14, disp=0)
     # params: (regressors incl. constant) x (levels 1..6); store per level.
-    return {"loglik": float(res.llf), "coefficients": np.asarray(res.params).T.tolist()}
+    return {
+        "loglik": float(res.llf),
+        "coefficients": np.asarray(res.params).T.tolist(),
+        "standard_errors": np.asarray(res.bse).T.tolist(),
+    }
 
 
 rep = np.repeat(np.arange(n), freq)

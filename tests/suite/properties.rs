@@ -396,3 +396,78 @@ proptest! {
         prop_assert!(checked > 0);
     }
 }
+
+/// Compares a chart's analytic score at a random point near the fit with central
+/// differences of the log-likelihood the same pass returns.
+fn check_chart_score(model: &cohortmix::model::Model, fd: &FitData, seed: u64) -> Result<(), TestCaseError> {
+    use cohortmix::inference::chart::Chart;
+    let chart = match Chart::new(model) {
+        Ok(c) => c,
+        // A boundary fit (an empty item level) has no chart; that is reported, not tested.
+        Err(_) => return Ok(()),
+    };
+    prop_assert_eq!(chart.len(), model.n_params());
+    let mut s = Stream::new(seed, "chart-point");
+    let theta: Vec<f64> = (0..chart.len()).map(|j| 0.05 * s.normal() * chart.scale(j)).collect();
+    let score = match chart.total_score(&theta, fd) {
+        Ok(v) => v,
+        Err(_) => return Ok(()),
+    };
+    let loglik = |t: &[f64]| chart.scores(t, fd, |_, _| {}).unwrap();
+    for j in 0..chart.len() {
+        let h = 1e-5 * chart.scale(j);
+        let mut t = theta.clone();
+        t[j] += h;
+        let up = loglik(&t);
+        t[j] -= 2.0 * h;
+        let down = loglik(&t);
+        let fd_grad = (up - down) / (2.0 * h);
+        let tol = 1e-4 * (1.0 + fd_grad.abs()) / chart.scale(j).min(1.0);
+        prop_assert!(
+            (score[j] - fd_grad).abs() <= tol,
+            "coordinate {j}: score {} vs difference {}",
+            score[j],
+            fd_grad
+        );
+    }
+    Ok(())
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 64, .. ProptestConfig::default() })]
+
+    /// The inference chart's score is the gradient of the observed-data log-likelihood for
+    /// every covariance structure, with gating and component covariates; the chart has as
+    /// many coordinates as the model has free parameters.
+    #[test]
+    fn chart_score_is_the_loglik_gradient_for_every_structure(seed in 0u64..10_000, d in 1usize..4, g in 1usize..4,
+                                                            with_w: bool, with_z: bool, structure in 0usize..14) {
+        let n = 150;
+        let (y, w, z, weights) = problem(seed, n, d, g, with_w, with_z);
+        let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p(), ..Default::default() };
+        let structure = CovarianceStructure::all()[structure];
+        let structure = if d == 1 && !structure.fits_one_indicator() { CovarianceStructure::all()[1] } else { structure };
+        let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing: 0.0 };
+        let model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let kind = if g == 1 { StartKind::Single } else { StartKind::SeededCentres };
+        let tau = partition(kind, &y, d, &weights, g, &mut Stream::new(seed, "start"));
+        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10 });
+        prop_assume!(run.termination.usable());
+        check_chart_score(&run.model, &fd, seed)?;
+    }
+
+    /// The same for the items, counts and mixed families, with direct effects.
+    #[test]
+    fn chart_score_is_the_loglik_gradient_for_items_counts_and_mixed(seed in 0u64..10_000, family in 0usize..3, g in 1usize..4,
+                                                                     with_w: bool, with_z: bool) {
+        let pb = block_problem(seed, 150, family, g, with_w, with_z);
+        let fd = pb.data();
+        let options = ModelOptions { structure: CovarianceStructure::UNCONSTRAINED, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing: 0.5 };
+        let model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let kind = if g == 1 { StartKind::Single } else { StartKind::SeededCentres };
+        let tau = partition(kind, &pb.seeding, pb.seeding_d, &pb.weights, g, &mut Stream::new(seed, "start"));
+        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10 });
+        prop_assume!(run.termination.usable());
+        check_chart_score(&run.model, &fd, seed)?;
+    }
+}

@@ -174,7 +174,7 @@ const MAX_INNER: usize = 50;
 const INNER_TOLERANCE: f64 = 1e-12;
 
 /// Eigen-decomposition with eigenvalues in decreasing order.
-fn eigen_desc(m: &DMatrix<f64>) -> (DVector<f64>, DMatrix<f64>) {
+pub fn eigen_desc(m: &DMatrix<f64>) -> (DVector<f64>, DMatrix<f64>) {
     let e = SymmetricEigen::new(m.clone());
     let d = m.nrows();
     let mut idx: Vec<usize> = (0..d).collect();

@@ -153,6 +153,12 @@ impl GaussianComponents {
         Ok(())
     }
 
+    /// The orientation shared by all clusters, when the structure has one and the M-step
+    /// kept it.
+    pub fn common_orientation(&self) -> Option<&DMatrix<f64>> {
+        self.orientation.as_ref()
+    }
+
     /// Mean of cluster k for one row of the component design, into `out`.
     pub fn mean(&self, k: usize, z: &[f64], out: &mut [f64]) {
         out.fill(0.0);

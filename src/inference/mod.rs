@@ -1,0 +1,353 @@
+//! Inference for a fitted model: standard errors of every reported parameter, and effect
+//! sizes with confidence intervals.
+//!
+//! Three ways to get the covariance matrix of the free parameters θ (see [`chart`]):
+//! - **observed information** (default): −∂²ℓ/∂θ∂θ' of the observed-data log-likelihood,
+//!   by central differences of its analytic score;
+//! - **sandwich** (robust): H⁻¹ (Σ_i s_i s_i') H⁻¹ with the row scores s_i, also valid
+//!   under case weights and a misspecified model;
+//! - **bootstrap**: refits on rows resampled with replacement, each started from the
+//!   fitted responsibilities, and the covariance of the reported parameters over the
+//!   replicates.
+//!
+//! Reported parameters are on the original covariate scale, so the first two methods
+//! carry the covariance to them by the delta method, with a numerical Jacobian.
+//! Penalties (gating ridge, covariance prior, item smoothing) are left out of the
+//! information: the standard errors are those of the log-likelihood at the estimate.
+
+pub mod chart;
+pub mod effects;
+
+use crate::data::Dataset;
+use crate::fit::em::{self, EmSettings};
+use crate::fit::{fit_data, PreparedPlacement};
+use crate::model::family::{ComponentFamily, Naming, Parameter};
+use crate::model::gating::Gating;
+use crate::model::{FitData, Model};
+use crate::rng::Stream;
+use chart::Chart;
+use nalgebra::DMatrix;
+use rayon::prelude::*;
+use serde::Serialize;
+
+/// Relative step of the central differences of the score (times the coordinate's scale).
+const SCORE_STEP: f64 = 1e-4;
+/// Relative step of the Jacobian of the reported parameters.
+const JACOBIAN_STEP: f64 = 1e-5;
+
+/// How standard errors are computed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum ErrorMethod {
+    /// Inverse observed information.
+    ObservedInformation,
+    /// Robust sandwich.
+    Sandwich,
+    /// Nonparametric bootstrap.
+    Bootstrap,
+}
+
+impl ErrorMethod {
+    /// The spec word.
+    pub fn word(&self) -> &'static str {
+        match self {
+            ErrorMethod::ObservedInformation => "observed-information",
+            ErrorMethod::Sandwich => "sandwich",
+            ErrorMethod::Bootstrap => "bootstrap",
+        }
+    }
+}
+
+/// Settings of the inference step.
+#[derive(Debug, Clone, PartialEq)]
+pub struct InferenceSettings {
+    /// Method.
+    pub method: ErrorMethod,
+    /// Bootstrap replicates.
+    pub replicates: usize,
+    /// Master seed (bootstrap).
+    pub seed: u64,
+    /// EM settings of the bootstrap refits.
+    pub em: EmSettings,
+}
+
+/// The covariance of a fit's reported parameters.
+#[derive(Debug, Clone)]
+pub struct Uncertainty {
+    /// Method used.
+    pub method: ErrorMethod,
+    /// Reported parameters, in [`named_parameters`] order.
+    pub parameters: Vec<Parameter>,
+    /// Their covariance matrix.
+    pub covariance: DMatrix<f64>,
+    /// Bootstrap: replicates that gave a usable refit, of those drawn.
+    pub replicates: Option<(usize, usize)>,
+}
+
+impl Uncertainty {
+    /// Standard error of reported parameter `i`.
+    pub fn se(&self, i: usize) -> f64 {
+        self.covariance[(i, i)].max(0.0).sqrt()
+    }
+
+    /// Index of a reported parameter.
+    pub fn index(&self, block: &str, cluster: usize, indicator: Option<&str>, term: Option<&str>) -> Option<usize> {
+        self.parameters.iter().position(|p| {
+            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
+        })
+    }
+}
+
+/// Every reported parameter of a model: gating first, then the component blocks, on the
+/// original covariate scale.
+pub fn named_parameters(model: &Model, data: &Dataset, prepared: &PreparedPlacement) -> Vec<Parameter> {
+    let mut out = gating_parameters(&model.gating, &prepared.gating);
+    let item_levels = data.items.as_ref().map_or(&[][..], |b| &b.levels[..]);
+    out.extend(model.components.parameters(Naming {
+        indicators: &data.gaussian_names,
+        design: &prepared.gaussian,
+        components: &prepared.components,
+        item_levels,
+    }));
+    out
+}
+
+/// Named gating parameters on the original covariate scale: logit coefficients of
+/// clusters 2..G against cluster 1, or the log odds log(π_k/π_1) of free proportions.
+pub fn gating_parameters(gating: &Gating, design: &crate::data::Design) -> Vec<Parameter> {
+    let mut out = Vec::new();
+    let mut push = |cluster: usize, term: &str, value: f64| {
+        out.push(Parameter {
+            block: "gating",
+            cluster,
+            indicator: None,
+            term: Some(term.to_string()),
+            value,
+        })
+    };
+    match gating {
+        Gating::Logit { g, p, gamma, .. } => {
+            for k in 1..*g {
+                let orig = design.to_original_scale(&gamma[(k - 1) * p..k * p]);
+                for (term, value) in design.terms.iter().zip(orig) {
+                    push(k + 1, &term.name, value);
+                }
+            }
+        }
+        Gating::Free { log_pi } => {
+            for (k, l) in log_pi.iter().enumerate().skip(1) {
+                push(k + 1, "intercept", l - log_pi[0]);
+            }
+        }
+        Gating::Equal { .. } | Gating::Fixed { .. } => {}
+    }
+    out
+}
+
+/// The observed information −∂²ℓ/∂θ∂θ' at the fit, by central differences of the
+/// analytic score, symmetrised. Columns are computed in parallel.
+pub fn observed_information(chart: &Chart, fd: &FitData) -> Result<DMatrix<f64>, String> {
+    let p = chart.len();
+    let columns: Vec<Result<Vec<f64>, String>> = (0..p)
+        .into_par_iter()
+        .map(|j| {
+            let h = SCORE_STEP * chart.scale(j);
+            let mut theta = vec![0.0; p];
+            theta[j] = h;
+            let up = chart.total_score(&theta, fd).map_err(|e| e.reason)?;
+            theta[j] = -h;
+            let down = chart.total_score(&theta, fd).map_err(|e| e.reason)?;
+            Ok(up.iter().zip(&down).map(|(a, b)| -(a - b) / (2.0 * h)).collect())
+        })
+        .collect();
+    let mut info = DMatrix::zeros(p, p);
+    for (j, col) in columns.into_iter().enumerate() {
+        for (i, v) in col?.into_iter().enumerate() {
+            info[(i, j)] = v;
+        }
+    }
+    Ok(0.5 * (&info + info.transpose()))
+}
+
+/// Σ_i s_i s_i' at the fit: the middle of the sandwich.
+pub fn score_outer_product(chart: &Chart, fd: &FitData) -> Result<DMatrix<f64>, String> {
+    let p = chart.len();
+    let mut meat = DMatrix::zeros(p, p);
+    chart
+        .scores(&vec![0.0; p], fd, |_, s| {
+            for a in 0..p {
+                if s[a] == 0.0 {
+                    continue;
+                }
+                for b in 0..=a {
+                    meat[(a, b)] += s[a] * s[b];
+                }
+            }
+        })
+        .map_err(|e| e.reason)?;
+    for a in 0..p {
+        for b in 0..a {
+            meat[(b, a)] = meat[(a, b)];
+        }
+    }
+    Ok(meat)
+}
+
+/// Inverse of a symmetric positive-definite matrix, or why not.
+fn spd_inverse(m: &DMatrix<f64>) -> Result<DMatrix<f64>, String> {
+    m.clone().cholesky().map(|c| c.inverse()).ok_or_else(|| {
+        "the information matrix is not positive definite: the fit is not a strict maximum \
+         or some parameters are not identified (a cluster with tied covariance axes, an \
+         empty level, or too many clusters)"
+            .to_string()
+    })
+}
+
+/// The covariance of the free parameters θ by the observed information or the sandwich.
+pub fn parameter_covariance(chart: &Chart, fd: &FitData, method: ErrorMethod) -> Result<DMatrix<f64>, String> {
+    let info = observed_information(chart, fd)?;
+    let inv = spd_inverse(&info)?;
+    match method {
+        ErrorMethod::Sandwich => {
+            let meat = score_outer_product(chart, fd)?;
+            Ok(&inv * meat * &inv)
+        }
+        _ => Ok(inv),
+    }
+}
+
+/// Jacobian of the reported parameters with respect to θ, by central differences.
+fn reported_jacobian(
+    chart: &Chart,
+    reported: &(dyn Fn(&Model) -> Vec<Parameter> + Sync),
+    r: usize,
+) -> Result<DMatrix<f64>, String> {
+    let p = chart.len();
+    let mut jac = DMatrix::zeros(r, p);
+    for j in 0..p {
+        let h = JACOBIAN_STEP * chart.scale(j);
+        let mut theta = vec![0.0; p];
+        theta[j] = h;
+        let up = reported(&chart.model(&theta).map_err(|e| e.reason)?);
+        theta[j] = -h;
+        let down = reported(&chart.model(&theta).map_err(|e| e.reason)?);
+        for (i, (a, b)) in up.iter().zip(&down).enumerate() {
+            jac[(i, j)] = (a.value - b.value) / (2.0 * h);
+        }
+    }
+    Ok(jac)
+}
+
+/// Standard errors of a fitted model's reported parameters.
+///
+/// `tau` are the fit's responsibilities (the bootstrap starts from them); `label` names
+/// the fit in the bootstrap's random streams.
+pub fn uncertainty(
+    model: &Model,
+    tau: &[f64],
+    data: &Dataset,
+    prepared: &PreparedPlacement,
+    settings: &InferenceSettings,
+    label: &str,
+) -> Result<Uncertainty, String> {
+    let fd = fit_data(data, prepared);
+    uncertainty_of(
+        model,
+        tau,
+        &fd,
+        &|m| named_parameters(m, data, prepared),
+        settings,
+        label,
+    )
+}
+
+/// [`uncertainty`] for any data and any reported function of the model (the tests use
+/// it with hand-built designs).
+pub fn uncertainty_of(
+    model: &Model,
+    tau: &[f64],
+    fd: &FitData,
+    reported: &(dyn Fn(&Model) -> Vec<Parameter> + Sync),
+    settings: &InferenceSettings,
+    label: &str,
+) -> Result<Uncertainty, String> {
+    let parameters = reported(model);
+    if settings.method == ErrorMethod::Bootstrap {
+        let (covariance, used) = bootstrap(model, tau, fd, reported, settings, label)?;
+        return Ok(Uncertainty {
+            method: settings.method,
+            parameters,
+            covariance,
+            replicates: Some((used, settings.replicates)),
+        });
+    }
+    let chart = Chart::new(model)?;
+    let v = parameter_covariance(&chart, fd, settings.method)?;
+    let jac = reported_jacobian(&chart, reported, parameters.len())?;
+    Ok(Uncertainty {
+        method: settings.method,
+        parameters,
+        covariance: &jac * v * jac.transpose(),
+        replicates: None,
+    })
+}
+
+/// Nonparametric bootstrap: each replicate draws n rows with replacement (as multiplicities
+/// on the case weights), refits from the fitted responsibilities, and records the reported
+/// parameters. Replicates run in parallel, each on its own random stream, so the result
+/// does not depend on the thread count.
+fn bootstrap(
+    model: &Model,
+    tau: &[f64],
+    fd: &FitData,
+    reported: &(dyn Fn(&Model) -> Vec<Parameter> + Sync),
+    settings: &InferenceSettings,
+    label: &str,
+) -> Result<(DMatrix<f64>, usize), String> {
+    let n = fd.n;
+    let draws: Vec<Option<Vec<f64>>> = (0..settings.replicates)
+        .into_par_iter()
+        .map(|b| {
+            let mut rng = Stream::new(settings.seed, &format!("bootstrap|{label}|{}", b + 1));
+            let mut times = vec![0.0; n];
+            for _ in 0..n {
+                times[rng.index(n)] += 1.0;
+            }
+            let weights: Vec<f64> = fd.weights.iter().zip(&times).map(|(c, t)| c * t).collect();
+            let resampled = FitData {
+                weights: &weights,
+                ..*fd
+            };
+            let mut start = model.clone();
+            start.gating.prepare_bound(resampled.w, resampled.weights);
+            let run = em::run(&resampled, start, tau.to_vec(), settings.em);
+            run.termination
+                .usable()
+                .then(|| reported(&run.model).into_iter().map(|p| p.value).collect())
+        })
+        .collect();
+    let ok: Vec<Vec<f64>> = draws.into_iter().flatten().collect();
+    if ok.len() < 2 {
+        return Err(format!(
+            "fewer than 2 of {} bootstrap refits were usable",
+            settings.replicates
+        ));
+    }
+    let r = ok[0].len();
+    let m = ok.len() as f64;
+    let mean: Vec<f64> = (0..r).map(|i| ok.iter().map(|v| v[i]).sum::<f64>() / m).collect();
+    let mut cov = DMatrix::zeros(r, r);
+    for v in &ok {
+        for a in 0..r {
+            for b in 0..=a {
+                cov[(a, b)] += (v[a] - mean[a]) * (v[b] - mean[b]) / (m - 1.0);
+            }
+        }
+    }
+    for a in 0..r {
+        for b in 0..a {
+            cov[(b, a)] = cov[(a, b)];
+        }
+    }
+    Ok((cov, ok.len()))
+}

@@ -1,0 +1,229 @@
+//! Standard errors and effects checked against outside references.
+
+use super::common::*;
+use cohortmix::data::Design;
+use cohortmix::fit::em::{self, EmSettings};
+use cohortmix::fit::{initial_model, ModelOptions};
+use cohortmix::inference::{gating_parameters, uncertainty_of, ErrorMethod, InferenceSettings};
+use cohortmix::model::family::{ComponentFamily, CovarianceStructure, Naming};
+use cohortmix::model::{FitData, Model};
+use cohortmix::rng::Stream;
+use serde_json::Value;
+
+fn fixture(name: &str) -> Value {
+    let text = std::fs::read_to_string(root(&format!("tests/reference/{name}"))).unwrap();
+    serde_json::from_str(&text).unwrap()
+}
+
+fn floats(v: &Value) -> Vec<f64> {
+    v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
+}
+
+fn settings(method: ErrorMethod) -> InferenceSettings {
+    InferenceSettings {
+        method,
+        replicates: 0,
+        seed: 1,
+        em: EmSettings {
+            max_iterations: 2000,
+            tolerance: 1e-14,
+        },
+    }
+}
+
+/// With hard 0/1 memberships the mixture's gating block is a multinomial logit, and its
+/// observed-information standard errors are the logit's.
+///
+/// Source: statsmodels MNLogit `bse` on its documented anes96 example (944 rows, PID with
+/// 7 levels); made by tests/reference/make_gating_anes96.py. Memberships are made hard by
+/// one continuous indicator, 1000 × PID plus standard normal noise, so the clusters are
+/// PID exactly; frequency weights are checked against the replicated rows.
+fn check_anes96_standard_errors(weighted: bool) {
+    let reference = fixture("gating_anes96.json");
+    let case = &reference[if weighted { "frequency_weighted" } else { "unweighted" }];
+    let (header, cols) = read_csv(&root("tests/reference/anes96.csv"));
+    let names = ["logpopul", "selfLR", "age", "educ", "income"];
+    let columns: Vec<_> = names.iter().map(|n| numeric(col(&header, &cols, n))).collect();
+    let named: Vec<(&str, &cohortmix::data::Column)> = names.iter().copied().zip(columns.iter()).collect();
+    let n = cols[0].len();
+    let design = Design::from_columns(n, &named).unwrap();
+    let g = 7;
+    let mut noise = Stream::new(96, "anes96-noise");
+    let pid: Vec<usize> = col(&header, &cols, "PID").iter().map(|v| v.parse().unwrap()).collect();
+    let y: Vec<f64> = pid.iter().map(|k| 1000.0 * *k as f64 + noise.normal()).collect();
+    let mut tau = vec![0.0; n * g];
+    for (i, k) in pid.iter().enumerate() {
+        tau[i * g + k] = 1.0;
+    }
+    let weights: Vec<f64> = if weighted {
+        col(&header, &cols, "freq").iter().map(|v| v.parse().unwrap()).collect()
+    } else {
+        vec![1.0; n]
+    };
+    let intercept = Design::intercept(n);
+    let fd = FitData {
+        n,
+        weights: &weights,
+        y: &y,
+        d: 1,
+        z: &intercept.x,
+        q: 1,
+        w: &design.x,
+        p: design.p(),
+        ..Default::default()
+    };
+    let options = ModelOptions {
+        structure: CovarianceStructure::all()[1],
+        gating_ridge: 0.0,
+        covariance_prior: false,
+        variance_floor: 0.0,
+        smoothing: 0.0,
+    };
+    let mut model = initial_model(&fd, &free_placement(), g, options);
+    model.gating.prepare_bound(fd.w, fd.weights);
+    let run = em::run(&fd, model, tau.clone(), settings(ErrorMethod::ObservedInformation).em);
+    assert!(run.termination.usable(), "{:?}", run.termination);
+    let reported = |m: &Model| gating_parameters(&m.gating, &design);
+    let u = uncertainty_of(
+        &run.model,
+        &run.tau,
+        &fd,
+        &reported,
+        &settings(ErrorMethod::ObservedInformation),
+        "anes96",
+    )
+    .expect("standard errors");
+    let (mut worst_coef, mut worst_se) = (16.0f64, 16.0f64);
+    let p = design.p();
+    for (k, (ref_coef, ref_se)) in case["coefficients"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(case["standard_errors"].as_array().unwrap())
+        .enumerate()
+    {
+        for (a, (c, s)) in floats(ref_coef).into_iter().zip(floats(ref_se)).enumerate() {
+            let i = k * p + a;
+            worst_coef = worst_coef.min(digits(u.parameters[i].value, c));
+            worst_se = worst_se.min(digits(u.se(i), s));
+        }
+    }
+    println!(
+        "anes96 weighted={weighted}: coefficients agree to {worst_coef:.1} digits, standard errors to {worst_se:.1}"
+    );
+    assert!(worst_coef >= 6.0, "coefficients agree to only {worst_coef:.1} digits");
+    assert!(worst_se >= 4.0, "standard errors agree to only {worst_se:.1} digits");
+}
+
+#[test]
+fn gating_standard_errors_match_statsmodels_mnlogit_on_anes96() {
+    check_anes96_standard_errors(false);
+}
+
+#[test]
+fn gating_standard_errors_with_frequency_weights_match_replicated_rows() {
+    check_anes96_standard_errors(true);
+}
+
+/// Observed-information standard errors of a fitted mixture of experts (3 clusters on
+/// iris petal length and width, a covariance per cluster, gating on sepal length) agree
+/// with the inverse of an independent numerical Hessian of the log-likelihood.
+///
+/// Source: tests/reference/make_information_iris.py (numpy log-likelihood with a Cholesky
+/// parameterisation of the covariances, scipy maximum, numdifftools Hessian); iris as
+/// bundled with scikit-learn.
+#[test]
+fn mixture_standard_errors_match_an_independent_numerical_hessian() {
+    let reference = fixture("information_iris.json");
+    let (header, cols) = read_csv(&root("tests/reference/iris.csv"));
+    let n = cols[0].len();
+    let sl = numeric(col(&header, &cols, "sepal_length"));
+    let design = Design::from_columns(n, &[("sepal_length", &sl)]).unwrap();
+    let pl: Vec<f64> = col(&header, &cols, "petal_length")
+        .iter()
+        .map(|v| v.parse().unwrap())
+        .collect();
+    let pw: Vec<f64> = col(&header, &cols, "petal_width")
+        .iter()
+        .map(|v| v.parse().unwrap())
+        .collect();
+    let y: Vec<f64> = pl.iter().zip(&pw).flat_map(|(a, b)| [*a, *b]).collect();
+    let species: Vec<usize> = col(&header, &cols, "species")
+        .iter()
+        .map(|v| v.parse().unwrap())
+        .collect();
+    let weights = vec![1.0; n];
+    let intercept = Design::intercept(n);
+    let fd = FitData {
+        n,
+        weights: &weights,
+        y: &y,
+        d: 2,
+        z: &intercept.x,
+        q: 1,
+        w: &design.x,
+        p: design.p(),
+        ..Default::default()
+    };
+    let options = ModelOptions {
+        structure: CovarianceStructure::UNCONSTRAINED,
+        gating_ridge: 0.0,
+        covariance_prior: false,
+        variance_floor: 0.0,
+        smoothing: 0.0,
+    };
+    let g = 3;
+    let mut tau = vec![0.0; n * g];
+    for (i, k) in species.iter().enumerate() {
+        tau[i * g + k] = 1.0;
+    }
+    let mut model = initial_model(&fd, &free_placement(), g, options);
+    model.gating.prepare_bound(fd.w, fd.weights);
+    let run = em::run(&fd, model, tau, settings(ErrorMethod::ObservedInformation).em);
+    let ref_ll = reference["loglik"].as_f64().unwrap();
+    assert!(digits(run.loglik, ref_ll) >= 8.0, "loglik {} vs {ref_ll}", run.loglik);
+    let names = vec!["petal_length".to_string(), "petal_width".to_string()];
+    let reported = |m: &Model| {
+        let mut out = gating_parameters(&m.gating, &design);
+        out.extend(m.components.parameters(Naming {
+            indicators: &names,
+            design: &intercept,
+            components: &intercept,
+            item_levels: &[],
+        }));
+        out
+    };
+    let u = uncertainty_of(
+        &run.model,
+        &run.tau,
+        &fd,
+        &reported,
+        &settings(ErrorMethod::ObservedInformation),
+        "iris",
+    )
+    .expect("standard errors");
+    let mut worst = 16.0f64;
+    let terms = ["intercept", "sepal_length"];
+    for (k, ses) in reference["gating_standard_errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .enumerate()
+    {
+        for (term, s) in terms.iter().zip(floats(ses)) {
+            let i = u.index("gating", k + 2, None, Some(term)).unwrap();
+            worst = worst.min(digits(u.se(i), s));
+        }
+    }
+    for (k, ses) in reference["mean_standard_errors"].as_array().unwrap().iter().enumerate() {
+        for (ind, s) in names.iter().zip(floats(ses)) {
+            let i = u.index("mean", k + 1, Some(ind), Some("intercept")).unwrap();
+            worst = worst.min(digits(u.se(i), s));
+        }
+    }
+    println!(
+        "iris mixture: loglik {} vs {ref_ll}; standard errors agree to {worst:.1} digits",
+        run.loglik
+    );
+    assert!(worst >= 3.0, "standard errors agree to only {worst:.1} digits");
+}
