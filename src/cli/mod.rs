@@ -257,10 +257,32 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
         eprintln!("[{done}/{total}] {}", progress_line(r));
     });
     let seconds_fitting = t1.elapsed().as_secs_f64();
-    let mut results = report::results(&study, &data, &prepared, &fits);
+    let t2 = Instant::now();
+    let mut compared = crate::compare::chosen_fits(&fits, prepared.len(), None);
+    compared.extend(crate::compare::chosen_fits(
+        &fits,
+        prepared.len(),
+        study.compare.clusters,
+    ));
+    let mut compared: Vec<usize> = compared.into_iter().flatten().collect();
+    compared.sort_unstable();
+    compared.dedup();
+    eprintln!(
+        "standard errors ({}) of the {} chosen fit{}",
+        study.inference.method.word(),
+        compared.len(),
+        plural(compared.len())
+    );
+    let uncertainty = crate::inference::for_fits(&study, &data, &prepared, &fits, &compared);
+    let seconds_inference = t2.elapsed().as_secs_f64();
+    let mut results = report::results(&study, &data, &prepared, &fits, &uncertainty);
     let mut pages = Vec::new();
     if with_comparison {
-        let comparison = crate::compare::compare(&data, &prepared, &fits, &study.compare);
+        let inference = crate::compare::InferenceInput {
+            per: &study.inference.per,
+            by_fit: &uncertainty,
+        };
+        let comparison = crate::compare::compare(&data, &prepared, &fits, &study.compare, inference);
         pages.push(("summary.md", report::document::markdown(&results, &comparison)));
         pages.push(("report.html", report::document::html(&results, &comparison)));
         results.comparison = Some(comparison);
@@ -277,6 +299,7 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
         fits: fits.len(),
         seconds_reading,
         seconds_fitting,
+        seconds_inference,
     };
     let manifest = serde_json::to_string_pretty(&manifest)
         .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode manifest: {e}"))))?;

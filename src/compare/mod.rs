@@ -111,9 +111,59 @@ pub struct GatingEffect {
     pub cluster: usize,
     /// Gating term.
     pub term: String,
-    /// exp(coefficient): multiplies the relative risk of the cluster versus cluster 1 per
-    /// unit of the term.
+    /// Units of the term per which the ratio is given (`[inference].per`, else 1).
+    pub per: f64,
+    /// exp(per × coefficient): multiplies the relative risk of the cluster versus
+    /// cluster 1 per `per` units of the term.
     pub rrr: f64,
+    /// 95% confidence interval of the ratio, when standard errors are available.
+    pub interval: Option<(f64, f64)>,
+    /// Wald p-value against a ratio of 1, when standard errors are available.
+    pub p_value: Option<f64>,
+}
+
+/// A component covariate effect of a compared fit, by aligned cluster.
+#[derive(Debug, Clone, Serialize)]
+pub struct ComponentEffect {
+    /// Placement.
+    pub placement: String,
+    /// Aligned cluster.
+    pub cluster: usize,
+    /// The effect, its measure and interval.
+    #[serde(flatten)]
+    pub effect: crate::inference::effects::Effect,
+}
+
+/// A joint Wald test of a gating covariate in a compared fit.
+#[derive(Debug, Clone, Serialize)]
+pub struct GatingTest {
+    /// Placement.
+    pub placement: String,
+    /// The test.
+    #[serde(flatten)]
+    pub test: crate::inference::effects::WaldTest,
+}
+
+/// What the comparison knows of the compared fits' uncertainty.
+#[derive(Debug, Clone, Copy)]
+pub struct InferenceInput<'a> {
+    /// Units per which covariate effects are shown.
+    pub per: &'a std::collections::BTreeMap<String, f64>,
+    /// Per fit (indexed as the fits): its standard errors, why they are missing, or None
+    /// when they were not computed.
+    pub by_fit: &'a [Option<std::result::Result<crate::inference::Uncertainty, String>>],
+}
+
+static NO_UNITS: std::collections::BTreeMap<String, f64> = std::collections::BTreeMap::new();
+
+impl InferenceInput<'static> {
+    /// No standard errors: effects without intervals, per unit.
+    pub fn none() -> InferenceInput<'static> {
+        InferenceInput {
+            per: &NO_UNITS,
+            by_fit: &[],
+        }
+    }
 }
 
 /// Most-likely clusters of two placements cross-tabulated (aligned numbers).
@@ -187,6 +237,12 @@ pub struct Comparison {
     pub profiles: Vec<Profile>,
     /// Gating effects.
     pub gating_effects: Vec<GatingEffect>,
+    /// Joint Wald tests of each gating covariate.
+    pub gating_tests: Vec<GatingTest>,
+    /// Component covariate effects (mean differences, odds ratios, rate ratios).
+    pub component_effects: Vec<ComponentEffect>,
+    /// How standard errors were computed, and per placement why they are missing.
+    pub inference_notes: Vec<String>,
     /// Cross-tables between each pair of placements.
     pub cross_tables: Vec<CrossTable>,
     /// Posterior certainty (largest posterior per row) histogram per placement: 10 bins on
@@ -319,6 +375,7 @@ pub fn compare(
     prepared: &[PreparedPlacement],
     fits: &[FitResult],
     settings: &CompareSettings,
+    inference: InferenceInput,
 ) -> Comparison {
     let weights = &data.weights;
     let chosen = chosen_fits(fits, prepared.len(), settings.clusters);
@@ -329,7 +386,7 @@ pub fn compare(
     // Reference first, then the others in spec order.
     let mut order: Vec<usize> = vec![settings.reference];
     order.extend((0..prepared.len()).filter(|p| *p != settings.reference));
-    let mut labelled: Vec<(usize, &FitResult, Vec<usize>)> = Vec::new(); // (placement, fit, aligned per fitted cluster)
+    let mut labelled: Vec<(usize, usize, Vec<usize>)> = Vec::new(); // (placement, fit index, aligned per fitted cluster)
     for &p in &order {
         let Some(fi) = chosen[p] else { continue };
         let f = &fits[fi];
@@ -380,7 +437,7 @@ pub fn compare(
             aligned: aligned.clone(),
             overlap,
         });
-        labelled.push((p, f, aligned));
+        labelled.push((p, fi, aligned));
     }
 
     // Profiles and gating effects, by aligned cluster.
@@ -388,7 +445,50 @@ pub fn compare(
     let mut gating_effects = Vec::new();
     let mut effect_curves = Vec::new();
     let mut certainty = Vec::new();
-    for (p, f, aligned) in &labelled {
+    let mut gating_tests = Vec::new();
+    let mut component_effects = Vec::new();
+    let mut inference_notes = Vec::new();
+    for (p, fi, aligned) in &labelled {
+        let f = &fits[*fi];
+        let uncertainty = match inference.by_fit.get(*fi).and_then(Option::as_ref) {
+            Some(Ok(u)) => {
+                let detail = match u.replicates {
+                    Some((used, drawn)) => format!(" ({used} of {drawn} replicates usable)"),
+                    None => String::new(),
+                };
+                inference_notes.push(format!(
+                    "'{}': standard errors by {}{detail}.",
+                    f.placement,
+                    u.method.word()
+                ));
+                Some(u)
+            }
+            Some(Err(reason)) => {
+                inference_notes.push(format!("'{}': no standard errors: {reason}.", f.placement));
+                None
+            }
+            None => None,
+        };
+        if let Some(u) = uncertainty {
+            gating_tests.extend(
+                crate::inference::effects::gating_wald_tests(u, &prepared[*p].gating)
+                    .into_iter()
+                    .map(|test| GatingTest {
+                        placement: f.placement.clone(),
+                        test,
+                    }),
+            );
+            component_effects.extend(
+                crate::inference::effects::effects(u, inference.per)
+                    .into_iter()
+                    .filter(|e| e.block != "gating")
+                    .map(|effect| ComponentEffect {
+                        placement: f.placement.clone(),
+                        cluster: aligned[effect.cluster - 1],
+                        effect,
+                    }),
+            );
+        }
         let best = f.best.as_ref().expect("labelled fits have a best start");
         let g = f.clusters;
         let shares = crate::fit::cluster_shares(&best.run.tau, weights, g);
@@ -416,6 +516,8 @@ pub fn compare(
             &prepared[*p].gating,
             aligned,
             &f.placement,
+            uncertainty,
+            inference.per,
         ));
         effect_curves.extend(curves(
             data,
@@ -436,7 +538,8 @@ pub fn compare(
     let mut cross_tables = Vec::new();
     let maps: Vec<(String, Vec<usize>)> = labelled
         .iter()
-        .map(|(_, f, aligned)| {
+        .map(|(_, fi, aligned)| {
+            let f = &fits[*fi];
             let g = f.clusters;
             let tau = &f.best.as_ref().expect("best").run.tau;
             (
@@ -503,6 +606,9 @@ pub fn compare(
         alignments,
         profiles,
         gating_effects,
+        gating_tests,
+        component_effects,
+        inference_notes,
         cross_tables,
         certainty,
         effect_curves,
@@ -661,8 +767,16 @@ fn placement_rank(order: &[usize], prepared: &[PreparedPlacement], name: &str) -
 }
 
 /// Gating effects against aligned cluster 1 (or, when the placement has no counterpart of
-/// it, against its own cluster 1), per unit on the original scale.
-fn effects(gating: &Gating, design: &Design, aligned: &[usize], placement: &str) -> Vec<GatingEffect> {
+/// it, against its own cluster 1), per `per` units on the original scale, with Wald
+/// intervals from the fit's uncertainty when there is one.
+fn effects(
+    gating: &Gating,
+    design: &Design,
+    aligned: &[usize],
+    placement: &str,
+    uncertainty: Option<&crate::inference::Uncertainty>,
+    per: &std::collections::BTreeMap<String, f64>,
+) -> Vec<GatingEffect> {
     let Gating::Logit { g, p, gamma, .. } = gating else {
         return Vec::new();
     };
@@ -683,15 +797,38 @@ fn effects(gating: &Gating, design: &Design, aligned: &[usize], placement: &str)
     order.sort_by_key(|k| aligned[*k]);
     for k in order {
         for (j, term) in design.terms.iter().enumerate().skip(1) {
+            let units = crate::inference::effects::per_units(&term.name, per);
+            let coef = rows[k][j] - rows[base][j];
+            let interval = uncertainty.map(|u| {
+                let at = |c: usize| {
+                    (c > 0)
+                        .then(|| u.index("gating", c + 1, None, Some(&term.name)))
+                        .flatten()
+                };
+                let (_, se) = crate::inference::effects::contrast(u, at(k), at(base));
+                crate::inference::effects::Interval::new(coef * units, se * units, true)
+            });
             out.push(GatingEffect {
                 placement: placement.to_string(),
                 cluster: aligned[k],
                 term: term.name.clone(),
-                rrr: (rows[k][j] - rows[base][j]).exp(),
+                per: units,
+                rrr: (coef * units).exp(),
+                interval: interval.map(|i| (i.lower, i.upper)),
+                p_value: interval.map(|i| i.p_value),
             });
         }
     }
     out
+}
+
+/// "unit of age" or "10 units of age".
+pub fn per_phrase(per: f64, term: &str) -> String {
+    if per == 1.0 {
+        format!("unit of {term}")
+    } else {
+        format!("{per} units of {term}")
+    }
 }
 
 fn sentences(
@@ -825,8 +962,8 @@ fn sentences(
     if let Some((a, b)) = flip {
         out.push(Sentence {
             text: format!(
-                "The effect of {} on belonging to cluster {} rather than cluster 1 changes direction: relative risk ratio {} per unit under '{}', {} under '{}'.",
-                a.term, a.cluster, ratio(a.rrr), a.placement, ratio(b.rrr), b.placement
+                "The effect of {} on belonging to cluster {} rather than cluster 1 changes direction: relative risk ratio {} per {} under '{}', {} under '{}'.",
+                a.term, a.cluster, ratio(a.rrr), per_phrase(a.per, &a.term), a.placement, ratio(b.rrr), b.placement
             ),
             source: format!("gating effects table, rows 'cluster {}, {}'", a.cluster, a.term),
             numbers: vec![ratio(a.rrr), ratio(b.rrr)],
@@ -838,10 +975,16 @@ fn sentences(
         let word = if e.rrr > 1.0 { "raises" } else { "lowers" };
         out.push(Sentence {
             text: format!(
-                "Under '{}', each unit of {} {word} the relative risk of cluster {} against cluster 1 by a factor of {}.",
-                e.placement, e.term, e.cluster, ratio(e.rrr)
+                "Under '{}', each {} {word} the relative risk of cluster {} against cluster 1 by a factor of {}.",
+                e.placement,
+                per_phrase(e.per, &e.term),
+                e.cluster,
+                ratio(e.rrr)
             ),
-            source: format!("gating effects table, row 'cluster {}, {}', placement '{}'", e.cluster, e.term, e.placement),
+            source: format!(
+                "gating effects table, row 'cluster {}, {}', placement '{}'",
+                e.cluster, e.term, e.placement
+            ),
             numbers: vec![ratio(e.rrr)],
         });
     }

@@ -351,3 +351,43 @@ fn bootstrap(
     }
     Ok((cov, ok.len()))
 }
+
+/// The inference settings of a study.
+pub fn settings_for(study: &crate::spec::Study) -> InferenceSettings {
+    InferenceSettings {
+        method: study.inference.method,
+        replicates: study.inference.replicates,
+        seed: study.seed,
+        em: EmSettings {
+            max_iterations: study.search.max_iterations,
+            tolerance: study.search.tolerance,
+        },
+    }
+}
+
+/// Standard errors of the fits listed in `which` (indices into `fits`); None for the
+/// others and for fits without a usable start.
+pub fn for_fits(
+    study: &crate::spec::Study,
+    data: &Dataset,
+    prepared: &[PreparedPlacement],
+    fits: &[crate::fit::FitResult],
+    which: &[usize],
+) -> Vec<Option<Result<Uncertainty, String>>> {
+    let settings = settings_for(study);
+    fits.iter()
+        .enumerate()
+        .map(|(i, f)| {
+            let best = f.best.as_ref().filter(|_| which.contains(&i))?;
+            let label = format!("{}|{}|{}", f.placement, f.clusters, f.covariance());
+            Some(uncertainty(
+                &best.run.model,
+                &best.run.tau,
+                data,
+                &prepared[f.placement_index],
+                &settings,
+                &label,
+            ))
+        })
+        .collect()
+}

@@ -92,6 +92,7 @@ pub fn checklist(results: &Results, c: &Comparison) -> Vec<(String, String)> {
         ("Model choice".into(), match c.fixed_clusters { Some(g) => format!("cluster count fixed at {g} by the spec; lowest BIC among structures"), None => "lowest BIC per placement; AIC, ICL and BIC weights reported".into() }),
         ("Chosen models and cluster sizes".into(), sizes.join("; ")),
         ("Classification quality (relative entropy)".into(), entropy.join("; ")),
+        ("Standard errors and intervals".into(), if c.inference_notes.is_empty() { "none computed".into() } else { format!("95% Wald intervals. {}", c.inference_notes.join(" ")) }),
         ("Software".into(), format!("cohortmix {}", results.program.version)),
     ]
 }
@@ -298,6 +299,22 @@ pub fn html(results: &Results, c: &Comparison) -> String {
                 false,
             ));
         }
+    }
+
+    if let Some(t) = find("gating tests table") {
+        s.push_str("<h3>Joint tests of gating covariates</h3>");
+        html_table(&mut s, t);
+    }
+    if let Some(t) = find("component effects table") {
+        s.push_str("<h2>Covariate effects inside clusters</h2>");
+        html_table(&mut s, t);
+    }
+    if !c.inference_notes.is_empty() {
+        let _ = write!(
+            s,
+            "<p class=\"note\">Standard errors: {}</p>",
+            esc(&c.inference_notes.join(" "))
+        );
     }
 
     s.push_str("<h2>Agreement between placements</h2>");

@@ -10,10 +10,11 @@ pub mod document;
 pub mod svg;
 pub mod tables;
 
-use crate::data::{Dataset, Design};
+use crate::data::Dataset;
 use crate::error::{Diagnostic, Error, Result};
 use crate::fit::{FitResult, PreparedPlacement};
-use crate::model::family::{ComponentFamily, Naming, Parameter};
+use crate::inference::Uncertainty;
+use crate::model::family::Parameter;
 use crate::model::gating::Gating;
 use crate::spec::Study;
 use serde::Serialize;
@@ -168,8 +169,46 @@ pub struct FitRecord {
     /// posterior weight, whose probability smoothing held off 0 (absent without smoothing).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub item_cells_held_off_zero: Option<usize>,
-    /// Every parameter, named, on the original scale.
-    pub parameters_named: Vec<Parameter>,
+    /// Every parameter, named, on the original scale, with its standard error when the
+    /// fit's standard errors were computed.
+    pub parameters_named: Vec<NamedParameter>,
+    /// For the fits compared (each placement's chosen fit): how standard errors were
+    /// computed, or why they could not be.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub standard_errors: Option<StandardErrors>,
+    /// Covariate effects with 95% confidence intervals, when standard errors exist.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub effects: Vec<crate::inference::effects::Effect>,
+    /// Joint Wald tests of each gating covariate, when standard errors exist.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub gating_tests: Vec<crate::inference::effects::WaldTest>,
+}
+
+/// A named parameter and its standard error.
+#[derive(Debug, Serialize)]
+pub struct NamedParameter {
+    /// The parameter.
+    #[serde(flatten)]
+    pub parameter: Parameter,
+    /// Standard error (on the parameter's scale), when computed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub se: Option<f64>,
+}
+
+/// How a fit's standard errors were obtained.
+#[derive(Debug, Serialize)]
+pub struct StandardErrors {
+    /// `observed-information`, `sandwich` or `bootstrap`.
+    pub method: Option<&'static str>,
+    /// Bootstrap: replicates drawn.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub replicates: Option<usize>,
+    /// Bootstrap: replicates whose refit was usable.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub replicates_usable: Option<usize>,
+    /// Why there are none, when there are none.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unavailable: Option<String>,
 }
 
 /// How the starts went.
@@ -202,40 +241,6 @@ pub struct Chosen {
     pub bic: f64,
 }
 
-/// Named gating parameters on the original covariate scale.
-pub fn gating_parameters(gating: &Gating, design: &Design) -> Vec<Parameter> {
-    let mut out = Vec::new();
-    match gating {
-        Gating::Logit { g, p, gamma, .. } => {
-            for k in 1..*g {
-                let orig = design.to_original_scale(&gamma[(k - 1) * p..k * p]);
-                for (term, value) in design.terms.iter().zip(orig) {
-                    out.push(Parameter {
-                        block: "gating",
-                        cluster: k + 1,
-                        indicator: None,
-                        term: Some(term.name.clone()),
-                        value,
-                    });
-                }
-            }
-        }
-        Gating::Free { log_pi } => {
-            for (k, l) in log_pi.iter().enumerate().skip(1) {
-                out.push(Parameter {
-                    block: "gating",
-                    cluster: k + 1,
-                    indicator: None,
-                    term: Some("intercept".into()),
-                    value: l - log_pi[0],
-                });
-            }
-        }
-        Gating::Equal { .. } | Gating::Fixed { .. } => {}
-    }
-    out
-}
-
 fn gating_word(g: &Gating) -> &'static str {
     match g {
         Gating::Equal { g: 1 } => "single cluster",
@@ -251,27 +256,57 @@ fn status_word(t: &crate::fit::em::Termination) -> String {
 }
 
 /// Assemble `results.json`.
-pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fits: &[FitResult]) -> Results {
+pub fn results(
+    study: &Study,
+    data: &Dataset,
+    prepared: &[PreparedPlacement],
+    fits: &[FitResult],
+    uncertainty: &[Option<std::result::Result<Uncertainty, String>>],
+) -> Results {
     let records = fits
         .iter()
-        .map(|f| {
+        .enumerate()
+        .map(|(fi, f)| {
             let pp = &prepared[f.placement_index];
             let termination = f.termination();
             let (parameters_named, gating_model) = match &f.best {
-                Some(b) => {
-                    let mut ps = gating_parameters(&b.run.model.gating, &pp.gating);
-                    let item_levels = data.items.as_ref().map_or(&[][..], |b| &b.levels[..]);
-                    ps.extend(b.run.model.components.parameters(Naming {
-                        indicators: &data.gaussian_names,
-                        design: &pp.gaussian,
-                        components: &pp.components,
-                        item_levels,
-                    }));
-                    (ps, gating_word(&b.run.model.gating))
-                }
+                Some(b) => (
+                    crate::inference::named_parameters(&b.run.model, data, pp),
+                    gating_word(&b.run.model.gating),
+                ),
                 None => (Vec::new(), "none"),
             };
             let usable = f.starts.iter().filter(|s| s.termination.usable()).count();
+            let u = uncertainty.get(fi).and_then(Option::as_ref);
+            let ok = u.and_then(|r| r.as_ref().ok());
+            let parameters_named = parameters_named
+                .into_iter()
+                .enumerate()
+                .map(|(i, parameter)| NamedParameter {
+                    parameter,
+                    se: ok.map(|u| u.se(i)),
+                })
+                .collect();
+            let standard_errors = u.map(|r| match r {
+                Ok(u) => StandardErrors {
+                    method: Some(u.method.word()),
+                    replicates: u.replicates.map(|r| r.1),
+                    replicates_usable: u.replicates.map(|r| r.0),
+                    unavailable: None,
+                },
+                Err(reason) => StandardErrors {
+                    method: None,
+                    replicates: None,
+                    replicates_usable: None,
+                    unavailable: Some(reason.clone()),
+                },
+            });
+            let effects = ok.map_or_else(Vec::new, |u| {
+                crate::inference::effects::effects(u, &study.inference.per)
+            });
+            let gating_tests = ok.map_or_else(Vec::new, |u| {
+                crate::inference::effects::gating_wald_tests(u, &pp.gating)
+            });
             FitRecord {
                 placement: f.placement.clone(),
                 gating_covariates: pp.placement.gating.iter().map(|c| c.name.clone()).collect(),
@@ -302,6 +337,9 @@ pub fn results(study: &Study, data: &Dataset, prepared: &[PreparedPlacement], fi
                     (items.smoothing > 0.0).then_some(items.empty_cells)
                 }),
                 parameters_named,
+                standard_errors,
+                effects,
+                gating_tests,
             }
         })
         .collect();
@@ -484,6 +522,8 @@ pub struct Manifest {
     pub seconds_reading: f64,
     /// Wall time of fitting, seconds.
     pub seconds_fitting: f64,
+    /// Wall time of the standard errors, seconds.
+    pub seconds_inference: f64,
 }
 
 /// Files to write into a run folder, written together.

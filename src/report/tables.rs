@@ -19,6 +19,34 @@ fn opt(x: Option<f64>, digits: usize) -> String {
     x.map_or_else(|| "–".to_string(), |v| format!("{v:.digits$}"))
 }
 
+fn with_interval(estimate: String, interval: Option<(String, String)>) -> String {
+    match interval {
+        Some((a, b)) => format!("{estimate} ({a} to {b})"),
+        None => estimate,
+    }
+}
+
+fn units(per: f64) -> String {
+    if per == per.trunc() {
+        format!("{per:.0}")
+    } else {
+        format!("{per}")
+    }
+}
+
+fn val3(x: f64) -> String {
+    format!("{x:.3}")
+}
+
+/// A p-value as tables print it: three decimals, or "<0.001".
+pub fn p_value(p: f64) -> String {
+    if p < 0.001 {
+        "<0.001".to_string()
+    } else {
+        format!("{p:.3}")
+    }
+}
+
 /// Every table of the comparison, in report order.
 pub fn tables(c: &Comparison) -> Vec<Table> {
     let mut out = Vec::new();
@@ -153,20 +181,81 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         let mut keys: Vec<(usize, String)> = c.gating_effects.iter().map(|e| (e.cluster, e.term.clone())).collect();
         keys.sort();
         keys.dedup();
-        let mut header = vec!["cluster vs cluster 1".to_string(), "term".to_string()];
+        let mut header = vec![
+            "cluster vs cluster 1".to_string(),
+            "term".to_string(),
+            "per".to_string(),
+        ];
         header.extend(with_gating.iter().map(|p| p.to_string()));
         out.push(Table {
             name: "gating effects table".into(),
-            note: "Relative risk ratios exp(γ): how one unit of the term multiplies the risk of belonging to the cluster rather than aligned cluster 1. Confidence intervals come with the inference work.".into(),
+            note: "Relative risk ratios exp(γ) with 95% Wald confidence intervals: how the stated units of the term multiply the risk of belonging to the cluster rather than aligned cluster 1 (1 = no effect). For a level of a categorical covariate: that level against the reference level.".into(),
             header,
             rows: keys
                 .iter()
                 .map(|(k, term)| {
-                    let mut row = vec![format!("cluster {k}"), term.clone()];
+                    let per = c.gating_effects.iter().find(|e| &e.term == term).map_or(1.0, |e| e.per);
+                    let mut row = vec![format!("cluster {k}"), term.clone(), units(per)];
                     for pl in &with_gating {
-                        row.push(c.gating_effects.iter().find(|e| e.cluster == *k && &e.term == term && &e.placement == *pl).map_or_else(|| "–".into(), |e| ratio(e.rrr)));
+                        row.push(c.gating_effects.iter().find(|e| e.cluster == *k && &e.term == term && &e.placement == *pl).map_or_else(|| "–".into(), |e| with_interval(ratio(e.rrr), e.interval.map(|(a, b)| (ratio(a), ratio(b))))));
                     }
                     row
+                })
+                .collect(),
+        });
+    }
+
+    if !c.gating_tests.is_empty() {
+        out.push(Table {
+            name: "gating tests table".into(),
+            note: "Joint Wald test that a covariate does not change membership: all its terms across every cluster contrast at once (the same whichever cluster is the reference).".into(),
+            header: ["placement", "covariate", "Wald χ²", "df", "p-value"].iter().map(|s| s.to_string()).collect(),
+            rows: c
+                .gating_tests
+                .iter()
+                .map(|t| {
+                    vec![
+                        t.placement.clone(),
+                        t.test.covariate.clone(),
+                        format!("{:.2}", t.test.statistic),
+                        t.test.df.to_string(),
+                        p_value(t.test.p_value),
+                    ]
+                })
+                .collect(),
+        });
+    }
+
+    if !c.component_effects.is_empty() {
+        let mut rows: Vec<&crate::compare::ComponentEffect> = c.component_effects.iter().collect();
+        rows.sort_by(|a, b| {
+            (a.cluster, &a.effect.indicator, &a.effect.term)
+                .cmp(&(b.cluster, &b.effect.indicator, &b.effect.term))
+                .then(
+                    placements
+                        .iter()
+                        .position(|p| *p == a.placement)
+                        .cmp(&placements.iter().position(|p| *p == b.placement)),
+                )
+        });
+        out.push(Table {
+            name: "component effects table".into(),
+            note: "Covariate effects inside each aligned cluster, with 95% Wald confidence intervals: mean differences of continuous indicators, odds ratios of an item level against the item's first level, rate ratios of counts; per the stated units of the term.".into(),
+            header: ["cluster", "indicator", "term", "per", "placement", "measure", "estimate (95% CI)", "p-value"].iter().map(|s| s.to_string()).collect(),
+            rows: rows
+                .iter()
+                .map(|e| {
+                    let i = &e.effect.interval;
+                    vec![
+                        format!("cluster {}", e.cluster),
+                        e.effect.indicator.clone().unwrap_or_default(),
+                        e.effect.term.clone(),
+                        units(e.effect.per),
+                        e.placement.clone(),
+                        e.effect.measure.to_string(),
+                        with_interval(val3(i.estimate), Some((val3(i.lower), val3(i.upper)))),
+                        p_value(i.p_value),
+                    ]
                 })
                 .collect(),
         });

@@ -240,7 +240,33 @@ pub struct Study {
     pub placements: Vec<Placement>,
     /// How the comparison is made.
     pub compare: crate::compare::CompareSettings,
+    /// Standard errors and effect units.
+    pub inference: Inference,
 }
+
+/// `[inference]` as validated.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Inference {
+    /// How standard errors are computed.
+    pub method: crate::inference::ErrorMethod,
+    /// Bootstrap replicates.
+    pub replicates: usize,
+    /// Units per which a numeric covariate's effects are shown (1 when absent).
+    pub per: BTreeMap<String, f64>,
+}
+
+impl Default for Inference {
+    fn default() -> Inference {
+        Inference {
+            method: crate::inference::ErrorMethod::ObservedInformation,
+            replicates: DEFAULT_REPLICATES,
+            per: BTreeMap::new(),
+        }
+    }
+}
+
+/// Bootstrap replicates when the spec does not say.
+pub const DEFAULT_REPLICATES: usize = 200;
 
 impl Study {
     /// A diagnostic pointing at a span of the spec.
@@ -711,6 +737,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
 
     let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
     let compare = compare_settings(&ctx, raw.compare.as_ref(), &placements)?;
+    let inference = inference_settings(&ctx, raw.inference.as_ref(), &placements, &variables)?;
     Ok(Study {
         spec_path: path.to_path_buf(),
         spec_text: text.to_string(),
@@ -730,7 +757,88 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         search,
         placements,
         compare,
+        inference,
     })
+}
+
+fn inference_settings(
+    ctx: &Ctx,
+    raw: Option<&Spanned<raw::RawInference>>,
+    placements: &[Placement],
+    variables: &BTreeMap<String, (VariableType, Range<usize>)>,
+) -> Result<Inference> {
+    use crate::inference::ErrorMethod;
+    let mut out = Inference::default();
+    let Some(raw) = raw else { return Ok(out) };
+    let r = raw.get_ref();
+    if let Some(m) = &r.standard_errors {
+        let methods = [
+            ErrorMethod::ObservedInformation,
+            ErrorMethod::Sandwich,
+            ErrorMethod::Bootstrap,
+        ];
+        out.method = methods.into_iter().find(|x| x.word() == m.get_ref()).ok_or_else(|| {
+            let words = methods.map(|x| x.word());
+            let mut d = ctx.err(
+                m.span(),
+                format!("[inference].standard_errors does not know '{}'", m.get_ref()),
+            );
+            if let Some(s) = did_you_mean(m.get_ref(), words.iter().copied()) {
+                d = d.help(format!("did you mean '{s}'?"));
+            }
+            Error::input(d.help(format!("use one of: {}", words.join(", "))))
+        })?;
+    }
+    if let Some(b) = &r.replicates {
+        out.replicates = positive(ctx, b, "[inference].replicates", 2)?;
+    }
+    if let Some(per) = &r.per {
+        for (name, units) in per.get_ref() {
+            let used = placements
+                .iter()
+                .any(|p| p.gating.iter().chain(&p.components).any(|c| c.name == *name));
+            if !used {
+                let names: Vec<&str> = placements
+                    .iter()
+                    .flat_map(|p| p.gating.iter().chain(&p.components))
+                    .map(|c| c.name.as_str())
+                    .collect();
+                let mut d = ctx.err(
+                    per.span(),
+                    format!("[inference].per names '{name}', which no placement uses as a covariate"),
+                );
+                if let Some(s) = did_you_mean(name, names.iter().copied()) {
+                    d = d.help(format!("did you mean '{s}'?"));
+                }
+                return Err(Error::input(d));
+            }
+            let numeric = matches!(
+                variables.get(name).map(|v| &v.0),
+                Some(VariableType::Continuous | VariableType::Count) | None
+            );
+            if !numeric {
+                return Err(Error::input(
+                    ctx.err(
+                        per.span(),
+                        format!("[inference].per gives units for '{name}', which is not a numeric covariate"),
+                    )
+                    .help("units apply to continuous and count covariates; a binary or categorical covariate's effect is always one level against its reference"),
+                ));
+            }
+            let x = *units.get_ref();
+            if !(x > 0.0 && x.is_finite()) {
+                return Err(Error::input(
+                    ctx.err(
+                        units.span(),
+                        format!("[inference].per.{name} must be a positive number, not {x}"),
+                    )
+                    .help("e.g. per = { age = 10 } shows age effects per 10 years"),
+                ));
+            }
+            out.per.insert(name.clone(), x);
+        }
+    }
+    Ok(out)
 }
 
 fn compare_settings(

@@ -36,6 +36,21 @@ pub struct RawSpec {
     /// `[compare]`: how placements are compared.
     #[serde(default)]
     pub compare: Option<Spanned<RawCompare>>,
+    /// `[inference]`: standard errors and effect units.
+    #[serde(default)]
+    pub inference: Option<Spanned<RawInference>>,
+}
+
+/// `[inference]`.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawInference {
+    /// `observed-information` (default), `sandwich` or `bootstrap`.
+    pub standard_errors: Option<SStr>,
+    /// Bootstrap replicates (default 200).
+    pub replicates: Option<Spanned<i64>>,
+    /// Units per which a numeric covariate's effects are shown, e.g. `{ age = 10 }`.
+    pub per: Option<Spanned<BTreeMap<String, Spanned<f64>>>>,
 }
 
 /// `[compare]`.

@@ -126,7 +126,13 @@ fn aligned_tables_text(c: &compare::Comparison) -> String {
 fn permuting_fitted_labels_leaves_the_aligned_tables_unchanged() {
     let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [3]\n");
     let (d, p, mut fits) = run(&s);
-    let before = aligned_tables_text(&compare::compare(&d, &p, &fits, &s.compare));
+    let before = aligned_tables_text(&compare::compare(
+        &d,
+        &p,
+        &fits,
+        &s.compare,
+        compare::InferenceInput::none(),
+    ));
     for order in [[2usize, 0, 1], [1, 2, 0], [0, 2, 1]] {
         let f = fits.iter_mut().find(|f| f.placement == "gated").unwrap();
         let best = f.best.as_mut().unwrap();
@@ -138,7 +144,13 @@ fn permuting_fitted_labels_leaves_the_aligned_tables_unchanged() {
                 new[k] = old[o];
             }
         }
-        let after = aligned_tables_text(&compare::compare(&d, &p, &fits, &s.compare));
+        let after = aligned_tables_text(&compare::compare(
+            &d,
+            &p,
+            &fits,
+            &s.compare,
+            compare::InferenceInput::none(),
+        ));
         assert_eq!(before, after, "tables changed under permutation {order:?}");
     }
 }
@@ -150,7 +162,7 @@ fn an_extra_cluster_is_shown_without_a_counterpart() {
     let (_dir, s) =
         study("[[placement]]\nname = \"two\"\nclusters = [2]\n[[placement]]\nname = \"three\"\nclusters = [3]\n");
     let (d, p, fits) = run(&s);
-    let c = compare::compare(&d, &p, &fits, &s.compare);
+    let c = compare::compare(&d, &p, &fits, &s.compare, compare::InferenceInput::none());
     let three = c.alignments.iter().find(|a| a.placement == "three").unwrap();
     assert_eq!(three.overlap.iter().filter(|o| o.is_none()).count(), 1, "{three:?}");
     assert!(three.aligned.contains(&3));
@@ -190,7 +202,7 @@ fn an_extra_cluster_is_shown_without_a_counterpart() {
 fn sentences_cite_numbers_found_in_the_tables() {
     let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [2, 3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [2, 3]\n[[placement]]\nname = \"shifted\"\ncomponents = [\"age\"]\nclusters = [2, 3]\n");
     let (d, p, fits) = run(&s);
-    let c = compare::compare(&d, &p, &fits, &s.compare);
+    let c = compare::compare(&d, &p, &fits, &s.compare, compare::InferenceInput::none());
     assert!(c.sentences.len() >= 4, "{:?}", c.sentences);
     let tables = report::tables::tables(&c);
     for sentence in &c.sentences {

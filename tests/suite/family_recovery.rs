@@ -70,8 +70,8 @@ fn fit_truth(
     for (k, t) in assignment.iter().enumerate() {
         order[t.expect("square assignment")] = k + 1;
     }
-    let results = cohortmix::report::results(&study, &data, &prepared, std::slice::from_ref(&result));
-    (truth, results.fits[0].parameters_named.clone(), order)
+    let params = cohortmix::inference::named_parameters(&best.run.model, &data, &prepared[0]);
+    (truth, params, order)
 }
 
 use super::common::param_value as value;
