@@ -149,6 +149,14 @@ impl Error {
         Error::Run(Box::new(d))
     }
 
+    /// The same error with one more help line.
+    pub fn with_help(self, hint: impl Into<String>) -> Error {
+        match self {
+            Error::Input(d) => Error::Input(Box::new(d.help(hint))),
+            Error::Run(d) => Error::Run(Box::new(d.help(hint))),
+        }
+    }
+
     /// The process exit status this error maps to.
     pub fn exit_code(&self) -> i32 {
         match self {

@@ -17,6 +17,7 @@ Examples:
   cohortmix check configs/demo.toml       validate the spec against its data, show the plan
   cohortmix fit configs/demo.toml         fit every placement and cluster count
   cohortmix compare configs/demo.toml     fit, then compare placements: report.html
+  cohortmix predict runs/demo new.csv      memberships of new rows under the fitted models
   cohortmix simulate demo-data/respiratory-truth.toml
                                           write data drawn from a stated truth
 
@@ -68,6 +69,23 @@ with a \"comparison\" section, besides models.csv, memberships.csv and manifest.
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
     },
+    /// Posterior memberships of new rows under the models a run folder saved (each
+    /// placement's lowest-BIC fit).
+    #[command(
+        after_help = "Example:\n  cohortmix predict runs/demo new-workers.csv --out new-memberships.csv\n\n\
+The new data need the columns the study uses (indicators, covariates, id), coded as the\n\
+fitted data were; case weights are not needed. Rows missing a value the models need are\n\
+left out and counted. Output: the layout of memberships.csv."
+    )]
+    Predict {
+        /// The run folder (holds fitted-models.json).
+        run: PathBuf,
+        /// CSV of new rows.
+        data: PathBuf,
+        /// Output CSV (default: RUN/predictions/<data file name>).
+        #[arg(long, value_name = "FILE")]
+        out: Option<PathBuf>,
+    },
     /// Write a CSV of data drawn from the truth a truth spec states (seeded).
     #[command(after_help = "Example:\n  cohortmix simulate demo-data/respiratory-truth.toml\n\n\
 The truth spec format is described in docs/simulate.md.")]
@@ -114,6 +132,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Fit { spec, out } => fit_command(&spec, out.as_deref(), false),
         Command::Compare { spec, out } => fit_command(&spec, out.as_deref(), true),
         Command::Simulate { spec, out } => simulate_command(&spec, out.as_deref()),
+        Command::Predict { run, data, out } => predict_command(&run, &data, out.as_deref()),
     }
 }
 
@@ -311,6 +330,10 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
         report::memberships_csv(&data, &fits, &results.chosen),
     );
     files.add("manifest.json", manifest + "\n");
+    let stored = crate::fit::saved::save(&study, &data, &prepared, &fits);
+    let stored = serde_json::to_string_pretty(&stored)
+        .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode the fitted models: {e}"))))?;
+    files.add(crate::fit::saved::FILE_NAME, stored + "\n");
     for (name, text) in &pages {
         files.add(name, text.as_bytes());
     }
@@ -323,9 +346,9 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
         }
     }
     let names = if with_comparison {
-        "report.html, summary.md, results.json, models.csv, memberships.csv, manifest.json"
+        "report.html, summary.md, results.json, models.csv, memberships.csv, fitted-models.json, manifest.json"
     } else {
-        "results.json, models.csv, memberships.csv, manifest.json"
+        "results.json, models.csv, memberships.csv, fitted-models.json, manifest.json"
     };
     println!(
         "wrote {} ({names}) in {:.1} s",
@@ -391,6 +414,50 @@ fn print_table(results: &report::Results) {
             if chosen { "  <- lowest BIC" } else { "" }
         );
     }
+}
+
+fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<()> {
+    use crate::fit::saved;
+    let stored = saved::load_run(run)?;
+    let data = saved::load_new_data(&stored, data_path)?;
+    let predicted = saved::predict(&stored, &data)?;
+    let sets: Vec<(&str, usize, &[f64])> = predicted
+        .iter()
+        .map(|p| (p.placement.as_str(), p.clusters, p.tau.as_slice()))
+        .collect();
+    let text = report::memberships_table(&data.ids, &sets);
+    let dest = out.map_or_else(
+        || {
+            let name = data_path
+                .file_name()
+                .map_or_else(|| "predicted.csv".into(), |n| n.to_os_string());
+            run.join("predictions").join(name)
+        },
+        Path::to_path_buf,
+    );
+    let dir = dest
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
+    let name = dest
+        .file_name()
+        .map_or_else(|| "predicted.csv".into(), |n| n.to_string_lossy().to_string());
+    let mut files = RunFiles::default();
+    files.add(&name, text);
+    files.commit(&dir)?;
+    println!(
+        "{} rows of {} predicted ({} left out for a missing value) under {} fitted model{}",
+        data.n(),
+        data.rows_read,
+        data.rows_excluded,
+        predicted.len(),
+        plural(predicted.len())
+    );
+    for p in &predicted {
+        println!("  '{}', {} cluster{}", p.placement, p.clusters, plural(p.clusters));
+    }
+    println!("wrote {}", dest.display());
+    Ok(())
 }
 
 fn simulate_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {

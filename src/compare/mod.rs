@@ -355,19 +355,7 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Ve
     out
 }
 
-/// Index into `fits` of the chosen fit of each placement.
-pub fn chosen_fits(fits: &[FitResult], placements: usize, fixed: Option<usize>) -> Vec<Option<usize>> {
-    (0..placements)
-        .map(|p| {
-            fits.iter()
-                .enumerate()
-                .filter(|(_, f)| f.placement_index == p && fixed.is_none_or(|g| f.clusters == g))
-                .filter_map(|(i, f)| f.bic().map(|b| (i, b)))
-                .min_by(|a, b| a.1.total_cmp(&b.1))
-                .map(|(i, _)| i)
-        })
-        .collect()
-}
+pub use crate::fit::chosen_fits;
 
 /// The comparison of every placement's chosen fit against the reference placement's.
 pub fn compare(

@@ -5,7 +5,7 @@ use crate::spec::VariableType;
 use nalgebra::DMatrix;
 
 /// One column of a design matrix.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Term {
     /// Shown name: `intercept`, `age`, `sex=male`.
     pub name: String,
@@ -67,6 +67,60 @@ impl Design {
             })
             .collect::<Result<_, _>>()?;
         Design::from_columns(data.n(), &cols)
+    }
+
+    /// The design of `data` on terms fixed elsewhere (a fitted model's), with their
+    /// centres and scales: the same arithmetic as when the terms were made, so the rows
+    /// the model was fitted to give the same bits. A categorical covariate's level must
+    /// be one the terms were made from (`known_levels`).
+    pub fn from_terms(
+        data: &Dataset,
+        terms: &[Term],
+        known_levels: &std::collections::BTreeMap<String, Vec<String>>,
+    ) -> Result<Design, DesignError> {
+        let (n, p) = (data.n(), terms.len());
+        let mut x = vec![0.0; n * p];
+        for (j, t) in terms.iter().enumerate() {
+            let Some(c) = &t.covariate else {
+                for i in 0..n {
+                    x[i * p + j] = 1.0;
+                }
+                continue;
+            };
+            let missing = || DesignError {
+                covariate: Some(c.clone()),
+                message: format!("covariate '{c}' was not read"),
+            };
+            match data.columns.get(c).ok_or_else(missing)? {
+                Column::Numeric { values, .. } => {
+                    for (i, v) in values.iter().enumerate() {
+                        x[i * p + j] = (v - t.center) / t.scale;
+                    }
+                }
+                Column::Categorical { levels, codes, .. } => {
+                    if let Some(known) = known_levels.get(c) {
+                        if let Some(new) = codes.iter().map(|k| &levels[*k as usize]).find(|l| !known.contains(l)) {
+                            return Err(DesignError {
+                                covariate: Some(c.clone()),
+                                message: format!(
+                                    "covariate '{c}' has the level '{new}', which the fitted model never saw (its levels: {})",
+                                    known.join(", ")
+                                ),
+                            });
+                        }
+                    }
+                    let level = t.name.strip_prefix(&format!("{c}=")).unwrap_or(&t.name);
+                    for (i, k) in codes.iter().enumerate() {
+                        x[i * p + j] = f64::from(u8::from(levels[*k as usize] == level));
+                    }
+                }
+            }
+        }
+        Ok(Design {
+            terms: terms.to_vec(),
+            x,
+            n,
+        })
     }
 
     /// Build from columns directly (used by [`Design::build`] and by reference tests).

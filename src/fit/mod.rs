@@ -6,6 +6,7 @@
 //! that degenerates is recorded with its reason and skipped. [`fit_grid`] does every cell.
 
 pub mod em;
+pub mod saved;
 pub mod starts;
 
 use crate::data::{Dataset, Design};
@@ -89,42 +90,55 @@ pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> 
                 )?,
                 None => Design::intercept(data.n()),
             };
-            let item_terms = data.items.as_ref().map_or_else(Vec::new, |b| {
-                b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
-            });
-            let count_terms = data.counts.as_ref().map_or_else(Vec::new, |b| {
-                b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
-            });
-            let item_levels: Vec<usize> = data
-                .items
-                .as_ref()
-                .map_or_else(Vec::new, |b| b.levels.iter().map(Vec::len).collect());
-            let item_rows = data.items.as_ref().map_or_else(Vec::new, |b| {
-                ItemRows::build(&b.codes, &item_levels, &components.x, components.p(), &item_terms)
-            });
-            let count_x = count_terms
-                .iter()
-                .map(|cols| {
-                    if cols.len() > 1 {
-                        crate::model::design_rows(&components.x, components.p(), cols)
-                    } else {
-                        Vec::new()
-                    }
-                })
-                .collect();
-            Ok(PreparedPlacement {
-                placement: p.clone(),
-                gating: design(&p.gating.iter().collect::<Vec<_>>())?,
-                components,
-                gaussian,
-                item_terms,
-                item_levels,
-                count_terms,
-                item_rows,
-                count_x,
-            })
+            let gating = design(&p.gating.iter().collect::<Vec<_>>())?;
+            Ok(assemble(data, p, gating, components, gaussian))
         })
         .collect()
+}
+
+/// A placement's prepared arrays from its three designs (gating, all component
+/// covariates, and those acting on the continuous indicators).
+pub fn assemble(
+    data: &Dataset,
+    p: &Placement,
+    gating: Design,
+    components: Design,
+    gaussian: Design,
+) -> PreparedPlacement {
+    let item_terms = data.items.as_ref().map_or_else(Vec::new, |b| {
+        b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
+    });
+    let count_terms = data.counts.as_ref().map_or_else(Vec::new, |b| {
+        b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
+    });
+    let item_levels: Vec<usize> = data
+        .items
+        .as_ref()
+        .map_or_else(Vec::new, |b| b.levels.iter().map(Vec::len).collect());
+    let item_rows = data.items.as_ref().map_or_else(Vec::new, |b| {
+        ItemRows::build(&b.codes, &item_levels, &components.x, components.p(), &item_terms)
+    });
+    let count_x = count_terms
+        .iter()
+        .map(|cols| {
+            if cols.len() > 1 {
+                crate::model::design_rows(&components.x, components.p(), cols)
+            } else {
+                Vec::new()
+            }
+        })
+        .collect();
+    PreparedPlacement {
+        placement: p.clone(),
+        gating,
+        components,
+        gaussian,
+        item_terms,
+        item_levels,
+        count_terms,
+        item_rows,
+        count_x,
+    }
 }
 
 /// What happened to one start.
@@ -418,7 +432,7 @@ pub fn fit_cell(
             .filter_map(|(_, r)| r.as_ref())
             .filter(|r| (r.objective - run.objective).abs() <= SAME_OPTIMUM * run.objective.abs())
             .count();
-        order_largest_first(&mut run, &data.weights, &prepared.placement.proportions);
+        order_largest_first(&mut run, &fd, &prepared.placement.proportions);
         BestFit {
             run,
             start: i + 1,
@@ -438,9 +452,27 @@ pub fn fit_cell(
     }
 }
 
+/// Index into `fits` of the chosen fit of each placement: its lowest BIC, at the cluster
+/// count `fixed` when one is given.
+pub fn chosen_fits(fits: &[FitResult], placements: usize, fixed: Option<usize>) -> Vec<Option<usize>> {
+    (0..placements)
+        .map(|p| {
+            fits.iter()
+                .enumerate()
+                .filter(|(_, f)| f.placement_index == p && fixed.is_none_or(|g| f.clusters == g))
+                .filter_map(|(i, f)| f.bic().map(|b| (i, b)))
+                .min_by(|a, b| a.1.total_cmp(&b.1))
+                .map(|(i, _)| i)
+        })
+        .collect()
+}
+
 /// Relabel clusters by decreasing weighted size (cluster 1, the gating reference, is
-/// the largest). Fixed proportions keep the user's order.
-fn order_largest_first(run: &mut EmRun, weights: &[f64], proportions: &Proportions) {
+/// the largest). Fixed proportions keep the user's order. The responsibilities are
+/// recomputed from the relabelled model rather than permuted, so that they are bit for
+/// bit what an E-step of the saved model gives (a softmax sums in cluster order).
+fn order_largest_first(run: &mut EmRun, fd: &FitData, proportions: &Proportions) {
+    let weights = fd.weights;
     if matches!(proportions, Proportions::Fixed(_)) {
         return;
     }
@@ -452,12 +484,7 @@ fn order_largest_first(run: &mut EmRun, weights: &[f64], proportions: &Proportio
         return;
     }
     run.model.permute(&order);
-    let old = run.tau.clone();
-    for (row_new, row_old) in run.tau.chunks_exact_mut(g).zip(old.chunks_exact(g)) {
-        for (k, &o) in order.iter().enumerate() {
-            row_new[k] = row_old[o];
-        }
-    }
+    crate::model::e_step(&run.model, fd, &mut run.tau, None);
 }
 
 /// A grid cell to fit.

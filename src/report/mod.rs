@@ -472,23 +472,32 @@ pub fn models_csv(results: &Results) -> String {
 /// `memberships.csv`: per row, for the chosen fit of each placement: most likely cluster
 /// and posterior probabilities (long format: one block of rows per placement).
 pub fn memberships_csv(data: &Dataset, fits: &[FitResult], chosen: &[Chosen]) -> String {
-    let kmax = chosen.iter().map(|c| c.clusters).max().unwrap_or(1);
+    let sets: Vec<(&str, usize, &[f64])> = chosen
+        .iter()
+        .filter_map(|c| {
+            let f = fits
+                .iter()
+                .find(|f| f.placement == c.placement && f.clusters == c.clusters && f.covariance() == c.covariance)?;
+            let best = f.best.as_ref()?;
+            Some((f.placement.as_str(), f.clusters, best.run.tau.as_slice()))
+        })
+        .collect();
+    memberships_table(&data.ids, &sets)
+}
+
+/// Memberships as CSV: per (placement, clusters, posteriors n×G) and row, the row id,
+/// its most likely cluster and every posterior (6 decimals); `memberships.csv` and
+/// `predict` write this layout.
+pub fn memberships_table(ids: &[String], sets: &[(&str, usize, &[f64])]) -> String {
+    let kmax = sets.iter().map(|s| s.1).max().unwrap_or(1);
     let mut s = String::from("placement,clusters,id,most_likely");
     for k in 1..=kmax {
         let _ = write!(s, ",posterior_{k}");
     }
     s.push('\n');
-    for c in chosen {
-        let Some(f) = fits
-            .iter()
-            .find(|f| f.placement == c.placement && f.clusters == c.clusters)
-        else {
-            continue;
-        };
-        let Some(best) = &f.best else { continue };
-        let g = f.clusters;
-        let name = csv_field(&f.placement);
-        for (id, row) in data.ids.iter().zip(best.run.tau.chunks_exact(g)) {
+    for (placement, g, tau) in sets {
+        let name = csv_field(placement);
+        for (id, row) in ids.iter().zip(tau.chunks_exact(*g)) {
             let most = crate::compare::most_likely(row);
             let _ = write!(s, "{name},{g},{},{}", csv_field(id), most + 1);
             for t in row {

@@ -214,7 +214,7 @@ fn the_symptom_demo_compares_its_placements() {
 
 #[test]
 fn help_shows_an_example_for_every_command() {
-    for cmd in ["check", "fit", "simulate"] {
+    for cmd in ["check", "fit", "compare", "predict", "simulate"] {
         let out = cohortmix(Path::new("."), &[cmd, "--help"]);
         assert!(out.status.success());
         let s = String::from_utf8_lossy(&out.stdout);
@@ -299,4 +299,29 @@ fn equal_and_fixed_proportions_have_no_gating_parameters() {
     // Constraining the proportions cannot raise the maximum likelihood.
     assert!(equal["loglik"].as_f64().unwrap() <= free["loglik"].as_f64().unwrap() + 1e-6);
     assert!(fixed["loglik"].as_f64().unwrap() <= free["loglik"].as_f64().unwrap() + 1e-6);
+}
+
+#[test]
+fn predict_on_the_fitted_rows_writes_the_memberships_again() {
+    let dir = small_study();
+    assert!(cohortmix(dir.path(), &["fit", "study.toml", "--out", "run"])
+        .status
+        .success());
+    let out = cohortmix(dir.path(), &["predict", "run", "small.csv", "--out", "again.csv"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        read(&dir.path().join("again.csv")),
+        read(&dir.path().join("run/memberships.csv"))
+    );
+    // New data without a column the models need: exit 2, naming the column.
+    let csv = String::from_utf8(read(&dir.path().join("small.csv"))).unwrap();
+    std::fs::write(dir.path().join("no-age.csv"), csv.replacen(",age", ",years", 1)).unwrap();
+    let out = cohortmix(dir.path(), &["predict", "run", "no-age.csv"]);
+    assert_eq!(out.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(stderr.contains("'age'") && stderr.contains("no-age.csv"), "{stderr}");
+    // A folder that is not a run folder.
+    let out = cohortmix(dir.path(), &["predict", ".", "small.csv"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("fitted-models.json"));
 }

@@ -22,7 +22,8 @@
 use nalgebra::{DMatrix, DVector, SymmetricEigen};
 
 /// Volume across clusters.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
 pub enum Volume {
     /// One volume for all clusters.
     Equal,
@@ -31,7 +32,8 @@ pub enum Volume {
 }
 
 /// Shape across clusters.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
 pub enum Shape {
     /// Every direction has the same spread (A = I).
     Spherical,
@@ -42,7 +44,8 @@ pub enum Shape {
 }
 
 /// Orientation across clusters.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
 pub enum Orientation {
     /// Principal axes along the indicator axes (D = I): no correlations.
     Axes,
@@ -54,7 +57,7 @@ pub enum Orientation {
 
 /// A covariance structure. Spherical shapes carry `Orientation::Axes` (orientation is
 /// then meaningless).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize)]
 pub struct CovarianceStructure {
     /// Volume.
     pub volume: Volume,
