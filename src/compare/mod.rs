@@ -134,6 +134,30 @@ pub struct ComponentEffect {
     pub effect: crate::inference::effects::Effect,
 }
 
+/// A three-step placement's gating effect: the corrected estimate beside plain
+/// classify-analyze, which is biased toward no effect and shown only as a contrast.
+#[derive(Debug, Clone, Serialize)]
+pub struct ThreeStepEffect {
+    /// Placement.
+    pub placement: String,
+    /// `three-step-bch` or `three-step-ml`.
+    pub method: &'static str,
+    /// Weighted share of rows assigned to another cluster than their own (estimated).
+    pub misclassified: f64,
+    /// Aligned cluster.
+    pub cluster: usize,
+    /// Aligned cluster it is compared with (the placement's fitted cluster 1).
+    pub versus: usize,
+    /// Gating term.
+    pub term: String,
+    /// Units of the term per which the ratios are given.
+    pub per: f64,
+    /// Corrected relative risk ratio with its 95% interval.
+    pub corrected: crate::inference::effects::Interval,
+    /// Classify-analyze relative risk ratio with its 95% interval (biased; a contrast).
+    pub classify_analyze: crate::inference::effects::Interval,
+}
+
 /// A joint Wald test of a gating covariate in a compared fit.
 #[derive(Debug, Clone, Serialize)]
 pub struct GatingTest {
@@ -239,6 +263,8 @@ pub struct Comparison {
     pub gating_effects: Vec<GatingEffect>,
     /// Joint Wald tests of each gating covariate.
     pub gating_tests: Vec<GatingTest>,
+    /// Three-step placements: corrected and classify-analyze gating effects.
+    pub three_step: Vec<ThreeStepEffect>,
     /// Component covariate effects (mean differences, odds ratios, rate ratios).
     pub component_effects: Vec<ComponentEffect>,
     /// How standard errors were computed, and per placement why they are missing.
@@ -269,16 +295,7 @@ pub fn ratio(x: f64) -> String {
     format!("{x:.3}")
 }
 
-/// Index of the largest posterior in a row (the first on ties).
-pub fn most_likely(row: &[f64]) -> usize {
-    let mut best = 0;
-    for (k, v) in row.iter().enumerate() {
-        if *v > row[best] {
-            best = k;
-        }
-    }
-    best
-}
+pub use crate::fit::most_likely;
 
 fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Vec<Criteria> {
     let mut out = Vec::new();
@@ -434,6 +451,7 @@ pub fn compare(
     let mut effect_curves = Vec::new();
     let mut certainty = Vec::new();
     let mut gating_tests = Vec::new();
+    let mut three_step = Vec::new();
     let mut component_effects = Vec::new();
     let mut inference_notes = Vec::new();
     for (p, fi, aligned) in &labelled {
@@ -459,12 +477,17 @@ pub fn compare(
         };
         if let Some(u) = uncertainty {
             gating_tests.extend(
-                crate::inference::effects::gating_wald_tests(u, &prepared[*p].gating)
-                    .into_iter()
-                    .map(|test| GatingTest {
-                        placement: f.placement.clone(),
-                        test,
-                    }),
+                crate::inference::effects::gating_wald_tests(
+                    u,
+                    f.reported_gating()
+                        .as_ref()
+                        .map_or(&prepared[*p].gating, |g| prepared[*p].design_of(g)),
+                )
+                .into_iter()
+                .map(|test| GatingTest {
+                    placement: f.placement.clone(),
+                    test,
+                }),
             );
             component_effects.extend(
                 crate::inference::effects::effects(u, inference.per)
@@ -499,21 +522,20 @@ pub fn compare(
                 population_averaged: avg,
             });
         }
+        let gating = f.reported_gating().unwrap_or_else(|| best.run.model.gating.clone());
+        let design = prepared[*p].design_of(&gating);
+        if let Some(Ok(st)) = &f.step_three {
+            three_step.extend(three_step_effects(st, design, aligned, &f.placement, inference.per));
+        }
         gating_effects.extend(effects(
-            &best.run.model.gating,
-            &prepared[*p].gating,
+            &gating,
+            design,
             aligned,
             &f.placement,
             uncertainty,
             inference.per,
         ));
-        effect_curves.extend(curves(
-            data,
-            &best.run.model.gating,
-            &prepared[*p].gating,
-            aligned,
-            &f.placement,
-        ));
+        effect_curves.extend(curves(data, &gating, design, aligned, &f.placement));
     }
     profiles.sort_by(|a, b| {
         a.cluster
@@ -595,6 +617,7 @@ pub fn compare(
         profiles,
         gating_effects,
         gating_tests,
+        three_step,
         component_effects,
         inference_notes,
         cross_tables,
@@ -804,6 +827,44 @@ fn effects(
                 rrr: (coef * units).exp(),
                 interval: interval.map(|i| (i.lower, i.upper)),
                 p_value: interval.map(|i| i.p_value),
+            });
+        }
+    }
+    out
+}
+
+fn three_step_effects(
+    st: &crate::fit::three_step::StepThree,
+    design: &Design,
+    aligned: &[usize],
+    placement: &str,
+    per: &std::collections::BTreeMap<String, f64>,
+) -> Vec<ThreeStepEffect> {
+    use crate::inference::effects::{per_units, Interval};
+    let p = design.p();
+    let mut out = Vec::new();
+    for k in 1..aligned.len() {
+        let block = (k - 1) * p..k * p;
+        let corrected = design.to_original_scale(&st.gamma[block.clone()]);
+        let naive = design.to_original_scale(&st.naive_gamma[block]);
+        for (j, term) in design.terms.iter().enumerate().skip(1) {
+            let units = per_units(&term.name, per);
+            let i = (k - 1) * p + j;
+            // A slope maps to the original scale by 1/scale alone.
+            let se = |cov: &nalgebra::DMatrix<f64>| cov[(i, i)].max(0.0).sqrt() / term.scale * units;
+            out.push(ThreeStepEffect {
+                placement: placement.to_string(),
+                method: match st.method {
+                    crate::spec::Method::ThreeStepMl => "three-step-ml",
+                    _ => "three-step-bch",
+                },
+                misclassified: st.misclassified,
+                cluster: aligned[k],
+                versus: aligned[0],
+                term: term.name.clone(),
+                per: units,
+                corrected: Interval::new(corrected[j] * units, se(&st.covariance), true),
+                classify_analyze: Interval::new(naive[j] * units, se(&st.naive_covariance), true),
             });
         }
     }

@@ -8,6 +8,7 @@
 pub mod em;
 pub mod saved;
 pub mod starts;
+pub mod three_step;
 
 use crate::data::{Dataset, Design};
 use crate::error::{Error, Result};
@@ -47,6 +48,21 @@ pub struct PreparedPlacement {
     pub item_rows: Vec<ItemRows>,
     /// Per count with covariates, its design on its columns (empty without covariates).
     pub count_x: Vec<Vec<f64>>,
+    /// For a three-step placement: the design of its gating covariates, used in step 3
+    /// (the mixture itself is fitted with `gating` = intercept alone).
+    pub step_three: Option<Design>,
+}
+
+impl PreparedPlacement {
+    /// The design a gating network's coefficients refer to: the step-3 covariates for
+    /// the logit of a three-step placement (its mixture has no gating covariates), else
+    /// the gating design.
+    pub fn design_of(&self, gating: &Gating) -> &Design {
+        match (&self.step_three, gating) {
+            (Some(d), Gating::Logit { .. }) => d,
+            _ => &self.gating,
+        }
+    }
 }
 
 /// Columns of `design` that act on `indicator` under `placement`: the intercept and every
@@ -90,8 +106,13 @@ pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> 
                 )?,
                 None => Design::intercept(data.n()),
             };
-            let gating = design(&p.gating.iter().collect::<Vec<_>>())?;
-            Ok(assemble(data, p, gating, components, gaussian))
+            let covariates = design(&p.gating.iter().collect::<Vec<_>>())?;
+            if p.method.is_three_step() {
+                let mut pp = assemble(data, p, Design::intercept(data.n()), components, gaussian);
+                pp.step_three = Some(covariates);
+                return Ok(pp);
+            }
+            Ok(assemble(data, p, covariates, components, gaussian))
         })
         .collect()
 }
@@ -138,6 +159,7 @@ pub fn assemble(
         count_terms,
         item_rows,
         count_x,
+        step_three: None,
     }
 }
 
@@ -188,6 +210,8 @@ pub struct FitResult {
     pub starts: Vec<StartRecord>,
     /// The best usable start, if any.
     pub best: Option<BestFit>,
+    /// Three-step placements: the step-3 gating effects, or why they failed.
+    pub step_three: Option<std::result::Result<three_step::StepThree, String>>,
 }
 
 /// The words for a fit's covariance structure, or that there is none.
@@ -237,6 +261,29 @@ impl FitResult {
     /// AIC = −2 loglik + 2k (smaller is better).
     pub fn aic(&self) -> Option<f64> {
         self.loglik().map(|l| -2.0 * l + 2.0 * self.n_params as f64)
+    }
+
+    /// The gating network whose effects are reported: the step-3 logit of a three-step
+    /// placement, else the fitted one.
+    pub fn reported_gating(&self) -> Option<Gating> {
+        let best = self.best.as_ref()?;
+        match &self.step_three {
+            Some(Ok(st)) => Some(Gating::Logit {
+                g: self.clusters,
+                p: st.gamma.len() / (self.clusters - 1),
+                gamma: st.gamma.clone(),
+                ridge: 0.0,
+                bound_inverse: None,
+            }),
+            _ => Some(best.run.model.gating.clone()),
+        }
+    }
+
+    /// The fitted model with the reported gating network (see [`Self::reported_gating`]).
+    pub fn reported_model(&self) -> Option<Model> {
+        let mut m = self.best.as_ref()?.run.model.clone();
+        m.gating = self.reported_gating()?;
+        Some(m)
     }
 
     /// Cluster shares of the best fit (weighted posterior sums over the weight total).
@@ -439,7 +486,18 @@ pub fn fit_cell(
             reaching,
         }
     });
+    let step_three = match (&prepared.step_three, &best) {
+        (Some(design), Some(b)) if g > 1 => Some(three_step::estimate(
+            prepared.placement.method,
+            &b.run.tau,
+            g,
+            &data.weights,
+            design,
+        )),
+        _ => None,
+    };
     FitResult {
+        step_three,
         placement_index,
         placement: prepared.placement.name.clone(),
         clusters: g,
@@ -450,6 +508,17 @@ pub fn fit_cell(
         starts: runs.into_iter().map(|(r, _)| r).collect(),
         best,
     }
+}
+
+/// Index of the largest posterior in a row (the first on ties).
+pub fn most_likely(row: &[f64]) -> usize {
+    let mut best = 0;
+    for (k, v) in row.iter().enumerate() {
+        if *v > row[best] {
+            best = k;
+        }
+    }
+    best
 }
 
 /// Index into `fits` of the chosen fit of each placement: its lowest BIC, at the cluster

@@ -101,7 +101,7 @@ impl Uncertainty {
 /// Every reported parameter of a model: gating first, then the component blocks, on the
 /// original covariate scale.
 pub fn named_parameters(model: &Model, data: &Dataset, prepared: &PreparedPlacement) -> Vec<Parameter> {
-    let mut out = gating_parameters(&model.gating, &prepared.gating);
+    let mut out = gating_parameters(&model.gating, prepared.design_of(&model.gating));
     let item_levels = data.items.as_ref().map_or(&[][..], |b| &b.levels[..]);
     out.extend(model.components.parameters(Naming {
         indicators: &data.gaussian_names,
@@ -380,14 +380,59 @@ pub fn for_fits(
         .map(|(i, f)| {
             let best = f.best.as_ref().filter(|_| which.contains(&i))?;
             let label = format!("{}|{}|{}", f.placement, f.clusters, f.covariance());
-            Some(uncertainty(
-                &best.run.model,
-                &best.run.tau,
-                data,
-                &prepared[f.placement_index],
-                &settings,
-                &label,
-            ))
+            let pp = &prepared[f.placement_index];
+            let measurement = uncertainty(&best.run.model, &best.run.tau, data, pp, &settings, &label);
+            Some(match &f.step_three {
+                None => measurement,
+                Some(Err(reason)) => Err(format!("step 3 failed: {reason}")),
+                Some(Ok(st)) => measurement.map(|m| with_step_three(m, f, st, data, pp)),
+            })
         })
         .collect()
+}
+
+/// A three-step fit's uncertainty: its step-3 gating coefficients (with step 3's own
+/// covariance, on the original scale) in place of the measurement model's shares, which
+/// keep their own covariance.
+fn with_step_three(
+    measurement: Uncertainty,
+    f: &crate::fit::FitResult,
+    st: &crate::fit::three_step::StepThree,
+    data: &Dataset,
+    prepared: &PreparedPlacement,
+) -> Uncertainty {
+    let model = f.reported_model().expect("a fit with step 3 has a best start");
+    let parameters = named_parameters(&model, data, prepared);
+    let design = prepared.design_of(&model.gating);
+    let p = design.p();
+    let m = st.gamma.len();
+    // The map to the original scale is linear and acts within each cluster's block.
+    let mut t = DMatrix::zeros(m, m);
+    for k in 0..m / p {
+        for j in 0..p {
+            let mut e = vec![0.0; p];
+            e[j] = 1.0;
+            for (a, v) in design.to_original_scale(&e).into_iter().enumerate() {
+                t[(k * p + a, k * p + j)] = v;
+            }
+        }
+    }
+    let gating_cov = &t * &st.covariance * t.transpose();
+    let kept: Vec<usize> = (0..measurement.parameters.len())
+        .filter(|i| measurement.parameters[*i].block != "gating")
+        .collect();
+    let r = parameters.len();
+    let mut cov = DMatrix::zeros(r, r);
+    cov.view_mut((0, 0), (m, m)).copy_from(&gating_cov);
+    for (a, &i) in kept.iter().enumerate() {
+        for (b, &j) in kept.iter().enumerate() {
+            cov[(m + a, m + b)] = measurement.covariance[(i, j)];
+        }
+    }
+    Uncertainty {
+        method: measurement.method,
+        parameters,
+        covariance: cov,
+        replicates: measurement.replicates,
+    }
 }

@@ -387,7 +387,7 @@ pub fn logit_objective(w: &[f64], p: usize, tau: &[f64], g: usize, weights: &[f6
     let mut total = 0.0;
     for ((wr, tr), c) in w.chunks_exact(p).zip(tau.chunks_exact(g)).zip(weights) {
         log_softmax_row(gamma, p, wr, &mut lp);
-        let row: f64 = tr.iter().zip(&lp).filter(|(t, _)| **t > 0.0).map(|(t, l)| t * l).sum();
+        let row: f64 = tr.iter().zip(&lp).filter(|(t, _)| **t != 0.0).map(|(t, l)| t * l).sum();
         total += c * row;
     }
     total - ridge_penalty(gamma, p, ridge)
@@ -420,7 +420,7 @@ pub fn logit_score_hessian(
         let s: f64 = tr.iter().sum();
         for k in 0..g {
             pi[k] = lp[k].exp();
-            if tr[k] > 0.0 {
+            if tr[k] != 0.0 {
                 objective += c * tr[k] * lp[k];
             }
         }

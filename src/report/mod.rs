@@ -182,6 +182,10 @@ pub struct FitRecord {
     /// Joint Wald tests of each gating covariate, when standard errors exist.
     #[serde(skip_serializing_if = "Vec::is_empty")]
     pub gating_tests: Vec<crate::inference::effects::WaldTest>,
+    /// Three-step placements: the method, the classification-error matrix and the share
+    /// misclassified (the gating parameters above are the step-3 estimates).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub step_three: Option<crate::fit::three_step::StepThree>,
 }
 
 /// A named parameter and its standard error.
@@ -271,7 +275,11 @@ pub fn results(
             let termination = f.termination();
             let (parameters_named, gating_model) = match &f.best {
                 Some(b) => (
-                    crate::inference::named_parameters(&b.run.model, data, pp),
+                    crate::inference::named_parameters(
+                        &f.reported_model().unwrap_or_else(|| b.run.model.clone()),
+                        data,
+                        pp,
+                    ),
                     gating_word(&b.run.model.gating),
                 ),
                 None => (Vec::new(), "none"),
@@ -305,7 +313,10 @@ pub fn results(
                 crate::inference::effects::effects(u, &study.inference.per)
             });
             let gating_tests = ok.map_or_else(Vec::new, |u| {
-                crate::inference::effects::gating_wald_tests(u, &pp.gating)
+                crate::inference::effects::gating_wald_tests(
+                    u,
+                    f.reported_gating().as_ref().map_or(&pp.gating, |g| pp.design_of(g)),
+                )
             });
             FitRecord {
                 placement: f.placement.clone(),
@@ -340,6 +351,7 @@ pub fn results(
                 standard_errors,
                 effects,
                 gating_tests,
+                step_three: f.step_three.as_ref().and_then(|r| r.as_ref().ok()).cloned(),
             }
         })
         .collect();

@@ -171,6 +171,39 @@ pub struct Placement {
     /// Component covariates restricted to some indicators (`acts_on`); a component
     /// covariate not listed acts on every indicator.
     pub acts_on: BTreeMap<String, Vec<String>>,
+    /// How the gating effects are estimated.
+    pub method: Method,
+}
+
+/// How a placement estimates its gating effects.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Method {
+    /// Covariates in the gating network of the mixture itself (one likelihood).
+    #[default]
+    OneStep,
+    /// Fit the clusters without gating covariates, classify, then a multinomial logit
+    /// weighted to undo the classification errors (Bolck, Croon & Hagenaars 2004).
+    ThreeStepBch,
+    /// Fit the clusters without gating covariates, classify, then a multinomial logit
+    /// whose likelihood includes the classification errors (Vermunt 2010).
+    ThreeStepMl,
+}
+
+impl Method {
+    /// The spec word.
+    pub fn word(&self) -> &'static str {
+        match self {
+            Method::OneStep => "one-step",
+            Method::ThreeStepBch => "three-step-bch",
+            Method::ThreeStepMl => "three-step-ml",
+        }
+    }
+
+    /// Whether the gating effects come after the clusters are fixed.
+    pub fn is_three_step(&self) -> bool {
+        !matches!(self, Method::OneStep)
+    }
 }
 
 impl Placement {
@@ -689,6 +722,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
             clusters: default_clusters.clone(),
             clusters_span: default_span.clone(),
             acts_on: BTreeMap::new(),
+            method: Method::OneStep,
         });
     }
     for p in &raw.placement {
@@ -1168,6 +1202,30 @@ fn placement(
         ));
     }
     let acts_on = acts_on(ctx, r, &components, indicators, kinds)?;
+    let mut method = Method::OneStep;
+    if let Some(m) = &r.method {
+        let all = [Method::OneStep, Method::ThreeStepBch, Method::ThreeStepMl];
+        method = all.into_iter().find(|x| x.word() == m.get_ref()).ok_or_else(|| {
+            let words = all.map(|x| x.word());
+            let mut d = ctx.err(m.span(), format!("unknown method '{}'", m.get_ref()));
+            if let Some(s) = did_you_mean(m.get_ref(), words.iter().copied()) {
+                d = d.help(format!("did you mean '{s}'?"));
+            }
+            Error::input(d.help(format!("use one of: {}", words.join(", "))))
+        })?;
+        if method.is_three_step() && gating.is_empty() {
+            return Err(Error::input(
+                ctx.err(
+                    m.span(),
+                    format!(
+                        "method '{}' estimates gating effects, but this placement has no gating covariates",
+                        m.get_ref()
+                    ),
+                )
+                .help("add a gating list, or remove the method key"),
+            ));
+        }
+    }
     Ok(Placement {
         name,
         gating,
@@ -1176,6 +1234,7 @@ fn placement(
         clusters,
         clusters_span,
         acts_on,
+        method,
     })
 }
 

@@ -177,6 +177,9 @@ pub struct RawSearch {
 pub struct RawPlacement {
     /// Unique name shown in every table.
     pub name: SStr,
+    /// How gating effects are estimated: `one-step` (default), `three-step-bch` or
+    /// `three-step-ml`.
+    pub method: Option<SStr>,
     /// Covariates of the gating network (membership).
     pub gating: Option<SList>,
     /// Covariates of the component models (inside clusters).

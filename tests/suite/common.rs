@@ -59,6 +59,7 @@ pub fn free_placement() -> cohortmix::spec::Placement {
         clusters: vec![],
         clusters_span: 0..0,
         acts_on: Default::default(),
+        method: Default::default(),
     }
 }
 
