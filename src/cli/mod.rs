@@ -293,6 +293,14 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
         plural(compared.len())
     );
     let uncertainty = crate::inference::for_fits(&study, &data, &prepared, &fits, &compared);
+    let screen = if with_comparison && study.inference.direct_effect_screen {
+        eprintln!("direct-effect screen of the chosen fits");
+        let shown = crate::compare::chosen_fits(&fits, prepared.len(), study.compare.clusters);
+        let shown: Vec<usize> = shown.into_iter().flatten().collect();
+        crate::inference::screen::screen(&study, &data, &prepared, &fits, &shown)
+    } else {
+        Vec::new()
+    };
     let seconds_inference = t2.elapsed().as_secs_f64();
     let mut results = report::results(&study, &data, &prepared, &fits, &uncertainty);
     let mut pages = Vec::new();
@@ -300,6 +308,7 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
         let inference = crate::compare::InferenceInput {
             per: &study.inference.per,
             by_fit: &uncertainty,
+            screen: &screen,
         };
         let comparison = crate::compare::compare(&data, &prepared, &fits, &study.compare, inference);
         pages.push(("summary.md", report::document::markdown(&results, &comparison)));

@@ -176,6 +176,8 @@ pub struct InferenceInput<'a> {
     /// Per fit (indexed as the fits): its standard errors, why they are missing, or None
     /// when they were not computed.
     pub by_fit: &'a [Option<std::result::Result<crate::inference::Uncertainty, String>>],
+    /// The direct-effect screen of the compared fits.
+    pub screen: &'a [crate::inference::screen::DirectEffectTest],
 }
 
 static NO_UNITS: std::collections::BTreeMap<String, f64> = std::collections::BTreeMap::new();
@@ -186,6 +188,7 @@ impl InferenceInput<'static> {
         InferenceInput {
             per: &NO_UNITS,
             by_fit: &[],
+            screen: &[],
         }
     }
 }
@@ -265,6 +268,8 @@ pub struct Comparison {
     pub gating_tests: Vec<GatingTest>,
     /// Three-step placements: corrected and classify-analyze gating effects.
     pub three_step: Vec<ThreeStepEffect>,
+    /// Likelihood-ratio tests of direct effects the compared fits leave out.
+    pub direct_effects: Vec<crate::inference::screen::DirectEffectTest>,
     /// Component covariate effects (mean differences, odds ratios, rate ratios).
     pub component_effects: Vec<ComponentEffect>,
     /// How standard errors were computed, and per placement why they are missing.
@@ -288,6 +293,15 @@ pub fn pct(x: f64) -> String {
 /// Format an indicator value the way every table prints it.
 pub fn val(x: f64) -> String {
     format!("{x:.2}")
+}
+
+/// Format a p-value the way every table prints it: three decimals, or "<0.001".
+pub fn p_value(p: f64) -> String {
+    if p < 0.001 {
+        "<0.001".to_string()
+    } else {
+        format!("{p:.3}")
+    }
 }
 
 /// Format a relative risk ratio the way every table prints it.
@@ -598,7 +612,7 @@ pub fn compare(
 
     let reference = prepared[settings.reference].placement.name.clone();
     let columns = profile_columns(data);
-    let sentences = sentences(
+    let mut sentences = sentences(
         &reference,
         &columns,
         &criteria,
@@ -607,6 +621,28 @@ pub fn compare(
         &gating_effects,
         &cross_tables,
     );
+    for t in inference.screen.iter().filter(|t| t.flagged) {
+        let p = t.p_value.map_or_else(String::new, p_value);
+        let text = if t.step_three_covariate {
+            format!(
+                "Warning: under '{}', {} has a direct effect on {} (likelihood-ratio p {p}), which the three-step estimate assumes away; prefer a placement that models it.",
+                t.placement, t.covariate, t.indicator
+            )
+        } else {
+            format!(
+                "Under '{}', {} may act directly on {} (likelihood-ratio p {p}); the clusters' meaning then differs across its values unless the effect is modelled (acts_on).",
+                t.placement, t.covariate, t.indicator
+            )
+        };
+        sentences.push(Sentence {
+            text,
+            source: format!(
+                "direct-effect screen table, row '{}, {}, {}'",
+                t.placement, t.covariate, t.indicator
+            ),
+            numbers: vec![p],
+        });
+    }
     Comparison {
         reference,
         fixed_clusters: settings.clusters,
@@ -618,6 +654,7 @@ pub fn compare(
         gating_effects,
         gating_tests,
         three_step,
+        direct_effects: inference.screen.to_vec(),
         component_effects,
         inference_notes,
         cross_tables,

@@ -84,37 +84,40 @@ pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> 
     study
         .placements
         .iter()
-        .map(|p| {
-            let design = |cols: &[&crate::spec::ColumnRef]| -> Result<Design> {
-                let names: Vec<String> = cols.iter().map(|c| c.name.clone()).collect();
-                data.design(&names).map_err(|e| {
-                    let at = cols
-                        .iter()
-                        .find(|c| Some(&c.name) == e.covariate.as_ref())
-                        .or(cols.first());
-                    let span = at.map_or(0..0, |c| c.span.clone());
-                    Error::input(study.error_at(span, format!("in placement '{}': {}", p.name, e.message)))
-                })
-            };
-            let components = design(&p.components.iter().collect::<Vec<_>>())?;
-            let gaussian = match data.gaussian_names.first() {
-                Some(first) => design(
-                    &p.components
-                        .iter()
-                        .filter(|c| p.acts_on(&c.name, first))
-                        .collect::<Vec<_>>(),
-                )?,
-                None => Design::intercept(data.n()),
-            };
-            let covariates = design(&p.gating.iter().collect::<Vec<_>>())?;
-            if p.method.is_three_step() {
-                let mut pp = assemble(data, p, Design::intercept(data.n()), components, gaussian);
-                pp.step_three = Some(covariates);
-                return Ok(pp);
-            }
-            Ok(assemble(data, p, covariates, components, gaussian))
-        })
+        .map(|p| prepare_placement(study, data, p))
         .collect()
+}
+
+/// The designs and arrays of one placement (see [`prepare`]).
+pub fn prepare_placement(study: &Study, data: &Dataset, p: &Placement) -> Result<PreparedPlacement> {
+    let design = |cols: &[&crate::spec::ColumnRef]| -> Result<Design> {
+        let names: Vec<String> = cols.iter().map(|c| c.name.clone()).collect();
+        data.design(&names).map_err(|e| {
+            let at = cols
+                .iter()
+                .find(|c| Some(&c.name) == e.covariate.as_ref())
+                .or(cols.first());
+            let span = at.map_or(0..0, |c| c.span.clone());
+            Error::input(study.error_at(span, format!("in placement '{}': {}", p.name, e.message)))
+        })
+    };
+    let components = design(&p.components.iter().collect::<Vec<_>>())?;
+    let gaussian = match data.gaussian_names.first() {
+        Some(first) => design(
+            &p.components
+                .iter()
+                .filter(|c| p.acts_on(&c.name, first))
+                .collect::<Vec<_>>(),
+        )?,
+        None => Design::intercept(data.n()),
+    };
+    let covariates = design(&p.gating.iter().collect::<Vec<_>>())?;
+    if p.method.is_three_step() {
+        let mut pp = assemble(data, p, Design::intercept(data.n()), components, gaussian);
+        pp.step_three = Some(covariates);
+        return Ok(pp);
+    }
+    Ok(assemble(data, p, covariates, components, gaussian))
 }
 
 /// A placement's prepared arrays from its three designs (gating, all component

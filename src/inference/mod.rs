@@ -17,6 +17,7 @@
 
 pub mod chart;
 pub mod effects;
+pub mod screen;
 
 use crate::data::Dataset;
 use crate::fit::em::{self, EmSettings};

@@ -309,6 +309,10 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         s.push_str("<h3>Three-step estimates</h3>");
         html_table(&mut s, t);
     }
+    if let Some(t) = find("direct-effect screen table") {
+        s.push_str("<h2>Direct effects left out</h2>");
+        html_table(&mut s, t);
+    }
     if let Some(t) = find("component effects table") {
         s.push_str("<h2>Covariate effects inside clusters</h2>");
         html_table(&mut s, t);

@@ -1,6 +1,6 @@
 //! The comparison's tables, built once and rendered to Markdown and HTML.
 
-use crate::compare::{pct, ratio, val, Comparison};
+use crate::compare::{p_value, pct, ratio, val, Comparison};
 
 /// A table: caption, header and rows of text cells.
 #[derive(Debug, Clone, PartialEq)]
@@ -36,15 +36,6 @@ fn units(per: f64) -> String {
 
 fn val3(x: f64) -> String {
     format!("{x:.3}")
-}
-
-/// A p-value as tables print it: three decimals, or "<0.001".
-pub fn p_value(p: f64) -> String {
-    if p < 0.001 {
-        "<0.001".to_string()
-    } else {
-        format!("{p:.3}")
-    }
 }
 
 /// Every table of the comparison, in report order.
@@ -245,6 +236,33 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                         units(e.per),
                         show(&e.corrected),
                         show(&e.classify_analyze),
+                    ]
+                })
+                .collect(),
+        });
+    }
+
+    if !c.direct_effects.is_empty() {
+        out.push(Table {
+            name: "direct-effect screen table".into(),
+            note: "Likelihood-ratio tests of adding each covariate as a direct effect on an indicator inside every cluster, to the model with the placement's gating covariates (for a three-step placement, the one-step model its estimate assumes). Continuous indicators are tested together. ⚑ marks p below 0.05 divided by the number of tests in the placement (Bonferroni); for a three-step placement's own covariates it means the three-step assumption fails.".into(),
+            header: ["placement", "covariate", "indicator", "LR χ²", "df", "p-value", "flag"].iter().map(|s| s.to_string()).collect(),
+            rows: c
+                .direct_effects
+                .iter()
+                .map(|t| {
+                    vec![
+                        t.placement.clone(),
+                        t.covariate.clone(),
+                        t.indicator.clone(),
+                        opt(t.statistic, 2),
+                        t.df.to_string(),
+                        t.p_value.map_or_else(|| t.note.clone().unwrap_or_else(|| "–".into()), p_value),
+                        match (t.flagged, t.step_three_covariate) {
+                            (true, true) => "⚑ three-step assumption fails".into(),
+                            (true, false) => "⚑".into(),
+                            _ => String::new(),
+                        },
                     ]
                 })
                 .collect(),

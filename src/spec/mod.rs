@@ -286,6 +286,8 @@ pub struct Inference {
     pub replicates: usize,
     /// Units per which a numeric covariate's effects are shown (1 when absent).
     pub per: BTreeMap<String, f64>,
+    /// Whether `compare` screens the compared fits for direct effects.
+    pub direct_effect_screen: bool,
 }
 
 impl Default for Inference {
@@ -294,6 +296,7 @@ impl Default for Inference {
             method: crate::inference::ErrorMethod::ObservedInformation,
             replicates: DEFAULT_REPLICATES,
             per: BTreeMap::new(),
+            direct_effect_screen: true,
         }
     }
 }
@@ -825,6 +828,9 @@ fn inference_settings(
     }
     if let Some(b) = &r.replicates {
         out.replicates = positive(ctx, b, "[inference].replicates", 2)?;
+    }
+    if let Some(b) = &r.direct_effect_screen {
+        out.direct_effect_screen = *b.get_ref();
     }
     if let Some(per) = &r.per {
         for (name, units) in per.get_ref() {

@@ -51,6 +51,9 @@ pub struct RawInference {
     pub replicates: Option<Spanned<i64>>,
     /// Units per which a numeric covariate's effects are shown, e.g. `{ age = 10 }`.
     pub per: Option<Spanned<BTreeMap<String, Spanned<f64>>>>,
+    /// Likelihood-ratio tests of the direct effects each compared fit leaves out
+    /// (default true).
+    pub direct_effect_screen: Option<Spanned<bool>>,
 }
 
 /// `[compare]`.

@@ -541,3 +541,65 @@ fn three_step_corrections_undo_the_attenuation_of_classify_analyze() {
         );
     }
 }
+
+/// The direct-effect screen finds the direct effects the symptom demo's truth has
+/// (smoking on cough in every cluster, smoking on sick-leave spells in one cluster) and
+/// flags nothing else, for a one-step and a three-step placement; for the three-step one
+/// it marks the failed assumption.
+#[test]
+fn direct_effect_screen_finds_the_true_direct_effects() {
+    use cohortmix::inference::screen::screen;
+    use cohortmix::{data, fit, spec};
+    let text = std::fs::read_to_string(root("configs/symptoms.toml"))
+        .unwrap()
+        .replace("clusters = [1, 2, 3, 4]", "clusters = [3]")
+        .replace("starts = 10", "starts = 3");
+    let study = spec::parse(&root("configs/symptoms-test.toml"), &text).unwrap();
+    let data = data::load(&study).unwrap();
+    let prepared = fit::prepare(&study, &data).unwrap();
+    let fits = fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
+    let which: Vec<usize> = fits
+        .iter()
+        .enumerate()
+        .filter(|(_, f)| f.placement.starts_with("age, sex, smoking"))
+        .map(|(i, _)| i)
+        .collect();
+    assert_eq!(which.len(), 2);
+    let tests = screen(&study, &data, &prepared, &fits, &which);
+    for t in tests
+        .iter()
+        .filter(|t| t.flagged || t.p_value.is_some_and(|p| p < 0.01))
+    {
+        println!(
+            "{}: {} -> {}: LR {:?}, df {}, p {:?}, flagged {}",
+            t.placement, t.covariate, t.indicator, t.statistic, t.df, t.p_value, t.flagged
+        );
+    }
+    assert!(
+        tests.iter().all(|t| t.statistic.is_some()),
+        "every refit should be usable"
+    );
+    let flagged: Vec<(&str, &str, &str, bool)> = tests
+        .iter()
+        .filter(|t| t.flagged)
+        .map(|t| {
+            (
+                t.placement.as_str(),
+                t.covariate.as_str(),
+                t.indicator.as_str(),
+                t.step_three_covariate,
+            )
+        })
+        .collect();
+    let one = "age, sex, smoking drive membership";
+    let three = "age, sex, smoking related to the unadjusted clusters (three-step)";
+    assert_eq!(
+        flagged,
+        vec![
+            (one, "smoker", "cough", false),
+            (one, "smoker", "sick_leave_spells", false),
+            (three, "smoker", "cough", true),
+            (three, "smoker", "sick_leave_spells", true),
+        ]
+    );
+}

@@ -1,0 +1,182 @@
+//! Direct-effect screen: for each covariate × indicator pair a compared fit leaves out,
+//! a likelihood-ratio test of adding the covariate as a direct effect on that indicator
+//! (an effect inside every cluster, on top of any effect on membership).
+//!
+//! The null model is the placement's model with its gating covariates in the gating
+//! network (for a three-step placement: the one-step model its step 3 approximates, whose
+//! assumption is exactly that the covariates have no direct effects), plus the tested
+//! covariate in the gating network if it is not there already, so that the test asks
+//! about an effect beyond the one on membership. Both models are refitted by EM from the
+//! compared fit's posteriors, so they sit at neighbouring optima.
+//! Continuous indicators share one regression design, so a covariate is tested on all
+//! of them at once. A pair is flagged when its p-value is below 0.05 divided by the
+//! number of pairs tested in the placement (Bonferroni).
+
+use crate::data::Dataset;
+use crate::fit::em::{self, EmSettings};
+use crate::fit::{fit_data, initial_model, FitResult, ModelOptions, PreparedPlacement};
+use crate::spec::{Method, Study};
+use rayon::prelude::*;
+use serde::Serialize;
+
+/// Name of the indicator group of all continuous indicators.
+pub const CONTINUOUS_GROUP: &str = "continuous indicators";
+
+/// One pair's test.
+#[derive(Debug, Clone, Serialize)]
+pub struct DirectEffectTest {
+    /// Placement.
+    pub placement: String,
+    /// Covariate.
+    pub covariate: String,
+    /// Indicator (or [`CONTINUOUS_GROUP`]).
+    pub indicator: String,
+    /// Likelihood-ratio statistic 2(ℓ₁ − ℓ₀), when both fits were usable.
+    pub statistic: Option<f64>,
+    /// Parameters added.
+    pub df: usize,
+    /// Chi-squared p-value.
+    pub p_value: Option<f64>,
+    /// Below the Bonferroni threshold of the placement.
+    pub flagged: bool,
+    /// For a three-step placement, whether the covariate is one of its step-3 covariates
+    /// (a flagged pair then breaks the three-step assumption).
+    pub step_three_covariate: bool,
+    /// Why there is no statistic, when there is none.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
+}
+
+/// The indicator groups a covariate can act on: all continuous indicators together,
+/// then each item and each count.
+fn groups(data: &Dataset) -> Vec<(String, Vec<String>)> {
+    let mut out = Vec::new();
+    if !data.gaussian_names.is_empty() {
+        out.push((CONTINUOUS_GROUP.to_string(), data.gaussian_names.clone()));
+    }
+    for b in [
+        data.items.as_ref().map(|b| &b.names),
+        data.counts.as_ref().map(|b| &b.names),
+    ]
+    .into_iter()
+    .flatten()
+    {
+        out.extend(b.iter().map(|n| (n.clone(), vec![n.clone()])));
+    }
+    out
+}
+
+/// Screen the fits listed in `which` (indices into `fits`).
+pub fn screen(
+    study: &Study,
+    data: &Dataset,
+    prepared: &[PreparedPlacement],
+    fits: &[FitResult],
+    which: &[usize],
+) -> Vec<DirectEffectTest> {
+    let settings = EmSettings {
+        max_iterations: study.search.max_iterations,
+        tolerance: study.search.tolerance,
+    };
+    let covariates: Vec<String> = study.all_covariates().iter().map(|c| c.name.clone()).collect();
+    let mut out = Vec::new();
+    for &fi in which {
+        let f = &fits[fi];
+        let Some(best) = &f.best else { continue };
+        let pp = &prepared[f.placement_index];
+        let mut null = pp.placement.clone();
+        null.method = Method::OneStep;
+        let options = ModelOptions::for_study(study, f.structure);
+        let refit = |placement: &crate::spec::Placement| -> Result<(f64, usize), String> {
+            let prep =
+                crate::fit::prepare_placement(study, data, placement).map_err(|e| e.diagnostic().message.clone())?;
+            let fd = fit_data(data, &prep);
+            let mut model = initial_model(&fd, placement, f.clusters, options);
+            model.gating.prepare_bound(fd.w, fd.weights);
+            let k = model.n_params();
+            let run = em::run(&fd, model, best.run.tau.clone(), settings);
+            if run.termination.usable() {
+                Ok((run.loglik, k))
+            } else {
+                Err(run.termination.reason().unwrap_or("the refit failed").to_string())
+            }
+        };
+        let pairs: Vec<(String, String, Vec<String>)> = covariates
+            .iter()
+            .flat_map(|c| {
+                groups(data)
+                    .into_iter()
+                    .map(move |(g, members)| (c.clone(), g, members))
+            })
+            .filter(|(c, _, members)| !(null.components.iter().any(|x| &x.name == c) && null.acts_on(c, &members[0])))
+            .collect();
+        if pairs.is_empty() {
+            continue;
+        }
+        // The null model of each covariate: the covariate also in the gating network.
+        let column = |c: &str| {
+            study
+                .all_covariates()
+                .into_iter()
+                .find(|x| x.name == c)
+                .expect("a study covariate")
+                .clone()
+        };
+        let with_gating = |c: &str| {
+            let mut p = null.clone();
+            if p.proportions == crate::spec::Proportions::Free && !p.gating.iter().any(|x| x.name == c) {
+                p.gating.push(column(c));
+            }
+            p
+        };
+        let bases: Vec<(String, Result<(f64, usize), String>)> = covariates
+            .par_iter()
+            .filter(|c| pairs.iter().any(|(x, _, _)| x == *c))
+            .map(|c| (c.clone(), refit(&with_gating(c))))
+            .collect();
+        let tests: Vec<DirectEffectTest> = pairs
+            .par_iter()
+            .map(|(c, group, members)| {
+                let base = &bases.iter().find(|(x, _)| x == c).expect("a base per covariate").1;
+                let mut alt = with_gating(c);
+                let already = alt.components.iter().any(|x| &x.name == c);
+                if already {
+                    alt.acts_on
+                        .entry(c.clone())
+                        .or_default()
+                        .extend(members.iter().cloned());
+                } else {
+                    alt.components.push(column(c));
+                    alt.acts_on.insert(c.clone(), members.clone());
+                }
+                let result = match (base, refit(&alt)) {
+                    (Ok((l0, k0)), Ok((l1, k1))) => Ok((2.0 * (l1 - l0), k1 - k0)),
+                    (Err(e), _) => Err(format!("the model without the effect failed: {e}")),
+                    (_, Err(e)) => Err(format!("the model with the effect failed: {e}")),
+                };
+                let (statistic, df, note) = match result {
+                    Ok((lr, df)) => (Some(lr.max(0.0)), df, None),
+                    Err(e) => (None, 0, Some(e)),
+                };
+                DirectEffectTest {
+                    placement: f.placement.clone(),
+                    covariate: c.clone(),
+                    indicator: group.clone(),
+                    statistic,
+                    df,
+                    p_value: statistic.map(|x| super::effects::chi_squared_p_value(x, df)),
+                    flagged: false,
+                    step_three_covariate: pp.placement.method.is_three_step()
+                        && pp.placement.gating.iter().any(|x| &x.name == c),
+                    note,
+                }
+            })
+            .collect();
+        let threshold = 0.05 / tests.len() as f64;
+        out.extend(tests.into_iter().map(|mut t| {
+            t.flagged = t.p_value.is_some_and(|p| p < threshold);
+            t
+        }));
+    }
+    out
+}
