@@ -301,6 +301,24 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
     } else {
         Vec::new()
     };
+    let cluster_tests = if with_comparison && study.inference.cluster_count_replicates > 0 {
+        eprintln!(
+            "bootstrap test of each chosen cluster count ({} replicates)",
+            study.inference.cluster_count_replicates
+        );
+        let shown = crate::compare::chosen_fits(&fits, prepared.len(), study.compare.clusters);
+        let shown: Vec<usize> = shown.into_iter().flatten().collect();
+        crate::inference::cluster_test::test(
+            &study,
+            &data,
+            &prepared,
+            &fits,
+            &shown,
+            study.inference.cluster_count_replicates,
+        )
+    } else {
+        Vec::new()
+    };
     let seconds_inference = t2.elapsed().as_secs_f64();
     let mut results = report::results(&study, &data, &prepared, &fits, &uncertainty);
     let mut pages = Vec::new();
@@ -309,6 +327,7 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
             per: &study.inference.per,
             by_fit: &uncertainty,
             screen: &screen,
+            cluster_tests: &cluster_tests,
         };
         let comparison = crate::compare::compare(&data, &prepared, &fits, &study.compare, inference);
         pages.push(("summary.md", report::document::markdown(&results, &comparison)));

@@ -178,6 +178,8 @@ pub struct InferenceInput<'a> {
     pub by_fit: &'a [Option<std::result::Result<crate::inference::Uncertainty, String>>],
     /// The direct-effect screen of the compared fits.
     pub screen: &'a [crate::inference::screen::DirectEffectTest],
+    /// Bootstrap tests of the compared fits' cluster counts.
+    pub cluster_tests: &'a [crate::inference::cluster_test::ClusterCountTest],
 }
 
 static NO_UNITS: std::collections::BTreeMap<String, f64> = std::collections::BTreeMap::new();
@@ -189,6 +191,7 @@ impl InferenceInput<'static> {
             per: &NO_UNITS,
             by_fit: &[],
             screen: &[],
+            cluster_tests: &[],
         }
     }
 }
@@ -270,6 +273,9 @@ pub struct Comparison {
     pub three_step: Vec<ThreeStepEffect>,
     /// Likelihood-ratio tests of direct effects the compared fits leave out.
     pub direct_effects: Vec<crate::inference::screen::DirectEffectTest>,
+    /// Bootstrap likelihood-ratio tests of each compared fit's cluster count against one
+    /// fewer.
+    pub cluster_count_tests: Vec<crate::inference::cluster_test::ClusterCountTest>,
     /// Component covariate effects (mean differences, odds ratios, rate ratios).
     pub component_effects: Vec<ComponentEffect>,
     /// How standard errors were computed, and per placement why they are missing.
@@ -655,6 +661,7 @@ pub fn compare(
         gating_tests,
         three_step,
         direct_effects: inference.screen.to_vec(),
+        cluster_count_tests: inference.cluster_tests.to_vec(),
         component_effects,
         inference_notes,
         cross_tables,

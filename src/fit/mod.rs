@@ -423,11 +423,11 @@ pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, options: Mod
 }
 
 /// Label of a start's random stream.
-fn stream_label(placement: &str, g: usize, structure: &CovarianceStructure, start: usize) -> String {
-    format!("start|{placement}|{g}|{}|{start}", structure.describe())
+fn stream_label(streams: &str, placement: &str, g: usize, structure: &CovarianceStructure, start: usize) -> String {
+    format!("{streams}|{placement}|{g}|{}|{start}", structure.describe())
 }
 
-/// Fit one placement at one cluster count from `starts` starts.
+/// Fit one placement at one cluster count from `[search].starts` starts.
 pub fn fit_cell(
     study: &Study,
     data: &Dataset,
@@ -435,6 +435,31 @@ pub fn fit_cell(
     placement_index: usize,
     g: usize,
     structure: CovarianceStructure,
+) -> FitResult {
+    fit_cell_with(
+        study,
+        data,
+        prepared,
+        placement_index,
+        g,
+        structure,
+        "start",
+        study.search.starts,
+    )
+}
+
+/// [`fit_cell`] with the random streams named `<streams>|<placement>|<G>|<structure>|<start>`
+/// and `starts` starts (the bootstrap's refits use their own streams).
+#[allow(clippy::too_many_arguments)]
+pub fn fit_cell_with(
+    study: &Study,
+    data: &Dataset,
+    prepared: &PreparedPlacement,
+    placement_index: usize,
+    g: usize,
+    structure: CovarianceStructure,
+    streams: &str,
+    starts: usize,
 ) -> FitResult {
     let fd = fit_data(data, prepared);
     let settings = EmSettings {
@@ -444,7 +469,7 @@ pub fn fit_cell(
     let options = ModelOptions::for_study(study, structure);
     let mut template = initial_model(&fd, &prepared.placement, g, options);
     template.gating.prepare_bound(fd.w, fd.weights);
-    let n_starts = if g == 1 { 1 } else { study.search.starts };
+    let n_starts = if g == 1 { 1 } else { starts };
     let (seeding, seeding_d) = data.seeding_matrix();
     let runs: Vec<(StartRecord, Option<EmRun>)> = (0..n_starts)
         .into_par_iter()
@@ -452,7 +477,7 @@ pub fn fit_cell(
             let kind = StartKind::for_start(s, g);
             let mut rng = Stream::new(
                 study.seed,
-                &stream_label(&prepared.placement.name, g, &structure, s + 1),
+                &stream_label(streams, &prepared.placement.name, g, &structure, s + 1),
             );
             let tau = starts::partition(kind, &seeding, seeding_d, fd.weights, g, &mut rng);
             let run = em::run(&fd, template.clone(), tau, settings);

@@ -16,6 +16,7 @@
 //! information: the standard errors are those of the log-likelihood at the estimate.
 
 pub mod chart;
+pub mod cluster_test;
 pub mod effects;
 pub mod screen;
 

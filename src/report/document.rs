@@ -233,6 +233,11 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         html_table(&mut s, t);
     }
 
+    if let Some(t) = find("cluster count test table") {
+        s.push_str("<h3>Bootstrap test of the cluster count</h3>");
+        html_table(&mut s, t);
+    }
+
     s.push_str("<h2>Clusters aligned across placements</h2>");
     if let Some(t) = find("alignment table") {
         html_table(&mut s, t);

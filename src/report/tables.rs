@@ -242,6 +242,28 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         });
     }
 
+    if !c.cluster_count_tests.is_empty() {
+        out.push(Table {
+            name: "cluster count test table".into(),
+            note: "Bootstrap likelihood-ratio test of the compared cluster count G against G − 1 (McLachlan 1987): data drawn from the fitted G − 1 model are fitted with both counts; p = (1 + replicates reaching the observed statistic) / (1 + usable replicates). A small p supports G over G − 1.".into(),
+            header: ["placement", "G vs G − 1", "LR", "replicates usable", "reached", "p-value"].iter().map(|s| s.to_string()).collect(),
+            rows: c
+                .cluster_count_tests
+                .iter()
+                .map(|t| {
+                    vec![
+                        t.placement.clone(),
+                        format!("{} vs {}", t.clusters, t.clusters - 1),
+                        format!("{:.2}", t.statistic),
+                        format!("{} of {}", t.usable, t.replicates),
+                        t.reached.to_string(),
+                        format!("{:.3}", t.p_value),
+                    ]
+                })
+                .collect(),
+        });
+    }
+
     if !c.direct_effects.is_empty() {
         out.push(Table {
             name: "direct-effect screen table".into(),

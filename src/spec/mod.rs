@@ -288,6 +288,8 @@ pub struct Inference {
     pub per: BTreeMap<String, f64>,
     /// Whether `compare` screens the compared fits for direct effects.
     pub direct_effect_screen: bool,
+    /// Bootstrap replicates of the cluster-count test (0: not run).
+    pub cluster_count_replicates: usize,
 }
 
 impl Default for Inference {
@@ -297,6 +299,7 @@ impl Default for Inference {
             replicates: DEFAULT_REPLICATES,
             per: BTreeMap::new(),
             direct_effect_screen: true,
+            cluster_count_replicates: 0,
         }
     }
 }
@@ -831,6 +834,9 @@ fn inference_settings(
     }
     if let Some(b) = &r.direct_effect_screen {
         out.direct_effect_screen = *b.get_ref();
+    }
+    if let Some(b) = &r.cluster_count_replicates {
+        out.cluster_count_replicates = positive(ctx, b, "[inference].cluster_count_replicates", 0)?;
     }
     if let Some(per) = &r.per {
         for (name, units) in per.get_ref() {

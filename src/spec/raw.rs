@@ -54,6 +54,8 @@ pub struct RawInference {
     /// Likelihood-ratio tests of the direct effects each compared fit leaves out
     /// (default true).
     pub direct_effect_screen: Option<Spanned<bool>>,
+    /// Bootstrap replicates of the test of G against G − 1 clusters (default 0: off).
+    pub cluster_count_replicates: Option<Spanned<i64>>,
 }
 
 /// `[compare]`.

@@ -603,3 +603,68 @@ fn direct_effect_screen_finds_the_true_direct_effects() {
         ]
     );
 }
+
+/// The bootstrap likelihood-ratio test (McLachlan 1987) rejects one cluster on data
+/// drawn with two, and does not reject one cluster (at 5%) on data drawn with one.
+#[test]
+fn bootstrap_cluster_count_test_rejects_only_a_false_null() {
+    use cohortmix::inference::cluster_test;
+    use cohortmix::{data, fit, simulate, spec};
+    let truth_two = r#"
+[simulation]
+rows = 300
+seed = 5
+output = "data.csv"
+indicators = ["fev1", "fvc"]
+decimals = 3
+[[covariate]]
+name = "age"
+distribution = "normal"
+mean = 45
+sd = 10
+[[cluster]]
+name = "a"
+mean = { fev1 = 100, fvc = 100 }
+sd = { fev1 = 10, fvc = 10 }
+correlation = 0.3
+[[cluster]]
+name = "b"
+gating = { intercept = -0.5 }
+mean = { fev1 = 80, fvc = 95 }
+sd = { fev1 = 10, fvc = 10 }
+correlation = 0.3
+"#;
+    let truth_one = truth_two.replace("gating = { intercept = -0.5 }", "gating = { intercept = -40 }");
+    let study_text = r#"
+[study]
+title = "cluster count"
+data = "data.csv"
+seed = 3
+[indicators]
+columns = ["fev1", "fvc"]
+[search]
+clusters = [1, 2]
+starts = 4
+covariance = [{ volume = "varying", shape = "varying", orientation = "varying" }]
+"#;
+    let p_value = |truth: &str| {
+        let dir = tempfile::tempdir().unwrap();
+        let t = simulate::parse(&dir.path().join("truth.toml"), truth).unwrap();
+        std::fs::write(&t.output, simulate::generate(&t).csv).unwrap();
+        let study = spec::parse(&dir.path().join("study.toml"), study_text).unwrap();
+        let data = data::load(&study).unwrap();
+        let prepared = fit::prepare(&study, &data).unwrap();
+        let fits = fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
+        let two = fits.iter().position(|f| f.clusters == 2).unwrap();
+        let tests = cluster_test::test(&study, &data, &prepared, &fits, &[two], 39);
+        let t = &tests[0];
+        println!(
+            "LR {:.2}: {} of {} usable replicates reached it, p = {:.3}",
+            t.statistic, t.reached, t.usable, t.p_value
+        );
+        assert!(t.usable >= 37);
+        t.p_value
+    };
+    assert!(p_value(truth_two) < 0.05, "two clusters in the data");
+    assert!(p_value(&truth_one) > 0.05, "one cluster in the data");
+}
