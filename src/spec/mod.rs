@@ -1460,4 +1460,30 @@ mod tests {
         let e = spec(&format!("{BASE}[[placement]]\nname = \"p\"\ncomponents = [\"a\"]\n")).unwrap_err();
         assert!(e.contains("'a' is an indicator"), "{e}");
     }
+
+    #[test]
+    fn inference_keys_and_three_step_methods() {
+        let s = spec(BASE).unwrap();
+        assert_eq!(s.inference, Inference::default());
+        assert_eq!(s.placements[0].method, Method::OneStep);
+        let text = format!(
+            "{BASE}[variables]\nage = \"continuous\"\n[[placement]]\nname = \"p\"\ngating = [\"age\"]\nmethod = \"three-step-bch\"\n[inference]\nstandard_errors = \"bootstrap\"\nreplicates = 50\nper = {{ age = 10 }}\ndirect_effect_screen = false\ncluster_count_replicates = 19\n"
+        );
+        let s = spec(&text).unwrap();
+        assert_eq!(s.placements[0].method, Method::ThreeStepBch);
+        assert_eq!(s.inference.method, crate::inference::ErrorMethod::Bootstrap);
+        assert_eq!(s.inference.replicates, 50);
+        assert_eq!(s.inference.per.get("age"), Some(&10.0));
+        assert!(!s.inference.direct_effect_screen);
+        assert_eq!(s.inference.cluster_count_replicates, 19);
+        let e = spec(&text.replace("age = 10", "agee = 10")).unwrap_err();
+        assert!(
+            e.contains("no placement uses") && e.contains("did you mean 'age'?"),
+            "{e}"
+        );
+        let e = spec(&text.replace("age = 10", "age = -1")).unwrap_err();
+        assert!(e.contains("must be a positive number"), "{e}");
+        let e = spec(&text.replace("three-step-bch", "three-step")).unwrap_err();
+        assert!(e.contains("unknown method 'three-step'"), "{e}");
+    }
 }
