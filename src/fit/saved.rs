@@ -67,12 +67,34 @@ pub struct SavedFit {
 pub struct SavedModel {
     /// Gating network.
     pub gating: SavedGating,
-    /// Gaussian block: structure, coefficients `[(k q + a) d + j]`, covariances row-major.
-    pub gaussian: Option<(CovarianceStructure, Vec<f64>, Vec<Vec<f64>>)>,
-    /// Item block: per item, log probabilities (no covariates) and logit coefficients.
-    pub items: Option<(Vec<Vec<f64>>, Vec<Vec<f64>>, f64)>,
-    /// Count block: per count, log-rate coefficients.
+    /// Gaussian block.
+    pub gaussian: Option<SavedGaussian>,
+    /// Item block.
+    pub items: Option<SavedItems>,
+    /// Count block: per count, log-rate coefficients `[k q + a]`.
     pub counts: Option<Vec<Vec<f64>>>,
+}
+
+/// The gaussian block's parameters.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct SavedGaussian {
+    /// Covariance structure.
+    pub structure: CovarianceStructure,
+    /// Coefficients `[(k q + a) d + j]`.
+    pub coefficients: Vec<f64>,
+    /// Covariance per cluster, row-major.
+    pub covariances: Vec<Vec<f64>>,
+}
+
+/// The item block's parameters.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct SavedItems {
+    /// Per item without covariates: log probabilities `[k L + l]` (else empty).
+    pub log_probabilities: Vec<Vec<f64>>,
+    /// Per item with covariates: logit coefficients `[(k (L − 1) + l − 1) q + a]` (else empty).
+    pub logit_coefficients: Vec<Vec<f64>>,
+    /// Smoothing pseudo-count.
+    pub smoothing: f64,
 }
 
 /// The gating network's parameters.
@@ -101,14 +123,16 @@ impl SavedModel {
         let c = &m.components;
         SavedModel {
             gating,
-            gaussian: c.gaussian.as_ref().map(|gc| {
-                let covs = gc.cov.iter().map(|s| s.transpose().as_slice().to_vec()).collect();
-                (gc.structure, gc.coef.clone(), covs)
+            gaussian: c.gaussian.as_ref().map(|gc| SavedGaussian {
+                structure: gc.structure,
+                coefficients: gc.coef.clone(),
+                covariances: gc.cov.iter().map(|s| s.transpose().as_slice().to_vec()).collect(),
             }),
-            items: c
-                .items
-                .as_ref()
-                .map(|it| (it.log_prob.clone(), it.coef.clone(), it.smoothing)),
+            items: c.items.as_ref().map(|it| SavedItems {
+                log_probabilities: it.log_prob.clone(),
+                logit_coefficients: it.coef.clone(),
+                smoothing: it.smoothing,
+            }),
             counts: c.counts.as_ref().map(|ct| ct.coef.clone()),
         }
     }
@@ -128,18 +152,22 @@ impl SavedModel {
             },
         };
         let gaussian = match &self.gaussian {
-            Some((structure, coef, covs)) => {
+            Some(sg) => {
                 let d = fd.d;
-                let covs = covs.iter().map(|c| DMatrix::from_row_slice(d, d, c)).collect();
-                Some(GaussianComponents::new(fd, g, *structure).with_parameters(coef.clone(), covs)?)
+                let covs = sg
+                    .covariances
+                    .iter()
+                    .map(|c| DMatrix::from_row_slice(d, d, c))
+                    .collect();
+                Some(GaussianComponents::new(fd, g, sg.structure).with_parameters(sg.coefficients.clone(), covs)?)
             }
             None => None,
         };
         let items = match (&self.items, fd.items) {
-            (Some((log_prob, coef, smoothing)), Some(it)) => {
-                let mut b = ItemComponents::new(fd, g, it.names.to_vec(), *smoothing);
-                b.log_prob = log_prob.clone();
-                b.coef = coef.clone();
+            (Some(si), Some(it)) => {
+                let mut b = ItemComponents::new(fd, g, it.names.to_vec(), si.smoothing);
+                b.log_prob = si.log_probabilities.clone();
+                b.coef = si.logit_coefficients.clone();
                 Some(b)
             }
             _ => None,

@@ -480,7 +480,7 @@ impl CovarianceChart {
         let mut out = Vec::new();
         let vol_index = (self.volumes > 0).then(|| Self::copy(self.volumes, k));
         let lambda = (self.log_volume[k] + vol_index.map_or(0.0, |v| theta[v])).exp();
-        let shape_start = self.volumes + Self::copy(self.shapes, k) * (d - 1).max(0);
+        let shape_start = self.volumes + Self::copy(self.shapes, k) * (d - 1);
         let mut la = self.log_shape[k].clone();
         if self.shapes > 0 {
             for j in 0..d - 1 {

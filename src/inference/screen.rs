@@ -47,6 +47,9 @@ pub struct DirectEffectTest {
     pub note: Option<String>,
 }
 
+/// A refit's log-likelihood and parameter count, or why it failed.
+type Refit = Result<(f64, usize), String>;
+
 /// The indicator groups a covariate can act on: all continuous indicators together,
 /// then each item and each count.
 fn groups(data: &Dataset) -> Vec<(String, Vec<String>)> {
@@ -87,7 +90,7 @@ pub fn screen(
         let mut null = pp.placement.clone();
         null.method = Method::OneStep;
         let options = ModelOptions::for_study(study, f.structure);
-        let refit = |placement: &crate::spec::Placement| -> Result<(f64, usize), String> {
+        let refit = |placement: &crate::spec::Placement| -> Refit {
             let prep =
                 crate::fit::prepare_placement(study, data, placement).map_err(|e| e.diagnostic().message.clone())?;
             let fd = fit_data(data, &prep);
@@ -129,7 +132,7 @@ pub fn screen(
             }
             p
         };
-        let bases: Vec<(String, Result<(f64, usize), String>)> = covariates
+        let bases: Vec<(String, Refit)> = covariates
             .par_iter()
             .filter(|c| pairs.iter().any(|(x, _, _)| x == *c))
             .map(|c| (c.clone(), refit(&with_gating(c))))
