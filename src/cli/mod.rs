@@ -56,6 +56,9 @@ Default folder: [study].output in the spec, else runs/<spec name> here.")]
         /// Run folder (overrides [study].output).
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
+        /// Refit everything, ignoring the fits cached in the run folder.
+        #[arg(long)]
+        fresh: bool,
     },
     /// Fit what the spec lists, then compare the placements: aligned clusters, profiles,
     /// effects, agreement; writes report.html and summary.md beside the fit outputs.
@@ -68,6 +71,9 @@ with a \"comparison\" section, besides models.csv, memberships.csv and manifest.
         /// Run folder (overrides [study].output).
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
+        /// Refit everything, ignoring the fits cached in the run folder.
+        #[arg(long)]
+        fresh: bool,
     },
     /// Posterior memberships of new rows under the models a run folder saved (each
     /// placement's lowest-BIC fit).
@@ -129,8 +135,8 @@ pub fn run(cli: Cli) -> Result<()> {
     }
     match cli.command {
         Command::Check { spec } => check(&spec),
-        Command::Fit { spec, out } => fit_command(&spec, out.as_deref(), false),
-        Command::Compare { spec, out } => fit_command(&spec, out.as_deref(), true),
+        Command::Fit { spec, out, fresh } => fit_command(&spec, out.as_deref(), false, fresh),
+        Command::Compare { spec, out, fresh } => fit_command(&spec, out.as_deref(), true, fresh),
         Command::Simulate { spec, out } => simulate_command(&spec, out.as_deref()),
         Command::Predict { run, data, out } => predict_command(&run, &data, out.as_deref()),
     }
@@ -260,7 +266,7 @@ pub fn run_folder(study: &Study, out: Option<&Path>) -> PathBuf {
     PathBuf::from("runs").join(stem)
 }
 
-fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> Result<()> {
+fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fresh: bool) -> Result<()> {
     let t0 = Instant::now();
     let (study, data, prepared) = load_study(spec_path)?;
     let folder = run_folder(&study, out);
@@ -272,9 +278,33 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool) -> R
         data.rows_excluded
     );
     let t1 = Instant::now();
-    let fits = fit::fit_grid(&study, &data, &prepared, |done, total, r| {
-        eprintln!("[{done}/{total}] {}", progress_line(r));
-    });
+    // Fits are cached beside the outputs; with --fresh they are refitted (and re-stored).
+    let (fits, usage) = fit::fit_grid_cached(
+        &study,
+        &data,
+        &prepared,
+        Some(&folder),
+        !fresh,
+        |done, total, r, reused| {
+            let from = if reused { " (from the cache)" } else { "" };
+            eprintln!("[{done}/{total}] {}{from}", progress_line(r));
+        },
+    );
+    for why in &usage.refused {
+        eprintln!("warning: a cached fit was refused and refitted: {why}");
+    }
+    if let Some(why) = usage.not_stored.first() {
+        eprintln!(
+            "warning: {} fit(s) could not be cached ({why}); the run goes on, a rerun refits them",
+            usage.not_stored.len()
+        );
+    }
+    eprintln!(
+        "{} of {} fits reused from the cache, {} fitted",
+        usage.reused,
+        fits.len(),
+        usage.fitted
+    );
     let seconds_fitting = t1.elapsed().as_secs_f64();
     let t2 = Instant::now();
     let mut compared = crate::compare::chosen_fits(&fits, prepared.len(), None);

@@ -10,7 +10,7 @@ use crate::model::{e_step, FitData, Model};
 use serde::Serialize;
 
 /// Why a start stopped.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
 #[serde(tag = "status", content = "reason", rename_all = "snake_case")]
 pub enum Termination {
     /// Relative objective change below the tolerance.

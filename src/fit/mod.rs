@@ -5,6 +5,7 @@
 //! in parallel, each with its own random stream, and keeps the best usable start; a start
 //! that degenerates is recorded with its reason and skipped. [`fit_grid`] does every cell.
 
+pub mod cache;
 pub mod em;
 pub mod saved;
 pub mod starts;
@@ -167,7 +168,7 @@ pub fn assemble(
 }
 
 /// What happened to one start.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct StartRecord {
     /// 1-based start number.
     pub start: usize,
@@ -514,16 +515,7 @@ pub fn fit_cell_with(
             reaching,
         }
     });
-    let step_three = match (&prepared.step_three, &best) {
-        (Some(design), Some(b)) if g > 1 => Some(three_step::estimate(
-            prepared.placement.method,
-            &b.run.tau,
-            g,
-            &data.weights,
-            design,
-        )),
-        _ => None,
-    };
+    let step_three = step_three_of(prepared, best.as_ref(), g, &data.weights);
     FitResult {
         step_three,
         placement_index,
@@ -562,6 +554,25 @@ pub fn chosen_fits(fits: &[FitResult], placements: usize, fixed: Option<usize>) 
                 .map(|(i, _)| i)
         })
         .collect()
+}
+
+/// Step 3 of a three-step placement's fit (None for other placements and one cluster).
+pub fn step_three_of(
+    prepared: &PreparedPlacement,
+    best: Option<&BestFit>,
+    g: usize,
+    weights: &[f64],
+) -> Option<std::result::Result<three_step::StepThree, String>> {
+    match (&prepared.step_three, best) {
+        (Some(design), Some(b)) if g > 1 => Some(three_step::estimate(
+            prepared.placement.method,
+            &b.run.tau,
+            g,
+            weights,
+            design,
+        )),
+        _ => None,
+    }
 }
 
 /// Relabel clusters by decreasing weighted size (cluster 1, the gating reference, is
@@ -620,20 +631,74 @@ pub fn fit_grid(
     prepared: &[PreparedPlacement],
     mut progress: impl FnMut(usize, usize, &FitResult),
 ) -> Vec<FitResult> {
+    fit_grid_cached(study, data, prepared, None, false, |done, total, r, _| {
+        progress(done, total, r)
+    })
+    .0
+}
+
+/// How the cache served a run.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct CacheUse {
+    /// Fits taken from the cache.
+    pub reused: usize,
+    /// Fits computed.
+    pub fitted: usize,
+    /// Entries refused (bad checksum or contents) and refitted, with the reason.
+    pub refused: Vec<String>,
+    /// Entries that could not be written (the run goes on; the next one refits them).
+    pub not_stored: Vec<String>,
+}
+
+/// [`fit_grid`] with a fit cache in `folder` (None: no cache). Each fit is looked up
+/// first (unless `read` is false: refit everything) and stored as soon as it is done, so
+/// a killed run resumes where it stopped. `progress` gets (done, total, result, whether
+/// it came from the cache).
+pub fn fit_grid_cached(
+    study: &Study,
+    data: &Dataset,
+    prepared: &[PreparedPlacement],
+    folder: Option<&std::path::Path>,
+    read: bool,
+    mut progress: impl FnMut(usize, usize, &FitResult, bool),
+) -> (Vec<FitResult>, CacheUse) {
     let cells = grid(study);
     let total = cells.len();
     let mut out = Vec::with_capacity(total);
+    let mut usage = CacheUse::default();
     for (done, cell) in cells.iter().enumerate() {
-        let r = fit_cell(
-            study,
-            data,
-            &prepared[cell.placement],
-            cell.placement,
-            cell.clusters,
-            cell.structure,
-        );
-        progress(done + 1, total, &r);
+        let pp = &prepared[cell.placement];
+        let key = folder.map(|_| cache::fit_key(study, data, pp, cell.clusters, cell.structure));
+        let found = match (folder.filter(|_| read), &key) {
+            (Some(dir), Some(k)) => {
+                match cache::load(dir, k, study, data, pp, cell.placement, cell.clusters, cell.structure) {
+                    cache::Lookup::Found(r) => Some(*r),
+                    cache::Lookup::Corrupt(why) => {
+                        usage.refused.push(why);
+                        None
+                    }
+                    cache::Lookup::Missing => None,
+                }
+            }
+            _ => None,
+        };
+        let reused = found.is_some();
+        let r = found.unwrap_or_else(|| {
+            let r = fit_cell(study, data, pp, cell.placement, cell.clusters, cell.structure);
+            if let (Some(dir), Some(k)) = (folder, &key) {
+                if let Err(e) = cache::store(dir, k, &r) {
+                    usage.not_stored.push(format!("{}: {e}", dir.display()));
+                }
+            }
+            r
+        });
+        if reused {
+            usage.reused += 1;
+        } else {
+            usage.fitted += 1;
+        }
+        progress(done + 1, total, &r, reused);
         out.push(r);
     }
-    out
+    (out, usage)
 }

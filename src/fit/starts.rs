@@ -10,7 +10,7 @@ use crate::rng::Stream;
 use serde::Serialize;
 
 /// Kind of starting partition.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum StartKind {
     /// k-means++-type seeding on the indicators.

@@ -149,8 +149,169 @@ fn a_failed_rerun_leaves_earlier_results_intact() {
     assert_eq!(before, after);
 }
 
+/// The files a run writes that must not change between identical runs (only
+/// `manifest.json` carries timings and the thread count).
+const STABLE: [&str; 7] = [
+    "results.json",
+    "models.csv",
+    "memberships.csv",
+    "fitted-models.json",
+    "report.html",
+    "summary.md",
+    "cache",
+];
+
+fn stable_bytes(run: &Path) -> Vec<(String, Vec<u8>)> {
+    let mut out = Vec::new();
+    for f in STABLE {
+        let p = run.join(f);
+        if p.is_dir() {
+            let mut names: Vec<_> = std::fs::read_dir(&p).unwrap().map(|e| e.unwrap().path()).collect();
+            names.sort();
+            for n in names {
+                out.push((n.file_name().unwrap().to_string_lossy().to_string(), read(&n)));
+            }
+        } else {
+            out.push((f.to_string(), read(&p)));
+        }
+    }
+    out
+}
+
 #[test]
 fn outputs_do_not_depend_on_the_thread_count() {
+    let dir = small_study();
+    assert!(
+        cohortmix(dir.path(), &["--threads", "1", "compare", "study.toml", "--out", "one"])
+            .status
+            .success()
+    );
+    assert!(
+        cohortmix(dir.path(), &["--threads", "2", "compare", "study.toml", "--out", "two"])
+            .status
+            .success()
+    );
+    let (one, two) = (
+        stable_bytes(&dir.path().join("one")),
+        stable_bytes(&dir.path().join("two")),
+    );
+    assert_eq!(one.len(), two.len());
+    for ((f, a), (_, b)) in one.iter().zip(&two) {
+        assert!(a == b, "{f} differs between 1 and 2 threads");
+    }
+}
+
+#[test]
+fn a_rerun_reuses_every_fit_and_a_changed_placement_refits_only_its_own() {
+    let dir = small_study();
+    let first = cohortmix(dir.path(), &["compare", "study.toml", "--out", "run"]);
+    assert!(first.status.success());
+    assert!(String::from_utf8_lossy(&first.stderr).contains("0 of 6 fits reused from the cache, 6 fitted"));
+    let before = stable_bytes(&dir.path().join("run"));
+    let again = cohortmix(dir.path(), &["compare", "study.toml", "--out", "run"]);
+    let stderr = String::from_utf8_lossy(&again.stderr);
+    assert!(
+        stderr.contains("6 of 6 fits reused from the cache, 0 fitted"),
+        "{stderr}"
+    );
+    assert!(
+        before == stable_bytes(&dir.path().join("run")),
+        "a cached rerun changed the outputs"
+    );
+    // --fresh refits everything and gives the same bytes.
+    let fresh = cohortmix(dir.path(), &["compare", "study.toml", "--out", "run", "--fresh"]);
+    assert!(String::from_utf8_lossy(&fresh.stderr).contains("0 of 6 fits reused"));
+    assert!(
+        before == stable_bytes(&dir.path().join("run")),
+        "--fresh changed the outputs"
+    );
+    // A truncated entry is refused and refitted, with the same result.
+    let cache = dir.path().join("run/cache");
+    let entry = std::fs::read_dir(&cache).unwrap().next().unwrap().unwrap().path();
+    let text = read(&entry);
+    std::fs::write(&entry, &text[..text.len() / 2]).unwrap();
+    let mended = cohortmix(dir.path(), &["compare", "study.toml", "--out", "run"]);
+    let stderr = String::from_utf8_lossy(&mended.stderr);
+    assert!(
+        stderr.contains("refused and refitted") && stderr.contains("5 of 6 fits reused"),
+        "{stderr}"
+    );
+    assert!(
+        before == stable_bytes(&dir.path().join("run")),
+        "a refitted entry changed the outputs"
+    );
+    // Changing one placement refits only its three fits.
+    let spec = std::fs::read_to_string(dir.path().join("study.toml")).unwrap();
+    std::fs::write(
+        dir.path().join("study.toml"),
+        spec.replace("name = \"age in gating\"", "name = \"age in gating, renamed\""),
+    )
+    .unwrap();
+    let changed = cohortmix(dir.path(), &["compare", "study.toml", "--out", "run"]);
+    let stderr = String::from_utf8_lossy(&changed.stderr);
+    assert!(
+        stderr.contains("3 of 6 fits reused from the cache, 3 fitted"),
+        "{stderr}"
+    );
+}
+
+/// A run killed (SIGKILL) after 1, 3 or 5 of its 6 fits and started again finishes with
+/// the bytes of an uninterrupted run.
+#[test]
+fn a_killed_run_resumes_to_the_same_bytes() {
+    use std::io::{BufRead, BufReader};
+    let dir = small_study();
+    assert!(cohortmix(dir.path(), &["compare", "study.toml", "--out", "whole"])
+        .status
+        .success());
+    let whole = stable_bytes(&dir.path().join("whole"));
+    for after in [1, 3, 5] {
+        let out = format!("killed{after}");
+        let mut child = Command::new(env!("CARGO_BIN_EXE_cohortmix"))
+            .args(["compare", "study.toml", "--out", &out])
+            .current_dir(dir.path())
+            .stderr(std::process::Stdio::piped())
+            .stdout(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        let reader = BufReader::new(child.stderr.take().unwrap());
+        for line in reader.lines() {
+            if line.unwrap().starts_with(&format!("[{after}/6]")) {
+                break;
+            }
+        }
+        child.kill().unwrap(); // SIGKILL on Unix
+        child.wait().unwrap();
+        assert!(
+            !dir.path().join(&out).join("results.json").exists(),
+            "the run finished before the kill"
+        );
+        let resumed = cohortmix(dir.path(), &["compare", "study.toml", "--out", &out]);
+        assert!(resumed.status.success());
+        let stderr = String::from_utf8_lossy(&resumed.stderr);
+        // Fits finished before the kill are reused (the next one may have finished too).
+        let reused: usize = stderr
+            .lines()
+            .find_map(|l| {
+                l.strip_suffix(" fitted")
+                    .and_then(|l| l.split(" of 6 fits reused").next())
+            })
+            .and_then(|n| n.trim().parse().ok())
+            .unwrap_or_else(|| panic!("no cache line in {stderr}"));
+        assert!(
+            (after..6).contains(&reused),
+            "killed after {after} fits, {reused} reused"
+        );
+        let got = stable_bytes(&dir.path().join(&out));
+        assert_eq!(got.len(), whole.len(), "after killing at fit {after}");
+        for ((f, a), (_, b)) in got.iter().zip(&whole) {
+            assert!(a == b, "{f} differs after killing at fit {after} and resuming");
+        }
+    }
+}
+
+#[test]
+fn outputs_do_not_depend_on_the_thread_count_for_fit() {
     let dir = small_study();
     assert!(
         cohortmix(dir.path(), &["--threads", "1", "fit", "study.toml", "--out", "one"])

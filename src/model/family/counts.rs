@@ -29,7 +29,8 @@ pub struct CountComponents {
     pub terms: Vec<Vec<usize>>,
     /// Per count: coefficients on the fitting scale, `[k * q + a]`.
     pub coef: Vec<Vec<f64>>,
-    started: bool,
+    /// Whether an M-step has run (the first one starts each regression from scratch).
+    pub started: bool,
 }
 
 impl CountComponents {

@@ -159,6 +159,12 @@ impl GaussianComponents {
         self.orientation.as_ref()
     }
 
+    /// Set the shared orientation the M-step keeps between iterations (restoring a saved
+    /// fit; it starts the next iterative M-step, and the inference chart reads it).
+    pub fn set_common_orientation(&mut self, orientation: Option<DMatrix<f64>>) {
+        self.orientation = orientation;
+    }
+
     /// Mean of cluster k for one row of the component design, into `out`.
     pub fn mean(&self, k: usize, z: &[f64], out: &mut [f64]) {
         out.fill(0.0);
