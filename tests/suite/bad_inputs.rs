@@ -9,7 +9,12 @@ use std::process::Command;
 
 /// Cases whose problem has no line in a file (the file itself is missing, or the
 /// command line is wrong).
-const NO_LOCATION: &[&str] = &["missing_spec_file", "usage_missing_spec", "threads_zero"];
+const NO_LOCATION: &[&str] = &[
+    "missing_spec_file",
+    "usage_missing_spec",
+    "threads_zero",
+    "spec_is_a_folder",
+];
 
 #[test]
 fn every_bad_input_gets_a_pinned_message_and_exit_2() {
@@ -61,4 +66,38 @@ fn every_bad_input_gets_a_pinned_message_and_exit_2() {
         failures.len(),
         failures.join("\n")
     );
+}
+
+/// Awkward but valid CSV is read as the plain file is: a byte-order mark, CRLF line
+/// endings, and quoted fields holding commas.
+#[test]
+fn a_bom_crlf_and_quoted_commas_are_read_like_plain_csv() {
+    let case = root("tests/bad_inputs/non_numeric_cell");
+    let spec_text = std::fs::read_to_string(case.join("spec.toml")).unwrap();
+    let plain = std::fs::read_to_string(root("tests/bad_inputs/gating_with_fixed_proportions/data.csv")).unwrap();
+    let awkward = format!(
+        "\u{feff}{}",
+        plain
+            .lines()
+            .enumerate()
+            .map(|(i, l)| if i == 1 {
+                l.replacen("w01", "\"w,01\"", 1)
+            } else {
+                l.to_string()
+            })
+            .collect::<Vec<_>>()
+            .join("\r\n")
+            + "\r\n"
+    );
+    let load = |csv: &str| {
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::write(dir.path().join("data.csv"), csv).unwrap();
+        let study = cohortmix::spec::parse(&dir.path().join("spec.toml"), &spec_text).unwrap();
+        cohortmix::data::load(&study).unwrap()
+    };
+    let (a, b) = (load(&plain), load(&awkward));
+    assert_eq!(b.ids[0], "w,01");
+    assert_eq!(a.ids[1..], b.ids[1..]);
+    assert_eq!(a.y, b.y);
+    assert_eq!(a.columns, b.columns);
 }
