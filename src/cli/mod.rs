@@ -290,6 +290,18 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
             eprintln!("[{done}/{total}] {}{from}", progress_line(r));
         },
     );
+    if fits.iter().all(|f| f.best.is_none()) {
+        let first = fits.first().map(|f| f.termination());
+        return Err(Error::run(
+            Diagnostic::new(format!(
+                "no fit gave a usable model: every start of all {} fits failed (first: {})",
+                fits.len(),
+                first.as_ref().and_then(|t| t.reason()).unwrap_or("no reason recorded")
+            ))
+            .help("the previous run's files were left as they were")
+            .help("look at the data for outliers or duplicated rows, fit fewer clusters, or set [search] covariance_prior = true or a variance_floor"),
+        ));
+    }
     for why in &usage.refused {
         eprintln!("warning: a cached fit was refused and refitted: {why}");
     }

@@ -528,7 +528,7 @@ pub fn load(study: &Study) -> Result<Dataset> {
                 .map(|y| statrs::function::factorial::ln_factorial(*y as u64))
                 .collect();
     }
-    Ok(Dataset {
+    let data = Dataset {
         path: path.to_path_buf(),
         sha256,
         rows_read,
@@ -547,7 +547,70 @@ pub fn load(study: &Study) -> Result<Dataset> {
         items,
         counts,
         columns,
-    })
+    };
+    check_scales(study, &data)?;
+    Ok(data)
+}
+
+/// Largest ratio of two continuous indicators' variances that fitting can take: beyond
+/// it, rounding swamps the smaller indicator and the collapse check (relative to the
+/// largest variance) cannot tell a collapsed cluster from a small scale.
+pub const MAX_VARIANCE_RATIO: f64 = 1e14;
+
+/// Continuous indicators must have a finite, non-zero variance, on scales within
+/// [`MAX_VARIANCE_RATIO`] of each other.
+fn check_scales(study: &Study, data: &Dataset) -> Result<()> {
+    let d = data.d();
+    let n = data.n();
+    if d == 0 || n == 0 {
+        return Ok(());
+    }
+    let gaussian = study.indicators_of(IndicatorKind::Gaussian);
+    let mut variances = Vec::with_capacity(d);
+    for j in 0..d {
+        let mean = (0..n).map(|i| data.y[i * d + j]).sum::<f64>() / n as f64;
+        let var = (0..n).map(|i| (data.y[i * d + j] - mean).powi(2)).sum::<f64>() / n as f64;
+        let c = gaussian[j];
+        if !var.is_finite() {
+            return Err(Error::input(
+                study
+                    .error_at(c.span.clone(), format!("indicator '{}' has values so large that their squares overflow", c.name))
+                    .help("rescale it (for example to thousands or millions of its unit) so its values stay below about 1e150"),
+            ));
+        }
+        if !(var > 0.0) {
+            return Err(Error::input(
+                study
+                    .error_at(
+                        c.span.clone(),
+                        format!("indicator '{}' has the same value in every row used", c.name),
+                    )
+                    .help("a constant indicator cannot separate clusters; leave it out"),
+            ));
+        }
+        variances.push(var);
+    }
+    let (lo, hi) = variances.iter().enumerate().fold((0, 0), |(lo, hi), (j, v)| {
+        (
+            if *v < variances[lo] { j } else { lo },
+            if *v > variances[hi] { j } else { hi },
+        )
+    });
+    if variances[hi] / variances[lo] > MAX_VARIANCE_RATIO {
+        return Err(Error::input(
+            study
+                .error_at(
+                    gaussian[lo].span.clone(),
+                    format!(
+                        "indicators '{}' and '{}' are on scales too far apart to fit together (their variances differ by a factor of {:.1e})",
+                        gaussian[lo].name, gaussian[hi].name,
+                        variances[hi] / variances[lo]
+                    ),
+                )
+                .help(format!("rescale one of them so their spreads are within a factor of {:.0e} of each other", MAX_VARIANCE_RATIO.sqrt())),
+        ));
+    }
+    Ok(())
 }
 
 fn describe_missing(m: &[(String, usize)]) -> String {

@@ -486,3 +486,55 @@ fn predict_on_the_fitted_rows_writes_the_memberships_again() {
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("fitted-models.json"));
 }
+
+#[test]
+fn a_run_whose_every_fit_fails_is_an_error_and_keeps_the_previous_files() {
+    let dir = small_study();
+    assert!(cohortmix(dir.path(), &["fit", "study.toml", "--out", "run"])
+        .status
+        .success());
+    let before = stable_bytes_of(
+        &dir.path().join("run"),
+        &["results.json", "models.csv", "memberships.csv"],
+    );
+    // All but five rows become one point: two- and three-cluster fits collapse, and the
+    // one-cluster fit is dropped from the spec.
+    let csv = String::from_utf8(read(&dir.path().join("small.csv"))).unwrap();
+    let mut lines: Vec<String> = csv.lines().map(str::to_string).collect();
+    let header: Vec<&str> = lines[0].split(',').collect();
+    let (i1, i2) = (
+        header.iter().position(|h| *h == "y1").unwrap(),
+        header.iter().position(|h| *h == "y2").unwrap(),
+    );
+    for line in lines.iter_mut().skip(6) {
+        let mut f: Vec<String> = line.split(',').map(str::to_string).collect();
+        f[i1] = "1.5".into();
+        f[i2] = "-0.5".into();
+        *line = f.join(",");
+    }
+    std::fs::write(dir.path().join("small.csv"), lines.join("\n") + "\n").unwrap();
+    let spec = std::fs::read_to_string(dir.path().join("study.toml")).unwrap();
+    std::fs::write(
+        dir.path().join("study.toml"),
+        spec.replace("clusters = [1, 2, 3]", "clusters = [2, 3]"),
+    )
+    .unwrap();
+    let out = cohortmix(dir.path(), &["fit", "study.toml", "--out", "run"]);
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{stderr}");
+    assert!(
+        stderr.contains("no fit gave a usable model") && stderr.contains("left as they were"),
+        "{stderr}"
+    );
+    assert_eq!(
+        before,
+        stable_bytes_of(
+            &dir.path().join("run"),
+            &["results.json", "models.csv", "memberships.csv"]
+        )
+    );
+}
+
+fn stable_bytes_of(run: &Path, files: &[&str]) -> Vec<Vec<u8>> {
+    files.iter().map(|f| read(&run.join(f))).collect()
+}

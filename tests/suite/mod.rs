@@ -6,6 +6,7 @@ pub mod common;
 pub mod comparison;
 pub mod families;
 pub mod family_recovery;
+pub mod faults;
 pub mod inference;
 pub mod properties;
 pub mod recovery;
