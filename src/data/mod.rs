@@ -269,7 +269,14 @@ pub fn load(study: &Study) -> Result<Dataset> {
         ));
     }
     let text = read_text(path, "data")?;
-    let text = text.strip_prefix('\u{feff}').unwrap_or(&text).to_string();
+    from_text(study, &text)
+}
+
+/// [`load`] on the text of a data file already read (`study.data_path` names it in
+/// messages).
+pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
+    let path = study.data_path.as_path();
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text).to_string();
     let sha256 = sha256_hex(text.as_bytes());
     let mut line_starts = vec![0];
     line_starts.extend(text.match_indices('\n').map(|(i, _)| i + 1));
