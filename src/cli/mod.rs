@@ -319,13 +319,16 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
     );
     let seconds_fitting = t1.elapsed().as_secs_f64();
     let t2 = Instant::now();
-    let mut compared = crate::compare::chosen_fits(&fits, prepared.len(), None);
-    compared.extend(crate::compare::chosen_fits(
-        &fits,
-        prepared.len(),
-        study.compare.clusters,
-    ));
-    let mut compared: Vec<usize> = compared.into_iter().flatten().collect();
+    // The fits the comparison shows, and those with the lowest BIC (memberships.csv).
+    let shown: Vec<usize> = crate::compare::chosen_fits(&fits, prepared.len(), study.compare.clusters)
+        .into_iter()
+        .flatten()
+        .collect();
+    let mut compared: Vec<usize> = crate::compare::chosen_fits(&fits, prepared.len(), None)
+        .into_iter()
+        .flatten()
+        .chain(shown.iter().copied())
+        .collect();
     compared.sort_unstable();
     compared.dedup();
     eprintln!(
@@ -337,8 +340,6 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
     let uncertainty = crate::inference::for_fits(&study, &data, &prepared, &fits, &compared);
     let screen = if with_comparison && study.inference.direct_effect_screen {
         eprintln!("direct-effect screen of the chosen fits");
-        let shown = crate::compare::chosen_fits(&fits, prepared.len(), study.compare.clusters);
-        let shown: Vec<usize> = shown.into_iter().flatten().collect();
         crate::inference::screen::screen(&study, &data, &prepared, &fits, &shown)
     } else {
         Vec::new()
@@ -348,8 +349,6 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
             "bootstrap test of each chosen cluster count ({} replicates)",
             study.inference.cluster_count_replicates
         );
-        let shown = crate::compare::chosen_fits(&fits, prepared.len(), study.compare.clusters);
-        let shown: Vec<usize> = shown.into_iter().flatten().collect();
         crate::inference::cluster_test::test(
             &study,
             &data,
@@ -489,8 +488,8 @@ fn print_table(results: &report::Results) {
 fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<()> {
     use crate::fit::saved;
     let stored = saved::load_run(run)?;
-    let data = saved::load_new_data(&stored, data_path)?;
-    let predicted = saved::predict(&stored, &data)?;
+    let (study, data) = saved::load_new_data(&stored, data_path)?;
+    let predicted = saved::predict(&stored, &study, &data)?;
     let sets: Vec<(&str, usize, &[f64])> = predicted
         .iter()
         .map(|p| (p.placement.as_str(), p.clusters, p.tau.as_slice()))
@@ -505,16 +504,7 @@ fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<(
         },
         Path::to_path_buf,
     );
-    let dir = dest
-        .parent()
-        .filter(|p| !p.as_os_str().is_empty())
-        .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
-    let name = dest
-        .file_name()
-        .map_or_else(|| "predicted.csv".into(), |n| n.to_string_lossy().to_string());
-    let mut files = RunFiles::default();
-    files.add(&name, text);
-    files.commit(&dir)?;
+    write_file(&dest, text)?;
     println!(
         "{} rows of {} predicted ({} left out for a missing value) under {} fitted model{}",
         data.n(),
@@ -530,20 +520,26 @@ fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<(
     Ok(())
 }
 
-fn simulate_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
-    let truth = crate::simulate::load(spec_path)?;
-    let sim = crate::simulate::generate(&truth);
-    let dest = out.map_or_else(|| truth.output.clone(), Path::to_path_buf);
+/// Write one file atomically (temporary name, then rename) at `dest`.
+fn write_file(dest: &Path, contents: impl Into<Vec<u8>>) -> Result<()> {
     let dir = dest
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
         .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
     let name = dest
         .file_name()
-        .map_or_else(|| "simulated.csv".into(), |n| n.to_string_lossy().to_string());
+        .map_or_else(|| "output.csv".into(), |n| n.to_string_lossy().to_string());
     let mut files = RunFiles::default();
-    files.add(&name, sim.csv);
+    files.add(&name, contents);
     files.commit(&dir)?;
+    Ok(())
+}
+
+fn simulate_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
+    let truth = crate::simulate::load(spec_path)?;
+    let sim = crate::simulate::generate(&truth);
+    let dest = out.map_or_else(|| truth.output.clone(), Path::to_path_buf);
+    write_file(&dest, sim.csv)?;
     let mut counts = vec![0usize; truth.clusters.len()];
     for k in &sim.clusters {
         counts[*k] += 1;

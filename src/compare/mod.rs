@@ -497,17 +497,12 @@ pub fn compare(
         };
         if let Some(u) = uncertainty {
             gating_tests.extend(
-                crate::inference::effects::gating_wald_tests(
-                    u,
-                    f.reported_gating()
-                        .as_ref()
-                        .map_or(&prepared[*p].gating, |g| prepared[*p].design_of(g)),
-                )
-                .into_iter()
-                .map(|test| GatingTest {
-                    placement: f.placement.clone(),
-                    test,
-                }),
+                crate::inference::effects::gating_wald_tests(u, prepared[*p].reported_design(f))
+                    .into_iter()
+                    .map(|test| GatingTest {
+                        placement: f.placement.clone(),
+                        test,
+                    }),
             );
             component_effects.extend(
                 crate::inference::effects::effects(u, inference.per)
@@ -543,7 +538,7 @@ pub fn compare(
             });
         }
         let gating = f.reported_gating().unwrap_or_else(|| best.run.model.gating.clone());
-        let design = prepared[*p].design_of(&gating);
+        let design = prepared[*p].reported_design(f);
         if let Some(Ok(st)) = &f.step_three {
             three_step.extend(three_step_effects(st, design, aligned, &f.placement, inference.per));
         }

@@ -13,7 +13,7 @@
 
 use super::em::{EmRun, Termination};
 use super::saved::SavedModel;
-use super::{fit_data, initial_model, BestFit, FitResult, ModelOptions, PreparedPlacement, StartRecord};
+use super::{fit_data, initial_model, BestFit, Cell, FitResult, ModelOptions, PreparedPlacement, StartRecord};
 use crate::data::{sha256_hex, Dataset};
 use crate::model::family::CovarianceStructure;
 use crate::model::gating::Gating;
@@ -155,17 +155,14 @@ pub enum Lookup {
     Found(Box<FitResult>),
 }
 
-/// Look a fit up.
-#[allow(clippy::too_many_arguments)]
+/// Look up the fit of grid cell `cell` (whose placement is `prepared`).
 pub fn load(
     folder: &Path,
     key: &str,
     study: &Study,
     data: &Dataset,
     prepared: &PreparedPlacement,
-    placement_index: usize,
-    g: usize,
-    structure: CovarianceStructure,
+    cell: Cell,
 ) -> Lookup {
     let path = folder.join(CACHE_DIR).join(format!("{key}.json"));
     let Ok(text) = std::fs::read_to_string(&path) else {
@@ -184,7 +181,7 @@ pub fn load(
     if entry.key != key {
         return Lookup::Corrupt(format!("{} holds another fit", path.display()));
     }
-    match rebuild(entry, study, data, prepared, placement_index, g, structure) {
+    match rebuild(entry, study, data, prepared, cell) {
         Ok(r) => Lookup::Found(Box::new(r)),
         Err(e) => Lookup::Corrupt(format!("{}: {e}", path.display())),
     }
@@ -195,10 +192,9 @@ fn rebuild(
     study: &Study,
     data: &Dataset,
     prepared: &PreparedPlacement,
-    placement_index: usize,
-    g: usize,
-    structure: CovarianceStructure,
+    cell: Cell,
 ) -> Result<FitResult, String> {
+    let (g, structure) = (cell.clusters, cell.structure);
     let fd = fit_data(data, prepared);
     let best = match entry.best {
         None => None,
@@ -254,7 +250,7 @@ fn rebuild(
     let step_three = super::step_three_of(prepared, best.as_ref(), g, &data.weights);
     Ok(FitResult {
         step_three,
-        placement_index,
+        placement_index: cell.placement,
         placement: prepared.placement.name.clone(),
         clusters: g,
         structure,

@@ -64,6 +64,15 @@ impl PreparedPlacement {
             _ => &self.gating,
         }
     }
+
+    /// The design of a fit's reported gating network (see [`FitResult::reported_gating`]):
+    /// the step-3 covariates when step 3 succeeded, else the gating design.
+    pub fn reported_design(&self, fit: &FitResult) -> &Design {
+        match (&self.step_three, &fit.step_three) {
+            (Some(d), Some(Ok(_))) => d,
+            _ => &self.gating,
+        }
+    }
 }
 
 /// Columns of `design` that act on `indicator` under `placement`: the intercept and every
@@ -670,16 +679,14 @@ pub fn fit_grid_cached(
         let pp = &prepared[cell.placement];
         let key = folder.map(|_| cache::fit_key(study, data, pp, cell.clusters, cell.structure));
         let found = match (folder.filter(|_| read), &key) {
-            (Some(dir), Some(k)) => {
-                match cache::load(dir, k, study, data, pp, cell.placement, cell.clusters, cell.structure) {
-                    cache::Lookup::Found(r) => Some(*r),
-                    cache::Lookup::Corrupt(why) => {
-                        usage.refused.push(why);
-                        None
-                    }
-                    cache::Lookup::Missing => None,
+            (Some(dir), Some(k)) => match cache::load(dir, k, study, data, pp, *cell) {
+                cache::Lookup::Found(r) => Some(*r),
+                cache::Lookup::Corrupt(why) => {
+                    usage.refused.push(why);
+                    None
                 }
-            }
+                cache::Lookup::Missing => None,
+            },
             _ => None,
         };
         let reused = found.is_some();

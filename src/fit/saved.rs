@@ -283,7 +283,7 @@ pub fn load_run(run: &Path) -> Result<SavedRun> {
 
 /// Load new data with the saved spec's column checks (case weights are not needed and
 /// not read) and map its item levels onto the fitted ones.
-pub fn load_new_data(saved: &SavedRun, data_path: &Path) -> Result<Dataset> {
+pub fn load_new_data(saved: &SavedRun, data_path: &Path) -> Result<(crate::spec::Study, Dataset)> {
     let mut study = crate::spec::parse(Path::new(&saved.spec_file), &saved.spec_text)?;
     if !data_path.exists() {
         return Err(Error::input(
@@ -331,12 +331,12 @@ pub fn load_new_data(saved: &SavedRun, data_path: &Path) -> Result<Dataset> {
             items.levels[j] = known.clone();
         }
     }
-    Ok(data)
+    Ok((study, data))
 }
 
 /// Posterior memberships of `data`'s rows under every saved fit.
-pub fn predict(saved: &SavedRun, data: &Dataset) -> Result<Vec<Predicted>> {
-    let study = crate::spec::parse(Path::new(&saved.spec_file), &saved.spec_text)?;
+/// `study` is the saved spec as [`load_new_data`] returns it.
+pub fn predict(saved: &SavedRun, study: &crate::spec::Study, data: &Dataset) -> Result<Vec<Predicted>> {
     saved
         .fits
         .iter()

@@ -313,10 +313,7 @@ pub fn results(
                 crate::inference::effects::effects(u, &study.inference.per)
             });
             let gating_tests = ok.map_or_else(Vec::new, |u| {
-                crate::inference::effects::gating_wald_tests(
-                    u,
-                    f.reported_gating().as_ref().map_or(&pp.gating, |g| pp.design_of(g)),
-                )
+                crate::inference::effects::gating_wald_tests(u, pp.reported_design(f))
             });
             FitRecord {
                 placement: f.placement.clone(),

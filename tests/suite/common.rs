@@ -79,3 +79,14 @@ pub fn param_value(
         .unwrap_or_else(|| panic!("no parameter {block} {cluster} {indicator:?} {term:?}"))
         .value
 }
+
+/// Options for a plain fit of one structure: no ridge, prior, floor or smoothing.
+pub fn plain_options(structure: cohortmix::model::family::CovarianceStructure) -> cohortmix::fit::ModelOptions {
+    cohortmix::fit::ModelOptions {
+        structure,
+        gating_ridge: 0.0,
+        covariance_prior: false,
+        variance_floor: 0.0,
+        smoothing: 0.0,
+    }
+}

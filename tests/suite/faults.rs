@@ -3,8 +3,8 @@
 
 use cohortmix::data::Design;
 use cohortmix::fit::em::{self, EmSettings, Termination};
+use cohortmix::fit::initial_model;
 use cohortmix::fit::starts::{partition, StartKind};
-use cohortmix::fit::{initial_model, ModelOptions};
 use cohortmix::model::family::CovarianceStructure;
 use cohortmix::model::FitData;
 use cohortmix::rng::Stream;
@@ -24,13 +24,7 @@ fn run_on(y: &[f64], d: usize, g: usize, seed: u64) -> Termination {
         p: 1,
         ..Default::default()
     };
-    let options = ModelOptions {
-        structure: CovarianceStructure::UNCONSTRAINED,
-        gating_ridge: 0.0,
-        covariance_prior: false,
-        variance_floor: 0.0,
-        smoothing: 0.0,
-    };
+    let options = super::common::plain_options(CovarianceStructure::UNCONSTRAINED);
     let model = initial_model(&fd, &super::common::free_placement(), g, options);
     let kind = if g == 1 {
         StartKind::Single

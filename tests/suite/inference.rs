@@ -3,7 +3,7 @@
 use super::common::*;
 use cohortmix::data::Design;
 use cohortmix::fit::em::{self, EmSettings};
-use cohortmix::fit::{initial_model, ModelOptions};
+use cohortmix::fit::initial_model;
 use cohortmix::inference::{gating_parameters, uncertainty_of, ErrorMethod, InferenceSettings};
 use cohortmix::model::family::{ComponentFamily, CovarianceStructure, Naming};
 use cohortmix::model::{FitData, Model};
@@ -29,6 +29,27 @@ fn settings(method: ErrorMethod) -> InferenceSettings {
             tolerance: 1e-14,
         },
     }
+}
+
+/// A study over data drawn from a truth spec, in a fresh folder (kept alive by the
+/// returned guard): the study, its data and its prepared placements.
+fn simulated(
+    truth_text: &str,
+    study_text: &str,
+) -> (
+    tempfile::TempDir,
+    cohortmix::spec::Study,
+    cohortmix::data::Dataset,
+    Vec<cohortmix::fit::PreparedPlacement>,
+) {
+    use cohortmix::{data, fit, simulate, spec};
+    let dir = tempfile::tempdir().unwrap();
+    let truth = simulate::parse(&dir.path().join("truth.toml"), truth_text).unwrap();
+    std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
+    let study = spec::parse(&dir.path().join("study.toml"), study_text).unwrap();
+    let data = data::load(&study).unwrap();
+    let prepared = fit::prepare(&study, &data).unwrap();
+    (dir, study, data, prepared)
 }
 
 /// With hard 0/1 memberships the mixture's gating block is a multinomial logit, and its
@@ -72,13 +93,7 @@ fn check_anes96_standard_errors(weighted: bool) {
         p: design.p(),
         ..Default::default()
     };
-    let options = ModelOptions {
-        structure: CovarianceStructure::all()[1],
-        gating_ridge: 0.0,
-        covariance_prior: false,
-        variance_floor: 0.0,
-        smoothing: 0.0,
-    };
+    let options = plain_options(CovarianceStructure::all()[1]);
     let mut model = initial_model(&fd, &free_placement(), g, options);
     model.gating.prepare_bound(fd.w, fd.weights);
     let run = em::run(&fd, model, tau.clone(), settings(ErrorMethod::ObservedInformation).em);
@@ -165,13 +180,7 @@ fn mixture_standard_errors_match_an_independent_numerical_hessian() {
         p: design.p(),
         ..Default::default()
     };
-    let options = ModelOptions {
-        structure: CovarianceStructure::UNCONSTRAINED,
-        gating_ridge: 0.0,
-        covariance_prior: false,
-        variance_floor: 0.0,
-        smoothing: 0.0,
-    };
+    let options = plain_options(CovarianceStructure::UNCONSTRAINED);
     let g = 3;
     let mut tau = vec![0.0; n * g];
     for (i, k) in species.iter().enumerate() {
@@ -295,22 +304,17 @@ gating = ["age", "smoker"]
 #[test]
 #[ignore = "slow coverage simulation (about a minute); CI runs it"]
 fn gating_intervals_cover_the_truth_95_percent_of_the_time() {
-    use cohortmix::{data, fit, inference, simulate, spec};
+    use cohortmix::{fit, inference};
     use rayon::prelude::*;
     let truth_values = [("age", 0.04), ("smoker", 0.7)];
     let replicates = 500;
     let results: Vec<Option<[bool; 2]>> = (0..replicates)
         .into_par_iter()
         .map(|r| {
-            let dir = tempfile::tempdir().unwrap();
             let text = COVERAGE_TRUTH
                 .replace("{rows}", "800")
                 .replace("{seed}", &(1000 + r).to_string());
-            let truth = simulate::parse(&dir.path().join("truth.toml"), &text).unwrap();
-            std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
-            let study = spec::parse(&dir.path().join("study.toml"), COVERAGE_STUDY).unwrap();
-            let data = data::load(&study).unwrap();
-            let prepared = fit::prepare(&study, &data).unwrap();
+            let (_dir, study, data, prepared) = simulated(&text, COVERAGE_STUDY);
             let result = fit::fit_cell(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
             let best = result.best.as_ref()?;
             let u = inference::uncertainty(
@@ -363,14 +367,9 @@ fn gating_intervals_cover_the_truth_95_percent_of_the_time() {
 /// one thread and on two.
 #[test]
 fn sandwich_and_bootstrap_agree_with_the_observed_information() {
-    use cohortmix::{data, fit, inference, simulate, spec};
-    let dir = tempfile::tempdir().unwrap();
+    use cohortmix::{fit, inference};
     let text = COVERAGE_TRUTH.replace("{rows}", "2000").replace("{seed}", "31");
-    let truth = simulate::parse(&dir.path().join("truth.toml"), &text).unwrap();
-    std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
-    let study = spec::parse(&dir.path().join("study.toml"), COVERAGE_STUDY).unwrap();
-    let data = data::load(&study).unwrap();
-    let prepared = fit::prepare(&study, &data).unwrap();
+    let (_dir, study, data, prepared) = simulated(&text, COVERAGE_STUDY);
     let result = fit::fit_cell(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
     let best = result.best.as_ref().unwrap();
     let run = |method, replicates| {
@@ -437,8 +436,8 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
     let csv = std::fs::read_to_string(root("demo-data/symptoms.csv")).unwrap();
     let copy = dir.path().join("same.csv");
     std::fs::write(&copy, &csv).unwrap();
-    let new = saved::load_new_data(&stored, &copy).unwrap();
-    let predicted = saved::predict(&stored, &new).unwrap();
+    let (saved_study, new) = saved::load_new_data(&stored, &copy).unwrap();
+    let predicted = saved::predict(&stored, &saved_study, &new).unwrap();
     for (p, f) in predicted.iter().zip(&fits) {
         assert_eq!(p.placement, f.placement);
         let fitted = &f.best.as_ref().unwrap().run.tau;
@@ -453,8 +452,8 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
     // A covariate level the model never saw.
     let odd = csv.replacen(",male,", ",intersex,", 1);
     std::fs::write(&copy, &odd).unwrap();
-    let new = saved::load_new_data(&stored, &copy).unwrap();
-    let err = saved::predict(&stored, &new).unwrap_err().to_string();
+    let (saved_study, new) = saved::load_new_data(&stored, &copy).unwrap();
+    let err = saved::predict(&stored, &saved_study, &new).unwrap_err().to_string();
     assert!(
         err.contains("'sex' has the level 'intersex'") && err.contains("female, male"),
         "{err}"
@@ -482,23 +481,18 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
 /// own standard errors), as Vermunt (2010) and Bakk, Tekle & Vermunt (2013) found.
 #[test]
 fn three_step_corrections_undo_the_attenuation_of_classify_analyze() {
+    use cohortmix::fit;
     use cohortmix::fit::three_step;
     use cohortmix::spec::Method;
-    use cohortmix::{data, fit, simulate, spec};
-    let dir = tempfile::tempdir().unwrap();
     let text = COVERAGE_TRUTH
         .replace("{rows}", "20000")
         .replace("{seed}", "77")
         .replace("mean = { fev1 = 75, fvc = 90 }", "mean = { fev1 = 82, fvc = 94 }");
-    let truth = simulate::parse(&dir.path().join("truth.toml"), &text).unwrap();
-    std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
     let study_text = COVERAGE_STUDY.replace(
         "gating = [\"age\", \"smoker\"]",
         "gating = [\"age\", \"smoker\"]\nmethod = \"three-step-ml\"",
     );
-    let study = spec::parse(&dir.path().join("study.toml"), &study_text).unwrap();
-    let data = data::load(&study).unwrap();
-    let prepared = fit::prepare(&study, &data).unwrap();
+    let (_dir, study, data, prepared) = simulated(&text, &study_text);
     let design = prepared[0]
         .step_three
         .as_ref()
@@ -608,8 +602,8 @@ fn direct_effect_screen_finds_the_true_direct_effects() {
 /// drawn with two, and does not reject one cluster (at 5%) on data drawn with one.
 #[test]
 fn bootstrap_cluster_count_test_rejects_only_a_false_null() {
+    use cohortmix::fit;
     use cohortmix::inference::cluster_test;
-    use cohortmix::{data, fit, simulate, spec};
     let truth_two = r#"
 [simulation]
 rows = 300
@@ -648,12 +642,7 @@ starts = 4
 covariance = [{ volume = "varying", shape = "varying", orientation = "varying" }]
 "#;
     let p_value = |truth: &str| {
-        let dir = tempfile::tempdir().unwrap();
-        let t = simulate::parse(&dir.path().join("truth.toml"), truth).unwrap();
-        std::fs::write(&t.output, simulate::generate(&t).csv).unwrap();
-        let study = spec::parse(&dir.path().join("study.toml"), study_text).unwrap();
-        let data = data::load(&study).unwrap();
-        let prepared = fit::prepare(&study, &data).unwrap();
+        let (_dir, study, data, prepared) = simulated(truth, study_text);
         let fits = fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
         let two = fits.iter().position(|f| f.clusters == 2).unwrap();
         let tests = cluster_test::test(&study, &data, &prepared, &fits, &[two], 39);

@@ -60,16 +60,7 @@ fn simulate(s: CovarianceStructure, n: usize, seed: u64) -> (Vec<f64>, Vec<usize
     (y, labels)
 }
 
-/// Options for a plain fit of one structure (no prior, no floor).
-fn plain(s: CovarianceStructure) -> ModelOptions {
-    ModelOptions {
-        structure: s,
-        gating_ridge: 0.0,
-        covariance_prior: false,
-        variance_floor: 0.0,
-        smoothing: 0.0,
-    }
-}
+use super::common::plain_options as plain;
 
 /// The best usable run of `starts` starts (no covariates, G clusters).
 fn best_fit(y: &[f64], n: usize, options: ModelOptions, starts: usize) -> EmRun {
