@@ -6,7 +6,7 @@
 //! log-likelihood stops being finite. Why it stopped is part of the result.
 
 use crate::model::gating::{Gating, GatingStats};
-use crate::model::{e_step, FitData, Model};
+use crate::model::{e_step_with, FitData, GaussianStats, Model};
 use serde::Serialize;
 
 /// Why a start stopped.
@@ -95,11 +95,13 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
     // the current ones stay intact for a redo.
     let mut tau_next = vec![0.0; tau.len()];
     let (mut stats, mut stats_next) = (GatingStats::default(), GatingStats::default());
+    let (mut sums, mut sums_next) = (GaussianStats::default(), GaussianStats::default());
     let mut have_stats = false;
     for iteration in 1..=settings.max_iterations {
         let saved = (logit && have_stats).then(|| model.clone());
         let known = have_stats.then_some(&stats);
-        let step = match model.m_step(data, &tau, known, false) {
+        let known_sums = have_stats.then_some(&sums);
+        let step = match model.m_step(data, &tau, known, known_sums, false) {
             Ok(step) => step,
             Err(d) => {
                 let t = Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason));
@@ -107,24 +109,25 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
             }
         };
         out.damped += step.damped;
-        let mut new_loglik = e_step(&model, data, &mut tau_next, Some(&mut stats_next));
+        let mut new_loglik = e_step_with(&model, data, &mut tau_next, Some(&mut stats_next), Some(&mut sums_next));
         let mut new_objective = new_loglik - model.penalty();
         if let Some(previous) = saved {
             // A Newton step without line search can overshoot; redo the iteration with
             // the bound step, which cannot lower the objective.
             if !(new_objective >= out.objective - 1e-13 * out.objective.abs()) {
                 model = previous;
-                if let Err(d) = model.m_step(data, &tau, Some(&stats), true) {
+                if let Err(d) = model.m_step(data, &tau, Some(&stats), Some(&sums), true) {
                     let t = Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason));
                     return out.finish(model, tau, iteration - 1, t);
                 }
-                new_loglik = e_step(&model, data, &mut tau_next, Some(&mut stats_next));
+                new_loglik = e_step_with(&model, data, &mut tau_next, Some(&mut stats_next), Some(&mut sums_next));
                 new_objective = new_loglik - model.penalty();
                 out.fallbacks += 1;
             }
         }
         std::mem::swap(&mut tau, &mut tau_next);
         std::mem::swap(&mut stats, &mut stats_next);
+        std::mem::swap(&mut sums, &mut sums_next);
         have_stats = true;
         if !new_objective.is_finite() {
             let t = Termination::NumericalFault(format!(

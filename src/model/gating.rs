@@ -260,30 +260,6 @@ impl GatingStats {
         self.neg_hessian.clear();
         self.neg_hessian.resize(m * m, 0.0);
     }
-
-    /// Add one row: weight c, responsibilities τ, prior probabilities π, gating row w.
-    #[inline]
-    pub fn add_row(&mut self, c: f64, tau: &[f64], pi: &[f64], w: &[f64]) {
-        let g = pi.len();
-        let p = w.len();
-        let m = (g - 1) * p;
-        for k in 1..g {
-            let r = c * (tau[k] - pi[k]);
-            for (acc, wj) in self.score[(k - 1) * p..k * p].iter_mut().zip(w) {
-                *acc += r * wj;
-            }
-            for l in 1..=k {
-                let h = c * pi[k] * (f64::from(u8::from(k == l)) - pi[l]);
-                for a in 0..p {
-                    let ha = h * w[a];
-                    let row = &mut self.neg_hessian[((k - 1) * p + a) * m + (l - 1) * p..][..p];
-                    for (cell, wb) in row.iter_mut().zip(w) {
-                        *cell += ha * wb;
-                    }
-                }
-            }
-        }
-    }
 }
 
 impl Gating {
@@ -383,14 +359,8 @@ pub struct LogitFit {
 
 /// Objective sum_i c_i sum_g tau_ig log pi_ig − penalty.
 pub fn logit_objective(w: &[f64], p: usize, tau: &[f64], g: usize, weights: &[f64], ridge: f64, gamma: &[f64]) -> f64 {
-    let mut lp = vec![0.0; g];
-    let mut total = 0.0;
-    for ((wr, tr), c) in w.chunks_exact(p).zip(tau.chunks_exact(g)).zip(weights) {
-        log_softmax_row(gamma, p, wr, &mut lp);
-        let row: f64 = tr.iter().zip(&lp).filter(|(t, _)| **t != 0.0).map(|(t, l)| t * l).sum();
-        total += c * row;
-    }
-    total - ridge_penalty(gamma, p, ridge)
+    let (objective, _) = super::rows::logit_pass(w, p, tau, g, weights, gamma, false);
+    objective - ridge_penalty(gamma, p, ridge)
 }
 
 /// Objective, score and Hessian of the penalised multinomial logit at `gamma`.
@@ -407,42 +377,11 @@ pub fn logit_score_hessian(
     gamma: &[f64],
 ) -> (f64, DVector<f64>, DMatrix<f64>) {
     let m = (g - 1) * p;
-    let mut score = vec![0.0; m];
-    let mut h = vec![0.0; m * m]; // lower triangle used
-    let mut lp = vec![0.0; g];
-    let mut pi = vec![0.0; g];
-    let mut objective = 0.0;
-    for ((wr, tr), c) in w.chunks_exact(p).zip(tau.chunks_exact(g)).zip(weights) {
-        if *c == 0.0 {
-            continue;
-        }
-        log_softmax_row(gamma, p, wr, &mut lp);
-        let s: f64 = tr.iter().sum();
-        for k in 0..g {
-            pi[k] = lp[k].exp();
-            if tr[k] != 0.0 {
-                objective += c * tr[k] * lp[k];
-            }
-        }
-        for k in 1..g {
-            let r = c * (tr[k] - s * pi[k]);
-            for j in 0..p {
-                score[(k - 1) * p + j] += r * wr[j];
-            }
-            for l in 1..=k {
-                let hk = c * s * pi[k] * (f64::from(u8::from(k == l)) - pi[l]);
-                for a in 0..p {
-                    let ha = hk * wr[a];
-                    let row = &mut h[((k - 1) * p + a) * m + (l - 1) * p..][..p];
-                    for (cell, wb) in row.iter_mut().zip(wr) {
-                        *cell -= ha * wb;
-                    }
-                }
-            }
-        }
-    }
-    let mut score = DVector::from_vec(score);
-    let mut hess = DMatrix::from_fn(m, m, |r, col| if col <= r { h[r * m + col] } else { h[col * m + r] });
+    let (mut objective, stats) = super::rows::logit_pass(w, p, tau, g, weights, gamma, true);
+    let stats = stats.expect("the logit pass returns derivatives when asked");
+    let h = &stats.neg_hessian;
+    let mut score = DVector::from_vec(stats.score);
+    let mut hess = DMatrix::from_fn(m, m, |r, col| if col <= r { -h[r * m + col] } else { -h[col * m + r] });
     if ridge > 0.0 {
         for k in 0..(g - 1) {
             for j in 1..p {

@@ -11,9 +11,11 @@
 pub mod family;
 pub mod gating;
 pub mod glm;
+pub mod rows;
 
 use family::{ComponentFamily, Components, Degeneracy};
 use gating::{Gating, GatingStats};
+pub use rows::GaussianStats;
 
 /// The arrays one fit reads. All row-major.
 #[derive(Debug, Clone, Copy, Default)]
@@ -83,6 +85,22 @@ pub struct CountData<'a> {
     pub log_exposure: Option<&'a [f64]>,
 }
 
+impl FitData<'_> {
+    /// The arrays the row passes of [`rows`] read.
+    pub fn rows(&self) -> rows::Rows<'_> {
+        rows::Rows {
+            n: self.n,
+            weights: self.weights,
+            y: self.y,
+            d: self.d,
+            z: self.z,
+            q: self.q,
+            w: self.w,
+            p: self.p,
+        }
+    }
+}
+
 /// Rows of a row-major design `z` (n×qz) restricted to the columns `cols`, row-major.
 pub fn design_rows(z: &[f64], qz: usize, cols: &[usize]) -> Vec<f64> {
     z.chunks_exact(qz)
@@ -118,7 +136,9 @@ impl Model {
 
     /// Both M-steps from responsibilities.
     ///
-    /// `stats` are the gating sums of the E-step that produced `tau` (see [`e_step`]).
+    /// `stats` are the gating sums and `gaussian` the Gaussian sums of the E-step that
+    /// produced `tau` (see [`e_step_with`]); without the latter the Gaussian block sums
+    /// them from `tau`.
     /// With them a logit gating network takes a Newton step (`safe = false`) or Böhning's
     /// bound step, which always raises the gating objective (`safe = true`); without them
     /// it takes a Newton step with step-halving, computed from `tau` directly.
@@ -127,9 +147,10 @@ impl Model {
         data: &FitData,
         tau: &[f64],
         stats: Option<&GatingStats>,
+        gaussian: Option<&GaussianStats>,
         safe: bool,
     ) -> Result<gating::GatingStep, Degeneracy> {
-        self.components.m_step(data, tau)?;
+        self.components.m_step_with(data, tau, gaussian)?;
         let has_bound = matches!(
             self.gating,
             Gating::Logit {
@@ -171,53 +192,40 @@ impl Model {
 /// gating score and negative Hessian at the current coefficients, which the next gating
 /// M-step needs: the pass computes π and τ anyway. Rows whose every cluster has
 /// zero density give −∞; the caller treats a non-finite log-likelihood as a fault.
-pub fn e_step(model: &Model, data: &FitData, tau: &mut [f64], mut gating_stats: Option<&mut GatingStats>) -> f64 {
-    let g = model.clusters();
-    model.components.log_density(data, tau);
-    let mut prior = vec![0.0; g];
-    let mut eta = vec![0.0; g];
-    let p = data.p;
-    let logit = match &model.gating {
-        Gating::Logit { gamma, .. } => Some(gamma.as_slice()),
-        _ => None,
-    };
-    if let (Some(s), Some(_)) = (gating_stats.as_deref_mut(), logit) {
-        s.reset(g, p);
-    }
-    if logit.is_none() {
-        model.gating.log_priors(&[], &mut prior);
-    }
-    let mut loglik = 0.0;
-    for i in 0..data.n {
-        let row = &mut tau[i * g..(i + 1) * g];
-        let c = data.weights[i];
-        match logit {
-            Some(gamma) => {
-                let w = &data.w[i * p..(i + 1) * p];
-                // eta holds the linear predictors, prior becomes π; row gets log π = η − lse(η).
-                eta[0] = 0.0;
-                for (k, coef) in gamma.chunks_exact(p).enumerate() {
-                    eta[k + 1] = coef.iter().zip(w).map(|(a, b)| a * b).sum();
-                }
-                prior.copy_from_slice(&eta);
-                let lse_eta = softmax_in_place(&mut prior);
-                for (r, e) in row.iter_mut().zip(&eta) {
-                    *r += e - lse_eta;
-                }
-                loglik += c * softmax_in_place(row);
-                if let Some(s) = gating_stats.as_deref_mut() {
-                    s.add_row(c, row, &prior, w);
-                }
-            }
-            None => {
-                for (r, l) in row.iter_mut().zip(&prior) {
-                    *r += l;
-                }
-                loglik += c * softmax_in_place(row);
-            }
+pub fn e_step(model: &Model, data: &FitData, tau: &mut [f64], gating_stats: Option<&mut GatingStats>) -> f64 {
+    e_step_with(model, data, tau, gating_stats, None)
+}
+
+/// [`e_step`] that also fills the Gaussian M-step sums, when asked and the model has a
+/// Gaussian block. The Gaussian block and the gating network go through the tiled row
+/// pass of [`rows`]; items and counts add their log-densities first.
+pub fn e_step_with(
+    model: &Model,
+    data: &FitData,
+    tau: &mut [f64],
+    gating_stats: Option<&mut GatingStats>,
+    gaussian_stats: Option<&mut GaussianStats>,
+) -> f64 {
+    let c = &model.components;
+    let has_base = c.items.is_some() || c.counts.is_some();
+    if has_base {
+        tau.fill(0.0);
+        if let Some(b) = &c.items {
+            b.add_log_density(data, tau);
+        }
+        if let Some(b) = &c.counts {
+            b.add_log_density(data, tau);
         }
     }
-    loglik
+    rows::e_step(
+        data.rows(),
+        c.gaussian.as_ref(),
+        &model.gating,
+        has_base,
+        tau,
+        gating_stats,
+        gaussian_stats,
+    )
 }
 
 /// Replace `x` by softmax(x) and return log Σ exp(x), with the row's own maximum

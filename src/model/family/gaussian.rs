@@ -48,6 +48,8 @@ pub struct GaussianComponents {
     log_det: Vec<f64>,
     /// Overall variance of each indicator, the yardstick for collapse.
     y_var: Vec<f64>,
+    /// Overall weighted mean of each indicator: the first M-step takes its sums around it.
+    y_mean: Vec<f64>,
     /// Common orientation kept between M-steps (structures with one).
     orientation: Option<DMatrix<f64>>,
     /// Optional covariance prior.
@@ -63,19 +65,22 @@ impl GaussianComponents {
     pub fn new(data: &FitData, g: usize, structure: CovarianceStructure) -> GaussianComponents {
         let (d, q) = (data.d, data.q);
         let total: f64 = data.weights.iter().sum();
-        let y_var = (0..d)
+        let y_mean: Vec<f64> = (0..d)
             .map(|j| {
-                let mean = data
-                    .y
+                data.y
                     .chunks_exact(d)
                     .zip(data.weights)
                     .map(|(y, c)| c * y[j])
                     .sum::<f64>()
-                    / total;
+                    / total
+            })
+            .collect();
+        let y_var = (0..d)
+            .map(|j| {
                 data.y
                     .chunks_exact(d)
                     .zip(data.weights)
-                    .map(|(y, c)| c * (y[j] - mean).powi(2))
+                    .map(|(y, c)| c * (y[j] - y_mean[j]).powi(2))
                     .sum::<f64>()
                     / total
             })
@@ -90,6 +95,7 @@ impl GaussianComponents {
             chol: vec![DMatrix::<f64>::identity(d, d).transpose().as_slice().to_vec(); g],
             log_det: vec![0.0; g],
             y_var,
+            y_mean,
             orientation: None,
             prior: None,
             variance_floor: 0.0,
@@ -165,6 +171,106 @@ impl GaussianComponents {
         self.orientation = orientation;
     }
 
+    /// The inverse of each cluster's lower Cholesky factor, d×d row-major per cluster:
+    /// the E-step's Mahalanobis distance is |L⁻¹(y − μ)|².
+    pub fn inverse_cholesky(&self) -> Vec<f64> {
+        let d = self.d;
+        let mut out = vec![0.0; self.g * d * d];
+        for (l, inv) in self.chol.iter().zip(out.chunks_exact_mut(d * d)) {
+            // Forward substitution for each column of L X = I.
+            for col in 0..d {
+                for r in col..d {
+                    let mut s = if r == col { 1.0 } else { 0.0 };
+                    for c in col..r {
+                        s -= l[r * d + c] * inv[c * d + col];
+                    }
+                    inv[r * d + col] = s / l[r * d + r];
+                }
+            }
+        }
+        out
+    }
+
+    /// −½(d ln 2π + ln det Σ_k) per cluster: the log-density at the cluster mean.
+    pub fn log_density_constants(&self) -> Vec<f64> {
+        let constant = -0.5 * self.d as f64 * LN_2PI;
+        self.log_det.iter().map(|ld| constant - 0.5 * ld).collect()
+    }
+
+    /// The M-step from sums taken around coefficients `st.at` (see
+    /// [`crate::model::GaussianStats`]): weighted least squares for the coefficients, then
+    /// the structure's covariance estimate from the scatter about the new means.
+    pub fn m_step_from_stats(&mut self, st: &crate::model::GaussianStats) -> Result<(), Degeneracy> {
+        let (d, q, g) = (self.d, self.q, self.g);
+        let needed = (d + q) as f64;
+        let mut scatter = Vec::with_capacity(g);
+        for k in 0..g {
+            if st.rows[k] < needed {
+                return Err(Degeneracy {
+                    cluster: k + 1,
+                    reason: format!(
+                        "it holds {:.1} effective rows, fewer than the {needed} its mean and covariance need",
+                        st.rows[k]
+                    ),
+                });
+            }
+            let zz = &st.zz[k * q * q..(k + 1) * q * q];
+            let zr = &st.zr[k * q * d..(k + 1) * q * d];
+            let a_mat = DMatrix::from_fn(q, q, |a, b| if b <= a { zz[a * q + b] } else { zz[b * q + a] });
+            let rhs = DMatrix::from_fn(q, d, |a, j| zr[a * d + j]);
+            let delta = a_mat.cholesky().map(|c| c.solve(&rhs)).ok_or_else(|| Degeneracy {
+                cluster: k + 1,
+                reason: "its component covariates are collinear among the rows it holds".to_string(),
+            })?;
+            for a in 0..q {
+                for j in 0..d {
+                    let i = (k * q + a) * d + j;
+                    self.coef[i] = st.at[i] + delta[(a, j)];
+                }
+            }
+            // Scatter about the new means: Σ v r r′ − (Σ v z r′)′ Δ.
+            let rr = &st.rr[k * d * d..(k + 1) * d * d];
+            let mut w = DMatrix::zeros(d, d);
+            for a in 0..d {
+                for b in 0..=a {
+                    let correction: f64 = (0..q).map(|c| zr[c * d + a] * delta[(c, b)]).sum();
+                    w[(a, b)] = rr[a * d + b] - correction;
+                    w[(b, a)] = w[(a, b)];
+                }
+            }
+            scatter.push(w);
+        }
+        self.finish_covariances(scatter, st.weight.clone())
+    }
+
+    /// Prior, structure and variance floor applied to the scatter matrices.
+    fn finish_covariances(&mut self, mut scatter: Vec<DMatrix<f64>>, mut n_eff: Vec<f64>) -> Result<(), Degeneracy> {
+        let d = self.d;
+        if let Some(prior) = &self.prior {
+            // Posterior mode: the structure's M-step on the augmented scatter.
+            for (w, n) in scatter.iter_mut().zip(n_eff.iter_mut()) {
+                *w += &prior.scale;
+                *n += prior.dof + d as f64 + 1.0;
+            }
+        }
+        let estimates = covariance::estimate(self.structure, &scatter, &n_eff, &self.cov, &mut self.orientation);
+        let floor = self.variance_floor * self.y_var.iter().copied().fold(f64::INFINITY, f64::min);
+        for (k, mut cov) in estimates.into_iter().enumerate() {
+            if floor > 0.0 {
+                // Raise eigenvalues below the floor; counted, because the estimate then
+                // leaves the exact maximiser (and, for shared parts, the structure).
+                let e = nalgebra::SymmetricEigen::new(cov.clone());
+                if e.eigenvalues.iter().any(|v| *v < floor) {
+                    self.floor_hits += 1;
+                    let raised = e.eigenvalues.map(|v| v.max(floor));
+                    cov = &e.eigenvectors * DMatrix::from_diagonal(&raised) * e.eigenvectors.transpose();
+                }
+            }
+            self.set_covariance(k, cov)?;
+        }
+        Ok(())
+    }
+
     /// Mean of cluster k for one row of the component design, into `out`.
     pub fn mean(&self, k: usize, z: &[f64], out: &mut [f64]) {
         out.fill(0.0);
@@ -214,116 +320,14 @@ impl ComponentFamily for GaussianComponents {
     }
 
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
-        let (d, q, g) = (self.d, self.q, self.g);
-        // Pass 1, all clusters at once: Z'VZ (lower triangle), Z'VY, Σv, Στ.
-        let mut ztz = vec![0.0; g * q * q];
-        let mut zty = vec![0.0; g * q * d];
-        let mut sum_v = vec![0.0; g];
-        let mut rows = vec![0.0; g];
-        for i in 0..data.n {
-            let z = &data.z[i * q..(i + 1) * q];
-            let y = &data.y[i * d..(i + 1) * d];
-            let c = data.weights[i];
-            for k in 0..g {
-                let t = tau[i * g + k];
-                let v = c * t;
-                if v == 0.0 {
-                    continue;
-                }
-                rows[k] += t;
-                sum_v[k] += v;
-                let ztz_k = &mut ztz[k * q * q..(k + 1) * q * q];
-                let zty_k = &mut zty[k * q * d..(k + 1) * q * d];
-                for a in 0..q {
-                    let vz = v * z[a];
-                    for b in 0..=a {
-                        ztz_k[a * q + b] += vz * z[b];
-                    }
-                    for (acc, yj) in zty_k[a * d..(a + 1) * d].iter_mut().zip(y) {
-                        *acc += vz * yj;
-                    }
-                }
-            }
+        // Sums around the overall means, so that large means do not cost precision.
+        let (d, q) = (self.d, self.q);
+        let mut at = vec![0.0; self.g * q * d];
+        for block in at.chunks_exact_mut(q * d) {
+            block[..d].copy_from_slice(&self.y_mean);
         }
-        let needed = (d + q) as f64;
-        for k in 0..g {
-            if rows[k] < needed {
-                return Err(Degeneracy {
-                    cluster: k + 1,
-                    reason: format!(
-                        "it holds {:.1} effective rows, fewer than the {needed} its mean and covariance need",
-                        rows[k]
-                    ),
-                });
-            }
-            let ztz_k = &ztz[k * q * q..(k + 1) * q * q];
-            let a_mat = DMatrix::from_fn(q, q, |a, b| if b <= a { ztz_k[a * q + b] } else { ztz_k[b * q + a] });
-            let rhs = DMatrix::from_fn(q, d, |a, j| zty[k * q * d + a * d + j]);
-            let beta = a_mat.cholesky().map(|c| c.solve(&rhs)).ok_or_else(|| Degeneracy {
-                cluster: k + 1,
-                reason: "its component covariates are collinear among the rows it holds".to_string(),
-            })?;
-            for a in 0..q {
-                for j in 0..d {
-                    self.coef[(k * q + a) * d + j] = beta[(a, j)];
-                }
-            }
-        }
-        // Pass 2: residual cross-products (more accurate than Y'VY − B'Z'VY).
-        let mut s = vec![0.0; g * d * d];
-        let mut r = vec![0.0; d];
-        for i in 0..data.n {
-            let z = &data.z[i * q..(i + 1) * q];
-            let y = &data.y[i * d..(i + 1) * d];
-            let c = data.weights[i];
-            for k in 0..g {
-                let v = c * tau[i * g + k];
-                if v == 0.0 {
-                    continue;
-                }
-                self.mean(k, z, &mut r);
-                for (rj, yj) in r.iter_mut().zip(y) {
-                    *rj = yj - *rj;
-                }
-                let s_k = &mut s[k * d * d..(k + 1) * d * d];
-                for a in 0..d {
-                    let va = v * r[a];
-                    for b in 0..=a {
-                        s_k[a * d + b] += va * r[b];
-                    }
-                }
-            }
-        }
-        let mut scatter: Vec<DMatrix<f64>> = (0..g)
-            .map(|k| {
-                let s_k = &s[k * d * d..(k + 1) * d * d];
-                DMatrix::from_fn(d, d, |a, b| if b <= a { s_k[a * d + b] } else { s_k[b * d + a] })
-            })
-            .collect();
-        let mut n_eff = sum_v;
-        if let Some(prior) = &self.prior {
-            // Posterior mode: the structure's M-step on the augmented scatter.
-            for (w, n) in scatter.iter_mut().zip(n_eff.iter_mut()) {
-                *w += &prior.scale;
-                *n += prior.dof + d as f64 + 1.0;
-            }
-        }
-        let estimates = covariance::estimate(self.structure, &scatter, &n_eff, &self.cov, &mut self.orientation);
-        let floor = self.variance_floor * self.y_var.iter().copied().fold(f64::INFINITY, f64::min);
-        for (k, mut cov) in estimates.into_iter().enumerate() {
-            if floor > 0.0 {
-                // Raise eigenvalues below the floor; counted, because the estimate then
-                // leaves the exact maximiser (and, for shared parts, the structure).
-                let e = nalgebra::SymmetricEigen::new(cov.clone());
-                if e.eigenvalues.iter().any(|v| *v < floor) {
-                    self.floor_hits += 1;
-                    let raised = e.eigenvalues.map(|v| v.max(floor));
-                    cov = &e.eigenvectors * DMatrix::from_diagonal(&raised) * e.eigenvectors.transpose();
-                }
-            }
-            self.set_covariance(k, cov)?;
-        }
-        Ok(())
+        let st = crate::model::rows::gaussian_stats(data.rows(), self.g, &at, tau);
+        self.m_step_from_stats(&st)
     }
 
     fn n_params(&self) -> usize {

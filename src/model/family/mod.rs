@@ -122,6 +122,28 @@ impl Components {
         v
     }
 
+    /// The M-step of every block; the Gaussian block uses `gaussian` (sums of the E-step
+    /// that produced `tau`) when given.
+    pub fn m_step_with(
+        &mut self,
+        data: &FitData,
+        tau: &[f64],
+        gaussian: Option<&crate::model::GaussianStats>,
+    ) -> Result<(), Degeneracy> {
+        match (&mut self.gaussian, gaussian) {
+            (Some(b), Some(st)) => b.m_step_from_stats(st)?,
+            (Some(b), None) => b.m_step(data, tau)?,
+            (None, _) => {}
+        }
+        if let Some(b) = &mut self.items {
+            b.m_step(data, tau)?;
+        }
+        if let Some(b) = &mut self.counts {
+            b.m_step(data, tau)?;
+        }
+        Ok(())
+    }
+
     /// Times the variance floor acted (0 without a gaussian block).
     pub fn floor_hits(&self) -> usize {
         self.gaussian.as_ref().map_or(0, |c| c.floor_hits)
@@ -135,10 +157,7 @@ impl ComponentFamily for Components {
         }
     }
     fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
-        for b in self.blocks_mut() {
-            b.m_step(data, tau)?;
-        }
-        Ok(())
+        self.m_step_with(data, tau, None)
     }
     fn n_params(&self) -> usize {
         self.blocks().iter().map(|b| b.n_params()).sum()
