@@ -48,6 +48,10 @@ impl Termination {
     }
 }
 
+/// A tolerance that never counts as converged: the loop runs to the iteration cap
+/// (benchmarks compare fixed numbers of iterations).
+pub const NEVER_STOP_EARLY: f64 = -1.0;
+
 /// Settings of the loop.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct EmSettings {

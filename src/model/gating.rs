@@ -121,10 +121,7 @@ impl Gating {
                         *s += c * t;
                     }
                 }
-                let total: f64 = sums.iter().sum();
-                for (l, s) in log_pi.iter_mut().zip(&sums) {
-                    *l = (s / total).ln();
-                }
+                self.shares_from(&sums);
                 GatingStep {
                     iterations: 0,
                     converged: true,
@@ -139,6 +136,17 @@ impl Gating {
                     converged: fit.converged,
                     damped: fit.damped,
                 }
+            }
+        }
+    }
+
+    /// Free shares from the weighted responsibility totals Σ_i c_i τ_ik (no-op for other
+    /// gating networks).
+    pub fn shares_from(&mut self, sums: &[f64]) {
+        if let Gating::Free { log_pi } = self {
+            let total: f64 = sums.iter().sum();
+            for (l, s) in log_pi.iter_mut().zip(sums) {
+                *l = (s / total).ln();
             }
         }
     }
@@ -249,6 +257,8 @@ pub struct GatingStats {
     pub score: Vec<f64>,
     /// Σ_i c_i π_ik (δ_kl − π_il) w_i w_i', lower triangle of an m×m row-major matrix.
     pub neg_hessian: Vec<f64>,
+    /// Σ_i c_i τ_ik per cluster (all gating networks): the free shares' M-step.
+    pub cluster_weight: Vec<f64>,
 }
 
 impl GatingStats {
@@ -259,6 +269,8 @@ impl GatingStats {
         self.score.resize(m, 0.0);
         self.neg_hessian.clear();
         self.neg_hessian.resize(m * m, 0.0);
+        self.cluster_weight.clear();
+        self.cluster_weight.resize(g, 0.0);
     }
 }
 

@@ -175,6 +175,14 @@ impl Model {
                 }
                 Ok(one(0))
             }
+            Some(st) if matches!(self.gating, Gating::Free { .. }) && !st.cluster_weight.is_empty() => {
+                self.gating.shares_from(&st.cluster_weight);
+                Ok(gating::GatingStep {
+                    iterations: 0,
+                    converged: true,
+                    damped: 0,
+                })
+            }
             _ => Ok(self.gating.m_step(data.w, tau, data.weights)),
         }
     }

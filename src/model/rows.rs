@@ -86,6 +86,7 @@ impl GatingStats {
     fn add(&mut self, other: &GatingStats) {
         add_into(&mut self.score, &other.score);
         add_into(&mut self.neg_hessian, &other.neg_hessian);
+        add_into(&mut self.cluster_weight, &other.cluster_weight);
     }
 }
 
@@ -175,6 +176,8 @@ struct Scratch {
     eta: Vec<f64>,
     /// Products w_a w_b (b ≤ a) of the gating columns.
     ww: Vec<f64>,
+    /// Their weighted sums.
+    hsum: Vec<f64>,
     lse: Vec<f64>,
     lse_eta: Vec<f64>,
     sum: Vec<f64>,
@@ -197,6 +200,7 @@ impl Scratch {
             lp: v(g),
             eta: v(g),
             ww: v(p * (p + 1) / 2),
+            hsum: vec![0.0; p * (p + 1) / 2],
             lse: v(1),
             lse_eta: v(1),
             sum: v(1),
@@ -212,44 +216,134 @@ impl Scratch {
 /// Copy rows (row-major, `width` columns) into column-major tile scratch.
 #[inline(always)]
 fn transpose(rows: &[f64], width: usize, out: &mut [f64]) {
-    for (i, row) in rows.chunks_exact(width).enumerate() {
-        for (j, x) in row.iter().enumerate() {
-            out[j * TILE + i] = *x;
+    match width {
+        0 => {}
+        1 => transpose_fixed::<1>(rows, out),
+        2 => transpose_fixed::<2>(rows, out),
+        3 => transpose_fixed::<3>(rows, out),
+        4 => transpose_fixed::<4>(rows, out),
+        5 => transpose_fixed::<5>(rows, out),
+        6 => transpose_fixed::<6>(rows, out),
+        7 => transpose_fixed::<7>(rows, out),
+        8 => transpose_fixed::<8>(rows, out),
+        _ => {
+            for (i, row) in rows.chunks_exact(width).enumerate() {
+                for (j, x) in row.iter().enumerate() {
+                    out[j * TILE + i] = *x;
+                }
+            }
         }
     }
 }
 
-/// Σ a_i b_i in eight lanes, added in a fixed order.
+#[inline(always)]
+fn transpose_fixed<const W: usize>(rows: &[f64], out: &mut [f64]) {
+    let m = rows.len() / W;
+    let mut cols = out.chunks_exact_mut(TILE);
+    let cols: [&mut [f64]; W] = std::array::from_fn(|_| &mut cols.next().expect("a run per column")[..m]);
+    for (i, row) in rows.chunks_exact(W).enumerate() {
+        for j in 0..W {
+            cols[j][i] = row[j];
+        }
+    }
+}
+
+/// Copy column-major tile scratch (`width` runs) back into rows (row-major).
+#[inline(always)]
+fn untranspose(cols: &[f64], width: usize, rows: &mut [f64]) {
+    match width {
+        1 => untranspose_fixed::<1>(cols, rows),
+        2 => untranspose_fixed::<2>(cols, rows),
+        3 => untranspose_fixed::<3>(cols, rows),
+        4 => untranspose_fixed::<4>(cols, rows),
+        5 => untranspose_fixed::<5>(cols, rows),
+        6 => untranspose_fixed::<6>(cols, rows),
+        7 => untranspose_fixed::<7>(cols, rows),
+        8 => untranspose_fixed::<8>(cols, rows),
+        _ => {
+            for (i, row) in rows.chunks_exact_mut(width).enumerate() {
+                for (j, x) in row.iter_mut().enumerate() {
+                    *x = cols[j * TILE + i];
+                }
+            }
+        }
+    }
+}
+
+#[inline(always)]
+fn untranspose_fixed<const W: usize>(cols: &[f64], rows: &mut [f64]) {
+    let m = rows.len() / W;
+    let mut runs = cols.chunks_exact(TILE);
+    let runs: [&[f64]; W] = std::array::from_fn(|_| &runs.next().expect("a run per column")[..m]);
+    for (i, row) in rows.chunks_exact_mut(W).enumerate() {
+        for j in 0..W {
+            row[j] = runs[j][i];
+        }
+    }
+}
+
+/// Independent partial sums in [`dot`] and [`total`]: enough to keep the adders busy.
+const LANES: usize = 32;
+
+/// Σ a_i b_i in [`LANES`] lanes, added in a fixed order.
 #[inline(always)]
 pub fn dot(a: &[f64], b: &[f64]) -> f64 {
     let b = &b[..a.len()];
-    let mut acc = [0.0f64; 8];
-    let mut ca = a.chunks_exact(8);
-    let mut cb = b.chunks_exact(8);
+    let mut acc = [0.0f64; LANES];
+    let mut ca = a.chunks_exact(LANES);
+    let mut cb = b.chunks_exact(LANES);
     for (x, y) in (&mut ca).zip(&mut cb) {
-        for l in 0..8 {
-            acc[l] += x[l] * y[l];
+        for l in 0..LANES {
+            acc[l] = x[l].mul_add(y[l], acc[l]);
         }
     }
     let mut tail = 0.0;
     for (x, y) in ca.remainder().iter().zip(cb.remainder()) {
         tail += x * y;
     }
-    ((acc[0] + acc[4]) + (acc[1] + acc[5])) + ((acc[2] + acc[6]) + (acc[3] + acc[7])) + tail
+    fold_lanes(acc) + tail
 }
 
-/// Σ a_i in eight lanes, added in a fixed order.
+/// `out[b] += Σ_i x_i y_b,i` for b < `count`, where y_b is the run `buf[b * TILE..]`
+/// (first `x.len()` entries), each by [`dot`].
+#[inline(always)]
+fn dots_into(x: &[f64], buf: &[f64], count: usize, out: &mut [f64]) {
+    for (b, o) in out[..count].iter_mut().enumerate() {
+        *o += dot(x, &buf[b * TILE..]);
+    }
+}
+
+/// Eight lanes added in a fixed order.
+#[inline(always)]
+fn fold8(a: &[f64; 8]) -> f64 {
+    ((a[0] + a[4]) + (a[1] + a[5])) + ((a[2] + a[6]) + (a[3] + a[7]))
+}
+
+/// Σ a_i in [`LANES`] lanes, added in a fixed order.
 #[inline(always)]
 fn total(a: &[f64]) -> f64 {
-    let mut acc = [0.0f64; 8];
-    let mut ca = a.chunks_exact(8);
+    let mut acc = [0.0f64; LANES];
+    let mut ca = a.chunks_exact(LANES);
     for x in &mut ca {
-        for l in 0..8 {
+        for l in 0..LANES {
             acc[l] += x[l];
         }
     }
     let tail: f64 = ca.remainder().iter().sum();
-    ((acc[0] + acc[4]) + (acc[1] + acc[5])) + ((acc[2] + acc[6]) + (acc[3] + acc[7])) + tail
+    fold_lanes(acc) + tail
+}
+
+/// The lanes added pairwise, halving each time (a fixed order).
+#[inline(always)]
+fn fold_lanes(mut acc: [f64; LANES]) -> f64 {
+    let mut width = LANES / 2;
+    while width > 0 {
+        for l in 0..width {
+            acc[l] += acc[l + width];
+        }
+        width /= 2;
+    }
+    acc[0]
 }
 
 /// e^x to about one unit in the last place, written so that loops over it vectorise.
@@ -260,15 +354,10 @@ fn total(a: &[f64]) -> f64 {
 #[inline(always)]
 pub fn exp(x: f64) -> f64 {
     const SHIFT: f64 = 6_755_399_441_055_744.0; // 1.5 · 2^52: adding it rounds to an integer
-    const LN2_HI: f64 = 6.931_471_803_691_238_2e-1;
-    const LN2_LO: f64 = 1.908_214_929_270_587_7e-10;
-    let xc = if x < -708.0 {
-        -708.0
-    } else if x > 709.0 {
-        709.0
-    } else {
-        x
-    };
+                                                // ln 2 = LN2_HI + LN2_LO, the first with trailing zero bits so that n · LN2_HI is exact.
+    const LN2_HI: f64 = f64::from_bits(0x3FE6_2E42_FEE0_0000);
+    const LN2_LO: f64 = f64::from_bits(0x3DEA_39EF_3579_3C76);
+    let xc = x.clamp(-708.0, 709.0);
     let t = xc * std::f64::consts::LOG2_E + SHIFT;
     let n = t - SHIFT;
     let r = (xc - n * LN2_HI) - n * LN2_LO;
@@ -290,7 +379,7 @@ pub fn exp(x: f64) -> f64 {
     ];
     let mut poly = C[13];
     for c in C[..13].iter().rev() {
-        poly = poly * r + c;
+        poly = poly.mul_add(r, *c);
     }
     let k = (t.to_bits() as i64).wrapping_sub(SHIFT.to_bits() as i64);
     let scale = f64::from_bits(((k + 1023) as u64) << 52);
@@ -304,9 +393,42 @@ pub fn exp(x: f64) -> f64 {
     }
 }
 
+/// ln x for positive normal x (0 gives −∞, NaN and negative x NaN, +∞ gives +∞), to about
+/// one unit in the last place, written so that loops over it vectorise.
+///
+/// x = 2^e m with m in [√½, √2), and ln m = 2 atanh s = 2(s + s³/3 + … + s²¹/21) with
+/// s = (m − 1)/(m + 1), |s| ≤ 0.172 (truncation below 1e-18).
+#[inline(always)]
+pub fn ln(x: f64) -> f64 {
+    const LN2_HI: f64 = f64::from_bits(0x3FE6_2E42_FEE0_0000);
+    const LN2_LO: f64 = f64::from_bits(0x3DEA_39EF_3579_3C76);
+    let bits = x.to_bits();
+    let e = ((bits >> 52) & 0x7ff) as i64 - 1023;
+    let m = f64::from_bits((bits & 0x000F_FFFF_FFFF_FFFF) | 0x3FF0_0000_0000_0000);
+    let big = m > std::f64::consts::SQRT_2;
+    let m = if big { 0.5 * m } else { m };
+    let e = (if big { e + 1 } else { e }) as f64;
+    let s = (m - 1.0) / (m + 1.0);
+    let s2 = s * s;
+    let mut poly: f64 = 1.0 / 21.0;
+    for c in [19.0, 17.0, 15.0, 13.0, 11.0, 9.0, 7.0, 5.0, 3.0, 1.0] {
+        poly = poly.mul_add(s2, 1.0 / c);
+    }
+    let y = e * LN2_HI + (2.0 * s * poly + e * LN2_LO);
+    if x == 0.0 {
+        f64::NEG_INFINITY
+    } else if !(x > 0.0) {
+        f64::NAN
+    } else if x == f64::INFINITY {
+        x
+    } else {
+        y
+    }
+}
+
 /// Softmax over clusters of the column-major `x` (g runs of `TILE`, first `m` rows used):
-/// x becomes probabilities, `sum` the sums of the shifted exponentials and `lse` the log
-/// sums. A row whose entries are all −∞ gets probabilities NaN and log sum −∞.
+/// x becomes probabilities and `lse` the log sums of the exponentials (`sum` is scratch).
+/// A row whose entries are all −∞ gets probabilities NaN and log sum −∞.
 #[inline(always)]
 fn softmax_columns(x: &mut [f64], g: usize, m: usize, lse: &mut [f64], sum: &mut [f64]) {
     let (lse, sum) = (&mut lse[..m], &mut sum[..m]);
@@ -327,13 +449,15 @@ fn softmax_columns(x: &mut [f64], g: usize, m: usize, lse: &mut [f64], sum: &mut
             *s += *e;
         }
     }
+    for (a, s) in lse.iter_mut().zip(sum.iter_mut()) {
+        *a += ln(*s);
+        // One division per row; the probabilities are products with it.
+        *s = 1.0 / *s;
+    }
     for k in 0..g {
         for (e, s) in x[k * TILE..k * TILE + m].iter_mut().zip(sum.iter()) {
-            *e /= s;
+            *e *= s;
         }
-    }
-    for (a, s) in lse.iter_mut().zip(sum.iter()) {
-        *a += s.ln();
     }
 }
 
@@ -353,6 +477,7 @@ fn add_gating(
     w: &[f64],
     ww: &[f64],
     h: &mut [f64],
+    hsum: &mut [f64],
 ) {
     let mm = (g - 1) * p;
     let h = &mut h[..m];
@@ -370,9 +495,7 @@ fn add_gating(
                 }
             }
         }
-        for a in 0..p {
-            st.score[(k - 1) * p + a] += dot(h, &w[a * TILE..]);
-        }
+        dots_into(h, w, p, &mut st.score[(k - 1) * p..]);
         for l in 1..=k {
             let pl = &pi[l * TILE..l * TILE + m];
             let delta = if k == l { 1.0 } else { 0.0 };
@@ -388,10 +511,13 @@ fn add_gating(
                     }
                 }
             }
+            let pairs = p * (p + 1) / 2;
+            hsum[..pairs].fill(0.0);
+            dots_into(h, ww, pairs, hsum);
             let mut ab = 0;
             for a in 0..p {
                 for b in 0..=a {
-                    let x = dot(h, &ww[ab * TILE..]);
+                    let x = hsum[ab];
                     ab += 1;
                     let (r, col) = ((k - 1) * p + a, (l - 1) * p + b);
                     st.neg_hessian[r * mm + col] += x;
@@ -440,40 +566,121 @@ fn add_gaussian(
     vz: &mut [f64],
 ) {
     let (q, d) = (st.q, st.d);
+    if q == 1 {
+        let done = match d {
+            1 => add_gaussian_plain::<1>(st, g, &c[..m], res, tau),
+            2 => add_gaussian_plain::<2>(st, g, &c[..m], res, tau),
+            3 => add_gaussian_plain::<3>(st, g, &c[..m], res, tau),
+            4 => add_gaussian_plain::<4>(st, g, &c[..m], res, tau),
+            5 => add_gaussian_plain::<5>(st, g, &c[..m], res, tau),
+            6 => add_gaussian_plain::<6>(st, g, &c[..m], res, tau),
+            _ => false,
+        };
+        if done {
+            return;
+        }
+    }
     let (v, vz) = (&mut v[..m], &mut vz[..m]);
     for k in 0..g {
         let tk = &tau[k * TILE..k * TILE + m];
+        // Rows of zero weight do not count as effective rows.
+        for ((vv, cv), t) in v.iter_mut().zip(&c[..m]).zip(tk) {
+            *vv = if *cv == 0.0 { 0.0 } else { *t };
+        }
+        st.rows[k] += total(v);
         for ((vv, cv), t) in v.iter_mut().zip(&c[..m]).zip(tk) {
             *vv = cv * t;
         }
-        st.rows[k] += total(tk);
         st.weight[k] += total(v);
-        // z_0 = 1: its products are v itself.
+        let res_k = &res[k * d * TILE..(k + 1) * d * TILE];
         for a in 0..q {
-            if a > 0 {
+            // The intercept column is 1, so v z_0 is v.
+            let vza: &[f64] = if a == 0 {
+                v
+            } else {
                 for ((o, vv), za) in vz.iter_mut().zip(v.iter()).zip(&z[a * TILE..a * TILE + m]) {
                     *o = vv * za;
                 }
-            }
-            let vza: &[f64] = if a == 0 { v } else { vz };
-            for b in 0..=a {
-                let x = if b == 0 { total(vza) } else { dot(vza, &z[b * TILE..]) };
-                st.zz[(k * q + a) * q + b] += x;
-            }
-            for j in 0..d {
-                st.zr[(k * q + a) * d + j] += dot(vza, &res[(k * d + j) * TILE..]);
-            }
+                vz
+            };
+            dots_into(vza, z, a + 1, &mut st.zz[(k * q + a) * q..]);
+            dots_into(vza, res_k, d, &mut st.zr[(k * q + a) * d..]);
         }
         for a in 0..d {
-            let ra = &res[(k * d + a) * TILE..(k * d + a) * TILE + m];
-            for ((o, vv), x) in vz.iter_mut().zip(v.iter()).zip(ra) {
+            for ((o, vv), x) in vz.iter_mut().zip(v.iter()).zip(&res_k[a * TILE..a * TILE + m]) {
                 *o = vv * x;
             }
+            dots_into(vz, res_k, a + 1, &mut st.rr[(k * d + a) * d..]);
+        }
+    }
+}
+
+/// [`add_gaussian`] without component covariates (q = 1) and with D indicators: one pass
+/// per cluster with every sum in registers, eight lanes each. The lanes are added in the
+/// same fixed order as in [`dot`]'s groups of eight. Returns true (it always applies).
+#[inline(always)]
+fn add_gaussian_plain<const D: usize>(st: &mut GaussianStats, g: usize, c: &[f64], res: &[f64], tau: &[f64]) -> bool {
+    let m = c.len();
+    let full = m - m % 8;
+    for k in 0..g {
+        let tk = &tau[k * TILE..k * TILE + m];
+        let res_k = &res[k * D * TILE..(k + 1) * D * TILE];
+        let mut rows = [0.0f64; 8];
+        let mut weight = [0.0f64; 8];
+        let mut zr = [[0.0f64; 8]; D];
+        let mut rr = [[[0.0f64; 8]; D]; D];
+        for o in (0..full).step_by(8) {
+            let cv: &[f64; 8] = c[o..o + 8].try_into().expect("eight");
+            let tv: &[f64; 8] = tk[o..o + 8].try_into().expect("eight");
+            let r: [&[f64; 8]; D] =
+                std::array::from_fn(|b| res_k[b * TILE + o..b * TILE + o + 8].try_into().expect("eight"));
+            let mut v = [0.0f64; 8];
+            for l in 0..8 {
+                rows[l] += if cv[l] == 0.0 { 0.0 } else { tv[l] };
+                v[l] = cv[l] * tv[l];
+                weight[l] += v[l];
+            }
+            for a in 0..D {
+                let mut vr = [0.0f64; 8];
+                for l in 0..8 {
+                    vr[l] = v[l] * r[a][l];
+                    zr[a][l] += vr[l];
+                }
+                for b in 0..=a {
+                    for l in 0..8 {
+                        rr[a][b][l] = vr[l].mul_add(r[b][l], rr[a][b][l]);
+                    }
+                }
+            }
+        }
+        // The last rows of a short tile, one lane each.
+        for i in full..m {
+            let l = i - full;
+            rows[l] += if c[i] == 0.0 { 0.0 } else { tk[i] };
+            let v = c[i] * tk[i];
+            weight[l] += v;
+            let r: [f64; D] = std::array::from_fn(|b| res_k[b * TILE + i]);
+            for a in 0..D {
+                let vr = v * r[a];
+                zr[a][l] += vr;
+                for b in 0..=a {
+                    rr[a][b][l] = vr.mul_add(r[b], rr[a][b][l]);
+                }
+            }
+        }
+        let fold = fold8;
+        st.rows[k] += fold(&rows);
+        st.weight[k] += fold(&weight);
+        // The intercept's cross-product is the weight itself.
+        st.zz[k] += fold(&weight);
+        for a in 0..D {
+            st.zr[k * D + a] += fold(&zr[a]);
             for b in 0..=a {
-                st.rr[(k * d + a) * d + b] += dot(vz, &res[(k * d + b) * TILE..]);
+                st.rr[(k * D + a) * D + b] += fold(&rr[a][b]);
             }
         }
     }
+    true
 }
 
 /// Residuals y − B_k′z of every cluster into scratch, from coefficients `coef`.
@@ -496,6 +703,134 @@ fn residuals(coef: &[f64], g: usize, q: usize, d: usize, m: usize, sc: &mut Scra
     }
 }
 
+/// `lp += base − ½|L⁻¹r|²` for the residuals `res` (D runs of `TILE`) of one cluster,
+/// eight rows at a time in registers. `l` is L⁻¹, D×D row-major.
+#[inline(always)]
+fn add_log_normal<const D: usize>(l: &[f64], res: &[f64], base: f64, lp: &mut [f64]) {
+    let mut lm = [[0.0f64; D]; D];
+    for (a, row) in lm.iter_mut().enumerate() {
+        row.copy_from_slice(&l[a * D..(a + 1) * D]);
+    }
+    let m = lp.len();
+    let full = m - m % 8;
+    for o in (0..full).step_by(8) {
+        let mut r = [[0.0f64; 8]; D];
+        for (b, rb) in r.iter_mut().enumerate() {
+            rb.copy_from_slice(&res[b * TILE + o..b * TILE + o + 8]);
+        }
+        let quad = mahalanobis::<D>(&lm, &r);
+        for (out, qv) in lp[o..o + 8].iter_mut().zip(&quad) {
+            *out += base - 0.5 * qv;
+        }
+    }
+    if full < m {
+        let width = m - full;
+        let mut r = [[0.0f64; 8]; D];
+        for (b, rb) in r.iter_mut().enumerate() {
+            rb[..width].copy_from_slice(&res[b * TILE + full..b * TILE + m]);
+        }
+        let quad = mahalanobis::<D>(&lm, &r);
+        for (out, qv) in lp[full..].iter_mut().zip(&quad) {
+            *out += base - 0.5 * qv;
+        }
+    }
+}
+
+/// [`add_log_normal`] with residuals r = y − `mean` made from the indicator runs `y`
+/// (D runs of `TILE`), written to `res` when `keep`.
+#[inline(always)]
+fn add_log_normal_centred<const D: usize>(
+    l: &[f64],
+    y: &[f64],
+    mean: &[f64],
+    base: f64,
+    lp: &mut [f64],
+    res: &mut [f64],
+    keep: bool,
+) {
+    let mut lm = [[0.0f64; D]; D];
+    for (a, row) in lm.iter_mut().enumerate() {
+        row.copy_from_slice(&l[a * D..(a + 1) * D]);
+    }
+    let mu: [f64; D] = mean.try_into().expect("D means");
+    let m = lp.len();
+    let full = m - m % 8;
+    for o in (0..full).step_by(8) {
+        let mut r = [[0.0f64; 8]; D];
+        for (b, rb) in r.iter_mut().enumerate() {
+            let yb: &[f64; 8] = y[b * TILE + o..b * TILE + o + 8].try_into().expect("eight");
+            for lane in 0..8 {
+                rb[lane] = yb[lane] - mu[b];
+            }
+        }
+        if keep {
+            for (b, rb) in r.iter().enumerate() {
+                res[b * TILE + o..b * TILE + o + 8].copy_from_slice(rb);
+            }
+        }
+        let quad = mahalanobis::<D>(&lm, &r);
+        for (out, qv) in lp[o..o + 8].iter_mut().zip(&quad) {
+            *out += base - 0.5 * qv;
+        }
+    }
+    if full < m {
+        let width = m - full;
+        let mut r = [[0.0f64; 8]; D];
+        for (b, rb) in r.iter_mut().enumerate() {
+            for (lane, x) in rb.iter_mut().enumerate().take(width) {
+                *x = y[b * TILE + full + lane] - mu[b];
+            }
+            if keep {
+                res[b * TILE + full..b * TILE + m].copy_from_slice(&rb[..width]);
+            }
+        }
+        let quad = mahalanobis::<D>(&lm, &r);
+        for (out, qv) in lp[full..].iter_mut().zip(&quad) {
+            *out += base - 0.5 * qv;
+        }
+    }
+}
+
+/// |L⁻¹r|² for eight rows.
+#[inline(always)]
+fn mahalanobis<const D: usize>(lm: &[[f64; D]; D], r: &[[f64; 8]; D]) -> [f64; 8] {
+    let mut quad = [0.0f64; 8];
+    for (a, la) in lm.iter().enumerate() {
+        let mut u = [0.0f64; 8];
+        for (b, lab) in la.iter().enumerate().take(a + 1) {
+            for lane in 0..8 {
+                u[lane] = lab.mul_add(r[b][lane], u[lane]);
+            }
+        }
+        for lane in 0..8 {
+            quad[lane] = u[lane].mul_add(u[lane], quad[lane]);
+        }
+    }
+    quad
+}
+
+/// [`add_log_normal`] for any number of indicators, one run at a time.
+fn add_log_normal_any(d: usize, l: &[f64], res: &[f64], base: f64, lp: &mut [f64], u: &mut [f64], quad: &mut [f64]) {
+    let m = lp.len();
+    let (u, quad) = (&mut u[..m], &mut quad[..m]);
+    quad.fill(0.0);
+    for a in 0..d {
+        u.fill(0.0);
+        for b in 0..=a {
+            let lab = l[a * d + b];
+            for (o, x) in u.iter_mut().zip(&res[b * TILE..b * TILE + m]) {
+                *o += lab * x;
+            }
+        }
+        for (qv, uv) in quad.iter_mut().zip(u.iter()) {
+            *qv += uv * uv;
+        }
+    }
+    for (o, qv) in lp.iter_mut().zip(quad.iter()) {
+        *o += base - 0.5 * qv;
+    }
+}
+
 /// One tile of the E-step: rows `start..start + m`, `tau` their n×G rows.
 #[inline(always)]
 fn e_step_tile(pass: &Pass, start: usize, tau: &mut [f64], sc: &mut Scratch, part: &mut Partial) {
@@ -505,39 +840,57 @@ fn e_step_tile(pass: &Pass, start: usize, tau: &mut [f64], sc: &mut Scratch, par
     sc.c[..m].copy_from_slice(&r.weights[start..end]);
     for k in 0..g {
         let lp = &mut sc.lp[k * TILE..k * TILE + m];
-        if pass.has_base {
-            for (o, t) in lp.iter_mut().zip(tau[k..].iter().step_by(g)) {
-                *o = *t;
-            }
-        } else {
+        if !pass.has_base {
             lp.fill(0.0);
         }
+    }
+    if pass.has_base {
+        transpose(tau, g, &mut sc.lp);
     }
     if let Some(gp) = &pass.gaussian {
         let (d, q) = (r.d, r.q);
         transpose(&r.y[start * d..end * d], d, &mut sc.y);
         transpose(&r.z[start * q..end * q], q, &mut sc.z);
-        residuals(gp.coef, g, q, d, m, sc);
-        for k in 0..g {
-            let l = &gp.inv_chol[k * d * d..(k + 1) * d * d];
-            let quad = &mut sc.quad[..m];
-            quad.fill(0.0);
-            for a in 0..d {
-                let u = &mut sc.u[..m];
-                u.fill(0.0);
-                for b in 0..=a {
-                    let lab = l[a * d + b];
-                    for (o, x) in u.iter_mut().zip(&sc.res[(k * d + b) * TILE..(k * d + b) * TILE + m]) {
-                        *o += lab * x;
-                    }
-                }
-                for (qv, uv) in quad.iter_mut().zip(u.iter()) {
-                    *qv += uv * uv;
+        if q == 1 && d <= 8 {
+            // Without component covariates the residuals are y minus the cluster mean,
+            // made in registers; they are stored only when the M-step sums need them.
+            let keep = pass.want_gaussian;
+            for k in 0..g {
+                let l = &gp.inv_chol[k * d * d..(k + 1) * d * d];
+                let mean = &gp.coef[k * d..(k + 1) * d];
+                let res_k = &mut sc.res[k * d * TILE..(k + 1) * d * TILE];
+                let lp_k = &mut sc.lp[k * TILE..k * TILE + m];
+                let base = gp.base[k];
+                let y = &sc.y;
+                match d {
+                    1 => add_log_normal_centred::<1>(l, y, mean, base, lp_k, res_k, keep),
+                    2 => add_log_normal_centred::<2>(l, y, mean, base, lp_k, res_k, keep),
+                    3 => add_log_normal_centred::<3>(l, y, mean, base, lp_k, res_k, keep),
+                    4 => add_log_normal_centred::<4>(l, y, mean, base, lp_k, res_k, keep),
+                    5 => add_log_normal_centred::<5>(l, y, mean, base, lp_k, res_k, keep),
+                    6 => add_log_normal_centred::<6>(l, y, mean, base, lp_k, res_k, keep),
+                    7 => add_log_normal_centred::<7>(l, y, mean, base, lp_k, res_k, keep),
+                    _ => add_log_normal_centred::<8>(l, y, mean, base, lp_k, res_k, keep),
                 }
             }
-            let base = gp.base[k];
-            for (o, qv) in sc.lp[k * TILE..k * TILE + m].iter_mut().zip(quad.iter()) {
-                *o += base - 0.5 * qv;
+        } else {
+            residuals(gp.coef, g, q, d, m, sc);
+            for k in 0..g {
+                let l = &gp.inv_chol[k * d * d..(k + 1) * d * d];
+                let res_k = &sc.res[k * d * TILE..(k + 1) * d * TILE];
+                let lp_k = &mut sc.lp[k * TILE..k * TILE + m];
+                let base = gp.base[k];
+                match d {
+                    1 => add_log_normal::<1>(l, res_k, base, lp_k),
+                    2 => add_log_normal::<2>(l, res_k, base, lp_k),
+                    3 => add_log_normal::<3>(l, res_k, base, lp_k),
+                    4 => add_log_normal::<4>(l, res_k, base, lp_k),
+                    5 => add_log_normal::<5>(l, res_k, base, lp_k),
+                    6 => add_log_normal::<6>(l, res_k, base, lp_k),
+                    7 => add_log_normal::<7>(l, res_k, base, lp_k),
+                    8 => add_log_normal::<8>(l, res_k, base, lp_k),
+                    _ => add_log_normal_any(d, l, res_k, base, lp_k, &mut sc.u, &mut sc.quad),
+                }
             }
         }
     }
@@ -578,15 +931,27 @@ fn e_step_tile(pass: &Pass, start: usize, tau: &mut [f64], sc: &mut Scratch, par
         }
     }
     part.loglik += dot(&sc.c[..m], &sc.lse);
-    for (i, row) in tau.chunks_exact_mut(g).enumerate() {
-        for (k, t) in row.iter_mut().enumerate() {
-            *t = sc.lp[k * TILE + i];
+    untranspose(&sc.lp, g, tau);
+    if let Some(st) = part.gating.as_mut() {
+        dots_into(&sc.c[..m], &sc.lp, g, &mut st.cluster_weight);
+        if logit {
+            let p = r.p;
+            gating_products(&sc.w, p, m, &mut sc.ww);
+            add_gating(
+                st,
+                g,
+                p,
+                m,
+                &sc.c,
+                &sc.lp,
+                &sc.eta,
+                None,
+                &sc.w,
+                &sc.ww,
+                &mut sc.s,
+                &mut sc.hsum,
+            );
         }
-    }
-    if let (Some(st), true) = (part.gating.as_mut(), pass.want_gating) {
-        let p = r.p;
-        gating_products(&sc.w, p, m, &mut sc.ww);
-        add_gating(st, g, p, m, &sc.c, &sc.lp, &sc.eta, None, &sc.w, &sc.ww, &mut sc.s);
     }
     if let (Some(st), true) = (part.gaussian.as_mut(), pass.want_gaussian) {
         add_gaussian(st, g, m, &sc.c, &sc.z, &sc.res, &sc.lp, &mut sc.v, &mut sc.vz);
@@ -659,9 +1024,27 @@ fn e_step_task_body(pass: &Pass, start: usize, tau: &mut [f64]) -> Partial {
         gating: pass.want_gating.then(|| GatingStats::zeros(g, r.p)),
     };
     for (t, tile) in tau.chunks_mut(TILE * g).enumerate() {
-        e_step_tile(pass, start + t * TILE, tile, &mut sc, &mut part);
+        let first = start + t * TILE;
+        // Ask for the next tile's indicators while this one is computed.
+        let next = (first + TILE).min(r.n);
+        prefetch(&r.y[next * r.d..(next + TILE).min(r.n) * r.d]);
+        e_step_tile(pass, first, tile, &mut sc, &mut part);
     }
     part
+}
+
+/// A hint to bring `data` into the cache; no effect on results.
+#[inline(always)]
+fn prefetch(data: &[f64]) {
+    #[cfg(target_arch = "x86_64")]
+    for line in data.chunks(8) {
+        // SAFETY: prefetching never faults and the address is inside a live slice.
+        unsafe {
+            std::arch::x86_64::_mm_prefetch::<{ std::arch::x86_64::_MM_HINT_T0 }>(line.as_ptr().cast());
+        }
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    let _ = data;
 }
 
 widest!(
@@ -692,7 +1075,7 @@ pub fn e_step(
             Prior::Constant(lp)
         }
     };
-    let want_gating = gating_stats.is_some() && matches!(prior, Prior::Logit(_));
+    let want_gating = gating_stats.is_some();
     let want_gaussian = gaussian_stats.is_some() && gaussian.is_some();
     let pass = Pass {
         rows,
@@ -775,17 +1158,26 @@ where
     first
 }
 
-#[inline(always)]
-fn logit_task_body(
-    w: &[f64],
+/// What the logit pass reads besides the responsibilities.
+struct LogitInput<'a> {
+    w: &'a [f64],
     p: usize,
-    tau: &[f64],
     g: usize,
-    weights: &[f64],
-    gamma: &[f64],
+    weights: &'a [f64],
+    gamma: &'a [f64],
     derivatives: bool,
-    start: usize,
-) -> Partial {
+}
+
+#[inline(always)]
+fn logit_task_body(input: &LogitInput, tau: &[f64], start: usize) -> Partial {
+    let LogitInput {
+        w,
+        p,
+        g,
+        weights,
+        gamma,
+        derivatives,
+    } = *input;
     let mut sc = Scratch::new(g, 0, 0, p);
     let mut t_cols = vec![0.0; g * TILE];
     let mut part = Partial {
@@ -843,6 +1235,7 @@ fn logit_task_body(
                 &sc.w,
                 &sc.ww,
                 &mut sc.quad,
+                &mut sc.hsum,
             );
         }
     }
@@ -851,7 +1244,7 @@ fn logit_task_body(
 
 widest!(
     /// One task of [`logit_pass`] in the widest instruction set available.
-    fn logit_task(w: &[f64], p: usize, tau: &[f64], g: usize, weights: &[f64], gamma: &[f64], derivatives: bool, start: usize) -> Partial = logit_task_body
+    fn logit_task(input: &LogitInput, tau: &[f64], start: usize) -> Partial = logit_task_body
 );
 
 /// The unpenalised multinomial-logit objective Σ c Σ_k τ_k log π_k at `gamma`, and with
@@ -865,10 +1258,15 @@ pub fn logit_pass(
     gamma: &[f64],
     derivatives: bool,
 ) -> (f64, Option<GatingStats>) {
-    let n = weights.len();
-    let total = over_tasks_read(n, g, tau, |start, chunk| {
-        logit_task(w, p, chunk, g, weights, gamma, derivatives, start)
-    });
+    let input = LogitInput {
+        w,
+        p,
+        g,
+        weights,
+        gamma,
+        derivatives,
+    };
+    let total = over_tasks_read(weights.len(), g, tau, |start, chunk| logit_task(&input, chunk, start));
     (total.loglik, total.gating)
 }
 
@@ -891,6 +1289,27 @@ mod tests {
         assert_eq!(exp(0.0), 1.0);
         assert!(exp(f64::NAN).is_nan());
         assert_eq!(exp(800.0), f64::INFINITY);
+    }
+
+    #[test]
+    fn ln_is_within_two_units_in_the_last_place() {
+        let mut worst = 0.0f64;
+        let mut x = 1e-300;
+        while x < 1e300 {
+            let (a, b) = (ln(x), x.ln());
+            worst = worst.max(((a - b) / b).abs());
+            x *= 1.0173;
+        }
+        for i in 0..10_000 {
+            let x = 1.0 + i as f64 * 4e-4;
+            let (a, b) = (ln(x), x.ln());
+            worst = worst.max((a - b).abs() / b.abs().max(1e-300).max(1.0));
+        }
+        assert!(worst < 4.5e-16, "worst relative error {worst:e}");
+        assert_eq!(ln(0.0), f64::NEG_INFINITY);
+        assert_eq!(ln(1.0), 0.0);
+        assert!(ln(-1.0).is_nan() && ln(f64::NAN).is_nan());
+        assert_eq!(ln(f64::INFINITY), f64::INFINITY);
     }
 
     #[test]
