@@ -276,13 +276,13 @@ pub fn load(study: &Study) -> Result<Dataset> {
 /// messages).
 pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
     let path = study.data_path.as_path();
-    let text = text.strip_prefix('\u{feff}').unwrap_or(text).to_string();
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
     let sha256 = sha256_hex(text.as_bytes());
     let mut line_starts = vec![0];
     line_starts.extend(text.match_indices('\n').map(|(i, _)| i + 1));
     let raw = Raw {
         path,
-        text: &text,
+        text,
         line_starts,
     };
 

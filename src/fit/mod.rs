@@ -481,7 +481,11 @@ pub fn fit_cell_with(
     template.gating.prepare_bound(fd.w, fd.weights);
     let n_starts = if g == 1 { 1 } else { starts };
     let (seeding, seeding_d) = data.seeding_matrix();
-    let runs: Vec<(StartRecord, Option<EmRun>)> = (0..n_starts)
+    // Only the best start's run is kept: at a few million rows every run's
+    // responsibilities would not fit in memory together. The winner is the highest
+    // objective, the lowest start number on ties, whatever order the starts finish in.
+    let best_so_far: std::sync::Mutex<Option<(usize, EmRun)>> = std::sync::Mutex::new(None);
+    let runs: Vec<(StartRecord, Option<f64>)> = (0..n_starts)
         .into_par_iter()
         .map(|s| {
             let kind = StartKind::for_start(s, g);
@@ -499,31 +503,35 @@ pub fn fit_cell_with(
                 iterations: run.iterations,
                 termination: run.termination.clone(),
             };
-            (record, usable.then_some(run))
+            let objective = usable.then_some(run.objective);
+            if usable {
+                let mut best = best_so_far.lock().expect("no start panics while holding the lock");
+                let better = best
+                    .as_ref()
+                    .is_none_or(|(i, b)| run.objective > b.objective || (run.objective == b.objective && s < *i));
+                if better {
+                    *best = Some((s, run));
+                }
+            }
+            (record, objective)
         })
         .collect();
-    let mut best: Option<(usize, EmRun)> = None;
-    for (i, (_, run)) in runs.iter().enumerate() {
-        if let Some(r) = run {
-            // Compare the EM objective (equal to the log-likelihood without a ridge).
-            if best.as_ref().is_none_or(|(_, b)| r.objective > b.objective) {
-                best = Some((i, r.clone()));
+    let best = best_so_far
+        .into_inner()
+        .expect("no start panicked")
+        .map(|(i, mut run)| {
+            let reaching = runs
+                .iter()
+                .filter_map(|(_, o)| *o)
+                .filter(|o| (o - run.objective).abs() <= SAME_OPTIMUM * run.objective.abs())
+                .count();
+            order_largest_first(&mut run, &fd, &prepared.placement.proportions);
+            BestFit {
+                run,
+                start: i + 1,
+                reaching,
             }
-        }
-    }
-    let best = best.map(|(i, mut run)| {
-        let reaching = runs
-            .iter()
-            .filter_map(|(_, r)| r.as_ref())
-            .filter(|r| (r.objective - run.objective).abs() <= SAME_OPTIMUM * run.objective.abs())
-            .count();
-        order_largest_first(&mut run, &fd, &prepared.placement.proportions);
-        BestFit {
-            run,
-            start: i + 1,
-            reaching,
-        }
-    });
+        });
     let step_three = step_three_of(prepared, best.as_ref(), g, &data.weights);
     FitResult {
         step_three,

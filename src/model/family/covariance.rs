@@ -380,9 +380,12 @@ fn common_orientation(
             }
         }
     };
-    let mut last = f64::INFINITY;
     let mut lam = lambdas(&dm);
+    let compose_all =
+        |dm: &DMatrix<f64>, lam: &[DVector<f64>]| -> Vec<DMatrix<f64>> { lam.iter().map(|l| compose(dm, l)).collect() };
+    let mut last = objective(w, n, &compose_all(&dm, &lam));
     for _ in 0..MAX_INNER {
+        let before = (dm.clone(), lam.clone());
         // D given Λ_g: a few majorisation–minimisation steps.
         for _ in 0..5 {
             let mut f = DMatrix::<f64>::zeros(d, d);
@@ -398,8 +401,15 @@ fn common_orientation(
             }
         }
         lam = lambdas(&dm);
-        let sig: Vec<DMatrix<f64>> = lam.iter().map(|l| compose(&dm, l)).collect();
-        let obj = objective(w, n, &sig);
+        let obj = objective(w, n, &compose_all(&dm, &lam));
+        if !(obj <= last) {
+            // When the largest eigenvalue of a scatter is the majoriser's own constant, the
+            // step's matrix is singular and the SVD may return a worse orientation (seen
+            // with one cluster, where the eigenvectors are already the answer): keep the
+            // previous orientation, so that the M-step never lowers the likelihood.
+            (dm, lam) = before;
+            break;
+        }
         if (last - obj).abs() <= INNER_TOLERANCE * obj.abs() {
             break;
         }
