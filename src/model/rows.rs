@@ -4,15 +4,16 @@
 //! Rows are cut into tiles of [`TILE`] rows. A tile's columns are copied into
 //! column-major scratch (one contiguous run per column), so that every loop over rows is
 //! a plain loop over slices that the compiler turns into vector instructions; sums over
-//! rows use eight independent lanes ([`dot`]) for the same reason. Tiles are grouped
+//! rows use fixed independent lanes ([`dot`]) for the same reason. Tiles are grouped
 //! into tasks of [`TASK_ROWS`] rows that rayon runs in parallel. Every task adds its tiles
 //! in order and the task sums are added in task order, so results do not depend on the
 //! number of threads. Scratch is allocated once per task, never inside a row loop.
 //!
 //! The kernels are compiled three times, for AVX-512, for AVX2 with FMA and for the
 //! baseline instruction set, and the widest the processor has is chosen at run time.
-//! No variant fuses a multiply and an add (Rust never contracts them), so all three give
-//! the same bits.
+//! Fused multiply-adds are written out as `f64::mul_add`, which is exactly rounded on every
+//! instruction set, and Rust never fuses or reorders the other operations, so all three
+//! give the same bits.
 
 use super::family::GaussianComponents;
 use super::gating::{Gating, GatingStats};
@@ -616,8 +617,8 @@ fn add_gaussian(
 }
 
 /// [`add_gaussian`] without component covariates (q = 1) and with D indicators: one pass
-/// per cluster with every sum in registers, eight lanes each. The lanes are added in the
-/// same fixed order as in [`dot`]'s groups of eight. Returns true (it always applies).
+/// per cluster with every sum in registers, eight lanes each, added by [`fold8`]. Returns
+/// true (it always applies).
 #[inline(always)]
 fn add_gaussian_plain<const D: usize>(st: &mut GaussianStats, g: usize, c: &[f64], res: &[f64], tau: &[f64]) -> bool {
     let m = c.len();
@@ -668,15 +669,14 @@ fn add_gaussian_plain<const D: usize>(st: &mut GaussianStats, g: usize, c: &[f64
                 }
             }
         }
-        let fold = fold8;
-        st.rows[k] += fold(&rows);
-        st.weight[k] += fold(&weight);
+        st.rows[k] += fold8(&rows);
+        st.weight[k] += fold8(&weight);
         // The intercept's cross-product is the weight itself.
-        st.zz[k] += fold(&weight);
-        for a in 0..D {
-            st.zr[k * D + a] += fold(&zr[a]);
-            for b in 0..=a {
-                st.rr[(k * D + a) * D + b] += fold(&rr[a][b]);
+        st.zz[k] += fold8(&weight);
+        for (a, (zr_a, rr_a)) in zr.iter().zip(&rr).enumerate() {
+            st.zr[k * D + a] += fold8(zr_a);
+            for (b, acc) in rr_a.iter().enumerate().take(a + 1) {
+                st.rr[(k * D + a) * D + b] += fold8(acc);
             }
         }
     }
