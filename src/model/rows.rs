@@ -286,7 +286,7 @@ fn untranspose_fixed<const W: usize>(cols: &[f64], rows: &mut [f64]) {
 /// Independent partial sums in [`dot`] and [`total`]: enough to keep the adders busy.
 const LANES: usize = 32;
 
-/// Σ a_i b_i in [`LANES`] lanes, added in a fixed order.
+/// Σ a_i b_i in `LANES` lanes, added in a fixed order.
 #[inline(always)]
 pub fn dot(a: &[f64], b: &[f64]) -> f64 {
     let b = &b[..a.len()];
