@@ -320,7 +320,7 @@ fn fold8(a: &[f64; 8]) -> f64 {
     ((a[0] + a[4]) + (a[1] + a[5])) + ((a[2] + a[6]) + (a[3] + a[7]))
 }
 
-/// Σ a_i in [`LANES`] lanes, added in a fixed order.
+/// Σ a_i in `LANES` lanes, added in a fixed order.
 #[inline(always)]
 fn total(a: &[f64]) -> f64 {
     let mut acc = [0.0f64; LANES];

@@ -11,4 +11,5 @@ pub mod inference;
 pub mod properties;
 pub mod recovery;
 pub mod reference;
+pub mod row_pass;
 pub mod structures;
