@@ -98,24 +98,13 @@ fn e_step_only(bencher: divan::Bencher) {
     bencher.bench_local(|| e_step(&m, &fd, &mut tau, None));
 }
 
-/// E-step with the Gaussian M-step sums and the free shares' sums: one EM iteration's pass.
-#[divan::bench]
-fn e_step_with_sums(bencher: divan::Bencher) {
+/// One EM iteration's pass: the E-step with the Gaussian M-step sums and the gating sums
+/// (free shares, or with `gating` a logit on 3 covariates with its score and Hessian).
+#[divan::bench(args = [false, true])]
+fn e_step_with_sums(bencher: divan::Bencher, gating: bool) {
     let f = fixture();
-    let fd = data(&f, false);
-    let m = model(&fd, false);
-    let mut tau = f.tau.clone();
-    let (mut gs, mut ss) = (GatingStats::default(), GaussianStats::default());
-    bencher.bench_local(|| e_step_with(&m, &fd, &mut tau, Some(&mut gs), Some(&mut ss)));
-}
-
-/// E-step with a logit gating network on 3 covariates, its score and Hessian, and the
-/// Gaussian sums.
-#[divan::bench]
-fn e_step_with_gating(bencher: divan::Bencher) {
-    let f = fixture();
-    let fd = data(&f, true);
-    let m = model(&fd, true);
+    let fd = data(&f, gating);
+    let m = model(&fd, gating);
     let mut tau = f.tau.clone();
     let (mut gs, mut ss) = (GatingStats::default(), GaussianStats::default());
     bencher.bench_local(|| e_step_with(&m, &fd, &mut tau, Some(&mut gs), Some(&mut ss)));

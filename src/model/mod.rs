@@ -85,22 +85,6 @@ pub struct CountData<'a> {
     pub log_exposure: Option<&'a [f64]>,
 }
 
-impl FitData<'_> {
-    /// The arrays the row passes of [`rows`] read.
-    pub fn rows(&self) -> rows::Rows<'_> {
-        rows::Rows {
-            n: self.n,
-            weights: self.weights,
-            y: self.y,
-            d: self.d,
-            z: self.z,
-            q: self.q,
-            w: self.w,
-            p: self.p,
-        }
-    }
-}
-
 /// Rows of a row-major design `z` (n×qz) restricted to the columns `cols`, row-major.
 pub fn design_rows(z: &[f64], qz: usize, cols: &[usize]) -> Vec<f64> {
     z.chunks_exact(qz)
@@ -226,7 +210,7 @@ pub fn e_step_with(
         }
     }
     rows::e_step(
-        data.rows(),
+        *data,
         c.gaussian.as_ref(),
         &model.gating,
         has_base,

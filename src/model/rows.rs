@@ -17,6 +17,7 @@
 
 use super::family::GaussianComponents;
 use super::gating::{Gating, GatingStats};
+use super::FitData;
 use rayon::prelude::*;
 
 /// Rows per tile: the scratch of a tile stays in the core's own caches.
@@ -97,27 +98,6 @@ fn add_into(a: &mut [f64], b: &[f64]) {
     }
 }
 
-/// The arrays a pass reads, row-major as [`super::FitData`] holds them.
-#[derive(Clone, Copy)]
-pub struct Rows<'a> {
-    /// Rows.
-    pub n: usize,
-    /// Case weights.
-    pub weights: &'a [f64],
-    /// Continuous indicators, n×d.
-    pub y: &'a [f64],
-    /// Indicators.
-    pub d: usize,
-    /// Gaussian design, n×q.
-    pub z: &'a [f64],
-    /// Its columns.
-    pub q: usize,
-    /// Gating design, n×p.
-    pub w: &'a [f64],
-    /// Its columns.
-    pub p: usize,
-}
-
 /// What the E-step pass needs of the Gaussian block, prepared once per pass.
 struct GaussianPass<'a> {
     coef: &'a [f64],
@@ -134,7 +114,7 @@ enum Prior<'a> {
 }
 
 struct Pass<'a> {
-    rows: Rows<'a>,
+    rows: FitData<'a>,
     g: usize,
     gaussian: Option<GaussianPass<'a>>,
     prior: Prior<'a>,
@@ -973,12 +953,7 @@ where
             .map(|(t, chunk)| task(t * TASK_ROWS, chunk))
             .collect()
     };
-    let mut parts = parts.into_iter();
-    let mut first = parts.next().expect("at least one task");
-    for p in parts {
-        first.add(p);
-    }
-    first
+    in_task_order(parts)
 }
 
 macro_rules! widest {
@@ -1058,7 +1033,7 @@ widest!(
 /// returns the weighted log-likelihood. Fills the gating sums when asked and the gating
 /// network is a logit, and the Gaussian sums when asked and there is a Gaussian block.
 pub fn e_step(
-    rows: Rows,
+    rows: FitData,
     gaussian: Option<&GaussianComponents>,
     gating: &Gating,
     has_base: bool,
@@ -1101,7 +1076,7 @@ pub fn e_step(
 }
 
 #[inline(always)]
-fn gaussian_stats_task_body(rows: &Rows, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial {
+fn gaussian_stats_task_body(rows: &FitData, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial {
     let (d, q) = (rows.d, rows.q);
     let mut sc = Scratch::new(g, d, q, 0);
     let mut st = GaussianStats::zeros(g, q, d, at);
@@ -1125,15 +1100,26 @@ fn gaussian_stats_task_body(rows: &Rows, g: usize, at: &[f64], start: usize, tau
 
 widest!(
     /// One task of [`gaussian_stats`] in the widest instruction set available.
-    fn gaussian_stats_task(rows: &Rows, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial = gaussian_stats_task_body
+    fn gaussian_stats_task(rows: &FitData, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial = gaussian_stats_task_body
 );
 
 /// The Gaussian M-step sums from given responsibilities (n×G), around coefficients `at`.
-pub fn gaussian_stats(rows: Rows, g: usize, at: &[f64], tau: &[f64]) -> GaussianStats {
+pub fn gaussian_stats(rows: &FitData, g: usize, at: &[f64], tau: &[f64]) -> GaussianStats {
     let total = over_tasks_read(rows.n, g, tau, |start, chunk| {
-        gaussian_stats_task(&rows, g, at, start, chunk)
+        gaussian_stats_task(rows, g, at, start, chunk)
     });
     total.gaussian.expect("the Gaussian pass sums Gaussian statistics")
+}
+
+/// The tasks' partial sums added in task order (the order that makes results independent
+/// of the thread count).
+fn in_task_order(parts: Vec<Partial>) -> Partial {
+    let mut parts = parts.into_iter();
+    let mut first = parts.next().expect("at least one task");
+    for p in parts {
+        first.add(p);
+    }
+    first
 }
 
 /// As [`over_tasks`] for passes that only read `tau`.
@@ -1150,12 +1136,7 @@ where
             .map(|(t, chunk)| task(t * TASK_ROWS, chunk))
             .collect()
     };
-    let mut parts = parts.into_iter();
-    let mut first = parts.next().expect("at least one task");
-    for p in parts {
-        first.add(p);
-    }
-    first
+    in_task_order(parts)
 }
 
 /// What the logit pass reads besides the responsibilities.

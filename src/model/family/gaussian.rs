@@ -326,7 +326,7 @@ impl ComponentFamily for GaussianComponents {
         for block in at.chunks_exact_mut(q * d) {
             block[..d].copy_from_slice(&self.y_mean);
         }
-        let st = crate::model::rows::gaussian_stats(data.rows(), self.g, &at, tau);
+        let st = crate::model::rows::gaussian_stats(data, self.g, &at, tau);
         self.m_step_from_stats(&st)
     }
 
