@@ -6,7 +6,7 @@
 //! log-likelihood stops being finite. Why it stopped is part of the result.
 
 use crate::model::gating::{Gating, GatingStats};
-use crate::model::{e_step_with, FitData, GaussianStats, Model};
+use crate::model::{e_step_sums, e_step_with, FitData, GaussianStats, Model};
 use serde::Serialize;
 
 /// Why a start stopped.
@@ -66,7 +66,8 @@ pub struct EmSettings {
 pub struct EmRun {
     /// Final parameters. After a degenerate or faulty stop they are not usable.
     pub model: Model,
-    /// Responsibilities under `model`, n×G.
+    /// Responsibilities under `model`, n×G (after a usable stop; see
+    /// [`Model::steps_from_sums`] for why they may lag behind otherwise).
     pub tau: Vec<f64>,
     /// Weighted log-likelihood under `model`.
     pub loglik: f64,
@@ -88,6 +89,8 @@ pub struct EmRun {
 /// Run EM from starting responsibilities `tau` (n×G, rows summing to 1).
 pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSettings) -> EmRun {
     let mut out = Progress {
+        data: *data,
+        from_sums: false,
         trace: Vec::new(),
         loglik: f64::NAN,
         objective: f64::NAN,
@@ -95,11 +98,22 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
         fallbacks: 0,
     };
     let logit = matches!(model.gating, Gating::Logit { .. });
-    // Double buffers: the E-step writes the next responsibilities and gating sums while
-    // the current ones stay intact for a redo.
-    let mut tau_next = vec![0.0; tau.len()];
+    // When the M-step runs from the E-step's sums alone, the iterations keep no
+    // responsibilities: they are made once, for the final parameters.
+    let from_sums = model.steps_from_sums();
+    out.from_sums = from_sums;
+    // Double buffers: the E-step writes the next responsibilities and sums while the
+    // current ones stay intact for a redo.
+    let mut tau_next = if from_sums { Vec::new() } else { vec![0.0; tau.len()] };
     let (mut stats, mut stats_next) = (GatingStats::default(), GatingStats::default());
     let (mut sums, mut sums_next) = (GaussianStats::default(), GaussianStats::default());
+    let e_step = |model: &Model, tau_next: &mut [f64], stats_next: &mut GatingStats, sums_next: &mut GaussianStats| {
+        if from_sums {
+            e_step_sums(model, data, stats_next, sums_next)
+        } else {
+            e_step_with(model, data, tau_next, Some(stats_next), Some(sums_next))
+        }
+    };
     let mut have_stats = false;
     for iteration in 1..=settings.max_iterations {
         let saved = (logit && have_stats).then(|| model.clone());
@@ -113,7 +127,7 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
             }
         };
         out.damped += step.damped;
-        let mut new_loglik = e_step_with(&model, data, &mut tau_next, Some(&mut stats_next), Some(&mut sums_next));
+        let mut new_loglik = e_step(&model, &mut tau_next, &mut stats_next, &mut sums_next);
         let mut new_objective = new_loglik - model.penalty();
         if let Some(previous) = saved {
             // A Newton step without line search can overshoot; redo the iteration with
@@ -124,12 +138,14 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
                     let t = Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason));
                     return out.finish(model, tau, iteration - 1, t);
                 }
-                new_loglik = e_step_with(&model, data, &mut tau_next, Some(&mut stats_next), Some(&mut sums_next));
+                new_loglik = e_step(&model, &mut tau_next, &mut stats_next, &mut sums_next);
                 new_objective = new_loglik - model.penalty();
                 out.fallbacks += 1;
             }
         }
-        std::mem::swap(&mut tau, &mut tau_next);
+        if !from_sums {
+            std::mem::swap(&mut tau, &mut tau_next);
+        }
         std::mem::swap(&mut stats, &mut stats_next);
         std::mem::swap(&mut sums, &mut sums_next);
         have_stats = true;
@@ -152,7 +168,10 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
 }
 
 /// What the loop has gathered so far.
-struct Progress {
+struct Progress<'a> {
+    data: FitData<'a>,
+    /// Whether the iterations kept no responsibilities.
+    from_sums: bool,
     trace: Vec<f64>,
     loglik: f64,
     objective: f64,
@@ -160,8 +179,12 @@ struct Progress {
     fallbacks: usize,
 }
 
-impl Progress {
-    fn finish(self, model: Model, tau: Vec<f64>, iterations: usize, termination: Termination) -> EmRun {
+impl Progress<'_> {
+    fn finish(self, model: Model, mut tau: Vec<f64>, iterations: usize, termination: Termination) -> EmRun {
+        if self.from_sums && iterations > 0 && termination.usable() {
+            // The same pass as the last iteration's, so the same responsibilities.
+            e_step_with(&model, &self.data, &mut tau, None, None);
+        }
         EmRun {
             model,
             tau,

@@ -171,6 +171,18 @@ impl Model {
         }
     }
 
+    /// Whether [`Model::m_step`] needs only the E-step's sums, not the responsibilities:
+    /// Gaussian components alone and a gating network without parameters, with free
+    /// shares, or a logit with its bound prepared.
+    pub fn steps_from_sums(&self) -> bool {
+        let c = &self.components;
+        let gating = match &self.gating {
+            Gating::Equal { .. } | Gating::Fixed { .. } | Gating::Free { .. } => true,
+            Gating::Logit { bound_inverse, .. } => bound_inverse.is_some(),
+        };
+        c.gaussian.is_some() && c.items.is_none() && c.counts.is_none() && gating
+    }
+
     /// Relabel clusters: new cluster k is old cluster `order[k]`.
     pub fn permute(&mut self, order: &[usize]) {
         self.gating.permute(order);
@@ -214,9 +226,33 @@ pub fn e_step_with(
         c.gaussian.as_ref(),
         &model.gating,
         has_base,
-        tau,
+        Some(tau),
         gating_stats,
         gaussian_stats,
+    )
+}
+
+/// The E-step's log-likelihood and M-step sums without the responsibilities, for a
+/// model whose M-step runs from sums alone ([`Model::steps_from_sums`]): the pass then
+/// writes nothing per row.
+pub fn e_step_sums(
+    model: &Model,
+    data: &FitData,
+    gating_stats: &mut GatingStats,
+    gaussian_stats: &mut GaussianStats,
+) -> f64 {
+    assert!(
+        model.steps_from_sums(),
+        "this model's M-step needs the responsibilities"
+    );
+    rows::e_step(
+        *data,
+        model.components.gaussian.as_ref(),
+        &model.gating,
+        false,
+        None,
+        Some(gating_stats),
+        Some(gaussian_stats),
     )
 }
 

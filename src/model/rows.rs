@@ -267,19 +267,25 @@ fn untranspose_fixed<const W: usize>(cols: &[f64], rows: &mut [f64]) {
 const LANES: usize = 32;
 
 /// Σ a_i b_i in `LANES` lanes, added in a fixed order.
+///
+/// Lane l sums the products of the entries i ≡ l (mod `LANES`); the lanes are held as
+/// four arrays of eight so that the loop compiles to full-width vector instructions.
 #[inline(always)]
 pub fn dot(a: &[f64], b: &[f64]) -> f64 {
     let b = &b[..a.len()];
-    let mut acc = [0.0f64; LANES];
-    let mut ca = a.chunks_exact(LANES);
-    let mut cb = b.chunks_exact(LANES);
-    for (x, y) in (&mut ca).zip(&mut cb) {
-        for l in 0..LANES {
-            acc[l] = x[l].mul_add(y[l], acc[l]);
+    let mut acc = [[0.0f64; 8]; 4];
+    let full = a.len() - a.len() % LANES;
+    for o in (0..full).step_by(LANES) {
+        let x: &[f64; LANES] = a[o..o + LANES].try_into().expect("a run of lanes");
+        let y: &[f64; LANES] = b[o..o + LANES].try_into().expect("a run of lanes");
+        for (j, acc_j) in acc.iter_mut().enumerate() {
+            for l in 0..8 {
+                acc_j[l] = x[8 * j + l].mul_add(y[8 * j + l], acc_j[l]);
+            }
         }
     }
     let mut tail = 0.0;
-    for (x, y) in ca.remainder().iter().zip(cb.remainder()) {
+    for (x, y) in a[full..].iter().zip(&b[full..]) {
         tail += x * y;
     }
     fold_lanes(acc) + tail
@@ -303,28 +309,33 @@ fn fold8(a: &[f64; 8]) -> f64 {
 /// Σ a_i in `LANES` lanes, added in a fixed order.
 #[inline(always)]
 fn total(a: &[f64]) -> f64 {
-    let mut acc = [0.0f64; LANES];
-    let mut ca = a.chunks_exact(LANES);
-    for x in &mut ca {
-        for l in 0..LANES {
-            acc[l] += x[l];
+    let mut acc = [[0.0f64; 8]; 4];
+    let full = a.len() - a.len() % LANES;
+    for o in (0..full).step_by(LANES) {
+        let x: &[f64; LANES] = a[o..o + LANES].try_into().expect("a run of lanes");
+        for (j, acc_j) in acc.iter_mut().enumerate() {
+            for l in 0..8 {
+                acc_j[l] += x[8 * j + l];
+            }
         }
     }
-    let tail: f64 = ca.remainder().iter().sum();
+    let tail: f64 = a[full..].iter().sum();
     fold_lanes(acc) + tail
 }
 
-/// The lanes added pairwise, halving each time (a fixed order).
+/// The `LANES` lanes (lane 8j + l in `acc[j][l]`) added pairwise, halving each time:
+/// lane l gets lane l + w for w = 16, 8, 4, 2, 1 (a fixed order).
 #[inline(always)]
-fn fold_lanes(mut acc: [f64; LANES]) -> f64 {
-    let mut width = LANES / 2;
-    while width > 0 {
-        for l in 0..width {
-            acc[l] += acc[l + width];
-        }
-        width /= 2;
+fn fold_lanes(acc: [[f64; 8]; 4]) -> f64 {
+    let mut h = [0.0f64; 8];
+    for l in 0..8 {
+        // w = 16, then w = 8.
+        h[l] = (acc[0][l] + acc[2][l]) + (acc[1][l] + acc[3][l]);
     }
-    acc[0]
+    // w = 4, 2, 1. Without the barrier the compiler vectorises the whole sum for these
+    // last pairs, two lanes wide, and the loops that fill `acc` with it.
+    let h = std::hint::black_box(h);
+    ((h[0] + h[4]) + (h[2] + h[6])) + ((h[1] + h[5]) + (h[3] + h[7]))
 }
 
 /// e^x to about one unit in the last place, written so that loops over it vectorise.
@@ -649,6 +660,9 @@ fn add_gaussian_plain<const D: usize>(st: &mut GaussianStats, g: usize, c: &[f64
                 }
             }
         }
+        // A barrier between the row loop and the folds: otherwise the compiler shapes the
+        // loop's vectors after the folds' pairs and the loop loses its full width.
+        let (rows, weight, zr, rr) = std::hint::black_box((rows, weight, zr, rr));
         st.rows[k] += fold8(&rows);
         st.weight[k] += fold8(&weight);
         // The intercept's cross-product is the weight itself.
@@ -811,11 +825,11 @@ fn add_log_normal_any(d: usize, l: &[f64], res: &[f64], base: f64, lp: &mut [f64
     }
 }
 
-/// One tile of the E-step: rows `start..start + m`, `tau` their n×G rows.
+/// One tile of the E-step: rows `start..start + m`, `tau` their rows of the n×G
+/// responsibilities (None: not kept).
 #[inline(always)]
-fn e_step_tile(pass: &Pass, start: usize, tau: &mut [f64], sc: &mut Scratch, part: &mut Partial) {
+fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc: &mut Scratch, part: &mut Partial) {
     let (g, r) = (pass.g, &pass.rows);
-    let m = tau.len() / g;
     let end = start + m;
     sc.c[..m].copy_from_slice(&r.weights[start..end]);
     for k in 0..g {
@@ -825,7 +839,8 @@ fn e_step_tile(pass: &Pass, start: usize, tau: &mut [f64], sc: &mut Scratch, par
         }
     }
     if pass.has_base {
-        transpose(tau, g, &mut sc.lp);
+        let base = tau.as_deref().expect("the other blocks' log-densities are in tau");
+        transpose(base, g, &mut sc.lp);
     }
     if let Some(gp) = &pass.gaussian {
         let (d, q) = (r.d, r.q);
@@ -911,7 +926,9 @@ fn e_step_tile(pass: &Pass, start: usize, tau: &mut [f64], sc: &mut Scratch, par
         }
     }
     part.loglik += dot(&sc.c[..m], &sc.lse);
-    untranspose(&sc.lp, g, tau);
+    if let Some(tau) = tau {
+        untranspose(&sc.lp, g, tau);
+    }
     if let Some(st) = part.gating.as_mut() {
         dots_into(&sc.c[..m], &sc.lp, g, &mut st.cluster_weight);
         if logit {
@@ -938,20 +955,31 @@ fn e_step_tile(pass: &Pass, start: usize, tau: &mut [f64], sc: &mut Scratch, par
     }
 }
 
-/// Run `task` over tasks of [`TASK_ROWS`] rows (with their n×`g` rows of `tau`), in
-/// parallel when there is more than one, and add the partial sums in task order.
-fn over_tasks<F>(n: usize, g: usize, tau: &mut [f64], task: F) -> Partial
+/// Run `task` over tasks of [`TASK_ROWS`] rows (first row, row count and, when `tau` is
+/// given, their rows of the n×`g` `tau`), in parallel when there is more than one, and
+/// add the partial sums in task order.
+fn over_tasks<F>(n: usize, g: usize, tau: Option<&mut [f64]>, task: F) -> Partial
 where
-    F: Fn(usize, &mut [f64]) -> Partial + Sync,
+    F: Fn(usize, usize, Option<&mut [f64]>) -> Partial + Sync,
 {
-    assert_eq!(tau.len(), n * g);
-    let parts: Vec<Partial> = if n <= TASK_ROWS {
-        vec![task(0, tau)]
-    } else {
-        tau.par_chunks_mut(TASK_ROWS * g)
-            .enumerate()
-            .map(|(t, chunk)| task(t * TASK_ROWS, chunk))
-            .collect()
+    let rows_of = |t: usize| TASK_ROWS.min(n - t * TASK_ROWS);
+    let parts: Vec<Partial> = match tau {
+        Some(tau) => {
+            assert_eq!(tau.len(), n * g);
+            if n <= TASK_ROWS {
+                vec![task(0, n, Some(tau))]
+            } else {
+                tau.par_chunks_mut(TASK_ROWS * g)
+                    .enumerate()
+                    .map(|(t, chunk)| task(t * TASK_ROWS, rows_of(t), Some(chunk)))
+                    .collect()
+            }
+        }
+        None if n <= TASK_ROWS => vec![task(0, n, None)],
+        None => (0..n.div_ceil(TASK_ROWS))
+            .into_par_iter()
+            .map(|t| task(t * TASK_ROWS, rows_of(t), None))
+            .collect(),
     };
     in_task_order(parts)
 }
@@ -988,7 +1016,7 @@ macro_rules! widest {
 }
 
 #[inline(always)]
-fn e_step_task_body(pass: &Pass, start: usize, tau: &mut [f64]) -> Partial {
+fn e_step_task_body(pass: &Pass, start: usize, len: usize, mut tau: Option<&mut [f64]>) -> Partial {
     let r = &pass.rows;
     let g = pass.g;
     let mut sc = Scratch::new(g, r.d, r.q, if matches!(pass.prior, Prior::Logit(_)) { r.p } else { 0 });
@@ -998,12 +1026,13 @@ fn e_step_task_body(pass: &Pass, start: usize, tau: &mut [f64]) -> Partial {
             .then(|| GaussianStats::zeros(g, r.q, r.d, pass.gaussian.as_ref().map_or(&[][..], |gp| gp.coef))),
         gating: pass.want_gating.then(|| GatingStats::zeros(g, r.p)),
     };
-    for (t, tile) in tau.chunks_mut(TILE * g).enumerate() {
-        let first = start + t * TILE;
+    for offset in (0..len).step_by(TILE) {
+        let (first, m) = (start + offset, TILE.min(len - offset));
+        let tile = tau.as_deref_mut().map(|x| &mut x[offset * g..(offset + m) * g]);
         // Ask for the next tile's indicators while this one is computed.
         let next = (first + TILE).min(r.n);
         prefetch(&r.y[next * r.d..(next + TILE).min(r.n) * r.d]);
-        e_step_tile(pass, first, tile, &mut sc, &mut part);
+        e_step_tile(pass, first, m, tile, &mut sc, &mut part);
     }
     part
 }
@@ -1024,7 +1053,7 @@ fn prefetch(data: &[f64]) {
 
 widest!(
     /// One E-step task in the widest instruction set available.
-    fn e_step_task(pass: &Pass, start: usize, tau: &mut [f64]) -> Partial = e_step_task_body
+    fn e_step_task(pass: &Pass, start: usize, len: usize, tau: Option<&mut [f64]>) -> Partial = e_step_task_body
 );
 
 /// The E-step over all rows: adds the Gaussian log-densities (if any) and the log
@@ -1032,12 +1061,14 @@ widest!(
 /// `has_base`, and is overwritten otherwise), turns rows into responsibilities and
 /// returns the weighted log-likelihood. Fills the gating sums when asked and the gating
 /// network is a logit, and the Gaussian sums when asked and there is a Gaussian block.
+/// Without `tau` (allowed only without `has_base`) the responsibilities are not kept:
+/// the pass then only sums.
 pub fn e_step(
     rows: FitData,
     gaussian: Option<&GaussianComponents>,
     gating: &Gating,
     has_base: bool,
-    tau: &mut [f64],
+    tau: Option<&mut [f64]>,
     gating_stats: Option<&mut GatingStats>,
     gaussian_stats: Option<&mut GaussianStats>,
 ) -> f64 {
@@ -1065,7 +1096,13 @@ pub fn e_step(
         want_gaussian,
         want_gating,
     };
-    let total = over_tasks(rows.n, g, tau, |start, chunk| e_step_task(&pass, start, chunk));
+    assert!(
+        tau.is_some() || !has_base,
+        "the other blocks' log-densities come in tau"
+    );
+    let total = over_tasks(rows.n, g, tau, |start, len, chunk| {
+        e_step_task(&pass, start, len, chunk)
+    });
     if let (Some(out), Some(s)) = (gating_stats, total.gating) {
         *out = s;
     }

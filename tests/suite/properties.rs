@@ -8,7 +8,7 @@ use cohortmix::fit::{initial_model, ModelOptions};
 use cohortmix::model::family::items::ItemRows;
 use cohortmix::model::family::{ComponentFamily, CovarianceStructure};
 use cohortmix::model::gating::{logit_objective, logit_score_hessian};
-use cohortmix::model::{design_rows, FitData};
+use cohortmix::model::{design_rows, e_step, FitData};
 use cohortmix::rng::Stream;
 use cohortmix::spec::VariableType;
 use proptest::prelude::*;
@@ -72,6 +72,14 @@ proptest! {
         let run = em::run(&fd, model, tau, EmSettings { max_iterations: 300, tolerance: 1e-13 });
         for pair in run.trace.windows(2) {
             prop_assert!(pair[1] >= pair[0] - 1e-9 * pair[0].abs(), "fell from {} to {} ({:?})", pair[0], pair[1], run.termination);
+        }
+        // The responsibilities returned are those of the final parameters, bit for bit,
+        // whether or not the iterations kept them.
+        if run.termination.usable() {
+            let mut again = vec![0.0; run.tau.len()];
+            let loglik = e_step(&run.model, &fd, &mut again, None);
+            prop_assert_eq!(loglik.to_bits(), run.loglik.to_bits());
+            prop_assert!(again.iter().zip(&run.tau).all(|(a, b)| a.to_bits() == b.to_bits()), "responsibilities differ");
         }
     }
 

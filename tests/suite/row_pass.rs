@@ -5,7 +5,7 @@
 
 use cohortmix::model::family::{ComponentFamily, Components, CovarianceStructure, GaussianComponents};
 use cohortmix::model::gating::{Gating, GatingStats};
-use cohortmix::model::{e_step_with, FitData, GaussianStats, Model};
+use cohortmix::model::{e_step_sums, e_step_with, FitData, GaussianStats, Model};
 use cohortmix::rng::Stream;
 use nalgebra::DMatrix;
 
@@ -257,6 +257,30 @@ fn run(case: Case, seed: u64) {
     );
     assert_eq!(gs, gs2, "gating sums at 2 threads");
     assert_eq!(ss, ss2, "Gaussian sums at 2 threads");
+
+    // The pass that keeps no responsibilities (a logit needs its bound prepared for
+    // that) sums the same bits.
+    let mut m = m;
+    m.gating.prepare_bound(fd.w, fd.weights);
+    assert!(m.steps_from_sums(), "a Gaussian model's M-step runs from sums");
+    for threads in [1, 2] {
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .expect("pool");
+        let (loglik3, gs3, ss3) = pool.install(|| {
+            let (mut gs, mut ss) = (GatingStats::default(), GaussianStats::default());
+            let loglik = e_step_sums(&m, &fd, &mut gs, &mut ss);
+            (loglik, gs, ss)
+        });
+        assert_eq!(
+            loglik.to_bits(),
+            loglik3.to_bits(),
+            "log-likelihood without responsibilities"
+        );
+        assert_eq!(gs, gs3, "gating sums without responsibilities");
+        assert_eq!(ss, ss3, "Gaussian sums without responsibilities");
+    }
 }
 
 #[test]
