@@ -845,7 +845,11 @@ fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc:
     if let Some(gp) = &pass.gaussian {
         let (d, q) = (r.d, r.q);
         transpose(&r.y[start * d..end * d], d, &mut sc.y);
-        transpose(&r.z[start * q..end * q], q, &mut sc.z);
+        // Without component covariates the one column is the intercept, which the
+        // register kernels (up to 6 indicators, `add_gaussian_plain`) never read.
+        if q > 1 || d > 6 {
+            transpose(&r.z[start * q..end * q], q, &mut sc.z);
+        }
         if q == 1 && d <= 8 {
             // Without component covariates the residuals are y minus the cluster mean,
             // made in registers; they are stored only when the M-step sums need them.
