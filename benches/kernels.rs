@@ -6,7 +6,7 @@
 
 use cohortmix::model::family::{Components, CovarianceStructure, GaussianComponents};
 use cohortmix::model::gating::{logit_score_hessian, Gating, GatingStats};
-use cohortmix::model::{e_step, e_step_with, FitData, GaussianStats, Model};
+use cohortmix::model::{e_step, e_step_sums, e_step_with, FitData, GaussianStats, Model};
 use cohortmix::rng::Stream;
 use nalgebra::DMatrix;
 
@@ -108,6 +108,19 @@ fn e_step_with_sums(bencher: divan::Bencher, gating: bool) {
     let mut tau = f.tau.clone();
     let (mut gs, mut ss) = (GatingStats::default(), GaussianStats::default());
     bencher.bench_local(|| e_step_with(&m, &fd, &mut tau, Some(&mut gs), Some(&mut ss)));
+}
+
+/// One EM iteration's pass when the M-step runs from sums alone (what `em::run` uses for
+/// Gaussian models): the same sums as `e_step_with_sums`, no responsibilities written.
+/// With `gating`, the logit's bound is prepared so that the model qualifies.
+#[divan::bench(args = [false, true])]
+fn e_step_sums_only(bencher: divan::Bencher, gating: bool) {
+    let f = fixture();
+    let fd = data(&f, gating);
+    let mut m = model(&fd, gating);
+    m.gating.prepare_bound(fd.w, fd.weights);
+    let (mut gs, mut ss) = (GatingStats::default(), GaussianStats::default());
+    bencher.bench_local(|| e_step_sums(&m, &fd, &mut gs, &mut ss));
 }
 
 /// The multinomial-logit Newton pass on hard memberships (objective, score, Hessian).
