@@ -88,9 +88,12 @@ pub struct EmRun {
 
 /// Run EM from starting responsibilities `tau` (n×G, rows summing to 1).
 pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSettings) -> EmRun {
+    // When the M-step runs from the E-step's sums alone, the iterations keep no
+    // responsibilities: they are made once, for the final parameters.
+    let from_sums = model.steps_from_sums();
     let mut out = Progress {
         data: *data,
-        from_sums: false,
+        from_sums,
         trace: Vec::new(),
         loglik: f64::NAN,
         objective: f64::NAN,
@@ -98,10 +101,6 @@ pub fn run(data: &FitData, mut model: Model, mut tau: Vec<f64>, settings: EmSett
         fallbacks: 0,
     };
     let logit = matches!(model.gating, Gating::Logit { .. });
-    // When the M-step runs from the E-step's sums alone, the iterations keep no
-    // responsibilities: they are made once, for the final parameters.
-    let from_sums = model.steps_from_sums();
-    out.from_sums = from_sums;
     // Double buffers: the E-step writes the next responsibilities and sums while the
     // current ones stay intact for a redo.
     let mut tau_next = if from_sums { Vec::new() } else { vec![0.0; tau.len()] };

@@ -194,27 +194,36 @@ impl Scratch {
     }
 }
 
+/// `$f::<W>(args)` for a run-time width `$w` from 1 to 8, else `$other`: the kernels
+/// with a fixed width keep their rows in registers.
+macro_rules! up_to_eight {
+    ($w:expr, $f:ident($($a:expr),*), $other:expr) => {
+        match $w {
+            1 => $f::<1>($($a),*),
+            2 => $f::<2>($($a),*),
+            3 => $f::<3>($($a),*),
+            4 => $f::<4>($($a),*),
+            5 => $f::<5>($($a),*),
+            6 => $f::<6>($($a),*),
+            7 => $f::<7>($($a),*),
+            8 => $f::<8>($($a),*),
+            _ => $other,
+        }
+    };
+}
+
 /// Copy rows (row-major, `width` columns) into column-major tile scratch.
 #[inline(always)]
 fn transpose(rows: &[f64], width: usize, out: &mut [f64]) {
-    match width {
-        0 => {}
-        1 => transpose_fixed::<1>(rows, out),
-        2 => transpose_fixed::<2>(rows, out),
-        3 => transpose_fixed::<3>(rows, out),
-        4 => transpose_fixed::<4>(rows, out),
-        5 => transpose_fixed::<5>(rows, out),
-        6 => transpose_fixed::<6>(rows, out),
-        7 => transpose_fixed::<7>(rows, out),
-        8 => transpose_fixed::<8>(rows, out),
-        _ => {
+    up_to_eight!(width, transpose_fixed(rows, out), {
+        if width > 0 {
             for (i, row) in rows.chunks_exact(width).enumerate() {
                 for (j, x) in row.iter().enumerate() {
                     out[j * TILE + i] = *x;
                 }
             }
         }
-    }
+    })
 }
 
 #[inline(always)]
@@ -232,23 +241,13 @@ fn transpose_fixed<const W: usize>(rows: &[f64], out: &mut [f64]) {
 /// Copy column-major tile scratch (`width` runs) back into rows (row-major).
 #[inline(always)]
 fn untranspose(cols: &[f64], width: usize, rows: &mut [f64]) {
-    match width {
-        1 => untranspose_fixed::<1>(cols, rows),
-        2 => untranspose_fixed::<2>(cols, rows),
-        3 => untranspose_fixed::<3>(cols, rows),
-        4 => untranspose_fixed::<4>(cols, rows),
-        5 => untranspose_fixed::<5>(cols, rows),
-        6 => untranspose_fixed::<6>(cols, rows),
-        7 => untranspose_fixed::<7>(cols, rows),
-        8 => untranspose_fixed::<8>(cols, rows),
-        _ => {
-            for (i, row) in rows.chunks_exact_mut(width).enumerate() {
-                for (j, x) in row.iter_mut().enumerate() {
-                    *x = cols[j * TILE + i];
-                }
+    up_to_eight!(width, untranspose_fixed(cols, rows), {
+        for (i, row) in rows.chunks_exact_mut(width).enumerate() {
+            for (j, x) in row.iter_mut().enumerate() {
+                *x = cols[j * TILE + i];
             }
         }
-    }
+    })
 }
 
 #[inline(always)]
@@ -861,16 +860,11 @@ fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc:
                 let lp_k = &mut sc.lp[k * TILE..k * TILE + m];
                 let base = gp.base[k];
                 let y = &sc.y;
-                match d {
-                    1 => add_log_normal_centred::<1>(l, y, mean, base, lp_k, res_k, keep),
-                    2 => add_log_normal_centred::<2>(l, y, mean, base, lp_k, res_k, keep),
-                    3 => add_log_normal_centred::<3>(l, y, mean, base, lp_k, res_k, keep),
-                    4 => add_log_normal_centred::<4>(l, y, mean, base, lp_k, res_k, keep),
-                    5 => add_log_normal_centred::<5>(l, y, mean, base, lp_k, res_k, keep),
-                    6 => add_log_normal_centred::<6>(l, y, mean, base, lp_k, res_k, keep),
-                    7 => add_log_normal_centred::<7>(l, y, mean, base, lp_k, res_k, keep),
-                    _ => add_log_normal_centred::<8>(l, y, mean, base, lp_k, res_k, keep),
-                }
+                up_to_eight!(
+                    d,
+                    add_log_normal_centred(l, y, mean, base, lp_k, res_k, keep),
+                    unreachable!("this branch has 1 to 8 indicators")
+                )
             }
         } else {
             residuals(gp.coef, g, q, d, m, sc);
@@ -879,17 +873,11 @@ fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc:
                 let res_k = &sc.res[k * d * TILE..(k + 1) * d * TILE];
                 let lp_k = &mut sc.lp[k * TILE..k * TILE + m];
                 let base = gp.base[k];
-                match d {
-                    1 => add_log_normal::<1>(l, res_k, base, lp_k),
-                    2 => add_log_normal::<2>(l, res_k, base, lp_k),
-                    3 => add_log_normal::<3>(l, res_k, base, lp_k),
-                    4 => add_log_normal::<4>(l, res_k, base, lp_k),
-                    5 => add_log_normal::<5>(l, res_k, base, lp_k),
-                    6 => add_log_normal::<6>(l, res_k, base, lp_k),
-                    7 => add_log_normal::<7>(l, res_k, base, lp_k),
-                    8 => add_log_normal::<8>(l, res_k, base, lp_k),
-                    _ => add_log_normal_any(d, l, res_k, base, lp_k, &mut sc.u, &mut sc.quad),
-                }
+                up_to_eight!(
+                    d,
+                    add_log_normal(l, res_k, base, lp_k),
+                    add_log_normal_any(d, l, res_k, base, lp_k, &mut sc.u, &mut sc.quad)
+                )
             }
         }
     }
