@@ -431,13 +431,18 @@ fn progress_line(r: &FitResult) -> String {
     let t = r.termination();
     match r.loglik() {
         Some(l) => format!(
-            "'{}', {} cluster{}: loglik {:.3}, {} of {} starts reached the best, {}",
+            "'{}', {} cluster{}: loglik {:.3}, {} of {} {}starts reached the best, {}",
             r.placement,
             r.clusters,
             plural(r.clusters),
             l,
             r.best.as_ref().map_or(0, |b| b.reaching),
-            r.starts.len(),
+            r.finished_starts(),
+            if r.finished_starts() < r.starts.len() {
+                "finished "
+            } else {
+                ""
+            },
             t.word()
         ),
         None => format!(

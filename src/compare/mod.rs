@@ -61,7 +61,7 @@ pub struct Criteria {
     pub smallest_count: Option<usize>,
     /// Starts within 1e-6 of the best.
     pub starts_reaching_best: usize,
-    /// Starts run.
+    /// Starts run to their end (see [`crate::fit::FitResult::finished_starts`]).
     pub starts: usize,
     /// Whether this fit is the one the comparison uses for its placement.
     pub chosen: bool,
@@ -367,7 +367,7 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Ve
             smallest_share: smallest,
             smallest_count: smallest_n,
             starts_reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
-            starts: f.starts.len(),
+            starts: f.finished_starts(),
             chosen: chosen.contains(&Some(i)),
         });
     }

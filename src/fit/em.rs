@@ -21,6 +21,9 @@ pub enum Termination {
     Degenerate(String),
     /// The log-likelihood became NaN or infinite.
     NumericalFault(String),
+    /// Still running after the warm-up but not among the best starts then, so not run
+    /// further (see [`crate::spec::Search::finish_best`]).
+    SetAside,
 }
 
 impl Termination {
@@ -36,6 +39,7 @@ impl Termination {
             Termination::IterationCap => "iteration cap",
             Termination::Degenerate(_) => "degenerate",
             Termination::NumericalFault(_) => "numerical fault",
+            Termination::SetAside => "set aside",
         }
     }
 

@@ -260,6 +260,15 @@ impl FitResult {
         }
     }
 
+    /// Starts that ran to their end: all of them unless the two-stage search set some
+    /// aside after the warm-up.
+    pub fn finished_starts(&self) -> usize {
+        self.starts
+            .iter()
+            .filter(|s| s.termination != Termination::SetAside)
+            .count()
+    }
+
     /// Log-likelihood of the best start.
     pub fn loglik(&self) -> Option<f64> {
         self.best.as_ref().map(|b| b.run.loglik)
@@ -485,35 +494,90 @@ pub fn fit_cell_with(
     // responsibilities would not fit in memory together. The winner is the highest
     // objective, the lowest start number on ties, whatever order the starts finish in.
     let best_so_far: std::sync::Mutex<Option<(usize, EmRun)>> = std::sync::Mutex::new(None);
-    let runs: Vec<(StartRecord, Option<f64>)> = (0..n_starts)
+    let run_start = |s: usize, settings: EmSettings| -> EmRun {
+        let kind = StartKind::for_start(s, g);
+        let mut rng = Stream::new(
+            study.seed,
+            &stream_label(streams, &prepared.placement.name, g, &structure, s + 1),
+        );
+        let tau = starts::partition(kind, &seeding, seeding_d, fd.weights, g, &mut rng);
+        em::run(&fd, template.clone(), tau, settings)
+    };
+    let keep = |s: usize, run: EmRun| -> (StartRecord, Option<f64>) {
+        let usable = run.termination.usable();
+        let record = StartRecord {
+            start: s + 1,
+            kind: StartKind::for_start(s, g),
+            loglik: usable.then_some(run.loglik),
+            iterations: run.iterations,
+            termination: run.termination.clone(),
+        };
+        let objective = usable.then_some(run.objective);
+        if usable {
+            let mut best = best_so_far.lock().expect("no start panics while holding the lock");
+            let better = best
+                .as_ref()
+                .is_none_or(|(i, b)| run.objective > b.objective || (run.objective == b.objective && s < *i));
+            if better {
+                *best = Some((s, run));
+            }
+        }
+        (record, objective)
+    };
+    // Two stages: every start runs the warm-up; of those still running then, the
+    // `finish_best` highest objectives (lowest start number on ties) run on to the end,
+    // each again from its start so that its path is the one a single run takes.
+    let warmup = study.search.warmup_iterations;
+    // (`Search::two_stages` for this cell's number of starts.)
+    let stages = n_starts > study.search.finish_best && warmup < settings.max_iterations;
+    let first_settings = if stages {
+        EmSettings {
+            max_iterations: warmup,
+            ..settings
+        }
+    } else {
+        settings
+    };
+    let first: Vec<std::result::Result<(StartRecord, Option<f64>), f64>> = (0..n_starts)
         .into_par_iter()
         .map(|s| {
-            let kind = StartKind::for_start(s, g);
-            let mut rng = Stream::new(
-                study.seed,
-                &stream_label(streams, &prepared.placement.name, g, &structure, s + 1),
-            );
-            let tau = starts::partition(kind, &seeding, seeding_d, fd.weights, g, &mut rng);
-            let run = em::run(&fd, template.clone(), tau, settings);
-            let usable = run.termination.usable();
-            let record = StartRecord {
-                start: s + 1,
-                kind,
-                loglik: usable.then_some(run.loglik),
-                iterations: run.iterations,
-                termination: run.termination.clone(),
-            };
-            let objective = usable.then_some(run.objective);
-            if usable {
-                let mut best = best_so_far.lock().expect("no start panics while holding the lock");
-                let better = best
-                    .as_ref()
-                    .is_none_or(|(i, b)| run.objective > b.objective || (run.objective == b.objective && s < *i));
-                if better {
-                    *best = Some((s, run));
-                }
+            let run = run_start(s, first_settings);
+            if stages && run.termination == Termination::IterationCap {
+                Err(run.objective)
+            } else {
+                Ok(keep(s, run))
             }
-            (record, objective)
+        })
+        .collect();
+    let mut waiting: Vec<(usize, f64)> = first
+        .iter()
+        .enumerate()
+        .filter_map(|(s, r)| r.as_ref().err().map(|o| (s, *o)))
+        .collect();
+    waiting.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
+    waiting.truncate(study.search.finish_best);
+    let second: Vec<(usize, (StartRecord, Option<f64>))> = waiting
+        .par_iter()
+        .map(|&(s, _)| (s, keep(s, run_start(s, settings))))
+        .collect();
+    let runs: Vec<(StartRecord, Option<f64>)> = first
+        .into_iter()
+        .enumerate()
+        .map(|(s, r)| match r {
+            Ok(done) => done,
+            Err(_) => match second.iter().find(|(i, _)| *i == s) {
+                Some((_, done)) => done.clone(),
+                None => (
+                    StartRecord {
+                        start: s + 1,
+                        kind: StartKind::for_start(s, g),
+                        loglik: None,
+                        iterations: warmup,
+                        termination: Termination::SetAside,
+                    },
+                    None,
+                ),
+            },
         })
         .collect();
     let best = best_so_far

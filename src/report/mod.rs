@@ -84,6 +84,10 @@ pub struct StudySummary {
     pub max_iterations: usize,
     /// Convergence tolerance (relative log-likelihood change).
     pub tolerance: f64,
+    /// EM iterations of every start before the starts still running are ranked.
+    pub warmup_iterations: usize,
+    /// How many of those run on to the end (at least `starts`: every start runs to its end).
+    pub finish_best: usize,
     /// Ridge penalty on gating slopes.
     pub gating_ridge: f64,
     /// Covariance structures fitted, in words.
@@ -220,7 +224,10 @@ pub struct StandardErrors {
 pub struct StartSummary {
     /// Starts run.
     pub total: usize,
-    /// Starts that converged or hit the cap (not degenerate).
+    /// Starts run to their end (all but those the two-stage search set aside after the
+    /// warm-up).
+    pub finished: usize,
+    /// Starts that converged or hit the cap (not degenerate, not set aside).
     pub usable: usize,
     /// Starts within 1e-6 (relative) of the best log-likelihood.
     pub reaching_best: usize,
@@ -332,6 +339,7 @@ pub fn results(
                 iterations: f.best.as_ref().map(|b| b.run.iterations),
                 starts: StartSummary {
                     total: f.starts.len(),
+                    finished: f.finished_starts(),
                     usable,
                     reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
                     best_start: f.best.as_ref().map(|b| b.start),
@@ -380,6 +388,8 @@ pub fn results(
             starts: study.search.starts,
             max_iterations: study.search.max_iterations,
             tolerance: study.search.tolerance,
+            warmup_iterations: study.search.warmup_iterations,
+            finish_best: study.search.finish_best,
             gating_ridge: study.search.gating_ridge,
             covariance_structures: study
                 .search

@@ -46,6 +46,9 @@ pub const DEFAULT_STARTS: usize = 20;
 pub const DEFAULT_MAX_ITERATIONS: usize = 1000;
 /// Default convergence tolerance on the relative log-likelihood change.
 pub const DEFAULT_TOLERANCE: f64 = 1e-8;
+/// Default EM iterations every start runs before the starts are ranked (when
+/// `[search].finish_best` turns the two-stage search on).
+pub const DEFAULT_WARMUP_ITERATIONS: usize = 25;
 /// Default master seed when the spec gives none.
 pub const DEFAULT_SEED: u64 = 1;
 
@@ -224,6 +227,12 @@ pub struct Search {
     pub max_iterations: usize,
     /// Relative log-likelihood change that counts as converged.
     pub tolerance: f64,
+    /// EM iterations every start runs before the starts still running are ranked.
+    pub warmup_iterations: usize,
+    /// How many of the starts still running after the warm-up, the best by objective,
+    /// run on to convergence; the others are set aside. Equal to `starts` (the default),
+    /// every start runs to its end.
+    pub finish_best: usize,
     /// Ridge penalty on the gating slopes (not the intercepts); 0 = none.
     pub gating_ridge: f64,
     /// Covariance structures to fit (gaussian), in the order listed.
@@ -232,6 +241,13 @@ pub struct Search {
     pub covariance_prior: bool,
     /// Floor on covariance eigenvalues relative to the smallest indicator variance; 0 = off.
     pub variance_floor: f64,
+}
+
+impl Search {
+    /// Whether starts are set aside after the warm-up (see [`Search::finish_best`]).
+    pub fn two_stages(&self) -> bool {
+        self.finish_best < self.starts && self.warmup_iterations < self.max_iterations
+    }
 }
 
 /// A validated study spec: the only spec type the rest of the program sees.
@@ -688,6 +704,8 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 starts: DEFAULT_STARTS,
                 max_iterations: DEFAULT_MAX_ITERATIONS,
                 tolerance: DEFAULT_TOLERANCE,
+                warmup_iterations: DEFAULT_WARMUP_ITERATIONS,
+                finish_best: DEFAULT_STARTS,
                 gating_ridge: 0.0,
                 structures: vec![CovarianceStructure::UNCONSTRAINED],
                 covariance_prior: false,
@@ -977,6 +995,33 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
             t
         }
     };
+    let warmup_iterations = match &s.warmup_iterations {
+        None => DEFAULT_WARMUP_ITERATIONS,
+        Some(v) => positive(ctx, v, "[search].warmup_iterations", 1)?,
+    };
+    let finish_best = match &s.finish_best {
+        None => starts,
+        Some(v) => {
+            let f = positive(ctx, v, "[search].finish_best", 1)?;
+            if f > starts {
+                return Err(Error::input(
+                    ctx.err(v.span(), format!("[search].finish_best is {f}, more than the {starts} starts"))
+                        .help("finish_best counts starts that run on after the warm-up: at most [search].starts, which runs every start to its end"),
+                ));
+            }
+            if f < starts && warmup_iterations >= max_iterations {
+                let at = s.warmup_iterations.as_ref().map_or(v.span(), Spanned::span);
+                return Err(Error::input(
+                    ctx.err(
+                        at,
+                        format!("the warm-up ({warmup_iterations} iterations) must be shorter than [search].max_iterations ({max_iterations}) for finish_best to set starts aside"),
+                    )
+                    .help("lower [search].warmup_iterations or raise [search].max_iterations"),
+                ));
+            }
+            f
+        }
+    };
     let gating_ridge = match &s.gating_ridge {
         None => 0.0,
         Some(v) => {
@@ -1016,6 +1061,8 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
             starts,
             max_iterations,
             tolerance,
+            warmup_iterations,
+            finish_best,
             gating_ridge,
             structures,
             covariance_prior,
@@ -1411,6 +1458,21 @@ mod tests {
         );
         assert_eq!(resolve(Path::new(""), "../x.csv"), PathBuf::from("../x.csv"));
         assert_eq!(s.variable_type("a"), Some(VariableType::Continuous));
+    }
+
+    #[test]
+    fn two_stage_search_is_off_unless_asked_for() {
+        let s = spec(BASE).unwrap();
+        assert_eq!(s.search.finish_best, s.search.starts);
+        assert!(!s.search.two_stages());
+        let s = spec(&format!("{BASE}[search]\nstarts = 12\nfinish_best = 4\n")).unwrap();
+        assert_eq!(
+            (s.search.finish_best, s.search.warmup_iterations),
+            (4, DEFAULT_WARMUP_ITERATIONS)
+        );
+        assert!(s.search.two_stages());
+        let s = spec(&format!("{BASE}[search]\nstarts = 12\nfinish_best = 12\n")).unwrap();
+        assert!(!s.search.two_stages(), "finishing every start is the full search");
     }
 
     #[test]

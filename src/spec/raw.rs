@@ -166,6 +166,10 @@ pub struct RawSearch {
     pub max_iterations: Option<Spanned<i64>>,
     /// Relative log-likelihood change that counts as converged.
     pub tolerance: Option<Spanned<f64>>,
+    /// EM iterations every start runs before the starts are ranked.
+    pub warmup_iterations: Option<Spanned<i64>>,
+    /// Starts, the best after the warm-up, that run on to convergence.
+    pub finish_best: Option<Spanned<i64>>,
     /// Ridge penalty on the gating slopes.
     pub gating_ridge: Option<Spanned<f64>>,
     /// Covariance structures (gaussian only).

@@ -13,3 +13,4 @@ pub mod recovery;
 pub mod reference;
 pub mod row_pass;
 pub mod structures;
+pub mod two_stages;
