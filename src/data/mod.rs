@@ -272,6 +272,44 @@ pub fn load(study: &Study) -> Result<Dataset> {
     from_text(study, &text)
 }
 
+/// The cells of one needed column as read, stored end to end: one string for the column
+/// and an end offset per row, instead of a string per cell (which at ten million rows
+/// would take several gigabytes).
+#[derive(Default)]
+struct Cells {
+    text: String,
+    /// End of each row's cell in `text`. A missing cell is stored empty: a present cell
+    /// never is (see [`is_missing`]).
+    ends: Vec<u32>,
+}
+
+impl Cells {
+    /// Add the next row's cell; false when the column's text would pass 4 GiB.
+    fn push(&mut self, v: Option<&str>) -> bool {
+        if let Some(v) = v {
+            self.text.push_str(v);
+        }
+        match u32::try_from(self.text.len()) {
+            Ok(end) => {
+                self.ends.push(end);
+                true
+            }
+            Err(_) => false,
+        }
+    }
+
+    /// Row `i`'s cell, None when it is missing.
+    fn get(&self, i: usize) -> Option<&str> {
+        let start = if i == 0 { 0 } else { self.ends[i - 1] as usize };
+        let end = self.ends[i] as usize;
+        (end > start).then(|| &self.text[start..end])
+    }
+
+    fn iter(&self) -> impl Iterator<Item = Option<&str>> + '_ {
+        (0..self.ends.len()).map(|i| self.get(i))
+    }
+}
+
 /// [`load`] on the text of a data file already read (`study.data_path` names it in
 /// messages).
 pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
@@ -313,7 +351,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
     }
 
     let needed = needed_columns(study, &header)?;
-    let mut cells: Vec<Vec<Option<String>>> = vec![Vec::new(); needed.len()];
+    let mut cells: Vec<Cells> = (0..needed.len()).map(|_| Cells::default()).collect();
     let mut lines: Vec<usize> = Vec::new();
     let mut record = csv::StringRecord::new();
     loop {
@@ -329,7 +367,15 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
         lines.push(line);
         for (k, nd) in needed.iter().enumerate() {
             let v = record.get(nd.index).unwrap_or("");
-            cells[k].push((!is_missing(v)).then(|| v.to_string()));
+            if !cells[k].push((!is_missing(v)).then_some(v)) {
+                return Err(Error::input(
+                    Diagnostic::new(format!(
+                        "column '{}' holds more than 4 GiB of text by line {line}",
+                        nd.col.name
+                    ))
+                    .help("split the data file, or drop columns the spec does not use before reading it"),
+                ));
+            }
         }
     }
     let rows_read = lines.len();
@@ -348,7 +394,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
     let mut keep = vec![true; rows_read];
     let mut missing_by_column = Vec::new();
     for (k, nd) in needed.iter().enumerate() {
-        let missing = cells[k].iter().filter(|c| c.is_none()).count();
+        let missing = cells[k].iter().filter(Option::is_none).count();
         if missing == rows_read && nd.role != Role::Id {
             return Err(Error::input(
                 study
@@ -381,7 +427,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
     if item_ks.len() == study.indicators.len() {
         let mut empty = 0;
         for (i, kp) in keep.iter_mut().enumerate() {
-            if *kp && item_ks.iter().all(|k| cells[*k][i].is_none()) {
+            if *kp && item_ks.iter().all(|k| cells[*k].get(i).is_none()) {
                 *kp = false;
                 empty += 1;
             }
@@ -401,25 +447,30 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
     let d = study.indicators_of(IndicatorKind::Gaussian).len();
     let mut y = vec![0.0; rows_used * d];
     let mut columns = BTreeMap::new();
-    let mut id_seen: HashMap<String, usize> = HashMap::new();
     let id_k = needed.iter().position(|n| n.role == Role::Id);
+    let mut id_lines = Vec::with_capacity(rows_used);
     for (i, line) in lines.iter().enumerate() {
         if !keep[i] {
             continue;
         }
-        let id = match id_k.and_then(|k| cells[k][i].clone()) {
-            Some(v) => v,
+        ids.push(match id_k.and_then(|k| cells[k].get(i)) {
+            Some(v) => v.to_string(),
             None => (i + 1).to_string(),
-        };
-        if let Some(first) = id_seen.insert(id.clone(), *line) {
+        });
+        id_lines.push(*line);
+    }
+    // The first repeat in row order; the map borrows the ids rather than copying them.
+    let mut id_seen: HashMap<&str, usize> = HashMap::with_capacity(ids.len());
+    for (id, line) in ids.iter().zip(&id_lines) {
+        if let Some(first) = id_seen.insert(id.as_str(), *line) {
             return Err(Error::input(
                 Diagnostic::new(format!("id '{id}' appears twice (lines {first} and {line})"))
                     .at(raw.field_location(*line, needed[id_k.unwrap_or(0)].index))
                     .help("every row needs its own id; remove the duplicate row"),
             ));
         }
-        ids.push(id);
     }
+    drop(id_seen);
     let mut gaussian_pos = 0;
     let mut count_pos = 0;
     let mut item_pos = 0;
@@ -456,10 +507,10 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
         }
         let kept: Vec<(usize, &str)> = lines
             .iter()
-            .zip(&cells[k])
+            .zip(cells[k].iter())
             .zip(&keep)
             .filter(|(_, k)| **k)
-            .map(|((l, c), _)| (*l, c.as_deref().unwrap_or("")))
+            .map(|((l, c), _)| (*l, c.unwrap_or("")))
             .collect();
         let parsed = parse_column(&raw, study, nd, &kept)?;
         match nd.role {
@@ -787,16 +838,16 @@ fn parse_item(
     study: &Study,
     nd: &Needed,
     lines: &[usize],
-    cells: &[Option<String>],
+    cells: &Cells,
     keep: &[bool],
 ) -> Result<(Vec<String>, Vec<u16>)> {
     let name = &nd.col.name;
     let present: Vec<(usize, &str)> = lines
         .iter()
-        .zip(cells)
+        .zip(cells.iter())
         .zip(keep)
         .filter(|(_, k)| **k)
-        .filter_map(|((l, c), _)| c.as_deref().map(|v| (*l, v)))
+        .filter_map(|((l, c), _)| c.map(|v| (*l, v)))
         .collect();
     let levels: Vec<String> = match &nd.kind {
         VariableType::Binary => {
@@ -851,10 +902,10 @@ fn parse_item(
     }
     let codes = lines
         .iter()
-        .zip(cells)
+        .zip(cells.iter())
         .zip(keep)
         .filter(|(_, k)| **k)
-        .map(|((_, c), _)| match c.as_deref() {
+        .map(|((_, c), _)| match c {
             None => MISSING_ITEM,
             Some(v) => match &nd.kind {
                 VariableType::Binary => u16::from(v.parse::<f64>().is_ok_and(|x| x == 1.0)),
@@ -948,6 +999,18 @@ pub fn hex(bytes: &[u8]) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn cells_give_back_each_row_and_its_missing_values() {
+        let mut c = Cells::default();
+        for v in [Some("w01"), None, Some("3.5"), None, Some("x")] {
+            assert!(c.push(v));
+        }
+        let back: Vec<Option<&str>> = c.iter().collect();
+        assert_eq!(back, vec![Some("w01"), None, Some("3.5"), None, Some("x")]);
+        assert_eq!(c.get(0), Some("w01"));
+        assert_eq!(c.get(3), None);
+    }
 
     #[test]
     fn field_offsets_respect_quotes() {
