@@ -7,7 +7,7 @@ use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
 use cohortmix::model::family::items::ItemRows;
 use cohortmix::model::family::{ComponentFamily, CovarianceStructure};
-use cohortmix::model::gating::{logit_objective, logit_score_hessian};
+use cohortmix::model::gating::{logit_objective, logit_score_hessian, Gating};
 use cohortmix::model::{design_rows, e_step, FitData};
 use cohortmix::rng::Stream;
 use cohortmix::spec::VariableType;
@@ -55,7 +55,9 @@ proptest! {
 
     /// The EM objective never falls by more than 1e-9·|loglik| between iterations, for
     /// every covariance structure, with and without gating and component covariates and
-    /// the covariance prior.
+    /// the covariance prior; plus, for a gating network, the rounding of the
+    /// log-likelihood (see [`loglik_rounding`]: seed 5374 separates, reaches |γ| ≈ 1e11
+    /// and falls by 2e-5 at iterations where the bound step is taken).
     #[test]
     fn em_never_lowers_the_loglik(seed in 0u64..10_000, n in 30usize..160, d in 1usize..4, g in 1usize..5,
                                   with_w: bool, with_z: bool, random_start: bool, structure in 0usize..14,
@@ -70,8 +72,9 @@ proptest! {
         let mut rng = Stream::new(seed, "start");
         let tau = partition(kind, &y, d, &weights, g, &mut rng);
         let run = em::run(&fd, model, tau, EmSettings { max_iterations: 300, tolerance: 1e-13 });
+        let rounding = loglik_rounding(&run.model.gating, &w.x, n);
         for pair in run.trace.windows(2) {
-            prop_assert!(pair[1] >= pair[0] - 1e-9 * pair[0].abs(), "fell from {} to {} ({:?})", pair[0], pair[1], run.termination);
+            prop_assert!(pair[1] >= pair[0] - 1e-9 * pair[0].abs() - rounding, "fell from {} to {} ({:?})", pair[0], pair[1], run.termination);
         }
         // The responsibilities returned are those of the final parameters, bit for bit,
         // whether or not the iterations kept them.
@@ -405,8 +408,29 @@ proptest! {
     }
 }
 
+/// How far rounding can move a log-likelihood over `n` rows under `gating` (design `w`):
+/// each row's term is a difference of two log sums of linear predictors, so it is good to
+/// a few ε·max |η|. That is nothing for fitted coefficients of ordinary size, but when a
+/// covariate separates a cluster they grow without bound (|γ| ≈ 1e10 within 200
+/// iterations in seeds 5374 and 3196 of the properties here).
+fn loglik_rounding(gating: &Gating, w: &[f64], n: usize) -> f64 {
+    let largest_eta = match gating {
+        Gating::Logit { gamma, p, .. } => w
+            .chunks_exact(*p)
+            .flat_map(|row| {
+                gamma
+                    .chunks_exact(*p)
+                    .map(move |c| c.iter().zip(row).map(|(a, b)| a * b).sum::<f64>().abs())
+            })
+            .fold(0.0, f64::max),
+        _ => 0.0,
+    };
+    8.0 * f64::EPSILON * n as f64 * largest_eta
+}
+
 /// Compares a chart's analytic score at a random point near the fit with central
-/// differences of the log-likelihood the same pass returns.
+/// differences of the log-likelihood the same pass returns (allowing for the rounding of
+/// the log-likelihood, see [`loglik_rounding`]).
 fn check_chart_score(model: &cohortmix::model::Model, fd: &FitData, seed: u64) -> Result<(), TestCaseError> {
     use cohortmix::inference::chart::Chart;
     let chart = match Chart::new(model) {
@@ -422,6 +446,7 @@ fn check_chart_score(model: &cohortmix::model::Model, fd: &FitData, seed: u64) -
         Err(_) => return Ok(()),
     };
     let loglik = |t: &[f64]| chart.scores(t, fd, |_, _| {}).unwrap();
+    let rounding = loglik_rounding(&model.gating, fd.w, fd.n);
     for j in 0..chart.len() {
         let h = 1e-5 * chart.scale(j);
         let mut t = theta.clone();
@@ -430,7 +455,7 @@ fn check_chart_score(model: &cohortmix::model::Model, fd: &FitData, seed: u64) -
         t[j] -= 2.0 * h;
         let down = loglik(&t);
         let fd_grad = (up - down) / (2.0 * h);
-        let tol = 1e-4 * (1.0 + fd_grad.abs()) / chart.scale(j).min(1.0);
+        let tol = 1e-4 * (1.0 + fd_grad.abs()) / chart.scale(j).min(1.0) + rounding / h;
         prop_assert!(
             (score[j] - fd_grad).abs() <= tol,
             "coordinate {j}: score {} vs difference {}",
