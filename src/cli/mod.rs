@@ -394,10 +394,9 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
     let mut files = RunFiles::default();
     files.add("results.json", json + "\n");
     files.add("models.csv", report::models_csv(&results));
-    files.add(
-        "memberships.csv",
-        report::memberships_csv(&data, &fits, &results.chosen),
-    );
+    files.add_written("memberships.csv", |out| {
+        report::write_memberships_csv(out, &data, &fits, &results.chosen)
+    });
     files.add("manifest.json", manifest + "\n");
     let stored = crate::fit::saved::save(&study, &data, &prepared, &fits);
     let stored = serde_json::to_string_pretty(&stored)

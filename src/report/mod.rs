@@ -489,8 +489,14 @@ pub fn models_csv(results: &Results) -> String {
 }
 
 /// `memberships.csv`: per row, for the chosen fit of each placement: most likely cluster
-/// and posterior probabilities (long format: one block of rows per placement).
-pub fn memberships_csv(data: &Dataset, fits: &[FitResult], chosen: &[Chosen]) -> String {
+/// and posterior probabilities (long format: one block of rows per placement), written to
+/// `out` as it is made: at ten million rows the text would take more memory than the fit.
+pub fn write_memberships_csv(
+    out: &mut dyn std::io::Write,
+    data: &Dataset,
+    fits: &[FitResult],
+    chosen: &[Chosen],
+) -> std::io::Result<()> {
     let sets: Vec<(&str, usize, &[f64])> = chosen
         .iter()
         .filter_map(|c| {
@@ -501,13 +507,24 @@ pub fn memberships_csv(data: &Dataset, fits: &[FitResult], chosen: &[Chosen]) ->
             Some((f.placement.as_str(), f.clusters, best.run.tau.as_slice()))
         })
         .collect();
-    memberships_table(&data.ids, &sets)
+    write_memberships(out, &data.ids, &sets)
 }
 
 /// Memberships as CSV: per (placement, clusters, posteriors n×G) and row, the row id,
 /// its most likely cluster and every posterior (6 decimals); `memberships.csv` and
 /// `predict` write this layout.
 pub fn memberships_table(ids: &[String], sets: &[(&str, usize, &[f64])]) -> String {
+    let mut out = Vec::new();
+    write_memberships(&mut out, ids, sets).expect("writing to memory does not fail");
+    String::from_utf8(out).expect("the table is text")
+}
+
+/// [`memberships_table`] written to `out` row by row.
+pub fn write_memberships(
+    out: &mut dyn std::io::Write,
+    ids: &[String],
+    sets: &[(&str, usize, &[f64])],
+) -> std::io::Result<()> {
     let kmax = sets.iter().map(|s| s.1).max().unwrap_or(1);
     let mut s = String::from("placement,clusters,id,most_likely");
     for k in 1..=kmax {
@@ -524,9 +541,13 @@ pub fn memberships_table(ids: &[String], sets: &[(&str, usize, &[f64])]) -> Stri
             }
             s.push_str(&",".repeat(kmax - g));
             s.push('\n');
+            if s.len() >= 1 << 16 {
+                out.write_all(s.as_bytes())?;
+                s.clear();
+            }
         }
     }
-    s
+    out.write_all(s.as_bytes())
 }
 
 /// `manifest.json`: what produced the run, with timings (the only file that varies).
@@ -554,16 +575,30 @@ pub struct Manifest {
     pub seconds_inference: f64,
 }
 
-/// Files to write into a run folder, written together.
-#[derive(Debug, Default)]
-pub struct RunFiles {
-    files: Vec<(String, Vec<u8>)>,
+/// A function that writes a file's contents as it makes them.
+type Writer<'a> = Box<dyn FnOnce(&mut dyn std::io::Write) -> std::io::Result<()> + 'a>;
+
+/// What a run file holds: its bytes, or the function that writes them.
+enum Contents<'a> {
+    Bytes(Vec<u8>),
+    Written(Writer<'a>),
 }
 
-impl RunFiles {
+/// Files to write into a run folder, written together.
+#[derive(Default)]
+pub struct RunFiles<'a> {
+    files: Vec<(String, Contents<'a>)>,
+}
+
+impl<'a> RunFiles<'a> {
     /// Add a file by name.
     pub fn add(&mut self, name: &str, bytes: impl Into<Vec<u8>>) {
-        self.files.push((name.to_string(), bytes.into()));
+        self.files.push((name.to_string(), Contents::Bytes(bytes.into())));
+    }
+
+    /// Add a file whose contents `write` makes as it writes them (large files).
+    pub fn add_written(&mut self, name: &str, write: impl FnOnce(&mut dyn std::io::Write) -> std::io::Result<()> + 'a) {
+        self.files.push((name.to_string(), Contents::Written(Box::new(write))));
     }
 
     /// Write every file to a temporary name in `dir`, then rename them all into place.
@@ -574,9 +609,17 @@ impl RunFiles {
         };
         std::fs::create_dir_all(dir).map_err(|e| fail(format!("cannot create the run folder {}", dir.display()), e))?;
         let mut temps: Vec<(PathBuf, PathBuf)> = Vec::new();
-        for (name, bytes) in &self.files {
+        for (name, contents) in self.files {
             let tmp = dir.join(format!(".{name}.partial"));
-            if let Err(e) = std::fs::write(&tmp, bytes) {
+            let written = match contents {
+                Contents::Bytes(bytes) => std::fs::write(&tmp, bytes),
+                Contents::Written(write) => std::fs::File::create(&tmp).and_then(|f| {
+                    let mut out = std::io::BufWriter::new(f);
+                    write(&mut out)?;
+                    std::io::Write::flush(&mut out)
+                }),
+            };
+            if let Err(e) = written {
                 for (t, _) in &temps {
                     let _ = std::fs::remove_file(t);
                 }
