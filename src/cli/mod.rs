@@ -428,6 +428,7 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
 
 fn progress_line(r: &FitResult) -> String {
     let t = r.termination();
+    let finished = r.finished_starts();
     match r.loglik() {
         Some(l) => format!(
             "'{}', {} cluster{}: loglik {:.3}, {} of {} {}starts reached the best, {}",
@@ -436,12 +437,8 @@ fn progress_line(r: &FitResult) -> String {
             plural(r.clusters),
             l,
             r.best.as_ref().map_or(0, |b| b.reaching),
-            r.finished_starts(),
-            if r.finished_starts() < r.starts.len() {
-                "finished "
-            } else {
-                ""
-            },
+            finished,
+            if finished < r.starts.len() { "finished " } else { "" },
             t.word()
         ),
         None => format!(

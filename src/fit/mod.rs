@@ -528,8 +528,7 @@ pub fn fit_cell_with(
     // `finish_best` highest objectives (lowest start number on ties) run on to the end,
     // each again from its start so that its path is the one a single run takes.
     let warmup = study.search.warmup_iterations;
-    // (`Search::two_stages` for this cell's number of starts.)
-    let stages = n_starts > study.search.finish_best && warmup < settings.max_iterations;
+    let stages = crate::spec::two_stages(n_starts, study.search.finish_best, warmup, settings.max_iterations);
     let first_settings = if stages {
         EmSettings {
             max_iterations: warmup,
@@ -538,7 +537,7 @@ pub fn fit_cell_with(
     } else {
         settings
     };
-    let first: Vec<std::result::Result<(StartRecord, Option<f64>), f64>> = (0..n_starts)
+    let mut first: Vec<std::result::Result<(StartRecord, Option<f64>), f64>> = (0..n_starts)
         .into_par_iter()
         .map(|s| {
             let run = run_start(s, first_settings);
@@ -560,24 +559,24 @@ pub fn fit_cell_with(
         .par_iter()
         .map(|&(s, _)| (s, keep(s, run_start(s, settings))))
         .collect();
+    for (s, done) in second {
+        first[s] = Ok(done);
+    }
+    // What is still waiting was set aside.
     let runs: Vec<(StartRecord, Option<f64>)> = first
         .into_iter()
         .enumerate()
-        .map(|(s, r)| match r {
-            Ok(done) => done,
-            Err(_) => match second.iter().find(|(i, _)| *i == s) {
-                Some((_, done)) => done.clone(),
-                None => (
-                    StartRecord {
-                        start: s + 1,
-                        kind: StartKind::for_start(s, g),
-                        loglik: None,
-                        iterations: warmup,
-                        termination: Termination::SetAside,
-                    },
-                    None,
-                ),
-            },
+        .map(|(s, r)| {
+            r.unwrap_or_else(|_| {
+                let record = StartRecord {
+                    start: s + 1,
+                    kind: StartKind::for_start(s, g),
+                    loglik: None,
+                    iterations: warmup,
+                    termination: Termination::SetAside,
+                };
+                (record, None)
+            })
         })
         .collect();
     let best = best_so_far

@@ -446,7 +446,7 @@ fn profile_grid(c: &Comparison) -> String {
 
 /// The two-stage search in words, when it is on (empty otherwise).
 fn two_stages(s: &super::StudySummary) -> String {
-    if s.finish_best < s.starts && s.warmup_iterations < s.max_iterations {
+    if crate::spec::two_stages(s.starts, s.finish_best, s.warmup_iterations, s.max_iterations) {
         format!(
             "; two-stage search: after {} iterations only the {} best starts still running went on and the others were set aside, so \"starts at best\" counts the starts that finished",
             s.warmup_iterations, s.finish_best

@@ -246,8 +246,19 @@ pub struct Search {
 impl Search {
     /// Whether starts are set aside after the warm-up (see [`Search::finish_best`]).
     pub fn two_stages(&self) -> bool {
-        self.finish_best < self.starts && self.warmup_iterations < self.max_iterations
+        two_stages(
+            self.starts,
+            self.finish_best,
+            self.warmup_iterations,
+            self.max_iterations,
+        )
     }
+}
+
+/// Whether a fit of `starts` starts sets some aside: fewer finish than start, and the
+/// warm-up ends before the iteration cap.
+pub fn two_stages(starts: usize, finish_best: usize, warmup_iterations: usize, max_iterations: usize) -> bool {
+    finish_best < starts && warmup_iterations < max_iterations
 }
 
 /// A validated study spec: the only spec type the rest of the program sees.
