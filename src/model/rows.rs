@@ -122,6 +122,8 @@ struct Pass<'a> {
     has_base: bool,
     want_gaussian: bool,
     want_gating: bool,
+    /// Whether the gating sums include the negative Hessian (else the score alone).
+    gating_hessian: bool,
 }
 
 /// What one task (or the whole pass) sums.
@@ -454,10 +456,12 @@ fn softmax_columns(x: &mut [f64], g: usize, m: usize, lse: &mut [f64], sum: &mut
 
 /// Add the gating sums of one tile: weights `c`, responsibilities `tau` (column-major, g
 /// runs), cluster probabilities `pi` (same layout), row totals of τ `s` (None: all 1).
+/// The negative Hessian only when `hessian`; the score always.
 #[inline(always)]
 #[allow(clippy::too_many_arguments)]
 fn add_gating(
     st: &mut GatingStats,
+    hessian: bool,
     g: usize,
     p: usize,
     m: usize,
@@ -487,6 +491,9 @@ fn add_gating(
             }
         }
         dots_into(h, w, p, &mut st.score[(k - 1) * p..]);
+        if !hessian {
+            continue;
+        }
         for l in 1..=k {
             let pl = &pi[l * TILE..l * TILE + m];
             let delta = if k == l { 1.0 } else { 0.0 };
@@ -925,9 +932,12 @@ fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc:
         dots_into(&sc.c[..m], &sc.lp, g, &mut st.cluster_weight);
         if logit {
             let p = r.p;
-            gating_products(&sc.w, p, m, &mut sc.ww);
+            if pass.gating_hessian {
+                gating_products(&sc.w, p, m, &mut sc.ww);
+            }
             add_gating(
                 st,
+                pass.gating_hessian,
                 g,
                 p,
                 m,
@@ -1064,6 +1074,54 @@ pub fn e_step(
     gating_stats: Option<&mut GatingStats>,
     gaussian_stats: Option<&mut GaussianStats>,
 ) -> f64 {
+    let want = Wanted {
+        gating: gating_stats.is_some(),
+        gating_hessian: true,
+        gaussian: gaussian_stats.is_some() && gaussian.is_some(),
+    };
+    let total = run_pass(rows, gaussian, gating, has_base, tau, want);
+    if let (Some(out), Some(s)) = (gating_stats, total.gating) {
+        *out = s;
+    }
+    if let (Some(out), Some(s)) = (gaussian_stats, total.gaussian) {
+        *out = s;
+    }
+    total.loglik
+}
+
+/// The sums the observed-data score of a Gaussian model is made of, in one pass that
+/// keeps no responsibilities: the weighted log-likelihood, the gating score and each
+/// cluster's weighted total (no Hessian), and the Gaussian sums about the model's own
+/// coefficients.
+pub fn score_sums(rows: FitData, gaussian: &GaussianComponents, gating: &Gating) -> (f64, GatingStats, GaussianStats) {
+    let want = Wanted {
+        gating: true,
+        gating_hessian: false,
+        gaussian: true,
+    };
+    let total = run_pass(rows, Some(gaussian), gating, false, None, want);
+    let (Some(gating_sums), Some(gaussian_sums)) = (total.gating, total.gaussian) else {
+        unreachable!("both sums were asked for")
+    };
+    (total.loglik, gating_sums, gaussian_sums)
+}
+
+/// Which sums a pass adds besides the log-likelihood.
+#[derive(Clone, Copy)]
+struct Wanted {
+    gating: bool,
+    gating_hessian: bool,
+    gaussian: bool,
+}
+
+fn run_pass(
+    rows: FitData,
+    gaussian: Option<&GaussianComponents>,
+    gating: &Gating,
+    has_base: bool,
+    tau: Option<&mut [f64]>,
+    want: Wanted,
+) -> Partial {
     let g = gating.clusters();
     let prior = match gating {
         Gating::Logit { gamma, .. } => Prior::Logit(gamma),
@@ -1073,8 +1131,6 @@ pub fn e_step(
             Prior::Constant(lp)
         }
     };
-    let want_gating = gating_stats.is_some();
-    let want_gaussian = gaussian_stats.is_some() && gaussian.is_some();
     let pass = Pass {
         rows,
         g,
@@ -1085,23 +1141,17 @@ pub fn e_step(
         }),
         prior,
         has_base,
-        want_gaussian,
-        want_gating,
+        want_gaussian: want.gaussian,
+        want_gating: want.gating,
+        gating_hessian: want.gating_hessian,
     };
     assert!(
         tau.is_some() || !has_base,
         "the other blocks' log-densities come in tau"
     );
-    let total = over_tasks(rows.n, g, tau, |start, len, chunk| {
+    over_tasks(rows.n, g, tau, |start, len, chunk| {
         e_step_task(&pass, start, len, chunk)
-    });
-    if let (Some(out), Some(s)) = (gating_stats, total.gating) {
-        *out = s;
-    }
-    if let (Some(out), Some(s)) = (gaussian_stats, total.gaussian) {
-        *out = s;
-    }
-    total.loglik
+    })
 }
 
 #[inline(always)]
@@ -1235,6 +1285,7 @@ fn logit_task_body(input: &LogitInput, tau: &[f64], start: usize) -> Partial {
             gating_products(&sc.w, p, m, &mut sc.ww);
             add_gating(
                 st,
+                true,
                 g,
                 p,
                 m,

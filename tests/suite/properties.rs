@@ -445,6 +445,25 @@ fn check_chart_score(model: &cohortmix::model::Model, fd: &FitData, seed: u64) -
         Ok(v) => v,
         Err(_) => return Ok(()),
     };
+    // The total score (made from sums over rows for Gaussian components alone) equals
+    // the row scores added up, to rounding of the row scores' size.
+    let (mut by_rows, mut size) = (vec![0.0; chart.len()], vec![0.0; chart.len()]);
+    chart
+        .scores(&theta, fd, |_, s| {
+            for (j, x) in s.iter().enumerate() {
+                by_rows[j] += x;
+                size[j] += x.abs();
+            }
+        })
+        .unwrap();
+    for j in 0..chart.len() {
+        prop_assert!(
+            (score[j] - by_rows[j]).abs() <= 1e-10 * size[j] + 1e-12,
+            "coordinate {j}: total score {} vs row scores added {}",
+            score[j],
+            by_rows[j]
+        );
+    }
     let loglik = |t: &[f64]| chart.scores(t, fd, |_, _| {}).unwrap();
     let rounding = loglik_rounding(&model.gating, fd.w, fd.n);
     for j in 0..chart.len() {
