@@ -56,7 +56,7 @@ pub struct Dataset {
     /// For each needed column, how many rows missed it (a row can count under several).
     pub missing_by_column: Vec<(String, usize)>,
     /// Row identifiers of the rows kept (the id column, or the 1-based data row number).
-    pub ids: Vec<String>,
+    pub ids: RowIds,
     /// Case weights of the rows kept (1 without a weight column).
     pub weights: Vec<f64>,
     /// Every indicator name, in spec order.
@@ -73,6 +73,69 @@ pub struct Dataset {
     pub counts: Option<CountBlock>,
     /// Covariate columns by name.
     pub columns: BTreeMap<String, Column>,
+}
+
+/// Row identifiers end to end in one text, separated by line feeds, with an end offset
+/// per row: a string per row would take about 50 bytes at ten million rows.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct RowIds {
+    text: String,
+    ends: Vec<usize>,
+}
+
+impl RowIds {
+    /// Add the next row's id.
+    pub fn push(&mut self, id: &str) {
+        if !self.ends.is_empty() {
+            self.text.push('\n');
+        }
+        self.text.push_str(id);
+        self.ends.push(self.text.len());
+    }
+
+    /// Number of rows.
+    pub fn len(&self) -> usize {
+        self.ends.len()
+    }
+
+    /// Whether there is no row.
+    pub fn is_empty(&self) -> bool {
+        self.ends.is_empty()
+    }
+
+    /// Row `i`'s id.
+    pub fn get(&self, i: usize) -> &str {
+        let start = if i == 0 { 0 } else { self.ends[i - 1] + 1 };
+        &self.text[start..self.ends[i]]
+    }
+
+    /// Every id in row order.
+    pub fn iter(&self) -> impl Iterator<Item = &str> + '_ {
+        (0..self.len()).map(|i| self.get(i))
+    }
+
+    /// The ids joined by line feeds.
+    pub fn joined(&self) -> &str {
+        &self.text
+    }
+}
+
+impl std::ops::Index<usize> for RowIds {
+    type Output = str;
+
+    fn index(&self, i: usize) -> &str {
+        self.get(i)
+    }
+}
+
+impl<S: AsRef<str>> FromIterator<S> for RowIds {
+    fn from_iter<I: IntoIterator<Item = S>>(iter: I) -> RowIds {
+        let mut ids = RowIds::default();
+        for id in iter {
+            ids.push(id.as_ref());
+        }
+        ids
+    }
 }
 
 /// Marks a missing item value in [`ItemBlock::codes`].
@@ -143,8 +206,12 @@ impl Dataset {
     /// Every indicator as numbers, for seeding starts by distance (row-major, with its
     /// column count): continuous indicators as they are, a binary item as 0/1, a
     /// categorical item as one 0/1 column per level, a count as log(1 + y); a missing item
-    /// value takes the item's observed mean. Seeding standardises each column.
-    pub fn seeding_matrix(&self) -> (Vec<f64>, usize) {
+    /// value takes the item's observed mean. Seeding standardises each column. With
+    /// continuous indicators alone that is the indicators themselves, not a copy.
+    pub fn seeding_matrix(&self) -> (std::borrow::Cow<'_, [f64]>, usize) {
+        if self.items.is_none() && self.counts.is_none() {
+            return (std::borrow::Cow::Borrowed(&self.y), self.d());
+        }
         let n = self.n();
         let mut cols: Vec<Vec<f64>> = (0..self.d())
             .map(|j| (0..n).map(|i| self.y[i * self.d() + j]).collect())
@@ -175,7 +242,7 @@ impl Dataset {
                 out[i * m + j] = *v;
             }
         }
-        (out, m)
+        (std::borrow::Cow::Owned(out), m)
     }
 
     /// Design matrix for a list of covariates (intercept first).
@@ -184,20 +251,35 @@ impl Dataset {
     }
 }
 
+/// The data file as needed for messages: a line's text is looked up only when an error
+/// shows it, in the text given or, when reading streamed, by reading the file again.
 struct Raw<'a> {
     path: &'a Path,
-    text: &'a str,
-    line_starts: Vec<usize>,
+    text: std::cell::OnceCell<std::borrow::Cow<'a, str>>,
 }
 
-impl Raw<'_> {
+impl<'a> Raw<'a> {
+    fn with_text(path: &'a Path, text: &'a str) -> Raw<'a> {
+        Raw {
+            path,
+            text: std::cell::OnceCell::from(std::borrow::Cow::Borrowed(text)),
+        }
+    }
+
+    fn streamed(path: &'a Path) -> Raw<'a> {
+        Raw {
+            path,
+            text: std::cell::OnceCell::new(),
+        }
+    }
+
     fn line_text(&self, line: usize) -> String {
-        let start = self.line_starts.get(line - 1).copied().unwrap_or(self.text.len());
-        let end = self
-            .line_starts
-            .get(line)
-            .map_or(self.text.len(), |e| e.saturating_sub(1));
-        self.text[start..end.max(start)].trim_end_matches('\r').to_string()
+        let text = self.text.get_or_init(|| {
+            let text = read_text(self.path, "data").unwrap_or_default();
+            std::borrow::Cow::Owned(text.strip_prefix('\u{feff}').map(str::to_string).unwrap_or(text))
+        });
+        let found = text.split('\n').nth(line.saturating_sub(1)).unwrap_or("");
+        found.trim_end_matches('\r').to_string()
     }
 
     /// Location of field `field` (0-based) on 1-based `line`.
@@ -268,8 +350,52 @@ pub fn load(study: &Study) -> Result<Dataset> {
                 .help("paths in a spec are relative to the spec file"),
         ));
     }
+    // Read as a stream, so that the file's text is never held whole. Any failure while
+    // reading falls back to reading the text whole, which reports it with the line shown.
+    if let Ok(file) = std::fs::File::open(path) {
+        if let Ok(mut input) = Hashing::new(file) {
+            let raw = Raw::streamed(path);
+            let read = read_cells(study, &raw, &mut input);
+            if let Ok(cells) = read {
+                return assemble(study, &raw, input.sha256_hex(), cells);
+            }
+        }
+    }
     let text = read_text(path, "data")?;
     from_text(study, &text)
+}
+
+/// A reader of the data file that skips a leading byte-order mark and hashes every byte
+/// after it (the same bytes [`from_text`] hashes).
+struct Hashing {
+    inner: std::io::BufReader<std::fs::File>,
+    hasher: Sha256,
+}
+
+impl Hashing {
+    fn new(file: std::fs::File) -> std::io::Result<Hashing> {
+        use std::io::BufRead;
+        let mut inner = std::io::BufReader::with_capacity(1 << 16, file);
+        if inner.fill_buf()?.starts_with("\u{feff}".as_bytes()) {
+            inner.consume(3);
+        }
+        Ok(Hashing {
+            inner,
+            hasher: Sha256::new(),
+        })
+    }
+
+    fn sha256_hex(self) -> String {
+        hex(&self.hasher.finalize())
+    }
+}
+
+impl std::io::Read for Hashing {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.hasher.update(&buf[..n]);
+        Ok(n)
+    }
 }
 
 /// The cells of one needed column as read, stored end to end: one string for the column
@@ -315,22 +441,29 @@ impl Cells {
 pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
     let path = study.data_path.as_path();
     let text = text.strip_prefix('\u{feff}').unwrap_or(text);
-    let sha256 = sha256_hex(text.as_bytes());
-    let mut line_starts = vec![0];
-    line_starts.extend(text.match_indices('\n').map(|(i, _)| i + 1));
-    let raw = Raw {
-        path,
-        text,
-        line_starts,
-    };
+    let raw = Raw::with_text(path, text);
+    let cells = read_cells(study, &raw, text.as_bytes())?;
+    assemble(study, &raw, sha256_hex(text.as_bytes()), cells)
+}
 
+/// What reading the CSV keeps: the needed columns, each one's cells, and each data row's
+/// line in the file.
+struct ReadCells {
+    needed: Vec<Needed>,
+    cells: Vec<Cells>,
+    lines: Vec<usize>,
+}
+
+/// Read the header and every record, keeping the cells of the columns the spec needs.
+fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read) -> Result<ReadCells> {
+    let path = study.data_path.as_path();
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(true)
         .trim(csv::Trim::All)
-        .from_reader(text.as_bytes());
+        .from_reader(input);
     let header: Vec<String> = reader
         .headers()
-        .map_err(|e| csv_error(&raw, &e))?
+        .map_err(|e| csv_error(raw, &e))?
         .iter()
         .map(str::to_string)
         .collect();
@@ -358,7 +491,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
         match reader.read_record(&mut record) {
             Ok(false) => break,
             Ok(true) => {}
-            Err(e) => return Err(csv_error(&raw, &e)),
+            Err(e) => return Err(csv_error(raw, &e)),
         }
         let line = record.position().map_or(0, |p| p.line() as usize);
         if record.len() == 1 && record.get(0) == Some("") && header.len() > 1 {
@@ -378,6 +511,13 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
             }
         }
     }
+    Ok(ReadCells { needed, cells, lines })
+}
+
+/// Keep the rows every fit can use and parse their cells by the spec's types.
+fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result<Dataset> {
+    let path = study.data_path.as_path();
+    let ReadCells { needed, cells, lines } = read;
     let rows_read = lines.len();
     if rows_read == 0 {
         return Err(Error::input(
@@ -442,7 +582,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
         ));
     }
 
-    let mut ids = Vec::with_capacity(rows_used);
+    let mut ids = RowIds::default();
     let mut weights = vec![1.0; rows_used];
     let d = study.indicators_of(IndicatorKind::Gaussian).len();
     let mut y = vec![0.0; rows_used * d];
@@ -453,10 +593,10 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
         if !keep[i] {
             continue;
         }
-        ids.push(match id_k.and_then(|k| cells[k].get(i)) {
-            Some(v) => v.to_string(),
-            None => (i + 1).to_string(),
-        });
+        match id_k.and_then(|k| cells[k].get(i)) {
+            Some(v) => ids.push(v),
+            None => ids.push(&(i + 1).to_string()),
+        }
         id_lines.push(*line);
     }
     if let Some((first, again)) = first_repeat(&ids) {
@@ -494,7 +634,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
         }
         if nd.role == Role::Indicator(IndicatorKind::Item) {
             let block = items.as_mut().expect("items were counted");
-            let (levels, codes) = parse_item(&raw, study, nd, &lines, &cells[k], &keep)?;
+            let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep)?;
             for (i, c) in codes.iter().enumerate() {
                 block.codes[i * n_items + item_pos] = *c;
             }
@@ -511,7 +651,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
             .filter(|(_, k)| **k)
             .map(|((l, c), _)| (*l, c.unwrap_or("")))
             .collect();
-        let parsed = parse_column(&raw, study, nd, &kept)?;
+        let parsed = parse_column(raw, study, nd, &kept)?;
         match nd.role {
             Role::Indicator(IndicatorKind::Gaussian) => {
                 let Column::Numeric { values, .. } = &parsed else {
@@ -612,7 +752,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
 /// The first id (in row order) that an earlier row already has: (that earlier row, this
 /// row). Found by sorting row numbers by id, which takes 4 bytes a row where a hash map of
 /// the ids would take about 50.
-fn first_repeat(ids: &[String]) -> Option<(usize, usize)> {
+fn first_repeat(ids: &RowIds) -> Option<(usize, usize)> {
     let mut order: Vec<u32> = (0..ids.len() as u32).collect();
     // Stable: equal ids stay in row order, so each run of them starts at its first row.
     order.sort_by(|a, b| ids[*a as usize].cmp(&ids[*b as usize]));
@@ -1026,8 +1166,18 @@ mod tests {
     }
 
     #[test]
+    fn row_ids_give_back_each_id_and_their_join() {
+        let ids: RowIds = ["w01", "", "a,b", "w\n2"].iter().collect();
+        assert_eq!(ids.len(), 4);
+        assert_eq!(ids.iter().collect::<Vec<_>>(), ["w01", "", "a,b", "w\n2"]);
+        assert_eq!(&ids[2], "a,b");
+        assert_eq!(ids.joined(), ["w01", "", "a,b", "w\n2"].join("\n"));
+        assert!(RowIds::default().is_empty());
+    }
+
+    #[test]
     fn the_first_repeated_id_in_row_order_is_found() {
-        let ids = |v: &[&str]| v.iter().map(|s| s.to_string()).collect::<Vec<_>>();
+        let ids = |v: &[&str]| v.iter().collect::<RowIds>();
         assert_eq!(first_repeat(&ids(&["a", "b", "c"])), None);
         // "b" repeats at row 3 before "a" does at row 4; a third "b" is not the first repeat.
         assert_eq!(first_repeat(&ids(&["b", "a", "z", "b", "a", "b"])), Some((0, 3)));

@@ -37,7 +37,7 @@ pub fn fit_key(
     let mut s = String::new();
     let _ = writeln!(s, "cohortmix {}", env!("CARGO_PKG_VERSION"));
     let _ = writeln!(s, "data {}", data.sha256);
-    let _ = writeln!(s, "rows {}", sha256_hex(data.ids.join("\n").as_bytes()));
+    let _ = writeln!(s, "rows {}", sha256_hex(data.ids.joined().as_bytes()));
     let weights: Vec<u8> = data.weights.iter().flat_map(|w| w.to_le_bytes()).collect();
     let _ = writeln!(s, "weights {}", sha256_hex(&weights));
     for (name, (kind, _)) in &study.variables {

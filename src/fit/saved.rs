@@ -321,7 +321,7 @@ pub fn load_new_data(saved: &SavedRun, data_path: &Path) -> Result<(crate::spec:
                             "{}: item '{name}' has the value '{}' in row {}, which the fitted model never saw (its levels: {})",
                             data_path.display(),
                             items.levels[j][usize::from(*c)],
-                            data.ids[i],
+                            &data.ids[i],
                             known.join(", ")
                         ))
                         .help("recode the value to one of those levels, or leave it empty (a missing item value is skipped)"),

@@ -10,7 +10,7 @@ pub mod document;
 pub mod svg;
 pub mod tables;
 
-use crate::data::Dataset;
+use crate::data::{Dataset, RowIds};
 use crate::error::{Diagnostic, Error, Result};
 use crate::fit::{FitResult, PreparedPlacement};
 use crate::inference::Uncertainty;
@@ -513,7 +513,7 @@ pub fn write_memberships_csv(
 /// Memberships as CSV: per (placement, clusters, posteriors n×G) and row, the row id,
 /// its most likely cluster and every posterior (6 decimals); `memberships.csv` and
 /// `predict` write this layout.
-pub fn memberships_table(ids: &[String], sets: &[(&str, usize, &[f64])]) -> String {
+pub fn memberships_table(ids: &RowIds, sets: &[(&str, usize, &[f64])]) -> String {
     let mut out = Vec::new();
     write_memberships(&mut out, ids, sets).expect("writing to memory does not fail");
     String::from_utf8(out).expect("the table is text")
@@ -522,7 +522,7 @@ pub fn memberships_table(ids: &[String], sets: &[(&str, usize, &[f64])]) -> Stri
 /// [`memberships_table`] written to `out` row by row.
 pub fn write_memberships(
     out: &mut dyn std::io::Write,
-    ids: &[String],
+    ids: &RowIds,
     sets: &[(&str, usize, &[f64])],
 ) -> std::io::Result<()> {
     let kmax = sets.iter().map(|s| s.1).max().unwrap_or(1);
