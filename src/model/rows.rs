@@ -630,7 +630,7 @@ fn add_gaussian_plain<const D: usize>(st: &mut GaussianStats, g: usize, c: &[f64
         for o in (0..full).step_by(8) {
             let cv: &[f64; 8] = c[o..o + 8].try_into().expect("eight");
             let tv: &[f64; 8] = tk[o..o + 8].try_into().expect("eight");
-            let r: [&[f64; 8]; D] =
+            let r: [[f64; 8]; D] =
                 std::array::from_fn(|b| res_k[b * TILE + o..b * TILE + o + 8].try_into().expect("eight"));
             let mut v = [0.0f64; 8];
             for l in 0..8 {
@@ -644,7 +644,10 @@ fn add_gaussian_plain<const D: usize>(st: &mut GaussianStats, g: usize, c: &[f64
                     vr[l] = v[l] * r[a][l];
                     zr[a][l] += vr[l];
                 }
-                for b in 0..=a {
+                // An exclusive range: the compiler unrolls it and keeps the sums in
+                // registers, which it does not do for `0..=a`.
+                #[allow(clippy::range_plus_one)]
+                for b in 0..a + 1 {
                     for l in 0..8 {
                         rr[a][b][l] = vr[l].mul_add(r[b][l], rr[a][b][l]);
                     }
@@ -797,7 +800,9 @@ fn mahalanobis<const D: usize>(lm: &[[f64; D]; D], r: &[[f64; 8]; D]) -> [f64; 8
     let mut quad = [0.0f64; 8];
     for (a, la) in lm.iter().enumerate() {
         let mut u = [0.0f64; 8];
-        for (b, lab) in la.iter().enumerate().take(a + 1) {
+        #[allow(clippy::range_plus_one, clippy::needless_range_loop)]
+        for b in 0..a + 1 {
+            let lab = &la[b];
             for lane in 0..8 {
                 u[lane] = lab.mul_add(r[b][lane], u[lane]);
             }
