@@ -431,7 +431,7 @@ impl Cells {
         (end > start).then(|| &self.text[start..end])
     }
 
-    fn iter(&self) -> impl Iterator<Item = Option<&str>> + '_ {
+    fn iter(&self) -> impl Iterator<Item = Option<&str>> + Clone + '_ {
         (0..self.ends.len()).map(|i| self.get(i))
     }
 }
@@ -517,7 +517,11 @@ fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read) -> Result<Rea
 /// Keep the rows every fit can use and parse their cells by the spec's types.
 fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result<Dataset> {
     let path = study.data_path.as_path();
-    let ReadCells { needed, cells, lines } = read;
+    let ReadCells {
+        needed,
+        mut cells,
+        lines,
+    } = read;
     let rows_read = lines.len();
     if rows_read == 0 {
         return Err(Error::input(
@@ -599,6 +603,9 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
         }
         id_lines.push(*line);
     }
+    if let Some(k) = id_k {
+        cells[k] = Cells::default(); // the ids have their own copy now
+    }
     if let Some((first, again)) = first_repeat(&ids) {
         let (id, line) = (&ids[again], id_lines[again]);
         return Err(Error::input(
@@ -635,6 +642,7 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
         if nd.role == Role::Indicator(IndicatorKind::Item) {
             let block = items.as_mut().expect("items were counted");
             let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep)?;
+            cells[k] = Cells::default(); // parsed: free its text
             for (i, c) in codes.iter().enumerate() {
                 block.codes[i * n_items + item_pos] = *c;
             }
@@ -644,14 +652,15 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
             item_pos += 1;
             continue;
         }
-        let kept: Vec<(usize, &str)> = lines
+        // The kept rows' (line, cell), walked again as often as needed rather than
+        // collected (24 bytes a row).
+        let kept = lines
             .iter()
             .zip(cells[k].iter())
             .zip(&keep)
             .filter(|(_, k)| **k)
-            .map(|((l, c), _)| (*l, c.unwrap_or("")))
-            .collect();
-        let parsed = parse_column(raw, study, nd, &kept)?;
+            .map(|((l, c), _)| (*l, c.unwrap_or("")));
+        let parsed = parse_column(raw, study, nd, kept.clone(), rows_used)?;
         match nd.role {
             Role::Indicator(IndicatorKind::Gaussian) => {
                 let Column::Numeric { values, .. } = &parsed else {
@@ -676,11 +685,11 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
                 let Column::Numeric { values, .. } = parsed else {
                     unreachable!("exposure is numeric")
                 };
-                for ((l, _), e) in kept.iter().zip(&values) {
+                for ((l, _), e) in kept.clone().zip(&values) {
                     if !(*e > 0.0) {
                         return Err(Error::input(
                             Diagnostic::new(format!("exposure {e} in column '{}' is not positive", nd.col.name))
-                                .at(raw.field_location(*l, nd.index))
+                                .at(raw.field_location(l, nd.index))
                                 .help(
                                     "exposure is person-time and must be above 0; leave the cell empty to drop the row",
                                 ),
@@ -695,11 +704,11 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
                 let Column::Numeric { values, .. } = parsed else {
                     unreachable!("weights are numeric")
                 };
-                for ((l, _), w) in kept.iter().zip(&values) {
+                for ((l, _), w) in kept.clone().zip(&values) {
                     if *w < 0.0 {
                         return Err(Error::input(
                             Diagnostic::new(format!("weight {w} in column '{}' is negative", nd.col.name))
-                                .at(raw.field_location(*l, nd.index))
+                                .at(raw.field_location(l, nd.index))
                                 .help("case weights must be zero or positive"),
                         ));
                     }
@@ -717,6 +726,8 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
             }
             Role::Id => {}
         }
+        drop(kept);
+        cells[k] = Cells::default(); // parsed: free its text
     }
 
     if let Some(b) = counts.as_mut() {
@@ -897,14 +908,21 @@ fn list_preview(header: &[String]) -> String {
     }
 }
 
-fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -> Result<Column> {
+/// Parse a column over the kept rows' (line, cell) pairs `kept` (`rows` of them).
+fn parse_column<'c>(
+    raw: &Raw,
+    study: &Study,
+    nd: &Needed,
+    kept: impl Iterator<Item = (usize, &'c str)> + Clone,
+    rows: usize,
+) -> Result<Column> {
     let name = &nd.col.name;
     let bad = |line: usize, msg: String, help: String| -> Error {
         Error::input(Diagnostic::new(msg).at(raw.field_location(line, nd.index)).help(help))
     };
     match &nd.kind {
         VariableType::Categorical { reference, levels } => {
-            let (order, found) = level_order(raw, nd, levels.as_deref(), kept, &format!("'{name}'"))?;
+            let (order, found) = level_order(raw, nd, levels.as_deref(), kept.clone(), &format!("'{name}'"))?;
             let used: Vec<&String> = order.iter().filter(|l| found.contains(l)).collect();
             if used.len() < 2 {
                 return Err(Error::input(
@@ -934,7 +952,6 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
                 })?,
             };
             let codes = kept
-                .iter()
                 .map(|(_, v)| order.iter().position(|l| l == v).unwrap_or(0) as u32)
                 .collect();
             Ok(Column::Categorical {
@@ -944,14 +961,14 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
             })
         }
         kind => {
-            let mut values = Vec::with_capacity(kept.len());
+            let mut values = Vec::with_capacity(rows);
             for (line, v) in kept {
                 let x: f64 = v.parse().map_err(|_| {
-                    bad(*line, format!("'{v}' in column '{name}' is not a number"), format!("'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing", kind.word()))
+                    bad(line, format!("'{v}' in column '{name}' is not a number"), format!("'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing", kind.word()))
                 })?;
                 if !x.is_finite() {
                     return Err(bad(
-                        *line,
+                        line,
                         format!("'{v}' in column '{name}' is not a finite number"),
                         "write a finite number, or leave the cell empty if it is missing".into(),
                     ));
@@ -959,14 +976,14 @@ fn parse_column(raw: &Raw, study: &Study, nd: &Needed, kept: &[(usize, &str)]) -
                 match kind {
                     VariableType::Binary if x != 0.0 && x != 1.0 => {
                         return Err(bad(
-                            *line,
+                            line,
                             format!("'{v}' in binary column '{name}' is not 0 or 1"),
                             format!("code '{name}' as 0/1, or declare it categorical"),
                         ));
                     }
                     VariableType::Count if x < 0.0 || x.fract() != 0.0 => {
                         return Err(bad(
-                            *line,
+                            line,
                             format!("'{v}' in count column '{name}' is not a whole number of zero or more"),
                             "counts are 0, 1, 2, ...".into(),
                         ));
@@ -1017,7 +1034,13 @@ fn parse_item(
             vec!["0".to_string(), "1".to_string()]
         }
         VariableType::Categorical { levels, reference } => {
-            let (mut order, _) = level_order(raw, nd, levels.as_deref(), &present, &format!("item '{name}'"))?;
+            let (mut order, _) = level_order(
+                raw,
+                nd,
+                levels.as_deref(),
+                present.iter().copied(),
+                &format!("item '{name}'"),
+            )?;
             if let Some(r) = reference {
                 // The reference level is the logits' baseline: put it first.
                 if let Some(pos) = order.iter().position(|l| l == r) {
@@ -1073,29 +1096,29 @@ fn parse_item(
 /// found there (in order of appearance): the declared `levels` when given (a value outside
 /// them is an error naming its line and column; `what` names the column in it), else the
 /// levels found in natural order.
-fn level_order(
+fn level_order<'c>(
     raw: &Raw,
     nd: &Needed,
     levels: Option<&[String]>,
-    kept: &[(usize, &str)],
+    kept: impl Iterator<Item = (usize, &'c str)> + Clone,
     what: &str,
 ) -> Result<(Vec<String>, Vec<String>)> {
     let mut found: Vec<String> = Vec::new();
-    for (_, v) in kept {
+    for (_, v) in kept.clone() {
         if !found.iter().any(|f| f == v) {
             found.push(v.to_string());
         }
     }
     let order = match levels {
         Some(ls) => {
-            if let Some((l, v)) = kept.iter().find(|(_, v)| !ls.iter().any(|x| x == v)) {
+            if let Some((l, v)) = kept.clone().find(|(_, v)| !ls.iter().any(|x| x == v)) {
                 let mut h = format!("the levels declared in [variables] are: {}", ls.join(", "));
                 if let Some(s) = did_you_mean(v, ls.iter().map(String::as_str)) {
                     h = format!("did you mean '{s}'? {h}");
                 }
                 return Err(Error::input(
                     Diagnostic::new(format!("'{v}' is not a level of {what}"))
-                        .at(raw.field_location(*l, nd.index))
+                        .at(raw.field_location(l, nd.index))
                         .help(h),
                 ));
             }
