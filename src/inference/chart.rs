@@ -171,20 +171,25 @@ impl<'a> Chart<'a> {
     /// One pass over the rows at θ: `visit(i, s_i)` gets each row's score (weighted by the
     /// row's case weight, so the scores sum to the score of the weighted
     /// log-likelihood). Returns that log-likelihood.
-    pub fn scores(
+    pub fn scores(&self, theta: &[f64], data: &FitData, visit: impl FnMut(usize, &[f64])) -> Result<f64, Degeneracy> {
+        self.row_scores(&self.model(theta)?, theta, data, visit)
+    }
+
+    /// [`Chart::scores`] of `model`, the model at θ.
+    fn row_scores(
         &self,
+        model: &Model,
         theta: &[f64],
         data: &FitData,
         mut visit: impl FnMut(usize, &[f64]),
     ) -> Result<f64, Degeneracy> {
-        let model = self.model(theta)?;
         let g = model.clusters();
         let mut tau = vec![0.0; data.n * g];
-        let loglik = e_step(&model, data, &mut tau, None);
+        let loglik = e_step(model, data, &mut tau, None);
         if !loglik.is_finite() {
             return Err(not_finite());
         }
-        let gauss = self.gaussian_terms(&model, theta);
+        let gauss = self.gaussian_terms(model, theta);
         let mut s = vec![0.0; self.len];
         let mut log_pi = vec![0.0; g];
         let fixed_pi: Option<Vec<f64>> = match &model.gating {
@@ -306,7 +311,7 @@ impl<'a> Chart<'a> {
             return self.total_score_from_sums(&model, gc, theta, data);
         }
         let mut total = vec![0.0; self.len];
-        self.scores(theta, data, |_, s| add(&mut total, s))?;
+        self.row_scores(&model, theta, data, |_, s| add(&mut total, s))?;
         Ok(total)
     }
 
