@@ -652,14 +652,7 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
             item_pos += 1;
             continue;
         }
-        // The kept rows' (line, cell), walked again as often as needed rather than
-        // collected (24 bytes a row).
-        let kept = lines
-            .iter()
-            .zip(cells[k].iter())
-            .zip(&keep)
-            .filter(|(_, k)| **k)
-            .map(|((l, c), _)| (*l, c.unwrap_or("")));
+        let kept = kept_cells(&lines, &cells[k], &keep).map(|(l, c)| (l, c.unwrap_or("")));
         let parsed = parse_column(raw, study, nd, kept.clone(), rows_used)?;
         match nd.role {
             Role::Indicator(IndicatorKind::Gaussian) => {
@@ -908,6 +901,21 @@ fn list_preview(header: &[String]) -> String {
     }
 }
 
+/// The kept rows' (line, cell) of one column, walked again as often as needed rather than
+/// collected (24 bytes a row).
+fn kept_cells<'c>(
+    lines: &'c [usize],
+    cells: &'c Cells,
+    keep: &'c [bool],
+) -> impl Iterator<Item = (usize, Option<&'c str>)> + Clone + 'c {
+    lines
+        .iter()
+        .zip(cells.iter())
+        .zip(keep)
+        .filter(|(_, k)| **k)
+        .map(|((l, c), _)| (*l, c))
+}
+
 /// Parse a column over the kept rows' (line, cell) pairs `kept` (`rows` of them).
 fn parse_column<'c>(
     raw: &Raw,
@@ -1012,21 +1020,15 @@ fn parse_item(
     keep: &[bool],
 ) -> Result<(Vec<String>, Vec<u16>)> {
     let name = &nd.col.name;
-    let present: Vec<(usize, &str)> = lines
-        .iter()
-        .zip(cells.iter())
-        .zip(keep)
-        .filter(|(_, k)| **k)
-        .filter_map(|((l, c), _)| c.map(|v| (*l, v)))
-        .collect();
+    let present = kept_cells(lines, cells, keep).filter_map(|(l, c)| c.map(|v| (l, v)));
     let levels: Vec<String> = match &nd.kind {
         VariableType::Binary => {
-            for (line, v) in &present {
+            for (line, v) in present.clone() {
                 let ok = v.parse::<f64>().is_ok_and(|x| x == 0.0 || x == 1.0);
                 if !ok {
                     return Err(Error::input(
                         Diagnostic::new(format!("'{v}' in binary item '{name}' is not 0 or 1"))
-                            .at(raw.field_location(*line, nd.index))
+                            .at(raw.field_location(line, nd.index))
                             .help(format!("code '{name}' as 0/1, or declare it categorical")),
                     ));
                 }
@@ -1034,13 +1036,7 @@ fn parse_item(
             vec!["0".to_string(), "1".to_string()]
         }
         VariableType::Categorical { levels, reference } => {
-            let (mut order, _) = level_order(
-                raw,
-                nd,
-                levels.as_deref(),
-                present.iter().copied(),
-                &format!("item '{name}'"),
-            )?;
+            let (mut order, _) = level_order(raw, nd, levels.as_deref(), present.clone(), &format!("item '{name}'"))?;
             if let Some(r) = reference {
                 // The reference level is the logits' baseline: put it first.
                 if let Some(pos) = order.iter().position(|l| l == r) {
@@ -1062,7 +1058,7 @@ fn parse_item(
             ),
         )));
     }
-    let seen: std::collections::BTreeSet<&str> = present.iter().map(|(_, v)| *v).collect();
+    let seen: std::collections::BTreeSet<&str> = present.map(|(_, v)| v).collect();
     if seen.len() < 2 {
         return Err(Error::input(
             study
@@ -1076,12 +1072,8 @@ fn parse_item(
                 .help("leave it out of [indicators].columns"),
         ));
     }
-    let codes = lines
-        .iter()
-        .zip(cells.iter())
-        .zip(keep)
-        .filter(|(_, k)| **k)
-        .map(|((_, c), _)| match c {
+    let codes = kept_cells(lines, cells, keep)
+        .map(|(_, c)| match c {
             None => MISSING_ITEM,
             Some(v) => match &nd.kind {
                 VariableType::Binary => u16::from(v.parse::<f64>().is_ok_and(|x| x == 1.0)),
