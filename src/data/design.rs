@@ -3,6 +3,7 @@
 use super::{Column, Dataset};
 use crate::spec::VariableType;
 use nalgebra::DMatrix;
+use std::sync::Arc;
 
 /// One column of a design matrix.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -31,8 +32,9 @@ pub struct DesignError {
 pub struct Design {
     /// Columns, intercept first.
     pub terms: Vec<Term>,
-    /// Values, row-major: `x[i * p + j]`.
-    pub x: Vec<f64>,
+    /// Values, row-major: `x[i * p + j]`. Shared, so that a placement whose Gaussian
+    /// design is its whole component design holds the values once.
+    pub x: Arc<Vec<f64>>,
     /// Rows.
     pub n: usize,
 }
@@ -47,7 +49,7 @@ impl Design {
     pub fn intercept(n: usize) -> Design {
         Design {
             terms: vec![intercept_term()],
-            x: vec![1.0; n],
+            x: Arc::new(vec![1.0; n]),
             n,
         }
     }
@@ -118,7 +120,7 @@ impl Design {
         }
         Ok(Design {
             terms: terms.to_vec(),
-            x,
+            x: Arc::new(x),
             n,
         })
     }
@@ -178,7 +180,11 @@ impl Design {
                 x[i * p + j + 1] = c[i];
             }
         }
-        let design = Design { terms, x, n };
+        let design = Design {
+            terms,
+            x: Arc::new(x),
+            n,
+        };
         design.check_rank()?;
         Ok(design)
     }

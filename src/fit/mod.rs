@@ -113,17 +113,35 @@ pub fn prepare_placement(study: &Study, data: &Dataset, p: &Placement) -> Result
     };
     let components = design(&p.components.iter().collect::<Vec<_>>())?;
     let gaussian = match data.gaussian_names.first() {
-        Some(first) => design(
-            &p.components
-                .iter()
-                .filter(|c| p.acts_on(&c.name, first))
-                .collect::<Vec<_>>(),
-        )?,
+        Some(first) => {
+            let acting: Vec<_> = p.components.iter().filter(|c| p.acts_on(&c.name, first)).collect();
+            if acting.len() == p.components.len() {
+                // The same columns: share the values (at 10^7 rows an intercept alone is
+                // 80 MB).
+                components.clone()
+            } else {
+                design(&acting)?
+            }
+        }
         None => Design::intercept(data.n()),
     };
-    let covariates = design(&p.gating.iter().collect::<Vec<_>>())?;
+    // An intercept-only gating design shares the component design's values when that is
+    // an intercept alone too.
+    let intercept = || {
+        if components.p() == 1 {
+            components.clone()
+        } else {
+            Design::intercept(data.n())
+        }
+    };
+    let covariates = if p.gating.is_empty() {
+        intercept()
+    } else {
+        design(&p.gating.iter().collect::<Vec<_>>())?
+    };
     if p.method.is_three_step() {
-        let mut pp = assemble(data, p, Design::intercept(data.n()), components, gaussian);
+        let gating = intercept();
+        let mut pp = assemble(data, p, gating, components, gaussian);
         pp.step_three = Some(covariates);
         return Ok(pp);
     }

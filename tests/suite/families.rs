@@ -96,7 +96,7 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
             z: &design.x,
             qz: design.p(),
             terms: &terms,
-            x: &[design.x.clone()],
+            x: &[design.x.to_vec()],
             exposure: Some(&service),
             log_exposure: Some(&log_service),
         }),
