@@ -727,7 +727,7 @@ pub fn fit_grid(
     study: &Study,
     data: &Dataset,
     prepared: &[PreparedPlacement],
-    mut progress: impl FnMut(usize, usize, &FitResult),
+    mut progress: impl FnMut(usize, usize, &FitResult) + Send,
 ) -> Vec<FitResult> {
     fit_grid_cached(study, data, prepared, None, false, |done, total, r, _| {
         progress(done, total, r)
@@ -735,8 +735,8 @@ pub fn fit_grid(
     .0
 }
 
-/// How the cache served a run.
-#[derive(Debug, Clone, Default, PartialEq)]
+/// How the fit cache was used by [`fit_grid_cached`].
+#[derive(Debug, Clone, Default)]
 pub struct CacheUse {
     /// Fits taken from the cache.
     pub reused: usize,
@@ -748,30 +748,49 @@ pub struct CacheUse {
     pub not_stored: Vec<String>,
 }
 
+/// Whether the cells of a grid are fitted in parallel, besides their starts: when a
+/// pass over the rows is a single task, rows cannot share the threads, and a cell's
+/// last starts would leave threads idle until the next cell begins. Results do not
+/// depend on it (each start has its own stream); with more rows, cells run one after
+/// the other so that only the running starts hold responsibilities.
+pub fn cells_in_parallel(n: usize) -> bool {
+    n <= crate::model::rows::TASK_ROWS
+}
+
+/// One cell of [`fit_grid_cached`]: its result, whether it came from the cache, a refused
+/// entry's reason, and why it could not be stored.
+struct CellOutcome {
+    result: FitResult,
+    reused: bool,
+    refused: Option<String>,
+    not_stored: Option<String>,
+}
+
 /// [`fit_grid`] with a fit cache in `folder` (None: no cache). Each fit is looked up
 /// first (unless `read` is false: refit everything) and stored as soon as it is done, so
 /// a killed run resumes where it stopped. `progress` gets (done, total, result, whether
-/// it came from the cache).
+/// it came from the cache) as each cell finishes; with few rows cells run in parallel
+/// ([`cells_in_parallel`]) and finish in any order, but the results are in grid order.
 pub fn fit_grid_cached(
     study: &Study,
     data: &Dataset,
     prepared: &[PreparedPlacement],
     folder: Option<&std::path::Path>,
     read: bool,
-    mut progress: impl FnMut(usize, usize, &FitResult, bool),
+    progress: impl FnMut(usize, usize, &FitResult, bool) + Send,
 ) -> (Vec<FitResult>, CacheUse) {
     let cells = grid(study);
     let total = cells.len();
-    let mut out = Vec::with_capacity(total);
-    let mut usage = CacheUse::default();
-    for (done, cell) in cells.iter().enumerate() {
+    let progress = std::sync::Mutex::new((0, progress));
+    let one = |cell: &Cell| {
         let pp = &prepared[cell.placement];
         let key = folder.map(|_| cache::fit_key(study, data, pp, cell.clusters, cell.structure));
+        let mut refused = None;
         let found = match (folder.filter(|_| read), &key) {
             (Some(dir), Some(k)) => match cache::load(dir, k, study, data, pp, *cell) {
                 cache::Lookup::Found(r) => Some(*r),
                 cache::Lookup::Corrupt(why) => {
-                    usage.refused.push(why);
+                    refused = Some(why);
                     None
                 }
                 cache::Lookup::Missing => None,
@@ -779,22 +798,43 @@ pub fn fit_grid_cached(
             _ => None,
         };
         let reused = found.is_some();
-        let r = found.unwrap_or_else(|| {
+        let mut not_stored = None;
+        let result = found.unwrap_or_else(|| {
             let r = fit_cell(study, data, pp, cell.placement, cell.clusters, cell.structure);
             if let (Some(dir), Some(k)) = (folder, &key) {
                 if let Err(e) = cache::store(dir, k, &r) {
-                    usage.not_stored.push(format!("{}: {e}", dir.display()));
+                    not_stored = Some(format!("{}: {e}", dir.display()));
                 }
             }
             r
         });
-        if reused {
+        let mut guard = progress.lock().expect("no progress report panics");
+        let (done, report) = &mut *guard;
+        *done += 1;
+        report(*done, total, &result, reused);
+        CellOutcome {
+            result,
+            reused,
+            refused,
+            not_stored,
+        }
+    };
+    let outcomes: Vec<CellOutcome> = if cells_in_parallel(data.n()) {
+        cells.par_iter().map(one).collect()
+    } else {
+        cells.iter().map(one).collect()
+    };
+    let mut usage = CacheUse::default();
+    let mut out = Vec::with_capacity(total);
+    for o in outcomes {
+        if o.reused {
             usage.reused += 1;
         } else {
             usage.fitted += 1;
         }
-        progress(done + 1, total, &r, reused);
-        out.push(r);
+        usage.refused.extend(o.refused);
+        usage.not_stored.extend(o.not_stored);
+        out.push(o.result);
     }
     (out, usage)
 }
