@@ -152,7 +152,6 @@ struct Scratch {
     y: Vec<f64>,
     z: Vec<f64>,
     w: Vec<f64>,
-    c: Vec<f64>,
     /// Residuals, `res[(k * d + j) * TILE + i]`.
     res: Vec<f64>,
     /// Log joint per cluster, then responsibilities.
@@ -205,7 +204,6 @@ impl Scratch {
             y: v(d),
             z: v(q),
             w: v(p),
-            c: v(1),
             res: v(g * d),
             lp: v(g),
             eta: v(g),
@@ -869,7 +867,7 @@ fn add_log_normal_any(d: usize, l: &[f64], res: &[f64], base: f64, lp: &mut [f64
 fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc: &mut Scratch, part: &mut Partial) {
     let (g, r) = (pass.g, &pass.rows);
     let end = start + m;
-    sc.c[..m].copy_from_slice(&r.weights[start..end]);
+    let c = &r.weights[start..end];
     for k in 0..g {
         let lp = &mut sc.lp[k * TILE..k * TILE + m];
         if !pass.has_base {
@@ -956,12 +954,12 @@ fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc:
             *a -= b;
         }
     }
-    part.loglik += dot(&sc.c[..m], &sc.lse);
+    part.loglik += dot(c, &sc.lse);
     if let Some(tau) = tau {
         untranspose(&sc.lp, g, tau);
     }
     if let Some(st) = part.gating.as_mut() {
-        dots_into(&sc.c[..m], &sc.lp, g, &mut st.cluster_weight);
+        dots_into(c, &sc.lp, g, &mut st.cluster_weight);
         if logit {
             let p = r.p;
             if pass.gating_hessian {
@@ -973,7 +971,7 @@ fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc:
                 g,
                 p,
                 m,
-                &sc.c,
+                c,
                 &sc.lp,
                 &sc.eta,
                 None,
@@ -985,7 +983,7 @@ fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc:
         }
     }
     if let (Some(st), true) = (part.gaussian.as_mut(), pass.want_gaussian) {
-        add_gaussian(st, g, m, &sc.c, &sc.z, &sc.res, &sc.lp, &mut sc.v, &mut sc.vz);
+        add_gaussian(st, g, m, c, &sc.z, &sc.res, &sc.lp, &mut sc.v, &mut sc.vz);
     }
 }
 
@@ -1196,12 +1194,12 @@ fn gaussian_stats_task_body(rows: &FitData, g: usize, at: &[f64], start: usize, 
     for (t, tile) in tau.chunks(TILE * g).enumerate() {
         let s = start + t * TILE;
         let m = tile.len() / g;
-        sc.c[..m].copy_from_slice(&rows.weights[s..s + m]);
+        let c = &rows.weights[s..s + m];
         transpose(&rows.y[s * d..(s + m) * d], d, &mut sc.y);
         transpose(&rows.z[s * q..(s + m) * q], q, &mut sc.z);
         transpose(tile, g, &mut t_cols);
         residuals(at, g, q, d, m, &mut sc);
-        add_gaussian(&mut st, g, m, &sc.c, &sc.z, &sc.res, &t_cols, &mut sc.v, &mut sc.vz);
+        add_gaussian(&mut st, g, m, c, &sc.z, &sc.res, &t_cols, &mut sc.v, &mut sc.vz);
     }
     sc.give_back();
     Partial {
@@ -1282,7 +1280,7 @@ fn logit_task_body(input: &LogitInput, tau: &[f64], start: usize) -> Partial {
     for (t, tile) in tau.chunks(TILE * g).enumerate() {
         let s = start + t * TILE;
         let m = tile.len() / g;
-        sc.c[..m].copy_from_slice(&weights[s..s + m]);
+        let c = &weights[s..s + m];
         transpose(&w[s * p..(s + m) * p], p, &mut sc.w);
         transpose(tile, g, &mut t_cols);
         sc.eta[..m].fill(0.0);
@@ -1314,7 +1312,7 @@ fn logit_task_body(input: &LogitInput, tau: &[f64], start: usize) -> Partial {
         for ((l, s), e) in lin.iter_mut().zip(row_tau.iter()).zip(&sc.lse_eta[..m]) {
             *l -= s * e;
         }
-        part.loglik += dot(&sc.c[..m], lin);
+        part.loglik += dot(c, lin);
         if let Some(st) = part.gating.as_mut() {
             gating_products(&sc.w, p, m, &mut sc.ww);
             add_gating(
@@ -1323,7 +1321,7 @@ fn logit_task_body(input: &LogitInput, tau: &[f64], start: usize) -> Partial {
                 g,
                 p,
                 m,
-                &sc.c,
+                c,
                 &t_cols,
                 &sc.eta,
                 Some(&sc.s[..m]),
