@@ -1443,4 +1443,22 @@ mod tests {
         assert!((dot(&a, &b) - plain).abs() < 1e-13);
         assert!((total(&a) - a.iter().sum::<f64>()).abs() < 1e-13);
     }
+
+    #[test]
+    fn dots_into_adds_each_run_exactly_as_dot() {
+        // Full tiles and a short one (lanes and a tail), odd and even run counts.
+        for m in [TILE, 77, 5] {
+            for count in 1..=5 {
+                let x: Vec<f64> = (0..m).map(|i| (i as f64 * 0.37).sin() * 1e3).collect();
+                let buf: Vec<f64> = (0..count * TILE).map(|i| (i as f64 * 0.11).cos() / 7.0).collect();
+                let start: Vec<f64> = (0..count).map(|b| b as f64 * 0.5).collect();
+                let mut out = start.clone();
+                dots_into(&x, &buf, count, &mut out);
+                for b in 0..count {
+                    let one = start[b] + dot(&x, &buf[b * TILE..]);
+                    assert_eq!(out[b].to_bits(), one.to_bits(), "m = {m}, count = {count}, run {b}");
+                }
+            }
+        }
+    }
 }
