@@ -735,8 +735,8 @@ pub fn fit_grid(
     .0
 }
 
-/// How the fit cache was used by [`fit_grid_cached`].
-#[derive(Debug, Clone, Default)]
+/// How the cache served a run.
+#[derive(Debug, Clone, Default, PartialEq)]
 pub struct CacheUse {
     /// Fits taken from the cache.
     pub reused: usize,
