@@ -112,35 +112,22 @@ pub fn prepare_placement(study: &Study, data: &Dataset, p: &Placement) -> Result
         })
     };
     let components = design(&p.components.iter().collect::<Vec<_>>())?;
-    let gaussian = match data.gaussian_names.first() {
-        Some(first) => {
-            let acting: Vec<_> = p.components.iter().filter(|c| p.acts_on(&c.name, first)).collect();
-            if acting.len() == p.components.len() {
-                // The same columns: share the values (at 10^7 rows an intercept alone is
-                // 80 MB).
-                components.clone()
-            } else {
-                design(&acting)?
-            }
-        }
-        None => Design::intercept(data.n()),
-    };
-    // An intercept-only gating design shares the component design's values when that is
-    // an intercept alone too.
-    let intercept = || {
-        if components.p() == 1 {
-            components.clone()
+    // A design on the component design's covariates shares its values rather than
+    // holding a copy (at 10^7 rows an intercept column alone is 80 MB).
+    let design_on = |cols: Vec<&crate::spec::ColumnRef>| -> Result<Design> {
+        if cols.iter().map(|c| &c.name).eq(p.components.iter().map(|c| &c.name)) {
+            Ok(components.clone())
         } else {
-            Design::intercept(data.n())
+            design(&cols)
         }
     };
-    let covariates = if p.gating.is_empty() {
-        intercept()
-    } else {
-        design(&p.gating.iter().collect::<Vec<_>>())?
+    let gaussian = match data.gaussian_names.first() {
+        Some(first) => design_on(p.components.iter().filter(|c| p.acts_on(&c.name, first)).collect())?,
+        None => design_on(Vec::new())?,
     };
+    let covariates = design_on(p.gating.iter().collect())?;
     if p.method.is_three_step() {
-        let gating = intercept();
+        let gating = design_on(Vec::new())?;
         let mut pp = assemble(data, p, gating, components, gaussian);
         pp.step_three = Some(covariates);
         return Ok(pp);
