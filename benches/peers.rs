@@ -96,6 +96,8 @@ fn em_run(folder: &Path, covariance: &str, n_threads: usize, iterations: usize) 
     let settings = EmSettings {
         max_iterations: iterations,
         tolerance: em::NEVER_STOP_EARLY,
+        // Plain EM steps: the benchmark times one step against the peers' step.
+        accelerate: false,
     };
     // On a thread of the pool, as the CLI runs a start: a pass over rows then splits
     // into tasks without waking the pool from outside at every iteration.

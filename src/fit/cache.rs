@@ -62,6 +62,10 @@ pub fn fit_key(
         "search starts {} iterations {} tolerance {:?} ridge {:?} prior {} floor {:?} seed {}",
         q.starts, q.max_iterations, q.tolerance, q.gating_ridge, q.covariance_prior, q.variance_floor, study.seed
     );
+    if q.accelerate {
+        // Keys of fits made without extrapolation, before it was offered, stay the same.
+        let _ = writeln!(s, "extrapolated steps");
+    }
     if q.two_stages() {
         // Only then do they change a fit, so that specs without them keep their keys.
         let _ = writeln!(s, "two stages warmup {} finish {}", q.warmup_iterations, q.finish_best);

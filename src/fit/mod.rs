@@ -489,6 +489,7 @@ pub fn fit_cell_with(
     let settings = EmSettings {
         max_iterations: study.search.max_iterations,
         tolerance: study.search.tolerance,
+        accelerate: study.search.accelerate,
     };
     let options = ModelOptions::for_study(study, structure);
     let mut template = initial_model(&fd, &prepared.placement, g, options);

@@ -363,6 +363,7 @@ pub fn settings_for(study: &crate::spec::Study) -> InferenceSettings {
         em: EmSettings {
             max_iterations: study.search.max_iterations,
             tolerance: study.search.tolerance,
+            accelerate: study.search.accelerate,
         },
     }
 }

@@ -80,6 +80,7 @@ pub fn screen(
     let settings = EmSettings {
         max_iterations: study.search.max_iterations,
         tolerance: study.search.tolerance,
+        accelerate: study.search.accelerate,
     };
     let covariates: Vec<String> = study.all_covariates().iter().map(|c| c.name.clone()).collect();
     let mut out = Vec::new();

@@ -151,6 +151,36 @@ impl Gating {
         }
     }
 
+    /// The parameters as coordinates for extrapolating EM steps: the logit coefficients,
+    /// or the log shares (renormalised when set back); none without parameters.
+    pub fn push_coordinates(&self, out: &mut Vec<f64>) {
+        match self {
+            Gating::Logit { gamma, .. } => out.extend_from_slice(gamma),
+            Gating::Free { log_pi } => out.extend_from_slice(log_pi),
+            Gating::Equal { .. } | Gating::Fixed { .. } => {}
+        }
+    }
+
+    /// Set the parameters from coordinates laid out as [`Gating::push_coordinates`] writes
+    /// them; returns how many it read.
+    pub fn set_coordinates(&mut self, c: &[f64]) -> usize {
+        match self {
+            Gating::Logit { gamma, .. } => {
+                let len = gamma.len();
+                gamma.copy_from_slice(&c[..len]);
+                len
+            }
+            Gating::Free { log_pi } => {
+                let lse = log_sum_exp(&c[..log_pi.len()]);
+                for (l, v) in log_pi.iter_mut().zip(c) {
+                    *l = v - lse;
+                }
+                log_pi.len()
+            }
+            Gating::Equal { .. } | Gating::Fixed { .. } => 0,
+        }
+    }
+
     /// Relabel clusters: new cluster k is old cluster `order[k]`. For the logit the new
     /// cluster 1 becomes the reference (its coefficients are subtracted from all).
     pub fn permute(&mut self, order: &[usize]) {

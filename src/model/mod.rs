@@ -183,6 +183,25 @@ impl Model {
         c.gaussian.is_some() && c.items.is_none() && c.counts.is_none() && gating
     }
 
+    /// The parameters as one vector of coordinates in which EM steps can be extrapolated:
+    /// gating first, then the component blocks ([`ComponentFamily::push_coordinates`]).
+    pub fn coordinates(&self) -> Vec<f64> {
+        let mut out = Vec::new();
+        self.gating.push_coordinates(&mut out);
+        self.components.push_coordinates(&mut out);
+        out
+    }
+
+    /// This model with its parameters set from `c`, laid out as [`Model::coordinates`]
+    /// gives them. Fails when they make a cluster degenerate.
+    pub fn with_coordinates(&self, c: &[f64]) -> Result<Model, Degeneracy> {
+        let mut m = self.clone();
+        let read = m.gating.set_coordinates(c);
+        let read = read + m.components.set_coordinates(&c[read..])?;
+        debug_assert_eq!(read, c.len());
+        Ok(m)
+    }
+
     /// Relabel clusters: new cluster k is old cluster `order[k]`.
     pub fn permute(&mut self, order: &[usize]) {
         self.gating.permute(order);

@@ -87,7 +87,7 @@ pub fn checklist(results: &Results, c: &Comparison) -> Vec<(String, String)> {
         ("Covariates and their placement".into(), placements.join("; ")),
         ("Cluster counts fitted (including 1)".into(), counts.iter().map(usize::to_string).collect::<Vec<_>>().join(", ")),
         ("Covariance structures".into(), s.covariance_structures.join("; ")),
-        ("Estimation".into(), format!("EM, {} starts per fit (random partitions and k-means++-type seeding), up to {} iterations, relative tolerance {:e}, seed {}{}", s.starts, s.max_iterations, s.tolerance, s.seed, two_stages(s))),
+        ("Estimation".into(), format!("EM{}, {} starts per fit (random partitions and k-means++-type seeding), up to {} iterations, relative tolerance {:e}, seed {}{}", if s.accelerate { " with squared extrapolation of its steps (Varadhan & Roland 2008)" } else { "" }, s.starts, s.max_iterations, s.tolerance, s.seed, two_stages(s))),
         ("Regularisation".into(), format!("gating ridge {}; covariance prior {}; variance floor {}; item smoothing {}", s.gating_ridge, if s.covariance_prior { "on" } else { "off" }, s.variance_floor, s.item_smoothing)),
         ("Model choice".into(), match c.fixed_clusters { Some(g) => format!("cluster count fixed at {g} by the spec; lowest BIC among structures"), None => "lowest BIC per placement; AIC, ICL and BIC weights reported".into() }),
         ("Chosen models and cluster sizes".into(), sizes.join("; ")),

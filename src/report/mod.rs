@@ -88,6 +88,8 @@ pub struct StudySummary {
     pub warmup_iterations: usize,
     /// How many of those run on to the end (at least `starts`: every start runs to its end).
     pub finish_best: usize,
+    /// Whether EM steps were extrapolated (squared extrapolation).
+    pub accelerate: bool,
     /// Ridge penalty on gating slopes.
     pub gating_ridge: f64,
     /// Covariance structures fitted, in words.
@@ -389,6 +391,7 @@ pub fn results(
             max_iterations: study.search.max_iterations,
             tolerance: study.search.tolerance,
             warmup_iterations: study.search.warmup_iterations,
+            accelerate: study.search.accelerate,
             finish_best: study.search.finish_best,
             gating_ridge: study.search.gating_ridge,
             covariance_structures: study

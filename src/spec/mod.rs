@@ -233,6 +233,9 @@ pub struct Search {
     /// run on to convergence; the others are set aside. Equal to `starts` (the default),
     /// every start runs to its end.
     pub finish_best: usize,
+    /// Whether every two EM steps are extrapolated (squared extrapolation, Varadhan &
+    /// Roland 2008; see [`crate::fit::em::run`]). On by default.
+    pub accelerate: bool,
     /// Ridge penalty on the gating slopes (not the intercepts); 0 = none.
     pub gating_ridge: f64,
     /// Covariance structures to fit (gaussian), in the order listed.
@@ -717,6 +720,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                 tolerance: DEFAULT_TOLERANCE,
                 warmup_iterations: DEFAULT_WARMUP_ITERATIONS,
                 finish_best: DEFAULT_STARTS,
+                accelerate: true,
                 gating_ridge: 0.0,
                 structures: vec![CovarianceStructure::UNCONSTRAINED],
                 covariance_prior: false,
@@ -1050,6 +1054,7 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
         Some(cov) => covariance_structures(ctx, cov, d)?,
     };
     let covariance_prior = s.covariance_prior.as_ref().is_some_and(|v| *v.get_ref());
+    let accelerate = s.accelerate.as_ref().is_none_or(|v| *v.get_ref());
     let variance_floor = match &s.variance_floor {
         None => 0.0,
         Some(v) => {
@@ -1074,6 +1079,7 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
             tolerance,
             warmup_iterations,
             finish_best,
+            accelerate,
             gating_ridge,
             structures,
             covariance_prior,

@@ -170,6 +170,8 @@ pub struct RawSearch {
     pub warmup_iterations: Option<Spanned<i64>>,
     /// Starts, the best after the warm-up, that run on to convergence.
     pub finish_best: Option<Spanned<i64>>,
+    /// Whether EM steps are extrapolated.
+    pub accelerate: Option<Spanned<bool>>,
     /// Ridge penalty on the gating slopes.
     pub gating_ridge: Option<Spanned<f64>>,
     /// Covariance structures (gaussian only).

@@ -90,3 +90,35 @@ pub fn plain_options(structure: cohortmix::model::family::CovarianceStructure) -
         smoothing: 0.0,
     }
 }
+
+/// Fisher's iris measurements as shipped with the reference values
+/// (`tests/reference/iris.csv`): sepal length and width, petal length and width, n×4
+/// row-major, and n.
+pub fn iris_measurements() -> (Vec<f64>, usize) {
+    let (header, cols) = read_csv(&root("tests/reference/iris.csv"));
+    let names = ["sepal_length", "sepal_width", "petal_length", "petal_width"];
+    let n = cols[0].len();
+    let mut y = Vec::with_capacity(n * names.len());
+    for i in 0..n {
+        for name in names {
+            y.push(col(&header, &cols, name)[i].parse::<f64>().unwrap());
+        }
+    }
+    (y, n)
+}
+
+/// The arrays of a mixture without covariates on `y` (n×d, row-major): every case weight,
+/// design and gating column is `ones` (length n).
+pub fn unadjusted_data<'a>(y: &'a [f64], d: usize, ones: &'a [f64]) -> cohortmix::model::FitData<'a> {
+    cohortmix::model::FitData {
+        n: ones.len(),
+        weights: ones,
+        y,
+        d,
+        z: ones,
+        q: 1,
+        w: ones,
+        p: 1,
+        ..Default::default()
+    }
+}

@@ -283,6 +283,7 @@ fn best_latent_class_loglik(codes: &[u16], counts: &[f64], j: usize, g: usize) -
             EmSettings {
                 max_iterations: 20_000,
                 tolerance: 1e-14,
+                accelerate: true,
             },
         );
         if run.termination.usable() && run.loglik > best.0 {
@@ -402,6 +403,7 @@ fn missing_items_are_skipped_in_the_likelihood() {
         EmSettings {
             max_iterations: 5000,
             tolerance: 1e-12,
+            accelerate: true,
         },
     );
     assert!(run.termination.usable());

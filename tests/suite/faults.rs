@@ -39,6 +39,7 @@ fn run_on(y: &[f64], d: usize, g: usize, seed: u64) -> Termination {
         EmSettings {
             max_iterations: 200,
             tolerance: 1e-10,
+            accelerate: true,
         },
     );
     if run.termination.usable() {

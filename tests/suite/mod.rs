@@ -1,5 +1,6 @@
 //! Integration tests, by layer.
 
+pub mod acceleration;
 pub mod bad_inputs;
 pub mod cli;
 pub mod common;

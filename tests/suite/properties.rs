@@ -54,14 +54,14 @@ proptest! {
     #![proptest_config(ProptestConfig { cases: 160, .. ProptestConfig::default() })]
 
     /// The EM objective never falls by more than 1e-9·|loglik| between iterations, for
-    /// every covariance structure, with and without gating and component covariates and
-    /// the covariance prior; plus, for a gating network, the rounding of the
+    /// every covariance structure, with and without gating and component covariates, the
+    /// covariance prior and extrapolated steps; plus, for a gating network, the rounding of the
     /// log-likelihood (see [`loglik_rounding`]: seed 5374 separates, reaches |γ| ≈ 1e11
     /// and falls by 2e-5 at iterations where the bound step is taken).
     #[test]
     fn em_never_lowers_the_loglik(seed in 0u64..10_000, n in 30usize..160, d in 1usize..4, g in 1usize..5,
                                   with_w: bool, with_z: bool, random_start: bool, structure in 0usize..14,
-                                  prior: bool) {
+                                  prior: bool, accelerate: bool) {
         let (y, w, z, weights) = problem(seed, n, d, g, with_w, with_z);
         let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p() , ..Default::default()};
         let structure = CovarianceStructure::all()[structure];
@@ -71,7 +71,7 @@ proptest! {
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");
         let tau = partition(kind, &y, d, &weights, g, &mut rng);
-        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 300, tolerance: 1e-13 });
+        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 300, tolerance: 1e-13, accelerate });
         let rounding = loglik_rounding(&run.model.gating, &w.x, n);
         for pair in run.trace.windows(2) {
             prop_assert!(pair[1] >= pair[0] - 1e-9 * pair[0].abs() - rounding, "fell from {} to {} ({:?})", pair[0], pair[1], run.termination);
@@ -307,10 +307,11 @@ proptest! {
 
     /// EM never lowers the objective for the items, counts and mixed families, with and
     /// without covariates in the gating network and the components, with and without item
-    /// smoothing, from random and seeded starts.
+    /// smoothing and extrapolated steps, from random and seeded starts.
     #[test]
     fn em_never_lowers_the_loglik_for_items_counts_and_mixed(seed in 0u64..10_000, n in 40usize..150, family in 0usize..3, g in 1usize..4,
-                                                             with_w: bool, with_z: bool, random_start: bool, smoothing in prop_oneof![Just(0.0), Just(1.0)]) {
+                                                             with_w: bool, with_z: bool, random_start: bool, smoothing in prop_oneof![Just(0.0), Just(1.0)],
+                                                             accelerate: bool) {
         let pb = block_problem(seed, n, family, g, with_w, with_z);
         let fd = pb.data();
         let options = ModelOptions { structure: CovarianceStructure::UNCONSTRAINED, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing };
@@ -318,7 +319,7 @@ proptest! {
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");
         let tau = partition(kind, &pb.seeding, pb.seeding_d, &pb.weights, g, &mut rng);
-        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-13 });
+        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-13, accelerate });
         for pair in run.trace.windows(2) {
             prop_assert!(pair[1] >= pair[0] - 1e-9 * pair[0].abs(), "fell from {} to {} ({:?})", pair[0], pair[1], run.termination);
         }
@@ -428,6 +429,21 @@ fn loglik_rounding(gating: &Gating, w: &[f64], n: usize) -> f64 {
     8.0 * f64::EPSILON * n as f64 * largest_eta
 }
 
+/// A model set from its own extrapolation coordinates ([`cohortmix::model::Model::coordinates`])
+/// has the same log-likelihood, to 1e-12 relative.
+fn check_coordinates_give_back_the_model(model: &cohortmix::model::Model, fd: &FitData) -> Result<(), TestCaseError> {
+    let again = model
+        .with_coordinates(&model.coordinates())
+        .expect("a model's own coordinates are a model");
+    let mut scratch = vec![0.0; fd.n * model.clusters()];
+    let (a, b) = (
+        e_step(model, fd, &mut scratch, None),
+        e_step(&again, fd, &mut scratch, None),
+    );
+    prop_assert!((a - b).abs() <= 1e-12 * a.abs(), "{} against {}", a, b);
+    Ok(())
+}
+
 /// Compares a chart's analytic score at a random point near the fit with central
 /// differences of the log-likelihood the same pass returns (allowing for the rounding of
 /// the log-likelihood, see [`loglik_rounding`]).
@@ -490,7 +506,8 @@ proptest! {
 
     /// The inference chart's score is the gradient of the observed-data log-likelihood for
     /// every covariance structure, with gating and component covariates; the chart has as
-    /// many coordinates as the model has free parameters.
+    /// many coordinates as the model has free parameters. And the model set from its own
+    /// extrapolation coordinates is the same model.
     #[test]
     fn chart_score_is_the_loglik_gradient_for_every_structure(seed in 0u64..10_000, d in 1usize..4, g in 1usize..4,
                                                             with_w: bool, with_z: bool, structure in 0usize..14) {
@@ -503,12 +520,14 @@ proptest! {
         let model = initial_model(&fd, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else { StartKind::SeededCentres };
         let tau = partition(kind, &y, d, &weights, g, &mut Stream::new(seed, "start"));
-        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10 });
+        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10, accelerate: true });
         prop_assume!(run.termination.usable());
         check_chart_score(&run.model, &fd, seed)?;
+        check_coordinates_give_back_the_model(&run.model, &fd)?;
     }
 
-    /// The same for the items, counts and mixed families, with direct effects.
+    /// The same for the items, counts and mixed families, with direct effects (and their
+    /// extrapolation coordinates).
     #[test]
     fn chart_score_is_the_loglik_gradient_for_items_counts_and_mixed(seed in 0u64..10_000, family in 0usize..3, g in 1usize..4,
                                                                      with_w: bool, with_z: bool) {
@@ -518,8 +537,9 @@ proptest! {
         let model = initial_model(&fd, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else { StartKind::SeededCentres };
         let tau = partition(kind, &pb.seeding, pb.seeding_d, &pb.weights, g, &mut Stream::new(seed, "start"));
-        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10 });
+        let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10, accelerate: true });
         prop_assume!(run.termination.usable());
         check_chart_score(&run.model, &fd, seed)?;
+        check_coordinates_give_back_the_model(&run.model, &fd)?;
     }
 }

@@ -174,28 +174,10 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
 
     let reference = fixture("mixture_iris.json");
     let confirmed = fixture("mixture_iris_confirmed.json");
-    let (header, cols) = read_csv(&root("tests/reference/iris.csv"));
-    let names = ["sepal_length", "sepal_width", "petal_length", "petal_width"];
-    let n = cols[0].len();
+    let (y, n) = super::common::iris_measurements();
     let d = 4;
-    let mut y = Vec::with_capacity(n * d);
-    for i in 0..n {
-        for name in names {
-            y.push(col(&header, &cols, name)[i].parse::<f64>().unwrap());
-        }
-    }
     let ones = vec![1.0; n];
-    let data = FitData {
-        n,
-        weights: &ones,
-        y: &y,
-        d,
-        z: &ones,
-        q: 1,
-        w: &ones,
-        p: 1,
-        ..Default::default()
-    };
+    let data = super::common::unadjusted_data(&y, d, &ones);
     let floor = 1e-3 * reference["pooled_min_eigenvalue"].as_f64().unwrap();
     let min_rows = reference["exclusion_rule"]["min_rows"].as_f64().unwrap();
     let placement = super::common::free_placement();
@@ -233,6 +215,7 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
                 EmSettings {
                     max_iterations: 20_000,
                     tolerance: 1e-15,
+                    accelerate: true,
                 },
             );
             if !run.termination.usable() {

@@ -89,6 +89,7 @@ fn best_fit(y: &[f64], n: usize, options: ModelOptions, starts: usize) -> EmRun 
                 EmSettings {
                     max_iterations: 2000,
                     tolerance: 1e-10,
+                    accelerate: true,
                 },
             );
             run.termination.usable().then_some(run)

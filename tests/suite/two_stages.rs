@@ -133,7 +133,8 @@ fn finalists_follow_the_single_run_path_and_are_the_best_after_the_warm_up() {
     assert!(two_best.reaching <= two.finished_starts());
 
     // The cache tells the two searches apart, and a spec that says `finish_best = starts`
-    // keeps the key of one that does not mention it.
+    // keeps the key of one that does not mention it. Likewise extrapolated and plain EM
+    // steps, whose fits differ in their last digits.
     let key = |s: &spec::Study| {
         let data = data::load(s).unwrap();
         let prepared = fit::prepare(s, &data).unwrap();
@@ -142,4 +143,9 @@ fn finalists_follow_the_single_run_path_and_are_the_best_after_the_warm_up() {
     let all_named = study(dir.path(), "warmup_iterations = 8\nfinish_best = 10");
     assert_eq!(key(&every), key(&all_named));
     assert_ne!(key(&every), key(&staged));
+    assert!(every.search.accelerate, "extrapolation is on by default");
+    assert_eq!(key(&every), key(&study(dir.path(), "accelerate = true")));
+    let plain = study(dir.path(), "accelerate = false");
+    assert!(!plain.search.accelerate);
+    assert_ne!(key(&every), key(&plain));
 }

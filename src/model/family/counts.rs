@@ -159,6 +159,23 @@ impl ComponentFamily for CountComponents {
         }
     }
 
+    /// The log-rate coefficients as they are.
+    fn push_coordinates(&self, out: &mut Vec<f64>) {
+        for v in &self.coef {
+            out.extend_from_slice(v);
+        }
+    }
+
+    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
+        let mut read = 0;
+        for v in &mut self.coef {
+            let len = v.len();
+            v.copy_from_slice(&c[read..read + len]);
+            read += len;
+        }
+        Ok(read)
+    }
+
     fn parameters(&self, naming: Naming) -> Vec<Parameter> {
         let mut out = Vec::new();
         for k in 0..self.g {

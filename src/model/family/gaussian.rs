@@ -361,6 +361,45 @@ impl ComponentFamily for GaussianComponents {
         // Clusters sharing one orientation keep it under relabelling.
     }
 
+    /// Each coefficient, then each cluster's lower Cholesky factor (row by row, diagonal
+    /// included), divided by its indicator's overall standard deviation. Any factor gives
+    /// a covariance LL′ that is at least semi-definite.
+    fn push_coordinates(&self, out: &mut Vec<f64>) {
+        let (d, q) = (self.d, self.q);
+        let sd: Vec<f64> = self.y_var.iter().map(|v| v.sqrt().max(f64::MIN_POSITIVE)).collect();
+        for (i, b) in self.coef.iter().enumerate() {
+            out.push(b / sd[i % d]);
+        }
+        debug_assert_eq!(self.coef.len(), self.g * q * d);
+        for l in &self.chol {
+            for r in 0..d {
+                out.extend(l[r * d..r * d + r + 1].iter().map(|v| v / sd[r]));
+            }
+        }
+    }
+
+    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
+        let d = self.d;
+        let sd: Vec<f64> = self.y_var.iter().map(|v| v.sqrt().max(f64::MIN_POSITIVE)).collect();
+        let n_coef = self.coef.len();
+        for (i, (b, v)) in self.coef.iter_mut().zip(&c[..n_coef]).enumerate() {
+            *b = v * sd[i % d];
+        }
+        let mut read = n_coef;
+        for k in 0..self.g {
+            let mut l = DMatrix::zeros(d, d);
+            for r in 0..d {
+                for col in 0..=r {
+                    l[(r, col)] = c[read] * sd[r];
+                    read += 1;
+                }
+            }
+            let cov = &l * l.transpose();
+            self.set_covariance(k, cov)?;
+        }
+        Ok(read)
+    }
+
     fn parameters(&self, naming: Naming) -> Vec<Parameter> {
         let (d, q) = (self.d, self.q);
         let mut out = Vec::new();

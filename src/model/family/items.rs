@@ -249,6 +249,35 @@ impl ComponentFamily for ItemComponents {
         }
     }
 
+    /// Per item without covariates, the log probabilities (renormalised when set back);
+    /// per item with covariates, the logit coefficients.
+    fn push_coordinates(&self, out: &mut Vec<f64>) {
+        for (lp, coef) in self.log_prob.iter().zip(&self.coef) {
+            out.extend_from_slice(lp);
+            out.extend_from_slice(coef);
+        }
+    }
+
+    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
+        let mut read = 0;
+        for j in 0..self.levels.len() {
+            let l = self.levels[j];
+            let lp = &mut self.log_prob[j];
+            let len = lp.len();
+            lp.copy_from_slice(&c[read..read + len]);
+            read += len;
+            for block in lp.chunks_exact_mut(l) {
+                let lse = log_sum_exp(block);
+                block.iter_mut().for_each(|v| *v -= lse);
+            }
+            let coef = &mut self.coef[j];
+            let len = coef.len();
+            coef.copy_from_slice(&c[read..read + len]);
+            read += len;
+        }
+        Ok(read)
+    }
+
     fn parameters(&self, naming: Naming) -> Vec<Parameter> {
         let mut out = Vec::new();
         let design = naming.components;

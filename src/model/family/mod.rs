@@ -72,6 +72,12 @@ pub trait ComponentFamily {
     fn permute(&mut self, order: &[usize]);
     /// Parameters with names, on the original scale.
     fn parameters(&self, naming: Naming) -> Vec<Parameter>;
+    /// The parameters as coordinates in which EM steps can be extrapolated
+    /// ([`crate::fit::em`]): free of constraints, each on a scale near 1.
+    fn push_coordinates(&self, out: &mut Vec<f64>);
+    /// Set the parameters from coordinates laid out as [`ComponentFamily::push_coordinates`]
+    /// writes them; returns how many it read. Fails when they make a cluster degenerate.
+    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy>;
 }
 
 /// The component model: blocks of indicators, independent given the cluster. The
@@ -172,5 +178,17 @@ impl ComponentFamily for Components {
     }
     fn parameters(&self, naming: Naming) -> Vec<Parameter> {
         self.blocks().iter().flat_map(|b| b.parameters(naming)).collect()
+    }
+    fn push_coordinates(&self, out: &mut Vec<f64>) {
+        for b in self.blocks() {
+            b.push_coordinates(out);
+        }
+    }
+    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
+        let mut read = 0;
+        for b in self.blocks_mut() {
+            read += b.set_coordinates(&c[read..])?;
+        }
+        Ok(read)
     }
 }
