@@ -111,11 +111,10 @@ const SETTLED: f64 = 1e-4;
 /// squared-extrapolation path of Varadhan & Roland (2008, their third step length). With
 /// r = θ₁ − θ₀, v = θ₂ − 2θ₁ + θ₀ and α = |r|/|v| (at least 1, at most a bound that
 /// doubles when a step of that length is taken and halves when one fails), the loop
-/// moves to
-/// θ′ = (1 − α)²θ₀ + 2α(1 − α)θ₁ + α²θ₂ ([`Model::coordinates`]) only if the objective
-/// there is at least that at θ₂, and then takes one EM step from θ′, which puts the
-/// parameters back into their model (a covariance structure, for example) and is kept
-/// only if it also ends at least as high as θ₂. So every iteration's objective is at
+/// moves to θ′ = (1 − α)²θ₀ + 2α(1 − α)θ₁ + α²θ₂ ([`Model::coordinates`]) only if the
+/// objective there is at least that at θ₂, and then takes one EM step from θ′, which puts
+/// the parameters back into their model (a covariance structure, for example) and is
+/// kept only if it also ends at least as high as θ₂. So every iteration's objective is at
 /// least the one before, and every iteration is an EM step; the stopping rule is the
 /// same as without extrapolation.
 pub fn run(data: &FitData, model: Model, tau: Vec<f64>, settings: EmSettings) -> EmRun {
