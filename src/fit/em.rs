@@ -67,6 +67,17 @@ pub struct EmSettings {
     pub accelerate: bool,
 }
 
+impl EmSettings {
+    /// The settings a study's search gives every start.
+    pub fn for_search(search: &crate::spec::Search) -> EmSettings {
+        EmSettings {
+            max_iterations: search.max_iterations,
+            tolerance: search.tolerance,
+            accelerate: search.accelerate,
+        }
+    }
+}
+
 /// The outcome of one start.
 #[derive(Debug, Clone)]
 pub struct EmRun {
@@ -119,13 +130,14 @@ const SETTLED: f64 = 1e-4;
 /// same as without extrapolation.
 pub fn run(data: &FitData, model: Model, tau: Vec<f64>, settings: EmSettings) -> EmRun {
     let mut em = Walk::new(*data, model, tau);
-    // Models since the last extrapolation, from one with its E-step done.
-    let mut recent: Vec<Model> = Vec::new();
+    // Coordinates of the models since the last extrapolation, from one with its E-step
+    // done.
+    let mut recent: Vec<Vec<f64>> = Vec::new();
     let mut step_max = 1.0_f64;
     let mut iteration = 0;
     while iteration < settings.max_iterations {
         if settings.accelerate && recent.is_empty() && em.have_stats && em.settled() {
-            recent.push(em.model.clone());
+            recent.push(em.model.coordinates());
         }
         let previous = em.objective;
         if let Err(t) = em.step(iteration + 1) {
@@ -138,7 +150,7 @@ pub fn run(data: &FitData, model: Model, tau: Vec<f64>, settings: EmSettings) ->
         if !settings.accelerate || recent.is_empty() {
             continue;
         }
-        recent.push(em.model.clone());
+        recent.push(em.model.coordinates());
         if recent.len() < 3 || iteration >= settings.max_iterations {
             continue;
         }
@@ -253,7 +265,6 @@ impl<'a> Walk<'a> {
         let degenerate = |d: crate::model::family::Degeneracy| {
             Termination::Degenerate(format!("cluster {} degenerated: {}", d.cluster, d.reason))
         };
-        let saved = (self.logit && self.have_stats).then(|| self.model.clone());
         let known = self.have_stats.then_some(&self.stats);
         let known_sums = self.have_stats.then_some(&self.sums);
         let mut model = self.model.clone();
@@ -262,17 +273,15 @@ impl<'a> Walk<'a> {
             .map_err(degenerate)?;
         self.damped += step.damped;
         let mut next = self.evaluate(&model);
-        if let Some(previous) = saved {
-            // A Newton step without line search can overshoot; redo the iteration with
-            // the bound step, which cannot lower the objective.
-            if !(next.1 >= self.objective - 1e-13 * self.objective.abs()) {
-                model = previous;
-                model
-                    .m_step(&self.data, &self.tau, Some(&self.stats), Some(&self.sums), true)
-                    .map_err(degenerate)?;
-                next = self.evaluate(&model);
-                self.fallbacks += 1;
-            }
+        // A Newton step without line search can overshoot; redo the iteration with the
+        // bound step, which cannot lower the objective.
+        if self.logit && self.have_stats && !(next.1 >= self.objective - 1e-13 * self.objective.abs()) {
+            model = self.model.clone();
+            model
+                .m_step(&self.data, &self.tau, Some(&self.stats), Some(&self.sums), true)
+                .map_err(degenerate)?;
+            next = self.evaluate(&model);
+            self.fallbacks += 1;
         }
         // The model stays usable for the report even when the step fails below.
         self.accept(model, next);
@@ -300,11 +309,11 @@ impl<'a> Walk<'a> {
         iteration > 1 && (change <= tolerance * self.objective.abs() || self.model.n_params() == 0)
     }
 
-    /// Try the extrapolation from the last three models (the last is the current one).
+    /// Try the extrapolation from the coordinates `x` of the last three models (the last
+    /// is the current one).
     /// Returns the step length α and what became of the jump (after a move, the
     /// stabilising EM step from θ′ is the current iteration).
-    fn extrapolate(&mut self, recent: &[Model], step_max: f64, iteration: usize) -> (f64, Jump) {
-        let x: Vec<Vec<f64>> = recent.iter().map(Model::coordinates).collect();
+    fn extrapolate(&mut self, x: &[Vec<f64>], step_max: f64, iteration: usize) -> (f64, Jump) {
         let (mut r_squared, mut v_squared) = (0.0, 0.0);
         for ((a, b), c) in x[0].iter().zip(&x[1]).zip(&x[2]) {
             let (r, v) = (b - a, c - 2.0 * b + a);

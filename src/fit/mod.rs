@@ -486,11 +486,7 @@ pub fn fit_cell_with(
     starts: usize,
 ) -> FitResult {
     let fd = fit_data(data, prepared);
-    let settings = EmSettings {
-        max_iterations: study.search.max_iterations,
-        tolerance: study.search.tolerance,
-        accelerate: study.search.accelerate,
-    };
+    let settings = EmSettings::for_search(&study.search);
     let options = ModelOptions::for_study(study, structure);
     let mut template = initial_model(&fd, &prepared.placement, g, options);
     template.gating.prepare_bound(fd.w, fd.weights);

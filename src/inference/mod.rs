@@ -360,11 +360,7 @@ pub fn settings_for(study: &crate::spec::Study) -> InferenceSettings {
         method: study.inference.method,
         replicates: study.inference.replicates,
         seed: study.seed,
-        em: EmSettings {
-            max_iterations: study.search.max_iterations,
-            tolerance: study.search.tolerance,
-            accelerate: study.search.accelerate,
-        },
+        em: EmSettings::for_search(&study.search),
     }
 }
 

@@ -77,11 +77,7 @@ pub fn screen(
     fits: &[FitResult],
     which: &[usize],
 ) -> Vec<DirectEffectTest> {
-    let settings = EmSettings {
-        max_iterations: study.search.max_iterations,
-        tolerance: study.search.tolerance,
-        accelerate: study.search.accelerate,
-    };
+    let settings = EmSettings::for_search(&study.search);
     let covariates: Vec<String> = study.all_covariates().iter().map(|c| c.name.clone()).collect();
     let mut out = Vec::new();
     for &fi in which {

@@ -271,6 +271,12 @@ impl GaussianComponents {
         Ok(())
     }
 
+    /// Overall standard deviation of each indicator (kept off 0): the scale of its
+    /// extrapolation coordinates.
+    fn indicator_sds(&self) -> Vec<f64> {
+        self.y_var.iter().map(|v| v.sqrt().max(f64::MIN_POSITIVE)).collect()
+    }
+
     /// Mean of cluster k for one row of the component design, into `out`.
     pub fn mean(&self, k: usize, z: &[f64], out: &mut [f64]) {
         out.fill(0.0);
@@ -365,12 +371,11 @@ impl ComponentFamily for GaussianComponents {
     /// included), divided by its indicator's overall standard deviation. Any factor gives
     /// a covariance LL′ that is at least semi-definite.
     fn push_coordinates(&self, out: &mut Vec<f64>) {
-        let (d, q) = (self.d, self.q);
-        let sd: Vec<f64> = self.y_var.iter().map(|v| v.sqrt().max(f64::MIN_POSITIVE)).collect();
+        let d = self.d;
+        let sd = self.indicator_sds();
         for (i, b) in self.coef.iter().enumerate() {
             out.push(b / sd[i % d]);
         }
-        debug_assert_eq!(self.coef.len(), self.g * q * d);
         for l in &self.chol {
             for r in 0..d {
                 out.extend(l[r * d..r * d + r + 1].iter().map(|v| v / sd[r]));
@@ -380,7 +385,7 @@ impl ComponentFamily for GaussianComponents {
 
     fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
         let d = self.d;
-        let sd: Vec<f64> = self.y_var.iter().map(|v| v.sqrt().max(f64::MIN_POSITIVE)).collect();
+        let sd = self.indicator_sds();
         let n_coef = self.coef.len();
         for (i, (b, v)) in self.coef.iter_mut().zip(&c[..n_coef]).enumerate() {
             *b = v * sd[i % d];
