@@ -14,7 +14,7 @@
 
 use cohortmix::fit::em::{self, EmSettings};
 use cohortmix::model::family::{Components, CovarianceStructure, GaussianComponents, Orientation, Shape, Volume};
-use cohortmix::model::gating::{fit_multinomial_logit, Gating, MAX_NEWTON_ITERATIONS};
+use cohortmix::model::gating::{fit_multinomial_logit, Gating, LogitRows, MAX_NEWTON_ITERATIONS};
 use cohortmix::model::{e_step, FitData, Model};
 use nalgebra::DMatrix;
 use std::path::Path;
@@ -142,12 +142,14 @@ fn gating_run(folder: &Path, n_threads: usize) {
     let weights = vec![1.0; n];
     let clock = Instant::now();
     let fit = fit_multinomial_logit(
-        &w,
-        p,
-        &tau,
-        g,
-        &weights,
-        0.0,
+        &LogitRows {
+            w: &w,
+            p,
+            tau: &tau,
+            g,
+            weights: &weights,
+            ridge: 0.0,
+        },
         &vec![0.0; (g - 1) * p],
         MAX_NEWTON_ITERATIONS,
     );
@@ -159,7 +161,7 @@ fn gating_run(folder: &Path, n_threads: usize) {
             "n": n, "covariates": k, "g": g, "threads": n_threads,
             "seconds": seconds,
             "newton_iterations": fit.iterations,
-            "converged": fit.converged,
+            "converged": fit.outcome.converged(),
             "loglik": fit.objective,
             "peak_rss_mib": peak_rss_mib(),
         })

@@ -173,23 +173,6 @@ impl Error {
     }
 }
 
-/// Levenshtein distance between two strings, by characters.
-pub fn edit_distance(a: &str, b: &str) -> usize {
-    let a: Vec<char> = a.chars().collect();
-    let b: Vec<char> = b.chars().collect();
-    let mut prev: Vec<usize> = (0..=b.len()).collect();
-    let mut cur = vec![0; b.len() + 1];
-    for i in 1..=a.len() {
-        cur[0] = i;
-        for j in 1..=b.len() {
-            let sub = prev[j - 1] + usize::from(a[i - 1] != b[j - 1]);
-            cur[j] = sub.min(prev[j] + 1).min(cur[j - 1] + 1);
-        }
-        std::mem::swap(&mut prev, &mut cur);
-    }
-    prev[b.len()]
-}
-
 /// The closest candidate to `word`, if it is close enough to be a likely misspelling.
 pub fn did_you_mean<'a, I>(word: &str, candidates: I) -> Option<String>
 where
@@ -198,7 +181,7 @@ where
     let lower = word.to_lowercase();
     let mut best: Option<(usize, &str)> = None;
     for c in candidates {
-        let d = edit_distance(&lower, &c.to_lowercase());
+        let d = strsim::levenshtein(&lower, &c.to_lowercase());
         if best.is_none_or(|(bd, _)| d < bd) {
             best = Some((d, c));
         }
@@ -226,7 +209,6 @@ mod tests {
         assert_eq!(did_you_mean("sexx", cols).as_deref(), Some("sex"));
         assert_eq!(did_you_mean("exposure_yrs", cols).as_deref(), Some("exposure_years"));
         assert_eq!(did_you_mean("height", cols), None);
-        assert_eq!(edit_distance("kitten", "sitting"), 3);
     }
 
     #[test]

@@ -25,6 +25,7 @@ pub mod error;
 pub mod fit;
 pub mod inference;
 pub mod model;
+pub mod numerics;
 pub mod report;
 pub mod rng;
 pub mod simulate;

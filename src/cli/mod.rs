@@ -379,7 +379,7 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
         .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode results: {e}"))))?;
     let manifest = Manifest {
         version: env!("CARGO_PKG_VERSION"),
-        spec_sha256: crate::data::sha256_hex(study.spec_text.as_bytes()),
+        spec_sha256: crate::numerics::sha256_hex(study.spec_text.as_bytes()),
         data_sha256: data.sha256.clone(),
         spec_file: study.spec_path.display().to_string(),
         data_file: study.data_path.display().to_string(),

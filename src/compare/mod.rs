@@ -15,16 +15,8 @@ use crate::data::{Dataset, Design};
 use crate::fit::{FitResult, PreparedPlacement};
 use crate::model::family::Components;
 use crate::model::gating::Gating;
+use crate::spec::CompareSettings;
 use serde::Serialize;
-
-/// What the spec's `[compare]` table says.
-#[derive(Debug, Clone, PartialEq)]
-pub struct CompareSettings {
-    /// Index of the reference placement.
-    pub reference: usize,
-    /// Cluster count fixed for the comparison, if any.
-    pub clusters: Option<usize>,
-}
 
 /// One row of the criteria table.
 #[derive(Debug, Clone, Serialize)]
@@ -315,7 +307,7 @@ pub fn ratio(x: f64) -> String {
     format!("{x:.3}")
 }
 
-pub use crate::fit::most_likely;
+use crate::numerics::most_likely;
 
 fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Vec<Criteria> {
     let mut out = Vec::new();
@@ -792,7 +784,7 @@ fn curves(data: &Dataset, gating: &Gating, design: &Design, aligned: &[usize], p
                     w[j] = 1.0;
                 }
             }
-            crate::model::gating::log_softmax_row(gamma, p, &w, &mut lp);
+            crate::numerics::log_softmax_row(gamma, p, &w, &mut lp);
             for (k, pr) in probs.iter_mut().enumerate() {
                 pr.push(lp[k].exp());
             }

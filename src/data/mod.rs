@@ -14,6 +14,7 @@ pub use design::{Design, DesignError, Term};
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
 use crate::spec::{read_text, ColumnRef, IndicatorKind, Study, VariableType};
+use crate::numerics::{hex, sha256_hex};
 use sha2::{Digest, Sha256};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -1154,15 +1155,6 @@ fn csv_error(raw: &Raw, e: &csv::Error) -> Error {
     }
 }
 
-/// SHA-256 of bytes, as lower-case hexadecimal.
-pub fn sha256_hex(bytes: &[u8]) -> String {
-    hex(&Sha256::digest(bytes))
-}
-
-/// Lower-case hexadecimal of bytes.
-pub fn hex(bytes: &[u8]) -> String {
-    bytes.iter().map(|b| format!("{b:02x}")).collect()
-}
 
 #[cfg(test)]
 mod tests {

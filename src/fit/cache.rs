@@ -14,7 +14,8 @@
 use super::em::{EmRun, Termination};
 use super::saved::SavedModel;
 use super::{fit_data, initial_model, BestFit, Cell, FitResult, ModelOptions, PreparedPlacement, StartRecord};
-use crate::data::{sha256_hex, Dataset};
+use crate::data::Dataset;
+use crate::numerics::sha256_hex;
 use crate::model::family::CovarianceStructure;
 use crate::model::gating::Gating;
 use crate::spec::Study;

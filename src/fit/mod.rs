@@ -612,17 +612,6 @@ pub fn fit_cell_with(
     }
 }
 
-/// Index of the largest posterior in a row (the first on ties).
-pub fn most_likely(row: &[f64]) -> usize {
-    let mut best = 0;
-    for (k, v) in row.iter().enumerate() {
-        if *v > row[best] {
-            best = k;
-        }
-    }
-    best
-}
-
 /// Index into `fits` of the chosen fit of each placement: its lowest BIC, at the cluster
 /// count `fixed` when one is given.
 pub fn chosen_fits(fits: &[FitResult], placements: usize, fixed: Option<usize>) -> Vec<Option<usize>> {

@@ -19,7 +19,8 @@
 //! labelled contrast: it attenuates the effects when classification is imperfect.
 
 use crate::data::Design;
-use crate::model::gating::{fit_multinomial_logit, log_softmax_row, logit_score_hessian, MAX_NEWTON_ITERATIONS};
+use crate::model::gating::{fit_multinomial_logit, logit_score_hessian, LogitRows, MAX_NEWTON_ITERATIONS};
+use crate::numerics::{log_softmax_row, most_likely, softmax_in_place};
 use crate::spec::Method;
 use nalgebra::DMatrix;
 use serde::Serialize;
@@ -72,7 +73,7 @@ fn information_covariance(h: &DMatrix<f64>) -> Result<DMatrix<f64>, String> {
 pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: &Design) -> Result<StepThree, String> {
     let (w, p) = (&design.x, design.p());
     let n = weights.len();
-    let assigned: Vec<usize> = tau.chunks_exact(g).map(crate::compare::most_likely).collect();
+    let assigned: Vec<usize> = tau.chunks_exact(g).map(most_likely).collect();
     let mut d = vec![vec![0.0; g]; g];
     let mut size = vec![0.0; g];
     for ((row, c), t) in tau.chunks_exact(g).zip(weights).zip(&assigned) {
@@ -98,7 +99,15 @@ pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: 
     for (i, t) in assigned.iter().enumerate() {
         onehot[i * g + t] = 1.0;
     }
-    let naive = fit_multinomial_logit(w, p, &onehot, g, weights, 0.0, &zeros, MAX_NEWTON_ITERATIONS);
+    let rows = |tau| LogitRows {
+        w,
+        p,
+        tau,
+        g,
+        weights,
+        ridge: 0.0,
+    };
+    let naive = fit_multinomial_logit(&rows(&onehot), &zeros, MAX_NEWTON_ITERATIONS);
     let (_, _, h) = logit_score_hessian(w, p, &onehot, g, weights, 0.0, &naive.gamma);
     let naive_covariance = information_covariance(&h)?;
 
@@ -111,7 +120,7 @@ pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: 
             bch[i * g + s] = dinv[(*t, s)];
         }
     }
-    let bch_fit = fit_multinomial_logit(w, p, &bch, g, weights, 0.0, &naive.gamma, MAX_NEWTON_ITERATIONS);
+    let bch_fit = fit_multinomial_logit(&rows(&bch), &naive.gamma, MAX_NEWTON_ITERATIONS);
 
     let (gamma, covariance, converged) = match method {
         Method::ThreeStepMl => {
@@ -154,7 +163,7 @@ pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: 
                     }
                 }
             }
-            (bch_fit.gamma.clone(), &hinv * meat * &hinv, bch_fit.converged)
+            (bch_fit.gamma.clone(), &hinv * meat * &hinv, bch_fit.outcome.converged())
         }
     };
     Ok(StepThree {
@@ -179,7 +188,7 @@ fn ml_posteriors(w: &[f64], p: usize, log_d: &[f64], g: usize, weights: &[f64], 
         for s in 0..g {
             row[s] = lp[s] + log_d[i * g + s];
         }
-        loglik += c * crate::model::softmax_in_place(row);
+        loglik += c * softmax_in_place(row);
     }
     loglik
 }
@@ -188,7 +197,15 @@ fn ml_em(w: &[f64], p: usize, log_d: &[f64], g: usize, weights: &[f64], mut gamm
     let mut tau = vec![0.0; log_d.len()];
     let mut last = ml_posteriors(w, p, log_d, g, weights, &gamma, &mut tau);
     for _ in 0..ML_MAX_ITERATIONS {
-        gamma = fit_multinomial_logit(w, p, &tau, g, weights, 0.0, &gamma, MAX_NEWTON_ITERATIONS).gamma;
+        let rows = LogitRows {
+            w,
+            p,
+            tau: &tau,
+            g,
+            weights,
+            ridge: 0.0,
+        };
+        gamma = fit_multinomial_logit(&rows, &gamma, MAX_NEWTON_ITERATIONS).gamma;
         let ll = ml_posteriors(w, p, log_d, g, weights, &gamma, &mut tau);
         if (ll - last).abs() <= ML_TOLERANCE * ll.abs() {
             return (gamma, true);

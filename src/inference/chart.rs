@@ -21,7 +21,8 @@
 use crate::data::MISSING_ITEM;
 use crate::model::family::covariance::eigen_desc;
 use crate::model::family::{CovarianceStructure, Degeneracy, GaussianComponents, Orientation, Shape, Volume};
-use crate::model::gating::{log_softmax_row, log_sum_exp, Gating};
+use crate::model::gating::Gating;
+use crate::numerics::{log_softmax_row, log_sum_exp};
 use crate::model::{e_step, rows, FitData, Model};
 use nalgebra::{DMatrix, DVector};
 

@@ -30,35 +30,12 @@ use crate::rng::Stream;
 use chart::Chart;
 use nalgebra::DMatrix;
 use rayon::prelude::*;
-use serde::Serialize;
+pub use crate::spec::ErrorMethod;
 
 /// Relative step of the central differences of the score (times the coordinate's scale).
 const SCORE_STEP: f64 = 1e-4;
 /// Relative step of the Jacobian of the reported parameters.
 const JACOBIAN_STEP: f64 = 1e-5;
-
-/// How standard errors are computed.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum ErrorMethod {
-    /// Inverse observed information.
-    ObservedInformation,
-    /// Robust sandwich.
-    Sandwich,
-    /// Nonparametric bootstrap.
-    Bootstrap,
-}
-
-impl ErrorMethod {
-    /// The spec word.
-    pub fn word(&self) -> &'static str {
-        match self {
-            ErrorMethod::ObservedInformation => "observed-information",
-            ErrorMethod::Sandwich => "sandwich",
-            ErrorMethod::Bootstrap => "bootstrap",
-        }
-    }
-}
 
 /// Settings of the inference step.
 #[derive(Debug, Clone, PartialEq)]

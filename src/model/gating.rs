@@ -12,6 +12,8 @@
 //! method with the exact Hessian and step-halving converges from any start. Without
 //! covariates the proportions are free shares (closed form), equal, or fixed by the user.
 
+use crate::numerics::newton::{maximise, Concave, Outcome, WhenSingular};
+use crate::numerics::{log_softmax_row, log_sum_exp, solve_spd};
 use nalgebra::{DMatrix, DVector};
 use std::sync::Arc;
 
@@ -62,8 +64,8 @@ pub enum Gating {
 pub struct GatingStep {
     /// Newton iterations used (0 for closed forms).
     pub iterations: usize,
-    /// Whether Newton met its tolerance.
-    pub converged: bool,
+    /// Why its Newton iterations stopped ([`Outcome::Converged`] for closed forms).
+    pub outcome: Outcome,
     /// Times the Hessian needed damping to be solved (a sign of separation).
     pub damped: usize,
 }
@@ -110,7 +112,7 @@ impl Gating {
         match self {
             Gating::Equal { .. } | Gating::Fixed { .. } => GatingStep {
                 iterations: 0,
-                converged: true,
+                outcome: Outcome::Converged,
                 damped: 0,
             },
             Gating::Free { log_pi } => {
@@ -124,16 +126,24 @@ impl Gating {
                 self.shares_from(&sums);
                 GatingStep {
                     iterations: 0,
-                    converged: true,
+                    outcome: Outcome::Converged,
                     damped: 0,
                 }
             }
             Gating::Logit { g, p, gamma, ridge, .. } => {
-                let fit = fit_multinomial_logit(w, *p, tau, *g, weights, *ridge, gamma, NEWTON_STEPS_PER_EM_ITERATION);
+                let rows = LogitRows {
+                    w,
+                    p: *p,
+                    tau,
+                    g: *g,
+                    weights,
+                    ridge: *ridge,
+                };
+                let fit = fit_multinomial_logit(&rows, gamma, NEWTON_STEPS_PER_EM_ITERATION);
                 *gamma = fit.gamma;
                 GatingStep {
                     iterations: fit.iterations,
-                    converged: fit.converged,
+                    outcome: fit.outcome,
                     damped: fit.damped,
                 }
             }
@@ -363,27 +373,6 @@ fn ridge_penalty(gamma: &[f64], p: usize, ridge: f64) -> f64 {
             .sum::<f64>()
 }
 
-/// log pi_g(w) for all g, with gamma_1 = 0; one maximum per row (stable).
-pub fn log_softmax_row(gamma: &[f64], p: usize, w: &[f64], out: &mut [f64]) {
-    out[0] = 0.0;
-    for (k, coef) in gamma.chunks_exact(p).enumerate() {
-        out[k + 1] = coef.iter().zip(w).map(|(a, b)| a * b).sum();
-    }
-    let lse = log_sum_exp(out);
-    for o in out.iter_mut() {
-        *o -= lse;
-    }
-}
-
-/// log(sum exp(x)) with the row's own maximum subtracted first.
-pub fn log_sum_exp(x: &[f64]) -> f64 {
-    let m = x.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-    if m == f64::NEG_INFINITY {
-        return m;
-    }
-    m + x.iter().map(|v| (v - m).exp()).sum::<f64>().ln()
-}
-
 /// Result of a weighted multinomial-logit fit.
 #[derive(Debug, Clone, PartialEq)]
 pub struct LogitFit {
@@ -393,8 +382,8 @@ pub struct LogitFit {
     pub objective: f64,
     /// Newton iterations.
     pub iterations: usize,
-    /// Whether the Newton decrement fell below tolerance.
-    pub converged: bool,
+    /// Why Newton stopped.
+    pub outcome: Outcome,
     /// Damped Hessian solves.
     pub damped: usize,
 }
@@ -437,129 +426,53 @@ pub fn logit_score_hessian(
     (objective, score, hess)
 }
 
-/// Weighted multinomial logit with fractional responses, by Newton with step-halving.
-///
-/// Starts from `start` (warm start inside EM). Each iteration takes the Newton step,
-/// halved until the objective does not fall. Stops after the step whose Newton decrement
-/// score'·step is below 1e-12·(1 + |objective|) (that last step is kept unless it lowers
-/// the objective by more than rounding), when halving cannot raise the objective, or
-/// after `max_iter` iterations.
-#[allow(clippy::too_many_arguments)]
-pub fn fit_multinomial_logit(
-    w: &[f64],
-    p: usize,
-    tau: &[f64],
-    g: usize,
-    weights: &[f64],
-    ridge: f64,
-    start: &[f64],
-    max_iter: usize,
-) -> LogitFit {
-    let mut gamma = start.to_vec();
-    let mut damped = 0;
-    let mut objective = f64::NEG_INFINITY;
-    for it in 1..=max_iter {
-        let (obj, score, hess) = logit_score_hessian(w, p, tau, g, weights, ridge, &gamma);
-        objective = obj;
-        let neg = -hess;
-        let step = match solve_spd(&neg, &score) {
-            Some(s) => s,
-            None => {
-                damped += 1;
-                let mut mu = 1e-8 * (1.0 + neg.trace().abs() / neg.nrows() as f64);
-                loop {
-                    let mut m = neg.clone();
-                    for i in 0..m.nrows() {
-                        m[(i, i)] += mu;
-                    }
-                    if let Some(s) = solve_spd(&m, &score) {
-                        break s;
-                    }
-                    mu *= 10.0;
-                    if !mu.is_finite() {
-                        return LogitFit {
-                            gamma,
-                            objective,
-                            iterations: it,
-                            converged: false,
-                            damped,
-                        };
-                    }
-                }
-            }
-        };
-        let decrement = score.dot(&step);
-        let tiny = decrement.abs() <= 1e-12 * (1.0 + objective.abs());
-        // Rounding allowance: at the optimum a full step may "lose" a few ulps.
-        let slack = 1e-13 * (1.0 + objective.abs());
-        let mut t = 1.0;
-        loop {
-            let trial: Vec<f64> = gamma.iter().zip(step.iter()).map(|(a, b)| a + t * b).collect();
-            let trial_obj = logit_objective(w, p, tau, g, weights, ridge, &trial);
-            if trial_obj >= objective - if tiny { slack } else { 0.0 } {
-                gamma = trial;
-                objective = trial_obj;
-                break;
-            }
-            if tiny {
-                // The step is below rounding and does not help: we are at the optimum.
-                return LogitFit {
-                    gamma,
-                    objective,
-                    iterations: it,
-                    converged: true,
-                    damped,
-                };
-            }
-            t *= 0.5;
-            if t < 1e-10 {
-                return LogitFit {
-                    gamma,
-                    objective,
-                    iterations: it,
-                    converged: true,
-                    damped,
-                };
-            }
-        }
-        if tiny {
-            return LogitFit {
-                gamma,
-                objective,
-                iterations: it,
-                converged: true,
-                damped,
-            };
-        }
+/// The rows of one weighted multinomial logit with fractional responses: design `w`
+/// (n×p), responses `tau` (n×g, rows need not sum to 1), case weights and a ridge
+/// penalty on the slopes.
+#[derive(Debug, Clone, Copy)]
+pub struct LogitRows<'a> {
+    /// Design, row-major n×p (intercept first).
+    pub w: &'a [f64],
+    /// Design columns.
+    pub p: usize,
+    /// Responses, n×g.
+    pub tau: &'a [f64],
+    /// Categories.
+    pub g: usize,
+    /// Case weights.
+    pub weights: &'a [f64],
+    /// Ridge penalty on the slopes (not the intercepts).
+    pub ridge: f64,
+}
+
+impl Concave for LogitRows<'_> {
+    fn objective(&self, gamma: &[f64]) -> f64 {
+        logit_objective(self.w, self.p, self.tau, self.g, self.weights, self.ridge, gamma)
     }
-    LogitFit {
-        gamma,
-        objective,
-        iterations: max_iter,
-        converged: false,
-        damped,
+
+    fn derivatives(&self, gamma: &[f64]) -> (f64, DVector<f64>, DMatrix<f64>) {
+        let (objective, score, hess) = logit_score_hessian(self.w, self.p, self.tau, self.g, self.weights, self.ridge, gamma);
+        (objective, score, -hess)
     }
 }
 
-/// Solve A x = b for symmetric positive definite A; `None` when A is not.
-pub fn solve_spd(a: &DMatrix<f64>, b: &DVector<f64>) -> Option<DVector<f64>> {
-    let chol = a.clone().cholesky()?;
-    let x = chol.solve(b);
-    x.iter().all(|v| v.is_finite()).then_some(x)
+/// Weighted multinomial logit with fractional responses, by the damped Newton maximiser
+/// ([`crate::numerics::newton`]) from `start` (a warm start inside EM), at most
+/// `max_iter` iterations; a singular Hessian is damped.
+pub fn fit_multinomial_logit(rows: &LogitRows, start: &[f64], max_iter: usize) -> LogitFit {
+    let fit = maximise(rows, start, max_iter, WhenSingular::Damp);
+    LogitFit {
+        gamma: fit.x,
+        objective: fit.objective,
+        iterations: fit.iterations,
+        outcome: fit.outcome,
+        damped: fit.damped,
+    }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn log_softmax_is_stable_for_large_scores() {
-        let gamma = [1000.0, 0.0];
-        let mut out = [0.0; 2];
-        log_softmax_row(&gamma, 2, &[1.0, 0.0], &mut out);
-        assert!(out.iter().all(|v| v.is_finite()));
-        assert!((out[1]).abs() < 1e-12);
-    }
 
     #[test]
     fn permuting_keeps_probabilities() {

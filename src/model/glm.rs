@@ -11,7 +11,7 @@
 //! Q is concave; Newton with step-halving raises it at every iteration (McCullagh & Nelder
 //! 1989, ch. 6, where the same step is written as iteratively reweighted least squares).
 
-use super::gating::solve_spd;
+use crate::numerics::newton::{maximise, Concave, Outcome, WhenSingular};
 use nalgebra::{DMatrix, DVector};
 
 /// Result of a weighted Poisson fit.
@@ -23,8 +23,8 @@ pub struct PoissonFit {
     pub objective: f64,
     /// Newton iterations.
     pub iterations: usize,
-    /// Whether the Newton decrement fell below 1e-12·(1 + |Q|).
-    pub converged: bool,
+    /// Why Newton stopped.
+    pub outcome: Outcome,
 }
 
 /// The rows of one Poisson regression: design rows x (n×q, row-major), counts, offsets
@@ -95,57 +95,25 @@ impl PoissonRows<'_> {
     }
 }
 
-/// Newton with step-halving from `start`, at most `max_iter` iterations. With
-/// `max_iter = 1` it is one generalised-EM step: Q does not fall.
-pub fn fit_poisson(rows: &PoissonRows, start: &[f64], max_iter: usize) -> PoissonFit {
-    let mut beta = start.to_vec();
-    let mut objective = f64::NEG_INFINITY;
-    for it in 1..=max_iter {
-        let (obj, score, neg) = rows.derivatives(&beta);
-        objective = obj;
-        let Some(step) = solve_spd(&neg, &score) else {
-            return PoissonFit {
-                beta,
-                objective,
-                iterations: it,
-                converged: false,
-            };
-        };
-        let decrement = score.dot(&step);
-        let tiny = decrement.abs() <= 1e-12 * (1.0 + objective.abs());
-        let slack = 1e-13 * (1.0 + objective.abs());
-        let mut t = 1.0;
-        loop {
-            let trial: Vec<f64> = beta.iter().zip(step.iter()).map(|(a, b)| a + t * b).collect();
-            let trial_obj = rows.objective(&trial);
-            if trial_obj >= objective - if tiny { slack } else { 0.0 } {
-                beta = trial;
-                objective = trial_obj;
-                break;
-            }
-            t *= 0.5;
-            if tiny || t < 1e-10 {
-                return PoissonFit {
-                    beta,
-                    objective,
-                    iterations: it,
-                    converged: true,
-                };
-            }
-        }
-        if tiny {
-            return PoissonFit {
-                beta,
-                objective,
-                iterations: it,
-                converged: true,
-            };
-        }
+impl Concave for PoissonRows<'_> {
+    fn objective(&self, beta: &[f64]) -> f64 {
+        PoissonRows::objective(self, beta)
     }
+
+    fn derivatives(&self, beta: &[f64]) -> (f64, DVector<f64>, DMatrix<f64>) {
+        PoissonRows::derivatives(self, beta)
+    }
+}
+
+/// The damped Newton maximiser ([`crate::numerics::newton`]) from `start`, at most
+/// `max_iter` iterations; it stops at a singular Hessian. With `max_iter = 1` it is one
+/// generalised-EM step: Q does not fall.
+pub fn fit_poisson(rows: &PoissonRows, start: &[f64], max_iter: usize) -> PoissonFit {
+    let fit = maximise(rows, start, max_iter, WhenSingular::Stop);
     PoissonFit {
-        beta,
-        objective,
-        iterations: max_iter,
-        converged: false,
+        beta: fit.x,
+        objective: fit.objective,
+        iterations: fit.iterations,
+        outcome: fit.outcome,
     }
 }

@@ -144,7 +144,7 @@ impl Model {
         );
         let one = |damped| gating::GatingStep {
             iterations: 1,
-            converged: false,
+            outcome: crate::numerics::newton::Outcome::IterationCap,
             damped,
         };
         match stats {
@@ -163,7 +163,7 @@ impl Model {
                 self.gating.shares_from(&st.cluster_weight);
                 Ok(gating::GatingStep {
                     iterations: 0,
-                    converged: true,
+                    outcome: crate::numerics::newton::Outcome::Converged,
                     damped: 0,
                 })
             }
@@ -273,24 +273,6 @@ pub fn e_step_sums(
         Some(gating_stats),
         Some(gaussian_stats),
     )
-}
-
-/// Replace `x` by softmax(x) and return log Σ exp(x), with the row's own maximum
-/// subtracted first. One `exp` per entry.
-pub fn softmax_in_place(x: &mut [f64]) -> f64 {
-    let m = x.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-    if m == f64::NEG_INFINITY {
-        return m;
-    }
-    let mut sum = 0.0;
-    for v in x.iter_mut() {
-        *v = (*v - m).exp();
-        sum += *v;
-    }
-    for v in x.iter_mut() {
-        *v /= sum;
-    }
-    m + sum.ln()
 }
 
 /// Log-likelihood alone (no responsibilities kept); uses `scratch` of length n×G.

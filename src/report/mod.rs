@@ -537,7 +537,7 @@ pub fn write_memberships(
     for (placement, g, tau) in sets {
         let name = csv_field(placement);
         for (id, row) in ids.iter().zip(tau.chunks_exact(*g)) {
-            let most = crate::compare::most_likely(row);
+            let most = crate::numerics::most_likely(row);
             let _ = write!(s, "{name},{g},{},{}", csv_field(id), most + 1);
             for t in row {
                 let _ = write!(s, ",{t:.6}");

@@ -31,9 +31,11 @@
 //! module checks column names against the CSV header, pointing back at the spec.
 
 pub mod raw;
+pub mod settings;
+
+pub use settings::{CompareSettings, CovarianceStructure, ErrorMethod, Orientation, Shape, Volume};
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
-use crate::model::family::{CovarianceStructure, Orientation, Shape, Volume};
 use raw::{RawPlacement, RawSpec, SList, SStr};
 use std::collections::BTreeMap;
 use std::ops::Range;
@@ -302,7 +304,7 @@ pub struct Study {
     /// Placements, in spec order.
     pub placements: Vec<Placement>,
     /// How the comparison is made.
-    pub compare: crate::compare::CompareSettings,
+    pub compare: CompareSettings,
     /// Standard errors and effect units.
     pub inference: Inference,
 }
@@ -311,7 +313,7 @@ pub struct Study {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Inference {
     /// How standard errors are computed.
-    pub method: crate::inference::ErrorMethod,
+    pub method: ErrorMethod,
     /// Bootstrap replicates.
     pub replicates: usize,
     /// Units per which a numeric covariate's effects are shown (1 when absent).
@@ -325,7 +327,7 @@ pub struct Inference {
 impl Default for Inference {
     fn default() -> Inference {
         Inference {
-            method: crate::inference::ErrorMethod::ObservedInformation,
+            method: ErrorMethod::ObservedInformation,
             replicates: DEFAULT_REPLICATES,
             per: BTreeMap::new(),
             direct_effect_screen: true,
@@ -840,7 +842,7 @@ fn inference_settings(
     placements: &[Placement],
     variables: &BTreeMap<String, (VariableType, Range<usize>)>,
 ) -> Result<Inference> {
-    use crate::inference::ErrorMethod;
+    use ErrorMethod;
     let mut out = Inference::default();
     let Some(raw) = raw else { return Ok(out) };
     let r = raw.get_ref();
@@ -924,8 +926,8 @@ fn compare_settings(
     ctx: &Ctx,
     raw: Option<&Spanned<raw::RawCompare>>,
     placements: &[Placement],
-) -> Result<crate::compare::CompareSettings> {
-    let mut settings = crate::compare::CompareSettings {
+) -> Result<CompareSettings> {
+    let mut settings = CompareSettings {
         reference: 0,
         clusters: None,
     };
@@ -1550,7 +1552,7 @@ mod tests {
         );
         let s = spec(&text).unwrap();
         assert_eq!(s.placements[0].method, Method::ThreeStepBch);
-        assert_eq!(s.inference.method, crate::inference::ErrorMethod::Bootstrap);
+        assert_eq!(s.inference.method, ErrorMethod::Bootstrap);
         assert_eq!(s.inference.replicates, 50);
         assert_eq!(s.inference.per.get("age"), Some(&10.0));
         assert!(!s.inference.direct_effect_screen);

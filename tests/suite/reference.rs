@@ -4,7 +4,7 @@
 use super::common::*;
 use cohortmix::data::Design;
 use cohortmix::model::family::{ComponentFamily, CovarianceStructure, GaussianComponents, Naming};
-use cohortmix::model::gating::{fit_multinomial_logit, logit_objective, MAX_NEWTON_ITERATIONS};
+use cohortmix::model::gating::{fit_multinomial_logit, logit_objective, LogitRows, MAX_NEWTON_ITERATIONS};
 use cohortmix::model::FitData;
 use serde_json::Value;
 
@@ -41,16 +41,18 @@ fn check_anes96(weighted: bool) {
     };
     let p = design.p();
     let fit = fit_multinomial_logit(
-        &design.x,
-        p,
-        &tau,
-        g,
-        &weights,
-        0.0,
+        &LogitRows {
+            w: &design.x,
+            p,
+            tau: &tau,
+            g,
+            weights: &weights,
+            ridge: 0.0,
+        },
         &vec![0.0; (g - 1) * p],
         MAX_NEWTON_ITERATIONS,
     );
-    assert!(fit.converged);
+    assert!(fit.outcome.converged());
     let loglik = logit_objective(&design.x, p, &tau, g, &weights, 0.0, &fit.gamma);
     let ref_ll = case["loglik"].as_f64().unwrap();
     assert!(digits(loglik, ref_ll) >= 9.0, "loglik {loglik} vs {ref_ll}");

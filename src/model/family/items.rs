@@ -15,7 +15,8 @@
 
 use super::{ComponentFamily, Degeneracy, Naming, Parameter};
 use crate::data::MISSING_ITEM;
-use crate::model::gating::{fit_multinomial_logit, log_sum_exp};
+use crate::model::gating::{fit_multinomial_logit, LogitRows};
+use crate::numerics::log_sum_exp;
 use crate::model::FitData;
 
 /// Largest |coefficient| (log odds, fitting scale) taken as estimable. A log odds of 50
@@ -188,7 +189,15 @@ impl ComponentFamily for ItemComponents {
                 self.empty_cells += cell.iter().filter(|c| **c <= 1e-12 * total).count();
                 let block = (k * (l - 1) * q)..((k + 1) * (l - 1) * q);
                 let start = self.coef[j][block.clone()].to_vec();
-                let fit = fit_multinomial_logit(x, q, onehot, l, &v, 0.0, &start, 1);
+                let rows = LogitRows {
+                    w: x,
+                    p: q,
+                    tau: onehot,
+                    g: l,
+                    weights: &v,
+                    ridge: 0.0,
+                };
+                let fit = fit_multinomial_logit(&rows, &start, 1);
                 if fit.gamma.iter().any(|b| !(b.abs() <= SEPARATION_LOGIT)) {
                     return Err(Degeneracy {
                         cluster: k + 1,
