@@ -4,11 +4,14 @@
 //! (a fixed seed). Each benchmark is one pass over all rows on the global thread pool
 //! (`RAYON_NUM_THREADS=1` for one thread).
 
+use cohortmix::data::Design;
+use cohortmix::model::family::gaussian::GaussianRows;
 use cohortmix::model::family::{Components, CovarianceStructure, GaussianComponents};
 use cohortmix::model::gating::{logit_score_hessian, Gating, GatingStats};
 use cohortmix::model::{e_step, e_step_sums, e_step_with, FitData, GaussianStats, Model};
 use cohortmix::rng::Stream;
 use nalgebra::DMatrix;
+use std::sync::Arc;
 
 const N: usize = 100_000;
 const D: usize = 5;
@@ -44,23 +47,19 @@ fn data(f: &Fixture, gating: bool) -> FitData<'_> {
     FitData {
         n: N,
         weights: &f.ones,
-        y: &f.y,
-        d: D,
-        z: &f.ones,
-        q: 1,
         w: if gating { &f.w } else { &f.ones },
         p: if gating { P } else { 1 },
-        items: None,
-        counts: None,
     }
 }
 
-fn model(fd: &FitData, gating: bool) -> Model {
+fn model(f: &Fixture, fd: &FitData, gating: bool) -> Model {
     let coef = (0..G * D).map(|i| (i % 7) as f64 * 0.2).collect();
     let cov = (0..G)
         .map(|k| DMatrix::from_fn(D, D, |a, b| if a == b { 1.0 + k as f64 * 0.1 } else { 0.2 }))
         .collect();
-    let gaussian = GaussianComponents::new(fd, G, CovarianceStructure::UNCONSTRAINED)
+    let names = (0..D).map(|j| format!("y{j}")).collect();
+    let rows = GaussianRows::new(names, Arc::new(f.y.clone()), Design::intercept(N));
+    let gaussian = GaussianComponents::new(Arc::new(rows), fd.weights, G, CovarianceStructure::UNCONSTRAINED)
         .with_parameters(coef, cov)
         .expect("positive definite");
     Model {
@@ -78,8 +77,7 @@ fn model(fd: &FitData, gating: bool) -> Model {
             }
         },
         components: Components {
-            gaussian: Some(gaussian),
-            ..Components::default()
+            blocks: vec![Box::new(gaussian)],
         },
     }
 }
@@ -93,7 +91,7 @@ fn main() {
 fn e_step_only(bencher: divan::Bencher) {
     let f = fixture();
     let fd = data(&f, false);
-    let m = model(&fd, false);
+    let m = model(&f, &fd, false);
     let mut tau = f.tau.clone();
     bencher.bench_local(|| e_step(&m, &fd, &mut tau, None));
 }
@@ -104,7 +102,7 @@ fn e_step_only(bencher: divan::Bencher) {
 fn e_step_with_sums(bencher: divan::Bencher, gating: bool) {
     let f = fixture();
     let fd = data(&f, gating);
-    let m = model(&fd, gating);
+    let m = model(&f, &fd, gating);
     let mut tau = f.tau.clone();
     let (mut gs, mut ss) = (GatingStats::default(), GaussianStats::default());
     bencher.bench_local(|| e_step_with(&m, &fd, &mut tau, Some(&mut gs), Some(&mut ss)));
@@ -117,7 +115,7 @@ fn e_step_with_sums(bencher: divan::Bencher, gating: bool) {
 fn e_step_sums_only(bencher: divan::Bencher, gating: bool) {
     let f = fixture();
     let fd = data(&f, gating);
-    let mut m = model(&fd, gating);
+    let mut m = model(&f, &fd, gating);
     m.gating.prepare_bound(fd.w, fd.weights);
     let (mut gs, mut ss) = (GatingStats::default(), GaussianStats::default());
     bencher.bench_local(|| e_step_sums(&m, &fd, &mut gs, &mut ss));

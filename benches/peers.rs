@@ -12,12 +12,15 @@
 //! the multinomial logit of the labels on an intercept and the covariates by Newton's
 //! method from zero. Cargo appends `--bench` to the arguments; it is ignored.
 
+use cohortmix::data::Design;
 use cohortmix::fit::em::{self, EmSettings};
+use cohortmix::model::family::gaussian::GaussianRows;
 use cohortmix::model::family::{Components, CovarianceStructure, GaussianComponents, Orientation, Shape, Volume};
 use cohortmix::model::gating::{fit_multinomial_logit, Gating, LogitRows, MAX_NEWTON_ITERATIONS};
 use cohortmix::model::{e_step, FitData, Model};
 use nalgebra::DMatrix;
 use std::path::Path;
+use std::sync::Arc;
 use std::time::Instant;
 
 fn read_f64(path: &Path) -> Vec<f64> {
@@ -65,14 +68,8 @@ fn em_run(folder: &Path, covariance: &str, n_threads: usize, iterations: usize) 
     let data = FitData {
         n,
         weights: &case_weights,
-        y: &y,
-        d,
-        z: &z,
-        q: 1,
         w: &z,
         p: 1,
-        items: None,
-        counts: None,
     };
     let structure = match covariance {
         "full" => CovarianceStructure::UNCONSTRAINED,
@@ -81,7 +78,9 @@ fn em_run(folder: &Path, covariance: &str, n_threads: usize, iterations: usize) 
     };
     let coef: Vec<f64> = means.iter().flatten().copied().collect();
     let cov = covs.iter().map(|c| DMatrix::from_fn(d, d, |a, b| c[a][b])).collect();
-    let gaussian = GaussianComponents::new(&data, g, structure)
+    let names = (0..d).map(|j| format!("y{j}")).collect();
+    let rows = GaussianRows::new(names, Arc::new(y), Design::intercept(n));
+    let gaussian = GaussianComponents::new(Arc::new(rows), &case_weights, g, structure)
         .with_parameters(coef, cov)
         .expect("the starting covariances are positive definite");
     let model = Model {
@@ -89,8 +88,7 @@ fn em_run(folder: &Path, covariance: &str, n_threads: usize, iterations: usize) 
             log_pi: weights_init.iter().map(|w| w.ln()).collect(),
         },
         components: Components {
-            gaussian: Some(gaussian),
-            ..Components::default()
+            blocks: vec![Box::new(gaussian)],
         },
     };
     let settings = EmSettings {

@@ -8,9 +8,10 @@
 //! data from a stated truth. [`cli`] is the command line.
 //!
 //! ```no_run
-//! let study = cohortmix::spec::load(std::path::Path::new("configs/demo.toml")).unwrap();
+//! let families = cohortmix::model::family::Families::standard();
+//! let study = cohortmix::spec::load(std::path::Path::new("configs/demo.toml"), &families.infos()).unwrap();
 //! let data = cohortmix::data::load(&study).unwrap();
-//! let prepared = cohortmix::fit::prepare(&study, &data).unwrap();
+//! let prepared = cohortmix::fit::prepare(&study, &data, &families).unwrap();
 //! let fits = cohortmix::fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
 //! println!("{} fits", fits.len());
 //! ```

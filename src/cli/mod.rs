@@ -5,6 +5,7 @@
 use crate::data::Dataset;
 use crate::error::{Diagnostic, Error, Result};
 use crate::fit::{self, FitResult, PreparedPlacement};
+use crate::model::family::Families;
 use crate::report::{self, Manifest, RunFiles};
 use crate::spec::{self, Study};
 use clap::{Parser, Subcommand};
@@ -144,9 +145,10 @@ pub fn run(cli: Cli) -> Result<()> {
 
 /// Read spec and data, build designs, and check there are enough rows for every fit.
 pub fn load_study(spec_path: &Path) -> Result<(Study, Dataset, Vec<PreparedPlacement>)> {
-    let study = spec::load(spec_path)?;
+    let families = Families::standard();
+    let study = spec::load(spec_path, &families.infos())?;
     let data = crate::data::load(&study)?;
-    let prepared = fit::prepare(&study, &data)?;
+    let prepared = fit::prepare(&study, &data, &families)?;
     check_rows(&study, &data, &prepared)?;
     Ok((study, data, prepared))
 }
@@ -158,11 +160,11 @@ fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> 
         let g = cell.clusters;
         {
             let options = fit::ModelOptions::for_study(study, cell.structure);
-            let k = fit::initial_model(&fd, &pp.placement, g, options).n_params();
+            let k = fit::initial_model(&fd, &pp.blocks, &pp.placement, g, options).n_params();
             if data.n() <= k {
                 return Err(Error::input(
                     study
-                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters ({}) has {k} parameters", data.n(), pp.placement.name, fit::covariance_label(&cell.structure, data.d() > 0)))
+                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters ({}) has {k} parameters", data.n(), pp.placement.name, fit::covariance_label(&cell.structure, pp.uses_structure())))
                         .help("fit fewer clusters, use fewer covariates, or use more data (the rows must outnumber the parameters)"),
                 ));
             }
@@ -218,13 +220,13 @@ fn check(spec_path: &Path) -> Result<()> {
         for &g in &pp.placement.clusters {
             for &structure in &study.search.structures {
                 let options = fit::ModelOptions::for_study(&study, structure);
-                let k = fit::initial_model(&fd, &pp.placement, g, options).n_params();
+                let k = fit::initial_model(&fd, &pp.blocks, &pp.placement, g, options).n_params();
                 let starts = if g == 1 { 1 } else { study.search.starts };
                 let _ = writeln!(
                     out,
                     "    {g} cluster{}, {}: {k} parameters, {starts} start{}",
                     plural(g),
-                    fit::covariance_label(&structure, data.d() > 0),
+                    fit::covariance_label(&structure, pp.uses_structure()),
                     plural(starts)
                 );
                 total_fits += 1;
@@ -488,9 +490,10 @@ fn print_table(results: &report::Results) {
 
 fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<()> {
     use crate::fit::saved;
+    let families = Families::standard();
     let stored = saved::load_run(run)?;
-    let (study, data) = saved::load_new_data(&stored, data_path)?;
-    let predicted = saved::predict(&stored, &study, &data)?;
+    let (study, data) = saved::load_new_data(&stored, data_path, &families)?;
+    let predicted = saved::predict(&stored, &study, &data, &families)?;
     let sets: Vec<(&str, usize, &[f64])> = predicted
         .iter()
         .map(|p| (p.placement.as_str(), p.clusters, p.tau.as_slice()))

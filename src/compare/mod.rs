@@ -13,7 +13,7 @@ pub mod assign;
 
 use crate::data::{Dataset, Design};
 use crate::fit::{FitResult, PreparedPlacement};
-use crate::model::family::Components;
+use crate::model::family::ParamBlock;
 use crate::model::gating::Gating;
 use crate::spec::CompareSettings;
 use serde::Serialize;
@@ -499,7 +499,7 @@ pub fn compare(
             component_effects.extend(
                 crate::inference::effects::effects(u, inference.per)
                     .into_iter()
-                    .filter(|e| e.block != "gating")
+                    .filter(|e| !e.block.is_gating())
                     .map(|effect| ComponentEffect {
                         placement: f.placement.clone(),
                         cluster: aligned[effect.cluster - 1],
@@ -519,7 +519,7 @@ pub fn compare(
         }
         certainty.push((f.placement.clone(), hist));
         for k in 0..g {
-            let (at_reference, avg) = cluster_profile(data, &prepared[*p], best, k);
+            let (at_reference, avg) = cluster_profile(data, best, k);
             profiles.push(Profile {
                 cluster: aligned[k],
                 placement: f.placement.clone(),
@@ -604,7 +604,7 @@ pub fn compare(
     }
 
     let reference = prepared[settings.reference].placement.name.clone();
-    let columns = profile_columns(data);
+    let columns = prepared[settings.reference].profile_columns();
     let mut sentences = sentences(
         &reference,
         &columns,
@@ -658,39 +658,20 @@ pub fn compare(
     }
 }
 
-/// The profile columns of a dataset, in indicator-block order: continuous indicators,
-/// item levels, count rates.
-pub fn profile_columns(data: &Dataset) -> Vec<String> {
-    let mut out = data.gaussian_names.clone();
-    if let Some(b) = &data.items {
-        for (name, levels) in b.names.iter().zip(&b.levels) {
-            for l in crate::data::ItemBlock::shown_levels(levels) {
-                out.push(format!("{name}={}", levels[l]));
-            }
-        }
-    }
-    if let Some(b) = &data.counts {
-        out.extend(b.names.iter().map(|n| format!("{n} (rate)")));
-    }
-    out
-}
-
 /// Profile of fitted cluster k: values at the reference covariate values and averaged
-/// over the sample with posterior weights, in [`profile_columns`] order.
-fn cluster_profile(
-    data: &Dataset,
-    pp: &PreparedPlacement,
-    best: &crate::fit::BestFit,
-    k: usize,
-) -> (Vec<f64>, Vec<f64>) {
+/// over the sample with posterior weights, in [`PreparedPlacement::profile_columns`]
+/// order.
+fn cluster_profile(data: &Dataset, best: &crate::fit::BestFit, k: usize) -> (Vec<f64>, Vec<f64>) {
     let g = best.run.model.clusters();
-    let comps = &best.run.model.components;
-    let levels = data.items.as_ref().map(|b| &b.levels[..]);
-    let (qg, qz) = (pp.gaussian.p(), pp.components.p());
-    // On the fitting scale the reference covariate values are the intercept alone.
-    let unit = |q: usize| (0..q).map(|a| f64::from(u8::from(a == 0))).collect::<Vec<f64>>();
+    let blocks = &best.run.model.components.blocks;
+    let profile_at = |row: Option<usize>, out: &mut Vec<f64>| {
+        out.clear();
+        for b in blocks {
+            b.profile(k, row, out);
+        }
+    };
     let mut at_reference = Vec::new();
-    profile_at(comps, levels, k, &unit(qg), &unit(qz), &mut at_reference);
+    profile_at(None, &mut at_reference);
     let mut avg = vec![0.0; at_reference.len()];
     let mut row = Vec::with_capacity(avg.len());
     let mut total = 0.0;
@@ -700,11 +681,7 @@ fn cluster_profile(
             continue;
         }
         total += v;
-        let (zg, z) = (
-            &pp.gaussian.x[i * qg..(i + 1) * qg],
-            &pp.components.x[i * qz..(i + 1) * qz],
-        );
-        profile_at(comps, levels, k, zg, z, &mut row);
+        profile_at(Some(i), &mut row);
         for (a, r) in avg.iter_mut().zip(&row) {
             *a += v * r;
         }
@@ -713,27 +690,6 @@ fn cluster_profile(
         *a /= total.max(f64::MIN_POSITIVE);
     }
     (at_reference, avg)
-}
-
-/// Cluster k's profile values (in [`profile_columns`] order) at one row's designs: `zg`
-/// for the gaussian block, `z` the whole component design (items and counts).
-fn profile_at(comps: &Components, levels: Option<&[Vec<String>]>, k: usize, zg: &[f64], z: &[f64], out: &mut Vec<f64>) {
-    out.clear();
-    if let Some(gc) = &comps.gaussian {
-        out.resize(gc.d, 0.0);
-        gc.mean(k, zg, out);
-    }
-    if let (Some(ic), Some(levels)) = (&comps.items, levels) {
-        let mut eta = Vec::new();
-        for (j, item_levels) in levels.iter().enumerate() {
-            for l in crate::data::ItemBlock::shown_levels(item_levels) {
-                out.push(ic.log_probability(j, k, z, l, &mut eta).exp());
-            }
-        }
-    }
-    if let Some(cc) = &comps.counts {
-        out.extend((0..cc.names.len()).map(|c| cc.eta(c, k, z).exp()));
-    }
 }
 
 /// Effect curves for the first continuous gating covariate, by the levels of the first
@@ -844,7 +800,7 @@ fn effects(
             let interval = uncertainty.map(|u| {
                 let at = |c: usize| {
                     (c > 0)
-                        .then(|| u.index("gating", c + 1, None, Some(&term.name)))
+                        .then(|| u.index(ParamBlock::GATING.name, c + 1, None, Some(&term.name)))
                         .flatten()
                 };
                 let (_, se) = crate::inference::effects::contrast(u, at(k), at(base));

@@ -54,6 +54,25 @@ impl Design {
         }
     }
 
+    /// The design on some of these columns (`columns`, in order, intercept first): the
+    /// same values; shared, not copied, when they are all of them.
+    pub fn select(&self, columns: &[usize]) -> Design {
+        let p = self.p();
+        if columns.len() == p && columns.iter().enumerate().all(|(a, c)| a == *c) {
+            return self.clone();
+        }
+        let x = self
+            .x
+            .chunks_exact(p)
+            .flat_map(|row| columns.iter().map(|a| row[*a]))
+            .collect();
+        Design {
+            terms: columns.iter().map(|a| self.terms[*a].clone()).collect(),
+            x: Arc::new(x),
+            n: self.n,
+        }
+    }
+
     /// Build from named covariates of a dataset; fails on constant or collinear columns.
     pub fn build(data: &Dataset, covariates: &[String]) -> Result<Design, DesignError> {
         let cols: Vec<(&str, &Column)> = covariates

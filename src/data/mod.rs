@@ -13,11 +13,12 @@ mod design;
 pub use design::{Design, DesignError, Term};
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
-use crate::spec::{read_text, ColumnRef, IndicatorKind, Study, VariableType};
 use crate::numerics::{hex, sha256_hex};
+use crate::spec::{read_text, ColumnRef, FamilyInfo, Layout, Study, VariableType};
 use sha2::{Digest, Sha256};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 
 /// Text that counts as a missing value (besides an empty cell).
 pub const MISSING_WORD: &str = "NA";
@@ -62,18 +63,77 @@ pub struct Dataset {
     pub weights: Vec<f64>,
     /// Every indicator name, in spec order.
     pub indicator_names: Vec<String>,
-    /// How each indicator is modelled (same order).
-    pub indicator_kinds: Vec<IndicatorKind>,
-    /// Names of the continuous (gaussian) indicators, in spec order.
-    pub gaussian_names: Vec<String>,
-    /// Continuous indicators, row-major: `y[i * d + j]` with d = `gaussian_names.len()`.
-    pub y: Vec<f64>,
-    /// Binary and categorical item indicators, if any.
-    pub items: Option<ItemBlock>,
-    /// Count indicators, if any.
-    pub counts: Option<CountBlock>,
+    /// The indicators by family: one set per block of the spec, in the same order.
+    pub indicator_sets: Vec<IndicatorSet>,
+    /// Exposure (person-time) per row and its log, when the spec names an exposure column.
+    pub exposure: Option<Arc<Exposure>>,
     /// Covariate columns by name.
     pub columns: BTreeMap<String, Column>,
+}
+
+/// The indicators of one family, stored as the family's [`Layout`] says.
+#[derive(Debug, Clone, PartialEq)]
+pub struct IndicatorSet {
+    /// The family.
+    pub family: &'static FamilyInfo,
+    /// Indicator names, in spec order.
+    pub names: Vec<String>,
+    /// Their values.
+    pub values: IndicatorValues,
+}
+
+/// Indicator values in one of the layouts a family can ask for.
+#[derive(Debug, Clone, PartialEq)]
+pub enum IndicatorValues {
+    /// [`Layout::Rows`]: indicator j of row i at `y[i * d + j]`.
+    Rows(Arc<Vec<f64>>),
+    /// [`Layout::Columns`]: indicator c of row i at `y[c * n + i]`.
+    Columns(Arc<Vec<f64>>),
+    /// [`Layout::Levels`]: level codes, row-major n×J, [`MISSING_ITEM`] where missing.
+    Levels {
+        /// The codes.
+        codes: Arc<Vec<u16>>,
+        /// Levels of each indicator; code l means `levels[j][l]`. Code 0 is the baseline
+        /// of a logit on the levels (for a binary indicator, 0).
+        levels: Vec<Vec<String>>,
+        /// Values missing in the rows used.
+        missing: usize,
+    },
+}
+
+impl IndicatorSet {
+    /// Numbers, row-major or by column as the layout says.
+    pub fn numbers(&self) -> &Arc<Vec<f64>> {
+        match &self.values {
+            IndicatorValues::Rows(y) | IndicatorValues::Columns(y) => y,
+            IndicatorValues::Levels { .. } => panic!("the indicators of '{}' are level codes", self.family.word),
+        }
+    }
+
+    /// Level codes and levels.
+    pub fn levels(&self) -> (&Arc<Vec<u16>>, &[Vec<String>]) {
+        match &self.values {
+            IndicatorValues::Levels { codes, levels, .. } => (codes, levels),
+            _ => panic!("the indicators of '{}' are numbers", self.family.word),
+        }
+    }
+
+    /// Values missing (and skipped) in the rows used.
+    pub fn missing_values(&self) -> usize {
+        match &self.values {
+            IndicatorValues::Levels { missing, .. } => *missing,
+            _ => 0,
+        }
+    }
+}
+
+/// An exposure column: person-time per row, and its log (the offset of a rate model).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Exposure {
+    /// Exposure per row (positive).
+    pub values: Vec<f64>,
+    /// Its log.
+    pub logs: Vec<f64>,
 }
 
 /// Row identifiers end to end in one text, separated by line feeds, with an end offset
@@ -139,59 +199,8 @@ impl<S: AsRef<str>> FromIterator<S> for RowIds {
     }
 }
 
-/// Marks a missing item value in [`ItemBlock::codes`].
+/// Marks a missing value in the codes of [`IndicatorValues::Levels`].
 pub const MISSING_ITEM: u16 = u16::MAX;
-
-/// Item indicators: level codes per row, missing values kept (missing at random).
-#[derive(Debug, Clone, PartialEq)]
-pub struct ItemBlock {
-    /// Item names, in spec order.
-    pub names: Vec<String>,
-    /// Levels of each item; code l means `levels[j][l]`. Code 0 is the baseline of the
-    /// item logits (for a binary item, 0).
-    pub levels: Vec<Vec<String>>,
-    /// Codes, row-major n×J; [`MISSING_ITEM`] where the value is missing.
-    pub codes: Vec<u16>,
-    /// Missing item values in the rows used.
-    pub missing_values: usize,
-}
-
-impl ItemBlock {
-    /// Number of items.
-    pub fn len(&self) -> usize {
-        self.names.len()
-    }
-
-    /// True when there are no items.
-    pub fn is_empty(&self) -> bool {
-        self.names.is_empty()
-    }
-
-    /// The levels that stand for an item in profiles and in seeding distances: level 1 of
-    /// a binary item (level 0 is its complement), every level otherwise.
-    pub fn shown_levels(levels: &[String]) -> Vec<usize> {
-        if levels.len() == 2 {
-            vec![1]
-        } else {
-            (0..levels.len()).collect()
-        }
-    }
-}
-
-/// Count indicators and the optional exposure.
-#[derive(Debug, Clone, PartialEq)]
-pub struct CountBlock {
-    /// Count names, in spec order.
-    pub names: Vec<String>,
-    /// Counts, column by column: count c of row i at `y[c * n + i]`.
-    pub y: Vec<f64>,
-    /// log(y!) of every count, laid out as `y`.
-    pub ln_factorial: Vec<f64>,
-    /// Exposure (person-time) per row, if the spec names an exposure column.
-    pub exposure: Option<Vec<f64>>,
-    /// log(exposure) per row: the offset of every count regression.
-    pub log_exposure: Option<Vec<f64>>,
-}
 
 impl Dataset {
     /// Rows kept.
@@ -199,51 +208,9 @@ impl Dataset {
         self.ids.len()
     }
 
-    /// Number of continuous (gaussian) indicators.
-    pub fn d(&self) -> usize {
-        self.gaussian_names.len()
-    }
-
-    /// Every indicator as numbers, for seeding starts by distance (row-major, with its
-    /// column count): continuous indicators as they are, a binary item as 0/1, a
-    /// categorical item as one 0/1 column per level, a count as log(1 + y); a missing item
-    /// value takes the item's observed mean. Seeding standardises each column. With
-    /// continuous indicators alone that is the indicators themselves, not a copy.
-    pub fn seeding_matrix(&self) -> (std::borrow::Cow<'_, [f64]>, usize) {
-        if self.items.is_none() && self.counts.is_none() {
-            return (std::borrow::Cow::Borrowed(&self.y), self.d());
-        }
-        let n = self.n();
-        let mut cols: Vec<Vec<f64>> = (0..self.d())
-            .map(|j| (0..n).map(|i| self.y[i * self.d() + j]).collect())
-            .collect();
-        if let Some(b) = &self.items {
-            let nj = b.len();
-            for (j, levels) in b.levels.iter().enumerate() {
-                for l in ItemBlock::shown_levels(levels) {
-                    let raw: Vec<Option<f64>> = (0..n)
-                        .map(|i| {
-                            let c = b.codes[i * nj + j];
-                            (c != MISSING_ITEM).then(|| f64::from(u8::from(usize::from(c) == l)))
-                        })
-                        .collect();
-                    let seen: Vec<f64> = raw.iter().flatten().copied().collect();
-                    let mean = seen.iter().sum::<f64>() / seen.len().max(1) as f64;
-                    cols.push(raw.into_iter().map(|v| v.unwrap_or(mean)).collect());
-                }
-            }
-        }
-        if let Some(b) = &self.counts {
-            cols.extend(b.y.chunks_exact(n).map(|col| col.iter().map(|y| y.ln_1p()).collect()));
-        }
-        let m = cols.len();
-        let mut out = vec![0.0; n * m];
-        for (j, col) in cols.iter().enumerate() {
-            for (i, v) in col.iter().enumerate() {
-                out[i * m + j] = *v;
-            }
-        }
-        (std::borrow::Cow::Owned(out), m)
+    /// The indicator set of a family.
+    pub fn set_of(&self, family: &str) -> Option<&IndicatorSet> {
+        self.indicator_sets.iter().find(|s| s.family.word == family)
     }
 
     /// Design matrix for a list of covariates (intercept first).
@@ -324,7 +291,8 @@ fn is_missing(s: &str) -> bool {
 /// Role of a needed column.
 #[derive(Clone, Copy, PartialEq)]
 enum Role {
-    Indicator(IndicatorKind),
+    /// Indicator `.1` of set `.0`.
+    Indicator(usize, usize),
     Covariate,
     Weight,
     Exposure,
@@ -534,8 +502,71 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
             .help("add at least one row of data below the header"),
         ));
     }
+    let (keep, missing_by_column) = rows_to_keep(study, &needed, &cells, rows_read)?;
+    let rows_used = keep.iter().filter(|k| **k).count();
+    if rows_used == 0 {
+        return Err(Error::input(
+            Diagnostic::new(format!("no row of {} has every value the fits need", path.display()))
+                .help(describe_missing(&missing_by_column)),
+        ));
+    }
+    let ids = row_ids(raw, &needed, &mut cells, &lines, &keep)?;
+    let mut sets: Vec<SetBuilder> = study
+        .blocks
+        .iter()
+        .map(|b| SetBuilder::new(b.family, rows_used, b.columns.len()))
+        .collect();
+    let mut parsed = Parsed {
+        weights: vec![1.0; rows_used],
+        exposure: None,
+        columns: BTreeMap::new(),
+    };
+    for (k, nd) in needed.iter().enumerate() {
+        match nd.role {
+            Role::Id => continue,
+            Role::Indicator(set, j) if study.blocks[set].family.layout == Layout::Levels => {
+                let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep)?;
+                sets[set].put_levels(j, levels, &codes);
+            }
+            role => {
+                let kept = kept_cells(&lines, &cells[k], &keep).map(|(l, c)| (l, c.unwrap_or("")));
+                let column = parse_column(raw, study, nd, kept.clone(), rows_used)?;
+                match role {
+                    Role::Indicator(set, j) => sets[set].put_numbers(j, column),
+                    other => parsed.put(raw, study, nd, other, kept, column)?,
+                }
+            }
+        }
+        cells[k] = Cells::default(); // parsed: free its text
+    }
+    Ok(Dataset {
+        path: path.to_path_buf(),
+        sha256,
+        rows_read,
+        rows_excluded: rows_read - rows_used,
+        missing_by_column,
+        ids,
+        weights: parsed.weights,
+        indicator_names: study.indicators.iter().map(|c| c.name.clone()).collect(),
+        indicator_sets: study.blocks.iter().zip(sets).map(|(b, s)| s.finish(b)).collect(),
+        exposure: parsed.exposure.map(Arc::new),
+        columns: parsed.columns,
+    })
+}
 
-    // Which rows are complete for every needed column.
+/// Which rows are complete for every needed column (a missing value of an indicator
+/// whose family skips missing values does not exclude its row), and how many rows missed
+/// each column.
+fn rows_to_keep(
+    study: &Study,
+    needed: &[Needed],
+    cells: &[Cells],
+    rows_read: usize,
+) -> Result<(Vec<bool>, Vec<(String, usize)>)> {
+    let skips_missing = |nd: &Needed| match nd.role {
+        Role::Indicator(set, _) => study.blocks[set].family.layout == Layout::Levels,
+        _ => false,
+    };
     let mut keep = vec![true; rows_read];
     let mut missing_by_column = Vec::new();
     for (k, nd) in needed.iter().enumerate() {
@@ -555,8 +586,8 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
         }
         if nd.role != Role::Id {
             missing_by_column.push((nd.col.name.clone(), missing));
-            if nd.role == Role::Indicator(IndicatorKind::Item) {
-                continue; // a missing item value is skipped in that row's likelihood
+            if skips_missing(nd) {
+                continue; // skipped in that row's likelihood
             }
             for (i, c) in cells[k].iter().enumerate() {
                 if c.is_none() {
@@ -566,34 +597,26 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
         }
     }
     // A row with no indicator value at all carries no information about the clusters.
-    let item_ks: Vec<usize> = (0..needed.len())
-        .filter(|k| needed[*k].role == Role::Indicator(IndicatorKind::Item))
-        .collect();
-    if item_ks.len() == study.indicators.len() {
+    let skipping: Vec<usize> = (0..needed.len()).filter(|k| skips_missing(&needed[*k])).collect();
+    if skipping.len() == study.indicators.len() {
         let mut empty = 0;
         for (i, kp) in keep.iter_mut().enumerate() {
-            if *kp && item_ks.iter().all(|k| cells[*k].get(i).is_none()) {
+            if *kp && skipping.iter().all(|k| cells[*k].get(i).is_none()) {
                 *kp = false;
                 empty += 1;
             }
         }
         missing_by_column.push(("(every item missing)".to_string(), empty));
     }
-    let rows_used = keep.iter().filter(|k| **k).count();
-    if rows_used == 0 {
-        return Err(Error::input(
-            Diagnostic::new(format!("no row of {} has every value the fits need", path.display()))
-                .help(describe_missing(&missing_by_column)),
-        ));
-    }
+    Ok((keep, missing_by_column))
+}
 
+/// The kept rows' ids (the id column, or the 1-based data row number); an id that
+/// repeats is an error naming both lines.
+fn row_ids(raw: &Raw, needed: &[Needed], cells: &mut [Cells], lines: &[usize], keep: &[bool]) -> Result<RowIds> {
     let mut ids = RowIds::default();
-    let mut weights = vec![1.0; rows_used];
-    let d = study.indicators_of(IndicatorKind::Gaussian).len();
-    let mut y = vec![0.0; rows_used * d];
-    let mut columns = BTreeMap::new();
     let id_k = needed.iter().position(|n| n.role == Role::Id);
-    let mut id_lines = Vec::with_capacity(rows_used);
+    let mut id_lines = Vec::new();
     for (i, line) in lines.iter().enumerate() {
         if !keep[i] {
             continue;
@@ -618,68 +641,104 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
             .help("every row needs its own id; remove the duplicate row"),
         ));
     }
-    let mut gaussian_pos = 0;
-    let mut count_pos = 0;
-    let mut item_pos = 0;
-    let n_items = study.indicators_of(IndicatorKind::Item).len();
-    let n_counts = study.indicators_of(IndicatorKind::Count).len();
-    let mut items = (n_items > 0).then(|| ItemBlock {
-        names: Vec::new(),
-        levels: Vec::new(),
-        codes: vec![MISSING_ITEM; rows_used * n_items],
-        missing_values: 0,
-    });
-    let mut counts = (n_counts > 0).then(|| CountBlock {
-        names: Vec::new(),
-        y: vec![0.0; rows_used * n_counts],
-        ln_factorial: Vec::new(),
-        exposure: None,
-        log_exposure: None,
-    });
-    for (k, nd) in needed.iter().enumerate() {
-        if nd.role == Role::Id {
-            continue;
+    Ok(ids)
+}
+
+/// One family's indicators while they are parsed.
+struct SetBuilder {
+    layout: Layout,
+    rows: usize,
+    width: usize,
+    numbers: Vec<f64>,
+    codes: Vec<u16>,
+    levels: Vec<Vec<String>>,
+    missing: usize,
+}
+
+impl SetBuilder {
+    fn new(family: &FamilyInfo, rows: usize, width: usize) -> SetBuilder {
+        let (numbers, codes) = match family.layout {
+            Layout::Levels => (Vec::new(), vec![MISSING_ITEM; rows * width]),
+            Layout::Rows | Layout::Columns => (vec![0.0; rows * width], Vec::new()),
+        };
+        SetBuilder {
+            layout: family.layout,
+            rows,
+            width,
+            numbers,
+            codes,
+            levels: vec![Vec::new(); width],
+            missing: 0,
         }
-        if nd.role == Role::Indicator(IndicatorKind::Item) {
-            let block = items.as_mut().expect("items were counted");
-            let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep)?;
-            cells[k] = Cells::default(); // parsed: free its text
-            for (i, c) in codes.iter().enumerate() {
-                block.codes[i * n_items + item_pos] = *c;
-            }
-            block.missing_values += codes.iter().filter(|c| **c == MISSING_ITEM).count();
-            block.names.push(nd.col.name.clone());
-            block.levels.push(levels);
-            item_pos += 1;
-            continue;
-        }
-        let kept = kept_cells(&lines, &cells[k], &keep).map(|(l, c)| (l, c.unwrap_or("")));
-        let parsed = parse_column(raw, study, nd, kept.clone(), rows_used)?;
-        match nd.role {
-            Role::Indicator(IndicatorKind::Gaussian) => {
-                let Column::Numeric { values, .. } = &parsed else {
-                    unreachable!("continuous indicators are numeric")
-                };
+    }
+
+    /// Indicator `j`'s numbers.
+    fn put_numbers(&mut self, j: usize, column: Column) {
+        let Column::Numeric { values, .. } = column else {
+            unreachable!("the indicators of a numeric layout are numeric")
+        };
+        match self.layout {
+            Layout::Rows => {
                 for (i, v) in values.iter().enumerate() {
-                    y[i * d + gaussian_pos] = *v;
+                    self.numbers[i * self.width + j] = *v;
                 }
-                gaussian_pos += 1;
             }
-            Role::Indicator(IndicatorKind::Count) => {
-                let Column::Numeric { values, .. } = &parsed else {
-                    unreachable!("counts are numeric")
-                };
-                let block = counts.as_mut().expect("counts were counted");
-                block.y[count_pos * rows_used..(count_pos + 1) * rows_used].copy_from_slice(values);
-                block.names.push(nd.col.name.clone());
-                count_pos += 1;
-            }
-            Role::Indicator(IndicatorKind::Item) => unreachable!("items are parsed above"),
+            _ => self.numbers[j * self.rows..(j + 1) * self.rows].copy_from_slice(&values),
+        }
+    }
+
+    /// Indicator `j`'s levels and codes.
+    fn put_levels(&mut self, j: usize, levels: Vec<String>, codes: &[u16]) {
+        for (i, c) in codes.iter().enumerate() {
+            self.codes[i * self.width + j] = *c;
+        }
+        self.missing += codes.iter().filter(|c| **c == MISSING_ITEM).count();
+        self.levels[j] = levels;
+    }
+
+    fn finish(self, block: &crate::spec::IndicatorBlock) -> IndicatorSet {
+        let values = match self.layout {
+            Layout::Rows => IndicatorValues::Rows(Arc::new(self.numbers)),
+            Layout::Columns => IndicatorValues::Columns(Arc::new(self.numbers)),
+            Layout::Levels => IndicatorValues::Levels {
+                codes: Arc::new(self.codes),
+                levels: self.levels,
+                missing: self.missing,
+            },
+        };
+        IndicatorSet {
+            family: block.family,
+            names: block.columns.iter().map(|c| c.name.clone()).collect(),
+            values,
+        }
+    }
+}
+
+/// The parsed columns that are not indicators.
+struct Parsed {
+    weights: Vec<f64>,
+    exposure: Option<Exposure>,
+    columns: BTreeMap<String, Column>,
+}
+
+impl Parsed {
+    /// Keep a parsed weight, exposure or covariate column (`kept`: its kept rows' line and
+    /// cell), checking weights and exposure.
+    fn put<'c>(
+        &mut self,
+        raw: &Raw,
+        study: &Study,
+        nd: &Needed,
+        role: Role,
+        kept: impl Iterator<Item = (usize, &'c str)>,
+        column: Column,
+    ) -> Result<()> {
+        match role {
             Role::Exposure => {
-                let Column::Numeric { values, .. } = parsed else {
+                let Column::Numeric { values, .. } = column else {
                     unreachable!("exposure is numeric")
                 };
-                for ((l, _), e) in kept.clone().zip(&values) {
+                for ((l, _), e) in kept.zip(&values) {
                     if !(*e > 0.0) {
                         return Err(Error::input(
                             Diagnostic::new(format!("exposure {e} in column '{}' is not positive", nd.col.name))
@@ -690,15 +749,14 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
                         ));
                     }
                 }
-                let block = counts.as_mut().expect("an exposure needs counts");
-                block.log_exposure = Some(values.iter().map(|e| e.ln()).collect());
-                block.exposure = Some(values);
+                let logs = values.iter().map(|e| e.ln()).collect();
+                self.exposure = Some(Exposure { values, logs });
             }
             Role::Weight => {
-                let Column::Numeric { values, .. } = parsed else {
+                let Column::Numeric { values, .. } = column else {
                     unreachable!("weights are numeric")
                 };
-                for ((l, _), w) in kept.clone().zip(&values) {
+                for ((l, _), w) in kept.zip(&values) {
                     if *w < 0.0 {
                         return Err(Error::input(
                             Diagnostic::new(format!("weight {w} in column '{}' is negative", nd.col.name))
@@ -713,45 +771,15 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
                         format!("every weight in '{}' is zero", nd.col.name),
                     )));
                 }
-                weights = values;
+                self.weights = values;
             }
             Role::Covariate => {
-                columns.insert(nd.col.name.clone(), parsed);
+                self.columns.insert(nd.col.name.clone(), column);
             }
-            Role::Id => {}
+            Role::Id | Role::Indicator(..) => unreachable!("ids and indicators are kept elsewhere"),
         }
-        drop(kept);
-        cells[k] = Cells::default(); // parsed: free its text
+        Ok(())
     }
-
-    if let Some(b) = counts.as_mut() {
-        b.ln_factorial =
-            b.y.iter()
-                .map(|y| statrs::function::factorial::ln_factorial(*y as u64))
-                .collect();
-    }
-    let data = Dataset {
-        path: path.to_path_buf(),
-        sha256,
-        rows_read,
-        rows_excluded: rows_read - rows_used,
-        missing_by_column,
-        ids,
-        weights,
-        indicator_names: study.indicators.iter().map(|c| c.name.clone()).collect(),
-        indicator_kinds: study.indicator_kinds.clone(),
-        gaussian_names: study
-            .indicators_of(IndicatorKind::Gaussian)
-            .iter()
-            .map(|c| c.name.clone())
-            .collect(),
-        y,
-        items,
-        counts,
-        columns,
-    };
-    check_scales(study, &data)?;
-    Ok(data)
 }
 
 /// The first id (in row order) that an earlier row already has: (that earlier row, this
@@ -766,67 +794,6 @@ fn first_repeat(ids: &RowIds) -> Option<(usize, usize)> {
         .filter(|w| ids[w[0] as usize] == ids[w[1] as usize])
         .map(|w| (w[0] as usize, w[1] as usize))
         .min_by_key(|(_, again)| *again)
-}
-
-/// Largest ratio of two continuous indicators' variances that fitting can take: beyond
-/// it, rounding swamps the smaller indicator and the collapse check (relative to the
-/// largest variance) cannot tell a collapsed cluster from a small scale.
-pub const MAX_VARIANCE_RATIO: f64 = 1e14;
-
-/// Continuous indicators must have a finite, non-zero variance, on scales within
-/// [`MAX_VARIANCE_RATIO`] of each other.
-fn check_scales(study: &Study, data: &Dataset) -> Result<()> {
-    let d = data.d();
-    let n = data.n();
-    if d == 0 || n == 0 {
-        return Ok(());
-    }
-    let gaussian = study.indicators_of(IndicatorKind::Gaussian);
-    let mut variances = Vec::with_capacity(d);
-    for j in 0..d {
-        let mean = (0..n).map(|i| data.y[i * d + j]).sum::<f64>() / n as f64;
-        let var = (0..n).map(|i| (data.y[i * d + j] - mean).powi(2)).sum::<f64>() / n as f64;
-        let c = gaussian[j];
-        if !var.is_finite() {
-            return Err(Error::input(
-                study
-                    .error_at(c.span.clone(), format!("indicator '{}' has values so large that their squares overflow", c.name))
-                    .help("rescale it (for example to thousands or millions of its unit) so its values stay below about 1e150"),
-            ));
-        }
-        if !(var > 0.0) {
-            return Err(Error::input(
-                study
-                    .error_at(
-                        c.span.clone(),
-                        format!("indicator '{}' has the same value in every row used", c.name),
-                    )
-                    .help("a constant indicator cannot separate clusters; leave it out"),
-            ));
-        }
-        variances.push(var);
-    }
-    let (lo, hi) = variances.iter().enumerate().fold((0, 0), |(lo, hi), (j, v)| {
-        (
-            if *v < variances[lo] { j } else { lo },
-            if *v > variances[hi] { j } else { hi },
-        )
-    });
-    if variances[hi] / variances[lo] > MAX_VARIANCE_RATIO {
-        return Err(Error::input(
-            study
-                .error_at(
-                    gaussian[lo].span.clone(),
-                    format!(
-                        "indicators '{}' and '{}' are on scales too far apart to fit together (their variances differ by a factor of {:.1e})",
-                        gaussian[lo].name, gaussian[hi].name,
-                        variances[hi] / variances[lo]
-                    ),
-                )
-                .help(format!("rescale one of them so their spreads are within a factor of {:.0e} of each other", MAX_VARIANCE_RATIO.sqrt())),
-        ));
-    }
-    Ok(())
 }
 
 fn describe_missing(m: &[(String, usize)]) -> String {
@@ -882,8 +849,14 @@ fn needed_columns(study: &Study, header: &[String]) -> Result<Vec<Needed>> {
     if let Some(w) = &study.weights {
         add(w, Role::Weight)?;
     }
-    for (c, k) in study.indicators.iter().zip(&study.indicator_kinds) {
-        add(c, Role::Indicator(*k))?;
+    for c in &study.indicators {
+        let (set, j) = study
+            .blocks
+            .iter()
+            .enumerate()
+            .find_map(|(s, b)| b.columns.iter().position(|x| x.name == c.name).map(|j| (s, j)))
+            .expect("every indicator is in a block");
+        add(c, Role::Indicator(set, j))?;
     }
     if let Some(e) = &study.exposure {
         add(e, Role::Exposure)?;
@@ -1154,7 +1127,6 @@ fn csv_error(raw: &Raw, e: &csv::Error) -> Error {
         ))),
     }
 }
-
 
 #[cfg(test)]
 mod tests {

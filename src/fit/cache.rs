@@ -15,11 +15,9 @@ use super::em::{EmRun, Termination};
 use super::saved::SavedModel;
 use super::{fit_data, initial_model, BestFit, Cell, FitResult, ModelOptions, PreparedPlacement, StartRecord};
 use crate::data::Dataset;
-use crate::numerics::sha256_hex;
 use crate::model::family::CovarianceStructure;
-use crate::model::gating::Gating;
+use crate::numerics::sha256_hex;
 use crate::spec::Study;
-use nalgebra::DMatrix;
 use serde::{Deserialize, Serialize};
 use std::fmt::Write as _;
 use std::path::Path;
@@ -45,11 +43,8 @@ pub fn fit_key(
         let _ = writeln!(s, "variable {name} {kind:?}");
     }
     let names: Vec<&str> = study.indicators.iter().map(|c| c.name.as_str()).collect();
-    let _ = writeln!(
-        s,
-        "indicators {:?} {:?} {:?}",
-        names, study.indicator_kinds, study.family
-    );
+    let kinds: Vec<&str> = study.indicator_families.iter().map(|f| f.word).collect();
+    let _ = writeln!(s, "indicators {:?} {:?} {:?}", names, kinds, study.family.word());
     let _ = writeln!(
         s,
         "exposure {:?} smoothing {:?} weights {:?}",
@@ -102,10 +97,6 @@ struct CachedBest {
     start: usize,
     reaching: usize,
     model: SavedModel,
-    orientation: Option<Vec<f64>>,
-    floor_hits: usize,
-    empty_cells: usize,
-    counts_started: bool,
     loglik: f64,
     objective: f64,
     trace: Vec<f64>,
@@ -117,27 +108,17 @@ struct CachedBest {
 
 /// Store a finished fit (temporary name, then rename: never half a file).
 pub fn store(folder: &Path, key: &str, result: &FitResult) -> std::io::Result<()> {
-    let best = result.best.as_ref().map(|b| {
-        let m = &b.run.model;
-        let gc = m.components.gaussian.as_ref();
-        CachedBest {
-            start: b.start,
-            reaching: b.reaching,
-            model: SavedModel::new(m),
-            orientation: gc
-                .and_then(|g| g.common_orientation())
-                .map(|o| o.transpose().as_slice().to_vec()),
-            floor_hits: gc.map_or(0, |g| g.floor_hits),
-            empty_cells: m.components.items.as_ref().map_or(0, |i| i.empty_cells),
-            counts_started: m.components.counts.as_ref().is_some_and(|c| c.started),
-            loglik: b.run.loglik,
-            objective: b.run.objective,
-            trace: b.run.trace.clone(),
-            iterations: b.run.iterations,
-            termination: b.run.termination.clone(),
-            gating_damped: b.run.gating_damped,
-            gating_fallbacks: b.run.gating_fallbacks,
-        }
+    let best = result.best.as_ref().map(|b| CachedBest {
+        start: b.start,
+        reaching: b.reaching,
+        model: SavedModel::new(&b.run.model),
+        loglik: b.run.loglik,
+        objective: b.run.objective,
+        trace: b.run.trace.clone(),
+        iterations: b.run.iterations,
+        termination: b.run.termination.clone(),
+        gating_damped: b.run.gating_damped,
+        gating_fallbacks: b.run.gating_fallbacks,
     });
     let entry = Entry {
         key: key.to_string(),
@@ -209,34 +190,10 @@ fn rebuild(
         None => None,
         Some(c) => {
             let options = ModelOptions::for_study(study, structure);
-            let mut model = initial_model(&fd, &prepared.placement, g, options);
+            let mut model = initial_model(&fd, &prepared.blocks, &prepared.placement, g, options);
             model.gating.prepare_bound(fd.w, fd.weights);
-            let saved = c.model.to_model(&fd, g).map_err(|e| e.reason)?;
-            match (&mut model.gating, saved.gating) {
-                (Gating::Logit { gamma, .. }, Gating::Logit { gamma: s, .. }) if gamma.len() == s.len() => *gamma = s,
-                (Gating::Free { log_pi }, Gating::Free { log_pi: s }) if log_pi.len() == s.len() => *log_pi = s,
-                (Gating::Equal { .. }, Gating::Equal { .. }) | (Gating::Fixed { .. }, Gating::Fixed { .. }) => {}
-                _ => return Err("its gating network does not fit the placement".into()),
-            }
-            if let (Some(mine), Some(s)) = (&mut model.components.gaussian, saved.components.gaussian) {
-                let covs = s.cov.clone();
-                *mine = mine
-                    .clone()
-                    .with_parameters(s.coef.clone(), covs)
-                    .map_err(|e| e.reason)?;
-                let d = mine.d;
-                mine.set_common_orientation(c.orientation.as_ref().map(|o| DMatrix::from_row_slice(d, d, o)));
-                mine.floor_hits = c.floor_hits;
-            }
-            if let (Some(mine), Some(s)) = (&mut model.components.items, saved.components.items) {
-                mine.log_prob = s.log_prob;
-                mine.coef = s.coef;
-                mine.empty_cells = c.empty_cells;
-            }
-            if let (Some(mine), Some(s)) = (&mut model.components.counts, saved.components.counts) {
-                mine.coef = s.coef;
-                mine.started = c.counts_started;
-            }
+            c.model.gating.apply_to(&mut model.gating)?;
+            model.components = c.model.components(&fd, &prepared.blocks, g, &options)?;
             let mut tau = vec![0.0; data.n() * g];
             crate::model::e_step(&model, &fd, &mut tau, None);
             Some(BestFit {
@@ -263,7 +220,7 @@ fn rebuild(
         placement: prepared.placement.name.clone(),
         clusters: g,
         structure,
-        has_gaussian: fd.d > 0,
+        uses_structure: prepared.uses_structure(),
         n_params: entry.n_params,
         n_rows: entry.n_rows,
         starts: entry.starts,

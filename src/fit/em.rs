@@ -6,7 +6,7 @@
 //! log-likelihood stops being finite. Why it stopped is part of the result.
 
 use crate::model::gating::{Gating, GatingStats};
-use crate::model::{e_step_sums, e_step_with, FitData, GaussianStats, Model};
+use crate::model::{e_step_sums, e_step_with, FitData, GatingUpdate, GaussianStats, Model};
 use serde::Serialize;
 
 /// Why a start stopped.
@@ -269,7 +269,7 @@ impl<'a> Walk<'a> {
         let known_sums = self.have_stats.then_some(&self.sums);
         let mut model = self.model.clone();
         let step = model
-            .m_step(&self.data, &self.tau, known, known_sums, false)
+            .m_step(&self.data, &self.tau, known, known_sums, GatingUpdate::Newton)
             .map_err(degenerate)?;
         self.damped += step.damped;
         let mut next = self.evaluate(&model);
@@ -278,7 +278,13 @@ impl<'a> Walk<'a> {
         if self.logit && self.have_stats && !(next.1 >= self.objective - 1e-13 * self.objective.abs()) {
             model = self.model.clone();
             model
-                .m_step(&self.data, &self.tau, Some(&self.stats), Some(&self.sums), true)
+                .m_step(
+                    &self.data,
+                    &self.tau,
+                    Some(&self.stats),
+                    Some(&self.sums),
+                    GatingUpdate::Bound,
+                )
                 .map_err(degenerate)?;
             next = self.evaluate(&model);
             self.fallbacks += 1;

@@ -13,42 +13,34 @@ pub mod three_step;
 
 use crate::data::{Dataset, Design};
 use crate::error::{Error, Result};
-use crate::model::family::items::ItemRows;
-use crate::model::family::{Components, CountComponents, CovarianceStructure, GaussianComponents, ItemComponents};
+use crate::model::family::{BlockDesigns, Components, CovarianceStructure, Families, Prepared};
 use crate::model::gating::Gating;
+pub use crate::model::ModelOptions;
 use crate::model::{FitData, Model};
 use crate::rng::Stream;
 use crate::spec::{Placement, Proportions, Study};
 use em::{EmRun, EmSettings, Termination};
 use rayon::prelude::*;
 use starts::StartKind;
+use std::sync::Arc;
 
 /// Two log-likelihoods within this relative distance count as the same optimum.
 pub const SAME_OPTIMUM: f64 = 1e-6;
 
-/// A placement with its design matrices built.
+/// A placement with its design matrices and its component blocks' arrays built.
 #[derive(Debug, Clone)]
 pub struct PreparedPlacement {
     /// The placement as validated.
     pub placement: Placement,
     /// Gating design (intercept alone when the placement has no gating covariates).
     pub gating: Design,
-    /// The whole component design: every component covariate (items and counts use
-    /// columns of it).
+    /// The whole component design: every component covariate (each block uses the
+    /// columns that act on its indicators).
     pub components: Design,
-    /// Design of the gaussian block: the component covariates that act on the continuous
-    /// indicators.
-    pub gaussian: Design,
-    /// Per item, the columns of `components` its logits use (intercept first).
-    pub item_terms: Vec<Vec<usize>>,
-    /// Levels per item.
-    pub item_levels: Vec<usize>,
-    /// Per count, the columns of `components` its regression uses (intercept first).
-    pub count_terms: Vec<Vec<usize>>,
-    /// Per item, the arrays its M-step reuses at every EM iteration.
-    pub item_rows: Vec<ItemRows>,
-    /// Per count with covariates, its design on its columns (empty without covariates).
-    pub count_x: Vec<Vec<f64>>,
+    /// Each block's arrays, one per indicator set of the data, in block order.
+    pub blocks: Vec<Arc<dyn Prepared>>,
+    /// The families the blocks were prepared by (to prepare a changed placement again).
+    pub families: Families,
     /// For a three-step placement: the design of its gating covariates, used in step 3
     /// (the mixture itself is fitted with `gating` = intercept alone).
     pub step_three: Option<Design>,
@@ -73,33 +65,62 @@ impl PreparedPlacement {
             _ => &self.gating,
         }
     }
+
+    /// Names of the profile values of a fit of this placement, in block order.
+    pub fn profile_columns(&self) -> Vec<String> {
+        self.blocks.iter().flat_map(|b| b.profile_columns()).collect()
+    }
+
+    /// Whether some block uses the covariance structure.
+    pub fn uses_structure(&self) -> bool {
+        self.blocks
+            .iter()
+            .any(|b| b.info().reads(crate::spec::FamilyKey::Covariance))
+    }
+
+    /// The indicators as numbers for seeding starts by distance (row-major, with its
+    /// column count): with one block that holds them row-major already, those values;
+    /// else every block's seeding columns side by side.
+    pub fn seeding_matrix(&self) -> (std::borrow::Cow<'_, [f64]>, usize) {
+        if let [only] = &self.blocks[..] {
+            if let Some((y, d)) = only.seeding_rows() {
+                return (std::borrow::Cow::Borrowed(y), d);
+            }
+        }
+        let cols: Vec<Vec<f64>> = self.blocks.iter().flat_map(|b| b.seeding_columns()).collect();
+        let m = cols.len();
+        let n = cols.first().map_or(0, Vec::len);
+        let mut out = vec![0.0; n * m];
+        for (j, col) in cols.iter().enumerate() {
+            for (i, v) in col.iter().enumerate() {
+                out[i * m + j] = *v;
+            }
+        }
+        (std::borrow::Cow::Owned(out), m)
+    }
 }
 
-/// Columns of `design` that act on `indicator` under `placement`: the intercept and every
-/// term of a covariate that acts on it.
-fn terms_for(design: &Design, placement: &Placement, indicator: &str) -> Vec<usize> {
-    (0..design.p())
-        .filter(|a| {
-            design.terms[*a]
-                .covariate
-                .as_ref()
-                .is_none_or(|c| placement.acts_on(c, indicator))
-        })
-        .collect()
-}
-
-/// Build the designs of every placement; a constant or collinear covariate set is an
-/// input error pointing at the placement.
-pub fn prepare(study: &Study, data: &Dataset) -> Result<Vec<PreparedPlacement>> {
+/// Check the data for every family (the checks of data that is fitted, not scored), then
+/// build the designs and block arrays of every placement; a constant or collinear
+/// covariate set is an input error pointing at the placement.
+pub fn prepare(study: &Study, data: &Dataset, families: &Families) -> Result<Vec<PreparedPlacement>> {
+    for set in &data.indicator_sets {
+        families.of(set).check(study, set)?;
+    }
     study
         .placements
         .iter()
-        .map(|p| prepare_placement(study, data, p))
+        .map(|p| prepare_placement(study, data, p, families))
         .collect()
 }
 
 /// The designs and arrays of one placement (see [`prepare`]).
-pub fn prepare_placement(study: &Study, data: &Dataset, p: &Placement) -> Result<PreparedPlacement> {
+pub fn prepare_placement(
+    study: &Study,
+    data: &Dataset,
+    p: &Placement,
+    families: &Families,
+) -> Result<PreparedPlacement> {
     let design = |cols: &[&crate::spec::ColumnRef]| -> Result<Design> {
         let names: Vec<String> = cols.iter().map(|c| c.name.clone()).collect();
         data.design(&names).map_err(|e| {
@@ -121,62 +142,40 @@ pub fn prepare_placement(study: &Study, data: &Dataset, p: &Placement) -> Result
             design(&cols)
         }
     };
-    let gaussian = match data.gaussian_names.first() {
-        Some(first) => design_on(p.components.iter().filter(|c| p.acts_on(&c.name, first)).collect())?,
-        None => design_on(Vec::new())?,
-    };
     let covariates = design_on(p.gating.iter().collect())?;
     if p.method.is_three_step() {
         let gating = design_on(Vec::new())?;
-        let mut pp = assemble(data, p, gating, components, gaussian);
+        let mut pp = assemble(data, p, gating, components, families);
         pp.step_three = Some(covariates);
         return Ok(pp);
     }
-    Ok(assemble(data, p, covariates, components, gaussian))
+    Ok(assemble(data, p, covariates, components, families))
 }
 
-/// A placement's prepared arrays from its three designs (gating, all component
-/// covariates, and those acting on the continuous indicators).
+/// A placement's prepared arrays from its gating design and whole component design: each
+/// family prepares its block of the data's indicators.
 pub fn assemble(
     data: &Dataset,
     p: &Placement,
     gating: Design,
     components: Design,
-    gaussian: Design,
+    families: &Families,
 ) -> PreparedPlacement {
-    let item_terms = data.items.as_ref().map_or_else(Vec::new, |b| {
-        b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
-    });
-    let count_terms = data.counts.as_ref().map_or_else(Vec::new, |b| {
-        b.names.iter().map(|nm| terms_for(&components, p, nm)).collect()
-    });
-    let item_levels: Vec<usize> = data
-        .items
-        .as_ref()
-        .map_or_else(Vec::new, |b| b.levels.iter().map(Vec::len).collect());
-    let item_rows = data.items.as_ref().map_or_else(Vec::new, |b| {
-        ItemRows::build(&b.codes, &item_levels, &components.x, components.p(), &item_terms)
-    });
-    let count_x = count_terms
+    let designs = BlockDesigns {
+        placement: p,
+        components: &components,
+    };
+    let blocks = data
+        .indicator_sets
         .iter()
-        .map(|cols| {
-            if cols.len() > 1 {
-                crate::model::design_rows(&components.x, components.p(), cols)
-            } else {
-                Vec::new()
-            }
-        })
+        .map(|set| families.of(set).prepare(set, data, &designs))
         .collect();
     PreparedPlacement {
         placement: p.clone(),
         gating,
         components,
-        gaussian,
-        item_terms,
-        item_levels,
-        count_terms,
-        item_rows,
-        count_x,
+        blocks,
+        families: families.clone(),
         step_three: None,
     }
 }
@@ -218,8 +217,8 @@ pub struct FitResult {
     pub clusters: usize,
     /// Covariance structure of the Gaussian components.
     pub structure: CovarianceStructure,
-    /// Whether the model has a gaussian block (else the structure means nothing).
-    pub has_gaussian: bool,
+    /// Whether a block uses the structure (else it means nothing).
+    pub uses_structure: bool,
     /// Free parameters.
     pub n_params: usize,
     /// Rows used (the n in BIC).
@@ -233,8 +232,8 @@ pub struct FitResult {
 }
 
 /// The words for a fit's covariance structure, or that there is none.
-pub fn covariance_label(structure: &CovarianceStructure, has_gaussian: bool) -> String {
-    if has_gaussian {
+pub fn covariance_label(structure: &CovarianceStructure, uses_structure: bool) -> String {
+    if uses_structure {
         structure.describe()
     } else {
         NO_COVARIANCE.to_string()
@@ -247,7 +246,7 @@ pub const NO_COVARIANCE: &str = "no continuous indicators";
 impl FitResult {
     /// The covariance structure in words, or that there is none.
     pub fn covariance(&self) -> String {
-        covariance_label(&self.structure, self.has_gaussian)
+        covariance_label(&self.structure, self.uses_structure)
     }
 
     /// How the fit ended: the best start's termination, or why every start failed.
@@ -332,79 +331,25 @@ pub fn cluster_shares(tau: &[f64], weights: &[f64], g: usize) -> Vec<f64> {
     sums.iter().map(|s| s / total).collect()
 }
 
-/// The arrays of one placement over a dataset.
+/// What every block of a placement's fits shares: the case weights and gating design.
 pub fn fit_data<'a>(data: &'a Dataset, prepared: &'a PreparedPlacement) -> FitData<'a> {
-    let comp = &prepared.components;
     FitData {
         n: data.n(),
         weights: &data.weights,
-        y: &data.y,
-        d: data.d(),
-        z: &prepared.gaussian.x,
-        q: prepared.gaussian.p(),
         w: &prepared.gating.x,
         p: prepared.gating.p(),
-        items: data.items.as_ref().map(|b| crate::model::ItemData {
-            names: &b.names,
-            codes: &b.codes,
-            levels: &prepared.item_levels,
-            z: &comp.x,
-            qz: comp.p(),
-            terms: &prepared.item_terms,
-            rows: &prepared.item_rows,
-        }),
-        counts: data.counts.as_ref().map(|b| crate::model::CountData {
-            names: &b.names,
-            y: &b.y,
-            ln_factorial: &b.ln_factorial,
-            z: &comp.x,
-            qz: comp.p(),
-            terms: &prepared.count_terms,
-            x: &prepared.count_x,
-            exposure: b.exposure.as_deref(),
-            log_exposure: b.log_exposure.as_deref(),
-        }),
     }
 }
 
-/// How a fit's model is set up besides the placement and cluster count.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct ModelOptions {
-    /// Covariance structure of the Gaussian components.
-    pub structure: CovarianceStructure,
-    /// Ridge penalty on gating slopes.
-    pub gating_ridge: f64,
-    /// Conjugate prior on covariances.
-    pub covariance_prior: bool,
-    /// Variance floor relative to the smallest indicator variance (0 = off).
-    pub variance_floor: f64,
-    /// Pseudo-count per item and cluster (0 = none).
-    pub smoothing: f64,
-}
-
-impl ModelOptions {
-    /// Options of a study's search for one structure.
-    pub fn from_search(search: &crate::spec::Search, structure: CovarianceStructure) -> ModelOptions {
-        ModelOptions {
-            structure,
-            gating_ridge: search.gating_ridge,
-            covariance_prior: search.covariance_prior,
-            variance_floor: search.variance_floor,
-            smoothing: 0.0,
-        }
-    }
-
-    /// Options of a study's fits for one structure.
-    pub fn for_study(study: &Study, structure: CovarianceStructure) -> ModelOptions {
-        ModelOptions {
-            smoothing: study.smoothing,
-            ..ModelOptions::from_search(&study.search, structure)
-        }
-    }
-}
-
-/// A model with the placement's structure and empty parameters.
-pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, options: ModelOptions) -> Model {
+/// A model with the placement's gating network, a block per prepared block, and empty
+/// parameters.
+pub fn initial_model(
+    fd: &FitData,
+    blocks: &[Arc<dyn Prepared>],
+    placement: &Placement,
+    g: usize,
+    options: ModelOptions,
+) -> Model {
     let ridge = options.gating_ridge;
     let gating = if g == 1 {
         Gating::Equal { g: 1 }
@@ -426,24 +371,11 @@ pub fn initial_model(fd: &FitData, placement: &Placement, g: usize, options: Mod
             },
         }
     };
-    let gaussian = (fd.d > 0).then(|| {
-        let mut gaussian = GaussianComponents::new(fd, g, options.structure);
-        if options.covariance_prior {
-            gaussian = gaussian.with_default_prior(fd);
-        }
-        gaussian.variance_floor = options.variance_floor;
-        gaussian
-    });
-    let items = fd
-        .items
-        .map(|it| ItemComponents::new(fd, g, it.names.to_vec(), options.smoothing));
-    let counts = fd.counts.map(|ct| CountComponents::new(fd, g, ct.names.to_vec()));
-    let components = Components {
-        gaussian,
-        items,
-        counts,
-    };
-    Model { gating, components }
+    let blocks = blocks.iter().map(|b| b.block(fd, g, &options)).collect();
+    Model {
+        gating,
+        components: Components { blocks },
+    }
 }
 
 /// Label of a start's random stream.
@@ -488,10 +420,10 @@ pub fn fit_cell_with(
     let fd = fit_data(data, prepared);
     let settings = EmSettings::for_search(&study.search);
     let options = ModelOptions::for_study(study, structure);
-    let mut template = initial_model(&fd, &prepared.placement, g, options);
+    let mut template = initial_model(&fd, &prepared.blocks, &prepared.placement, g, options);
     template.gating.prepare_bound(fd.w, fd.weights);
     let n_starts = if g == 1 { 1 } else { starts };
-    let (seeding, seeding_d) = data.seeding_matrix();
+    let (seeding, seeding_d) = prepared.seeding_matrix();
     // Only the best start's run is kept: at a few million rows every run's
     // responsibilities would not fit in memory together. The winner is the highest
     // objective, the lowest start number on ties, whatever order the starts finish in.
@@ -604,7 +536,7 @@ pub fn fit_cell_with(
         placement: prepared.placement.name.clone(),
         clusters: g,
         structure,
-        has_gaussian: fd.d > 0,
+        uses_structure: prepared.uses_structure(),
         n_params: template.n_params(),
         n_rows: fd.n,
         starts: runs.into_iter().map(|(r, _)| r).collect(),

@@ -3,24 +3,22 @@
 //! centres and scales of standardisation) and the levels seen, so that `predict` can give
 //! memberships for new rows with exactly the arithmetic of the fit.
 
-use crate::data::{Column, Dataset, Design, Term, MISSING_ITEM};
+use crate::data::{Column, Dataset, Design, IndicatorValues, Term, MISSING_ITEM};
 use crate::error::{Diagnostic, Error, Result};
 use crate::fit::{fit_data, FitResult, PreparedPlacement};
-use crate::model::family::{
-    Components, CountComponents, CovarianceStructure, Degeneracy, GaussianComponents, ItemComponents,
-};
+use crate::model::family::{Components, Families, Prepared};
 use crate::model::gating::Gating;
-use crate::model::{e_step, Model};
-use nalgebra::DMatrix;
+use crate::model::{e_step, FitData, Model, ModelOptions};
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
 use std::path::Path;
+use std::sync::Arc;
 
 /// File name inside a run folder.
 pub const FILE_NAME: &str = "fitted-models.json";
 
-/// Version of the file's layout.
-pub const SAVED_VERSION: u32 = 1;
+/// Version of the file's layout (2: each block saved by its family, under its word).
+pub const SAVED_VERSION: u32 = 2;
 
 /// Everything `predict` needs from a run.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -54,10 +52,8 @@ pub struct SavedFit {
     pub covariance: String,
     /// Gating design terms.
     pub gating_terms: Vec<Term>,
-    /// All component design terms.
+    /// All component design terms (each block uses the columns acting on its indicators).
     pub component_terms: Vec<Term>,
-    /// Terms acting on the continuous indicators.
-    pub gaussian_terms: Vec<Term>,
     /// Parameters on the fitting scale.
     pub model: SavedModel,
 }
@@ -67,34 +63,18 @@ pub struct SavedFit {
 pub struct SavedModel {
     /// Gating network.
     pub gating: SavedGating,
-    /// Gaussian block.
-    pub gaussian: Option<SavedGaussian>,
-    /// Item block.
-    pub items: Option<SavedItems>,
-    /// Count block: per count, log-rate coefficients `[k q + a]`.
-    pub counts: Option<Vec<Vec<f64>>>,
+    /// The component blocks, in block order.
+    pub blocks: Vec<SavedBlock>,
 }
 
-/// The gaussian block's parameters.
+/// One component block: its family's word and the state the family saved
+/// ([`crate::model::family::Block::state`]).
 #[derive(Debug, Clone, Serialize, Deserialize)]
-pub struct SavedGaussian {
-    /// Covariance structure.
-    pub structure: CovarianceStructure,
-    /// Coefficients `[(k q + a) d + j]`.
-    pub coefficients: Vec<f64>,
-    /// Covariance per cluster, row-major.
-    pub covariances: Vec<Vec<f64>>,
-}
-
-/// The item block's parameters.
-#[derive(Debug, Clone, Serialize, Deserialize)]
-pub struct SavedItems {
-    /// Per item without covariates: log probabilities `[k L + l]` (else empty).
-    pub log_probabilities: Vec<Vec<f64>>,
-    /// Per item with covariates: logit coefficients `[(k (L − 1) + l − 1) q + a]` (else empty).
-    pub logit_coefficients: Vec<Vec<f64>>,
-    /// Smoothing pseudo-count.
-    pub smoothing: f64,
+pub struct SavedBlock {
+    /// The family (`gaussian`, `items`, `counts`).
+    pub family: String,
+    /// Its parameters and EM state, as the family writes them.
+    pub state: serde_json::Value,
 }
 
 /// The gating network's parameters.
@@ -111,35 +91,32 @@ pub enum SavedGating {
     Logit(usize, usize, Vec<f64>),
 }
 
-impl SavedModel {
-    /// From a fitted model.
-    pub fn new(m: &Model) -> SavedModel {
-        let gating = match &m.gating {
+impl SavedGating {
+    /// From a fitted gating network.
+    pub fn new(gating: &Gating) -> SavedGating {
+        match gating {
             Gating::Equal { g } => SavedGating::Equal(*g),
             Gating::Fixed { log_pi } => SavedGating::Fixed(log_pi.clone()),
             Gating::Free { log_pi } => SavedGating::Free(log_pi.clone()),
             Gating::Logit { g, p, gamma, .. } => SavedGating::Logit(*g, *p, gamma.clone()),
-        };
-        let c = &m.components;
-        SavedModel {
-            gating,
-            gaussian: c.gaussian.as_ref().map(|gc| SavedGaussian {
-                structure: gc.structure,
-                coefficients: gc.coef.clone(),
-                covariances: gc.cov.iter().map(|s| s.transpose().as_slice().to_vec()).collect(),
-            }),
-            items: c.items.as_ref().map(|it| SavedItems {
-                log_probabilities: it.log_prob.clone(),
-                logit_coefficients: it.coef.clone(),
-                smoothing: it.smoothing,
-            }),
-            counts: c.counts.as_ref().map(|ct| ct.coef.clone()),
         }
     }
 
-    /// The model, sized for `fd` (the data it will be evaluated on).
-    pub fn to_model(&self, fd: &crate::model::FitData, g: usize) -> std::result::Result<Model, Degeneracy> {
-        let gating = match &self.gating {
+    /// Set the parameters of `gating`, a network of the same kind and size (its ridge and
+    /// prepared bound stay as they are).
+    pub fn apply_to(&self, gating: &mut Gating) -> std::result::Result<(), String> {
+        match (gating, self) {
+            (Gating::Logit { gamma, .. }, SavedGating::Logit(_, _, s)) if gamma.len() == s.len() => *gamma = s.clone(),
+            (Gating::Free { log_pi }, SavedGating::Free(s)) if log_pi.len() == s.len() => *log_pi = s.clone(),
+            (Gating::Equal { .. }, SavedGating::Equal(_)) | (Gating::Fixed { .. }, SavedGating::Fixed(_)) => {}
+            _ => return Err("its gating network does not fit the placement".into()),
+        }
+        Ok(())
+    }
+
+    /// The gating network itself (no ridge, no bound: for scoring).
+    pub fn gating(&self) -> Gating {
+        match self {
             SavedGating::Equal(g) => Gating::Equal { g: *g },
             SavedGating::Fixed(l) => Gating::Fixed { log_pi: l.clone() },
             SavedGating::Free(l) => Gating::Free { log_pi: l.clone() },
@@ -150,43 +127,72 @@ impl SavedModel {
                 ridge: 0.0,
                 bound_inverse: None,
             },
-        };
-        let gaussian = match &self.gaussian {
-            Some(sg) => {
-                let d = fd.d;
-                let covs = sg
-                    .covariances
-                    .iter()
-                    .map(|c| DMatrix::from_row_slice(d, d, c))
-                    .collect();
-                Some(GaussianComponents::new(fd, g, sg.structure).with_parameters(sg.coefficients.clone(), covs)?)
-            }
-            None => None,
-        };
-        let items = match (&self.items, fd.items) {
-            (Some(si), Some(it)) => {
-                let mut b = ItemComponents::new(fd, g, it.names.to_vec(), si.smoothing);
-                b.log_prob = si.log_probabilities.clone();
-                b.coef = si.logit_coefficients.clone();
-                Some(b)
-            }
-            _ => None,
-        };
-        let counts = match (&self.counts, fd.counts) {
-            (Some(coef), Some(ct)) => {
-                let mut b = CountComponents::new(fd, g, ct.names.to_vec());
-                b.coef = coef.clone();
-                Some(b)
-            }
-            _ => None,
-        };
+        }
+    }
+}
+
+impl SavedModel {
+    /// From a fitted model.
+    pub fn new(m: &Model) -> SavedModel {
+        SavedModel {
+            gating: SavedGating::new(&m.gating),
+            blocks: m
+                .components
+                .blocks
+                .iter()
+                .map(|b| SavedBlock {
+                    family: b.info().word.to_string(),
+                    state: b.state(),
+                })
+                .collect(),
+        }
+    }
+
+    /// The component blocks restored over `prepared` (each family restores its own
+    /// saved block, in block order).
+    pub fn components(
+        &self,
+        fd: &FitData,
+        prepared: &[Arc<dyn Prepared>],
+        g: usize,
+        options: &ModelOptions,
+    ) -> std::result::Result<Components, String> {
+        if self.blocks.len() != prepared.len() {
+            return Err(format!(
+                "it has {} component blocks, the study {}",
+                self.blocks.len(),
+                prepared.len()
+            ));
+        }
+        let blocks = self
+            .blocks
+            .iter()
+            .zip(prepared)
+            .map(|(saved, p)| {
+                if saved.family != p.info().word {
+                    return Err(format!(
+                        "its block of the '{}' family stands where the study has the '{}' family",
+                        saved.family,
+                        p.info().word
+                    ));
+                }
+                p.restore(fd, g, options, &saved.state)
+            })
+            .collect::<std::result::Result<Vec<_>, String>>()?;
+        Ok(Components { blocks })
+    }
+
+    /// The model over `prepared`, for scoring rows.
+    pub fn to_model(
+        &self,
+        fd: &FitData,
+        prepared: &[Arc<dyn Prepared>],
+        g: usize,
+        options: &ModelOptions,
+    ) -> std::result::Result<Model, String> {
         Ok(Model {
-            gating,
-            components: Components {
-                gaussian,
-                items,
-                counts,
-            },
+            gating: self.gating.gating(),
+            components: self.components(fd, prepared, g, options)?,
         })
     }
 }
@@ -205,9 +211,12 @@ pub fn save(
             covariate_levels.insert(name.clone(), levels.clone());
         }
     }
-    let item_levels = data.items.as_ref().map_or_else(BTreeMap::new, |b| {
-        b.names.iter().cloned().zip(b.levels.iter().cloned()).collect()
-    });
+    let mut item_levels = BTreeMap::new();
+    for set in &data.indicator_sets {
+        if let IndicatorValues::Levels { levels, .. } = &set.values {
+            item_levels.extend(set.names.iter().cloned().zip(levels.iter().cloned()));
+        }
+    }
     let saved = crate::fit::chosen_fits(fits, prepared.len(), None)
         .into_iter()
         .flatten()
@@ -221,7 +230,6 @@ pub fn save(
                 covariance: f.covariance(),
                 gating_terms: pp.gating.terms.clone(),
                 component_terms: pp.components.terms.clone(),
-                gaussian_terms: pp.gaussian.terms.clone(),
                 model: SavedModel::new(&best.run.model),
             })
         })
@@ -259,7 +267,7 @@ pub fn load_run(run: &Path) -> Result<SavedRun> {
             )),
         )
     })?;
-    let saved: SavedRun = serde_json::from_str(&text).map_err(|e| {
+    let unreadable = |e: String| {
         Error::input(
             Diagnostic::new(format!(
                 "{} is not a saved-model file this version can read: {e}",
@@ -267,24 +275,27 @@ pub fn load_run(run: &Path) -> Result<SavedRun> {
             ))
             .help("refit the study with this version of cohortmix"),
         )
-    })?;
-    if saved.schema_version != SAVED_VERSION {
+    };
+    let value: serde_json::Value = serde_json::from_str(&text).map_err(|e| unreadable(e.to_string()))?;
+    let version = value.get("schema_version").and_then(serde_json::Value::as_u64);
+    if version != Some(u64::from(SAVED_VERSION)) {
         return Err(Error::input(
             Diagnostic::new(format!(
                 "{} has layout version {}, this program reads version {SAVED_VERSION}",
                 path.display(),
-                saved.schema_version
+                version.map_or_else(|| "(none)".to_string(), |v| v.to_string())
             ))
             .help("refit the study with this version of cohortmix"),
         ));
     }
+    let saved: SavedRun = serde_json::from_value(value).map_err(|e| unreadable(e.to_string()))?;
     Ok(saved)
 }
 
 /// Load new data with the saved spec's column checks (case weights are not needed and
 /// not read) and map its item levels onto the fitted ones.
-pub fn load_new_data(saved: &SavedRun, data_path: &Path) -> Result<(crate::spec::Study, Dataset)> {
-    let mut study = crate::spec::parse(Path::new(&saved.spec_file), &saved.spec_text)?;
+pub fn load_new_data(saved: &SavedRun, data_path: &Path, families: &Families) -> Result<(crate::spec::Study, Dataset)> {
+    let mut study = crate::spec::parse(Path::new(&saved.spec_file), &saved.spec_text, &families.infos())?;
     if !data_path.exists() {
         return Err(Error::input(
             Diagnostic::new(format!("the data file {} does not exist", data_path.display()))
@@ -300,43 +311,68 @@ pub fn load_new_data(saved: &SavedRun, data_path: &Path) -> Result<(crate::spec:
             saved.spec_file
         ))
     })?;
-    if let Some(items) = &mut data.items {
-        let j_count = items.names.len();
-        for (j, name) in items.names.iter().enumerate() {
-            let Some(known) = saved.item_levels.get(name) else {
-                continue;
-            };
-            let map: Vec<Option<u16>> = items.levels[j]
-                .iter()
-                .map(|l| known.iter().position(|k| k == l).map(|p| p as u16))
-                .collect();
-            for i in 0..data.ids.len() {
-                let c = &mut items.codes[i * j_count + j];
-                if *c == MISSING_ITEM {
+    let ids = data.ids.clone();
+    for set in &mut data.indicator_sets {
+        if let IndicatorValues::Levels { codes, levels, .. } = &mut set.values {
+            let codes = Arc::make_mut(codes);
+            for (j, name) in set.names.iter().enumerate() {
+                let Some(known) = saved.item_levels.get(name) else {
                     continue;
-                }
-                *c = map[usize::from(*c)].ok_or_else(|| {
-                    Error::input(
-                        Diagnostic::new(format!(
-                            "{}: item '{name}' has the value '{}' in row {}, which the fitted model never saw (its levels: {})",
-                            data_path.display(),
-                            items.levels[j][usize::from(*c)],
-                            &data.ids[i],
-                            known.join(", ")
-                        ))
-                        .help("recode the value to one of those levels, or leave it empty (a missing item value is skipped)"),
-                    )
-                })?;
+                };
+                map_levels(data_path, name, &ids, codes, set.names.len(), j, &mut levels[j], known)?;
             }
-            items.levels[j] = known.clone();
         }
     }
     Ok((study, data))
 }
 
+/// Recode item `j` (of `width`) of new rows from their levels to the fitted ones
+/// (`known`); a level the fitted model never saw is an error naming the row.
+#[allow(clippy::too_many_arguments)]
+fn map_levels(
+    data_path: &Path,
+    name: &str,
+    ids: &crate::data::RowIds,
+    codes: &mut [u16],
+    width: usize,
+    j: usize,
+    levels: &mut Vec<String>,
+    known: &[String],
+) -> Result<()> {
+    let map: Vec<Option<u16>> = levels
+        .iter()
+        .map(|l| known.iter().position(|k| k == l).map(|p| p as u16))
+        .collect();
+    for i in 0..ids.len() {
+        let c = &mut codes[i * width + j];
+        if *c == MISSING_ITEM {
+            continue;
+        }
+        *c = map[usize::from(*c)].ok_or_else(|| {
+            Error::input(
+                Diagnostic::new(format!(
+                    "{}: item '{name}' has the value '{}' in row {}, which the fitted model never saw (its levels: {})",
+                    data_path.display(),
+                    levels[usize::from(*c)],
+                    &ids[i],
+                    known.join(", ")
+                ))
+                .help("recode the value to one of those levels, or leave it empty (a missing item value is skipped)"),
+            )
+        })?;
+    }
+    *levels = known.to_vec();
+    Ok(())
+}
+
 /// Posterior memberships of `data`'s rows under every saved fit.
 /// `study` is the saved spec as [`load_new_data`] returns it.
-pub fn predict(saved: &SavedRun, study: &crate::spec::Study, data: &Dataset) -> Result<Vec<Predicted>> {
+pub fn predict(
+    saved: &SavedRun,
+    study: &crate::spec::Study,
+    data: &Dataset,
+    families: &Families,
+) -> Result<Vec<Predicted>> {
     saved
         .fits
         .iter()
@@ -360,13 +396,14 @@ pub fn predict(saved: &SavedRun, study: &crate::spec::Study, data: &Dataset) -> 
                 placement,
                 design(&f.gating_terms)?,
                 design(&f.component_terms)?,
-                design(&f.gaussian_terms)?,
+                families,
             );
             let fd = fit_data(data, &pp);
-            let model = f.model.to_model(&fd, f.clusters).map_err(|e| {
+            let options = ModelOptions::for_study(study, study.search.structures[0]);
+            let model = f.model.to_model(&fd, &pp.blocks, f.clusters, &options).map_err(|e| {
                 Error::run(Diagnostic::new(format!(
-                    "the saved model of '{}' is not usable: cluster {}: {}",
-                    f.placement, e.cluster, e.reason
+                    "the saved model of '{}' is not usable: {e}",
+                    f.placement
                 )))
             })?;
             let mut tau = vec![0.0; data.n() * f.clusters];

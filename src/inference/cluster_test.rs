@@ -8,7 +8,7 @@
 //! (1 + #{LR_b ≥ LR}) / (1 + B). Replicates run in parallel, each on its own random
 //! streams, so the result does not depend on the thread count.
 
-use crate::data::{Dataset, MISSING_ITEM};
+use crate::data::Dataset;
 use crate::fit::{assemble, fit_cell_with, fit_data, FitResult, PreparedPlacement};
 use crate::model::Model;
 use crate::rng::Stream;
@@ -36,60 +36,24 @@ pub struct ClusterCountTest {
 }
 
 /// A data set drawn from `model` at the rows of `data`: clusters from the gating network,
-/// indicators from the cluster's components; covariates, weights, exposure and missing
-/// item values as observed.
+/// indicators from the cluster's components (each block draws its own, in block order,
+/// row by row); covariates, weights, exposure and missing item values as observed.
 pub fn draw(model: &Model, data: &Dataset, prepared: &PreparedPlacement, rng: &mut Stream) -> Dataset {
     let fd = fit_data(data, prepared);
     let g = model.clusters();
-    let n = data.n();
-    let mut out = data.clone();
+    let mut samplers: Vec<_> = model.components.blocks.iter().map(|b| b.sampler()).collect();
     let mut log_pi = vec![0.0; g];
-    let chol: Vec<nalgebra::DMatrix<f64>> = model.components.gaussian.as_ref().map_or_else(Vec::new, |gc| {
-        gc.cov
-            .iter()
-            .map(|c| c.clone().cholesky().expect("a fitted covariance").l())
-            .collect()
-    });
-    let d = data.d();
-    let (mut mu, mut e) = (vec![0.0; d], vec![0.0; d]);
-    let mut eta = Vec::new();
-    for i in 0..n {
+    for i in 0..data.n() {
         model.gating.log_priors(&fd.w[i * fd.p..(i + 1) * fd.p], &mut log_pi);
         let pi: Vec<f64> = log_pi.iter().map(|l| l.exp()).collect();
         let k = rng.weighted_index(&pi);
-        if let Some(gc) = &model.components.gaussian {
-            gc.mean(k, &fd.z[i * fd.q..(i + 1) * fd.q], &mut mu);
-            for v in e.iter_mut() {
-                *v = rng.normal();
-            }
-            for a in 0..d {
-                let shift: f64 = (0..=a).map(|b| chol[k][(a, b)] * e[b]).sum();
-                out.y[i * d + a] = mu[a] + shift;
-            }
+        for s in samplers.iter_mut() {
+            s.draw(i, k, rng);
         }
-        if let (Some(it), Some(block), Some(idata)) = (&model.components.items, &mut out.items, &fd.items) {
-            let nj = it.levels.len();
-            let z = &idata.z[i * idata.qz..(i + 1) * idata.qz];
-            for j in 0..nj {
-                let code = &mut block.codes[i * nj + j];
-                if *code == MISSING_ITEM {
-                    continue;
-                }
-                let probs: Vec<f64> = (0..it.levels[j])
-                    .map(|l| it.log_probability(j, k, z, l, &mut eta).exp())
-                    .collect();
-                *code = rng.weighted_index(&probs) as u16;
-            }
-        }
-        if let (Some(ct), Some(block), Some(cdata)) = (&model.components.counts, &mut out.counts, &fd.counts) {
-            let z = &cdata.z[i * cdata.qz..(i + 1) * cdata.qz];
-            let offset = cdata.log_exposure.map_or(0.0, |o| o[i]);
-            for c in 0..ct.terms.len() {
-                let y = rng.poisson((ct.eta(c, k, z) + offset).exp()) as f64;
-                block.y[c * n + i] = y;
-                block.ln_factorial[c * n + i] = statrs::function::factorial::ln_factorial(y as u64);
-            }
-        }
+    }
+    let mut out = data.clone();
+    for (set, sampler) in out.indicator_sets.iter_mut().zip(samplers) {
+        set.values = sampler.finish();
     }
     out
 }
@@ -135,7 +99,7 @@ pub fn test(
                     &pp.placement,
                     pp.gating.clone(),
                     pp.components.clone(),
-                    pp.gaussian.clone(),
+                    &pp.families,
                 );
                 let l0 = fit_at(&sim, &sim_pp, g - 1, &label).loglik()?;
                 let l1 = fit_at(&sim, &sim_pp, g, &label).loglik()?;

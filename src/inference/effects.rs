@@ -4,6 +4,7 @@
 
 use super::Uncertainty;
 use crate::data::Design;
+use crate::model::family::ParamBlock;
 use nalgebra::{DMatrix, DVector};
 use serde::Serialize;
 use statrs::distribution::{ChiSquared, ContinuousCDF};
@@ -54,17 +55,6 @@ impl Interval {
     }
 }
 
-/// What a component coefficient measures, by its parameter block.
-pub fn measure(block: &str) -> Option<(&'static str, bool)> {
-    match block {
-        "gating" => Some(("relative risk ratio", true)),
-        "mean" => Some(("mean difference", false)),
-        "item_logit" => Some(("odds ratio", true)),
-        "count_log_rate" => Some(("rate ratio", true)),
-        _ => None,
-    }
-}
-
 /// The units per which a term's effect is shown: the spec's `per` for a numeric
 /// covariate's own term, 1 otherwise (a level against the reference level).
 pub fn per_units(term: &str, per: &BTreeMap<String, f64>) -> f64 {
@@ -75,7 +65,7 @@ pub fn per_units(term: &str, per: &BTreeMap<String, f64>) -> f64 {
 #[derive(Debug, Clone, Serialize)]
 pub struct Effect {
     /// Parameter block (`gating`, `mean`, `item_logit`, `count_log_rate`).
-    pub block: &'static str,
+    pub block: ParamBlock,
     /// What the estimate measures.
     pub measure: &'static str,
     /// 1-based cluster (for gating, against cluster 1).
@@ -101,16 +91,16 @@ pub fn effects(u: &Uncertainty, per: &BTreeMap<String, f64>) -> Vec<Effect> {
             if term == "intercept" {
                 return None;
             }
-            let (measure, ratio) = measure(p.block)?;
+            let measure = p.block.measure?;
             let scale = per_units(term, per);
             Some(Effect {
                 block: p.block,
-                measure,
+                measure: measure.name,
                 cluster: p.cluster,
                 indicator: p.indicator.clone(),
                 term: term.to_string(),
                 per: scale,
-                interval: Interval::new(p.value * scale, u.se(i) * scale, ratio),
+                interval: Interval::new(p.value * scale, u.se(i) * scale, measure.ratio),
             })
         })
         .collect()
@@ -165,7 +155,7 @@ pub fn gating_wald_tests(u: &Uncertainty, design: &Design) -> Vec<WaldTest> {
                 .parameters
                 .iter()
                 .enumerate()
-                .filter(|(_, p)| p.block == "gating" && p.term.as_deref().is_some_and(|t| terms.contains(&t)))
+                .filter(|(_, p)| p.block.is_gating() && p.term.as_deref().is_some_and(|t| terms.contains(&t)))
                 .map(|(i, _)| i)
                 .collect();
             if idx.is_empty() {

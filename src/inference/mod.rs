@@ -23,14 +23,14 @@ pub mod screen;
 use crate::data::Dataset;
 use crate::fit::em::{self, EmSettings};
 use crate::fit::{fit_data, PreparedPlacement};
-use crate::model::family::{ComponentFamily, Naming, Parameter};
+use crate::model::family::{ParamBlock, Parameter};
 use crate::model::gating::Gating;
 use crate::model::{FitData, Model};
 use crate::rng::Stream;
+pub use crate::spec::ErrorMethod;
 use chart::Chart;
 use nalgebra::DMatrix;
 use rayon::prelude::*;
-pub use crate::spec::ErrorMethod;
 
 /// Relative step of the central differences of the score (times the coordinate's scale).
 const SCORE_STEP: f64 = 1e-4;
@@ -69,25 +69,22 @@ impl Uncertainty {
         self.covariance[(i, i)].max(0.0).sqrt()
     }
 
-    /// Index of a reported parameter.
+    /// Index of a reported parameter, by its block's written name.
     pub fn index(&self, block: &str, cluster: usize, indicator: Option<&str>, term: Option<&str>) -> Option<usize> {
         self.parameters.iter().position(|p| {
-            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
+            p.block.name == block
+                && p.cluster == cluster
+                && p.indicator.as_deref() == indicator
+                && p.term.as_deref() == term
         })
     }
 }
 
 /// Every reported parameter of a model: gating first, then the component blocks, on the
 /// original covariate scale.
-pub fn named_parameters(model: &Model, data: &Dataset, prepared: &PreparedPlacement) -> Vec<Parameter> {
+pub fn named_parameters(model: &Model, prepared: &PreparedPlacement) -> Vec<Parameter> {
     let mut out = gating_parameters(&model.gating, prepared.design_of(&model.gating));
-    let item_levels = data.items.as_ref().map_or(&[][..], |b| &b.levels[..]);
-    out.extend(model.components.parameters(Naming {
-        indicators: &data.gaussian_names,
-        design: &prepared.gaussian,
-        components: &prepared.components,
-        item_levels,
-    }));
+    out.extend(model.components.parameters());
     out
 }
 
@@ -97,7 +94,7 @@ pub fn gating_parameters(gating: &Gating, design: &crate::data::Design) -> Vec<P
     let mut out = Vec::new();
     let mut push = |cluster: usize, term: &str, value: f64| {
         out.push(Parameter {
-            block: "gating",
+            block: ParamBlock::GATING,
             cluster,
             indicator: None,
             term: Some(term.to_string()),
@@ -230,14 +227,7 @@ pub fn uncertainty(
     label: &str,
 ) -> Result<Uncertainty, String> {
     let fd = fit_data(data, prepared);
-    uncertainty_of(
-        model,
-        tau,
-        &fd,
-        &|m| named_parameters(m, data, prepared),
-        settings,
-        label,
-    )
+    uncertainty_of(model, tau, &fd, &|m| named_parameters(m, prepared), settings, label)
 }
 
 /// [`uncertainty`] for any data and any reported function of the model (the tests use
@@ -361,7 +351,7 @@ pub fn for_fits(
             Some(match &f.step_three {
                 None => measurement,
                 Some(Err(reason)) => Err(format!("step 3 failed: {reason}")),
-                Some(Ok(st)) => measurement.map(|m| with_step_three(m, f, st, data, pp)),
+                Some(Ok(st)) => measurement.map(|m| with_step_three(m, f, st, pp)),
             })
         })
         .collect()
@@ -374,11 +364,10 @@ fn with_step_three(
     measurement: Uncertainty,
     f: &crate::fit::FitResult,
     st: &crate::fit::three_step::StepThree,
-    data: &Dataset,
     prepared: &PreparedPlacement,
 ) -> Uncertainty {
     let model = f.reported_model().expect("a fit with step 3 has a best start");
-    let parameters = named_parameters(&model, data, prepared);
+    let parameters = named_parameters(&model, prepared);
     let design = prepared.design_of(&model.gating);
     let p = design.p();
     let m = st.gamma.len();
@@ -395,7 +384,7 @@ fn with_step_three(
     }
     let gating_cov = &t * &st.covariance * t.transpose();
     let kept: Vec<usize> = (0..measurement.parameters.len())
-        .filter(|i| measurement.parameters[*i].block != "gating")
+        .filter(|i| !measurement.parameters[*i].block.is_gating())
         .collect();
     let r = parameters.len();
     let mut cov = DMatrix::zeros(r, r);

@@ -15,12 +15,10 @@
 use crate::data::Dataset;
 use crate::fit::em::{self, EmSettings};
 use crate::fit::{fit_data, initial_model, FitResult, ModelOptions, PreparedPlacement};
+use crate::model::family::Families;
 use crate::spec::{Method, Study};
 use rayon::prelude::*;
 use serde::Serialize;
-
-/// Name of the indicator group of all continuous indicators.
-pub const CONTINUOUS_GROUP: &str = "continuous indicators";
 
 /// One pair's test.
 #[derive(Debug, Clone, Serialize)]
@@ -29,7 +27,8 @@ pub struct DirectEffectTest {
     pub placement: String,
     /// Covariate.
     pub covariate: String,
-    /// Indicator (or [`CONTINUOUS_GROUP`]).
+    /// Indicator, or the group of indicators that share one design ("continuous
+    /// indicators").
     pub indicator: String,
     /// Likelihood-ratio statistic 2(ℓ₁ − ℓ₀), when both fits were usable.
     pub statistic: Option<f64>,
@@ -50,23 +49,13 @@ pub struct DirectEffectTest {
 /// A refit's log-likelihood and parameter count, or why it failed.
 type Refit = Result<(f64, usize), String>;
 
-/// The indicator groups a covariate can act on: all continuous indicators together,
-/// then each item and each count.
-fn groups(data: &Dataset) -> Vec<(String, Vec<String>)> {
-    let mut out = Vec::new();
-    if !data.gaussian_names.is_empty() {
-        out.push((CONTINUOUS_GROUP.to_string(), data.gaussian_names.clone()));
-    }
-    for b in [
-        data.items.as_ref().map(|b| &b.names),
-        data.counts.as_ref().map(|b| &b.names),
-    ]
-    .into_iter()
-    .flatten()
-    {
-        out.extend(b.iter().map(|n| (n.clone(), vec![n.clone()])));
-    }
-    out
+/// The indicator groups a covariate can act on, in block order: each family's
+/// ([`crate::model::family::Family::effect_groups`]; the continuous indicators together).
+fn groups(data: &Dataset, families: &Families) -> Vec<(String, Vec<String>)> {
+    data.indicator_sets
+        .iter()
+        .flat_map(|set| families.of(set).effect_groups(set))
+        .collect()
 }
 
 /// Screen the fits listed in `which` (indices into `fits`).
@@ -88,10 +77,10 @@ pub fn screen(
         null.method = Method::OneStep;
         let options = ModelOptions::for_study(study, f.structure);
         let refit = |placement: &crate::spec::Placement| -> Refit {
-            let prep =
-                crate::fit::prepare_placement(study, data, placement).map_err(|e| e.diagnostic().message.clone())?;
+            let prep = crate::fit::prepare_placement(study, data, placement, &pp.families)
+                .map_err(|e| e.diagnostic().message.clone())?;
             let fd = fit_data(data, &prep);
-            let mut model = initial_model(&fd, placement, f.clusters, options);
+            let mut model = initial_model(&fd, &prep.blocks, placement, f.clusters, options);
             model.gating.prepare_bound(fd.w, fd.weights);
             let k = model.n_params();
             let run = em::run(&fd, model, best.run.tau.clone(), settings);
@@ -104,7 +93,7 @@ pub fn screen(
         let pairs: Vec<(String, String, Vec<String>)> = covariates
             .iter()
             .flat_map(|c| {
-                groups(data)
+                groups(data, &pp.families)
                     .into_iter()
                     .map(move |(g, members)| (c.clone(), g, members))
             })

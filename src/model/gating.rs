@@ -451,7 +451,8 @@ impl Concave for LogitRows<'_> {
     }
 
     fn derivatives(&self, gamma: &[f64]) -> (f64, DVector<f64>, DMatrix<f64>) {
-        let (objective, score, hess) = logit_score_hessian(self.w, self.p, self.tau, self.g, self.weights, self.ridge, gamma);
+        let (objective, score, hess) =
+            logit_score_hessian(self.w, self.p, self.tau, self.g, self.weights, self.ridge, gamma);
         (objective, score, -hess)
     }
 }

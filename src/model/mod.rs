@@ -4,96 +4,98 @@
 //! p(y_i | w_i, z_i) = sum_g pi_g(w_i) f_g(y_i | z_i; theta_g)
 //! ```
 //!
-//! [`FitData`] borrows the arrays one fit needs; [`Model`] holds the parameters;
-//! [`e_step`] computes responsibilities in log space with one maximum per row and returns
-//! the weighted log-likelihood.
+//! [`FitData`] borrows what every block shares (case weights, the gating design); each
+//! block of [`Model::components`] holds its own arrays. [`e_step`] computes
+//! responsibilities in log space with one maximum per row and returns the weighted
+//! log-likelihood.
 
 pub mod family;
 pub mod gating;
 pub mod glm;
 pub mod rows;
 
-use family::{ComponentFamily, Components, Degeneracy};
+use crate::numerics::newton::Outcome;
+use family::{Components, Degeneracy};
 use gating::{Gating, GatingStats};
-pub use rows::GaussianStats;
+pub use rows::{Base, GaussianStats, PassRows};
 
-/// The arrays one fit reads. All row-major.
-#[derive(Debug, Clone, Copy, Default)]
+/// What every block of one fit shares. Row-major.
+#[derive(Debug, Clone, Copy)]
 pub struct FitData<'a> {
     /// Rows.
     pub n: usize,
     /// Case weights (length n).
     pub weights: &'a [f64],
-    /// Continuous (gaussian) indicators, n×d.
-    pub y: &'a [f64],
-    /// Continuous indicator count (0 without a gaussian block).
-    pub d: usize,
-    /// Design of the gaussian block, n×q (intercept first).
-    pub z: &'a [f64],
-    /// Gaussian design columns.
-    pub q: usize,
     /// Gating design, n×p (intercept first).
     pub w: &'a [f64],
     /// Gating design columns.
     pub p: usize,
-    /// Item indicators, when the family has them.
-    pub items: Option<ItemData<'a>>,
-    /// Count indicators, when the family has them.
-    pub counts: Option<CountData<'a>>,
 }
 
-/// The arrays of the item block.
-#[derive(Debug, Clone, Copy)]
-pub struct ItemData<'a> {
-    /// Item names (for messages).
-    pub names: &'a [String],
-    /// Level codes, n×J row-major; [`crate::data::MISSING_ITEM`] where missing.
-    pub codes: &'a [u16],
-    /// Levels per item (J entries).
-    pub levels: &'a [usize],
-    /// The placement's component design, n×qz (intercept first).
-    pub z: &'a [f64],
-    /// Its columns.
-    pub qz: usize,
-    /// Per item, the design columns its logits use (column 0, the intercept, first).
-    pub terms: &'a [Vec<usize>],
-    /// Per item, the arrays its M-step reuses at every EM iteration.
-    pub rows: &'a [family::items::ItemRows],
+impl FitData<'_> {
+    /// The pass over these rows without a fused block.
+    pub fn pass_rows(&self) -> PassRows<'_> {
+        PassRows {
+            n: self.n,
+            weights: self.weights,
+            w: self.w,
+            p: self.p,
+            y: &[],
+            d: 0,
+            z: &[],
+            q: 0,
+        }
+    }
 }
 
-/// The arrays of the count block.
-#[derive(Debug, Clone, Copy)]
-pub struct CountData<'a> {
-    /// Count names (for messages).
-    pub names: &'a [String],
-    /// Counts, column by column: count c of row i at `y[c * n + i]`.
-    pub y: &'a [f64],
-    /// log(y!) of every count, laid out as `y`.
-    pub ln_factorial: &'a [f64],
-    /// The placement's component design, n×qz (intercept first).
-    pub z: &'a [f64],
-    /// Its columns.
-    pub qz: usize,
-    /// Per count column, the design columns its regression uses (intercept first).
-    pub terms: &'a [Vec<usize>],
-    /// Per count column with covariates, its design on those columns (n×q, row-major;
-    /// empty for a count without covariates), built once by [`design_rows`].
-    pub x: &'a [Vec<f64>],
-    /// Exposure per row, if an exposure is given.
-    pub exposure: Option<&'a [f64]>,
-    /// log exposure per row (the offset), if an exposure is given.
-    pub log_exposure: Option<&'a [f64]>,
+/// How a fit's blocks are set up besides the placement and cluster count (each family
+/// reads its own).
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct ModelOptions {
+    /// Covariance structure of the Gaussian components.
+    pub structure: crate::spec::CovarianceStructure,
+    /// Ridge penalty on gating slopes.
+    pub gating_ridge: f64,
+    /// Conjugate prior on covariances.
+    pub covariance_prior: bool,
+    /// Variance floor relative to the smallest indicator variance (0 = off).
+    pub variance_floor: f64,
+    /// Pseudo-count per item and cluster (0 = none).
+    pub smoothing: f64,
 }
 
-/// Rows of a row-major design `z` (n×qz) restricted to the columns `cols`, row-major.
-pub fn design_rows(z: &[f64], qz: usize, cols: &[usize]) -> Vec<f64> {
-    z.chunks_exact(qz)
-        .flat_map(|row| cols.iter().map(|a| row[*a]))
-        .collect()
+impl ModelOptions {
+    /// Options of a study's search for one structure.
+    pub fn from_search(search: &crate::spec::Search, structure: crate::spec::CovarianceStructure) -> ModelOptions {
+        ModelOptions {
+            structure,
+            gating_ridge: search.gating_ridge,
+            covariance_prior: search.covariance_prior,
+            variance_floor: search.variance_floor,
+            smoothing: 0.0,
+        }
+    }
+
+    /// Options of a study's fits for one structure.
+    pub fn for_study(study: &crate::spec::Study, structure: crate::spec::CovarianceStructure) -> ModelOptions {
+        ModelOptions {
+            smoothing: study.smoothing,
+            ..ModelOptions::from_search(&study.search, structure)
+        }
+    }
+}
+
+/// Which gating step an M-step takes when the E-step's gating sums are at hand.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum GatingUpdate {
+    /// A Newton step without line search (EM checks the objective and falls back).
+    Newton,
+    /// Böhning's bound step, which never lowers the gating objective.
+    Bound,
 }
 
 /// Parameters of one mixture of experts.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone)]
 pub struct Model {
     /// Gating network.
     pub gating: Gating,
@@ -120,21 +122,20 @@ impl Model {
 
     /// Both M-steps from responsibilities.
     ///
-    /// `stats` are the gating sums and `gaussian` the Gaussian sums of the E-step that
-    /// produced `tau` (see [`e_step_with`]); without the latter the Gaussian block sums
-    /// them from `tau`.
-    /// With them a logit gating network takes a Newton step (`safe = false`) or Böhning's
-    /// bound step, which always raises the gating objective (`safe = true`); without them
-    /// it takes a Newton step with step-halving, computed from `tau` directly.
+    /// `stats` are the gating sums and `sums` the fused block's sums of the E-step that
+    /// produced `tau` (see [`e_step_with`]); without the latter the fused block sums from
+    /// `tau`. With `stats` a logit gating network takes the step `update` says (after a
+    /// failed Newton step, the bound step); without them it takes a Newton step with
+    /// step-halving, computed from `tau` directly.
     pub fn m_step(
         &mut self,
         data: &FitData,
         tau: &[f64],
         stats: Option<&GatingStats>,
-        gaussian: Option<&GaussianStats>,
-        safe: bool,
+        sums: Option<&GaussianStats>,
+        update: GatingUpdate,
     ) -> Result<gating::GatingStep, Degeneracy> {
-        self.components.m_step_with(data, tau, gaussian)?;
+        self.components.m_step(data, tau, sums)?;
         let has_bound = matches!(
             self.gating,
             Gating::Logit {
@@ -144,11 +145,11 @@ impl Model {
         );
         let one = |damped| gating::GatingStep {
             iterations: 1,
-            outcome: crate::numerics::newton::Outcome::IterationCap,
+            outcome: Outcome::IterationCap,
             damped,
         };
         match stats {
-            Some(st) if has_bound && safe => {
+            Some(st) if has_bound && update == GatingUpdate::Bound => {
                 self.gating.bound_step(&st.score);
                 Ok(one(0))
             }
@@ -163,7 +164,7 @@ impl Model {
                 self.gating.shares_from(&st.cluster_weight);
                 Ok(gating::GatingStep {
                     iterations: 0,
-                    outcome: crate::numerics::newton::Outcome::Converged,
+                    outcome: Outcome::Converged,
                     damped: 0,
                 })
             }
@@ -172,19 +173,19 @@ impl Model {
     }
 
     /// Whether [`Model::m_step`] needs only the E-step's sums, not the responsibilities:
-    /// Gaussian components alone and a gating network without parameters, with free
-    /// shares, or a logit with its bound prepared.
+    /// one block whose M-step runs from its fused pass's sums, and a gating network
+    /// without parameters, with free shares, or a logit with its bound prepared.
     pub fn steps_from_sums(&self) -> bool {
-        let c = &self.components;
         let gating = match &self.gating {
             Gating::Equal { .. } | Gating::Fixed { .. } | Gating::Free { .. } => true,
             Gating::Logit { bound_inverse, .. } => bound_inverse.is_some(),
         };
-        c.gaussian.is_some() && c.items.is_none() && c.counts.is_none() && gating
+        let blocks = &self.components.blocks;
+        gating && blocks.len() == 1 && blocks[0].fused().is_some_and(|f| f.steps_from_sums())
     }
 
     /// The parameters as one vector of coordinates in which EM steps can be extrapolated:
-    /// gating first, then the component blocks ([`ComponentFamily::push_coordinates`]).
+    /// gating first, then the component blocks ([`family::Block::push_coordinates`]).
     pub fn coordinates(&self) -> Vec<f64> {
         let mut out = Vec::new();
         self.gating.push_coordinates(&mut out);
@@ -219,63 +220,63 @@ pub fn e_step(model: &Model, data: &FitData, tau: &mut [f64], gating_stats: Opti
     e_step_with(model, data, tau, gating_stats, None)
 }
 
-/// [`e_step`] that also fills the Gaussian M-step sums, when asked and the model has a
-/// Gaussian block. The Gaussian block and the gating network go through the tiled row
-/// pass of [`rows`]; items and counts add their log-densities first.
+/// [`e_step`] that also fills the fused block's M-step sums, when asked and the model
+/// has a fused block. The blocks that are not fused add their log-densities first (in
+/// block order); the tiled row pass of [`rows`] adds the fused block's and the gating
+/// network's.
 pub fn e_step_with(
     model: &Model,
     data: &FitData,
     tau: &mut [f64],
     gating_stats: Option<&mut GatingStats>,
-    gaussian_stats: Option<&mut GaussianStats>,
+    sums: Option<&mut GaussianStats>,
 ) -> f64 {
-    let c = &model.components;
-    let has_base = c.items.is_some() || c.counts.is_some();
-    if has_base {
-        tau.fill(0.0);
-        if let Some(b) = &c.items {
-            b.add_log_density(data, tau);
+    let blocks = &model.components.blocks;
+    let fused = blocks.iter().find_map(|b| b.fused());
+    let mut base = Base::Empty;
+    for b in blocks.iter().filter(|b| b.fused().is_none()) {
+        if base == Base::Empty {
+            tau.fill(0.0);
+            base = Base::Written;
         }
-        if let Some(b) = &c.counts {
-            b.add_log_density(data, tau);
-        }
+        b.add_log_density(tau);
     }
-    rows::e_step(
-        *data,
-        c.gaussian.as_ref(),
-        &model.gating,
-        has_base,
-        Some(tau),
-        gating_stats,
-        gaussian_stats,
-    )
+    match fused {
+        Some(f) => f.pass(data, &model.gating, base, Some(tau), gating_stats, sums),
+        None => rows::e_step(
+            data.pass_rows(),
+            None,
+            &model.gating,
+            base,
+            Some(tau),
+            gating_stats,
+            None,
+        ),
+    }
 }
 
 /// The E-step's log-likelihood and M-step sums without the responsibilities, for a
 /// model whose M-step runs from sums alone ([`Model::steps_from_sums`]): the pass then
 /// writes nothing per row.
-pub fn e_step_sums(
-    model: &Model,
-    data: &FitData,
-    gating_stats: &mut GatingStats,
-    gaussian_stats: &mut GaussianStats,
-) -> f64 {
+pub fn e_step_sums(model: &Model, data: &FitData, gating_stats: &mut GatingStats, sums: &mut GaussianStats) -> f64 {
     assert!(
         model.steps_from_sums(),
         "this model's M-step needs the responsibilities"
     );
-    rows::e_step(
-        *data,
-        model.components.gaussian.as_ref(),
-        &model.gating,
-        false,
-        None,
-        Some(gating_stats),
-        Some(gaussian_stats),
-    )
+    let fused = model.components.blocks[0]
+        .fused()
+        .expect("a model stepping from sums has a fused block");
+    fused.pass(data, &model.gating, Base::Empty, None, Some(gating_stats), Some(sums))
 }
 
 /// Log-likelihood alone (no responsibilities kept); uses `scratch` of length n×G.
 pub fn log_likelihood(model: &Model, data: &FitData, scratch: &mut [f64]) -> f64 {
     e_step(model, data, scratch, None)
+}
+
+/// Rows of a row-major design `z` (n×qz) restricted to the columns `cols`, row-major.
+pub fn design_rows(z: &[f64], qz: usize, cols: &[usize]) -> Vec<f64> {
+    z.chunks_exact(qz)
+        .flat_map(|row| cols.iter().map(|a| row[*a]))
+        .collect()
 }

@@ -15,15 +15,45 @@
 //! instruction set, and Rust never fuses or reorders the other operations, so all three
 //! give the same bits.
 
-use super::family::GaussianComponents;
+use super::family::gaussian::GaussianComponents;
 use super::gating::{Gating, GatingStats};
-use super::FitData;
 use rayon::prelude::*;
 
 /// Rows per tile: the scratch of a tile stays in the core's own caches.
 pub const TILE: usize = 256;
 /// Rows per parallel task (and per partial sum).
 pub const TASK_ROWS: usize = TILE * 32;
+
+/// What a pass over rows reads: the case weights and the gating design, and for the
+/// Gaussian kernel its indicators and regression design (empty without one).
+#[derive(Debug, Clone, Copy)]
+pub struct PassRows<'a> {
+    /// Rows.
+    pub n: usize,
+    /// Case weights (length n).
+    pub weights: &'a [f64],
+    /// Gating design, n×p (intercept first).
+    pub w: &'a [f64],
+    /// Gating design columns.
+    pub p: usize,
+    /// Continuous indicators, n×d (empty without a Gaussian block).
+    pub y: &'a [f64],
+    /// Continuous indicators (0 without a Gaussian block).
+    pub d: usize,
+    /// The Gaussian block's design, n×q (intercept first).
+    pub z: &'a [f64],
+    /// Its columns.
+    pub q: usize,
+}
+
+/// Whether `tau` holds the other blocks' log-densities when a pass begins.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Base {
+    /// It does not: the pass overwrites it.
+    Empty,
+    /// It does: the pass adds to them.
+    Written,
+}
 
 /// Sums of the Gaussian M-step, taken around coefficients `at`: with v = c·τ and
 /// residuals r = y − B_at′z, the update is B = B_at + Δ with (Σ v z z′) Δ = Σ v z r′,
@@ -114,7 +144,7 @@ enum Prior<'a> {
 }
 
 struct Pass<'a> {
-    rows: FitData<'a>,
+    rows: PassRows<'a>,
     g: usize,
     gaussian: Option<GaussianPass<'a>>,
     prior: Prior<'a>,
@@ -1119,17 +1149,17 @@ widest!(
 );
 
 /// The E-step over all rows: adds the Gaussian log-densities (if any) and the log
-/// cluster probabilities to `tau` (which holds the other blocks' log-densities when
-/// `has_base`, and is overwritten otherwise), turns rows into responsibilities and
+/// cluster probabilities to `tau` (which holds the other blocks' log-densities with
+/// [`Base::Written`], and is overwritten otherwise), turns rows into responsibilities and
 /// returns the weighted log-likelihood. Fills the gating sums when asked and the gating
 /// network is a logit, and the Gaussian sums when asked and there is a Gaussian block.
-/// Without `tau` (allowed only without `has_base`) the responsibilities are not kept:
+/// Without `tau` (allowed only with [`Base::Empty`]) the responsibilities are not kept:
 /// the pass then only sums.
 pub fn e_step(
-    rows: FitData,
+    rows: PassRows,
     gaussian: Option<&GaussianComponents>,
     gating: &Gating,
-    has_base: bool,
+    base: Base,
     tau: Option<&mut [f64]>,
     gating_stats: Option<&mut GatingStats>,
     gaussian_stats: Option<&mut GaussianStats>,
@@ -1139,7 +1169,7 @@ pub fn e_step(
         gating_hessian: true,
         gaussian: gaussian_stats.is_some() && gaussian.is_some(),
     };
-    let total = run_pass(rows, gaussian, gating, has_base, tau, want);
+    let total = run_pass(rows, gaussian, gating, base == Base::Written, tau, want);
     if let (Some(out), Some(s)) = (gating_stats, total.gating) {
         *out = s;
     }
@@ -1153,7 +1183,7 @@ pub fn e_step(
 /// keeps no responsibilities: the weighted log-likelihood, the gating score and each
 /// cluster's weighted total (no Hessian), and the Gaussian sums about the model's own
 /// coefficients.
-pub fn score_sums(rows: FitData, gaussian: &GaussianComponents, gating: &Gating) -> (f64, GatingStats, GaussianStats) {
+pub fn score_sums(rows: PassRows, gaussian: &GaussianComponents, gating: &Gating) -> (f64, GatingStats, GaussianStats) {
     let want = Wanted {
         gating: true,
         gating_hessian: false,
@@ -1175,7 +1205,7 @@ struct Wanted {
 }
 
 fn run_pass(
-    rows: FitData,
+    rows: PassRows,
     gaussian: Option<&GaussianComponents>,
     gating: &Gating,
     has_base: bool,
@@ -1215,7 +1245,7 @@ fn run_pass(
 }
 
 #[inline(always)]
-fn gaussian_stats_task_body(rows: &FitData, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial {
+fn gaussian_stats_task_body(rows: &PassRows, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial {
     let (d, q) = (rows.d, rows.q);
     let mut sc = Scratch::take(g, d, q, 0);
     let mut st = GaussianStats::zeros(g, q, d, at);
@@ -1240,11 +1270,11 @@ fn gaussian_stats_task_body(rows: &FitData, g: usize, at: &[f64], start: usize, 
 
 widest!(
     /// One task of [`gaussian_stats`] in the widest instruction set available.
-    fn gaussian_stats_task(rows: &FitData, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial = gaussian_stats_task_body
+    fn gaussian_stats_task(rows: &PassRows, g: usize, at: &[f64], start: usize, tau: &[f64]) -> Partial = gaussian_stats_task_body
 );
 
 /// The Gaussian M-step sums from given responsibilities (n×G), around coefficients `at`.
-pub fn gaussian_stats(rows: &FitData, g: usize, at: &[f64], tau: &[f64]) -> GaussianStats {
+pub fn gaussian_stats(rows: &PassRows, g: usize, at: &[f64], tau: &[f64]) -> GaussianStats {
     let total = over_tasks_read(rows.n, g, tau, |start, chunk| {
         gaussian_stats_task(rows, g, at, start, chunk)
     });

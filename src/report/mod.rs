@@ -284,11 +284,7 @@ pub fn results(
             let termination = f.termination();
             let (parameters_named, gating_model) = match &f.best {
                 Some(b) => (
-                    crate::inference::named_parameters(
-                        &f.reported_model().unwrap_or_else(|| b.run.model.clone()),
-                        data,
-                        pp,
-                    ),
+                    crate::inference::named_parameters(&f.reported_model().unwrap_or_else(|| b.run.model.clone()), pp),
                     gating_word(&b.run.model.gating),
                 ),
                 None => (Vec::new(), "none"),
@@ -349,11 +345,15 @@ pub fn results(
                     each: f.starts.clone(),
                 },
                 shares: f.shares(&data.weights),
-                variance_floor_hits: f.best.as_ref().map_or(0, |b| b.run.model.components.floor_hits()),
-                item_cells_held_off_zero: f.best.as_ref().and_then(|b| {
-                    let items = b.run.model.components.items.as_ref()?;
-                    (items.smoothing > 0.0).then_some(items.empty_cells)
-                }),
+                variance_floor_hits: f
+                    .best
+                    .as_ref()
+                    .and_then(|b| b.run.model.components.guard("variance_floor_hits"))
+                    .unwrap_or(0),
+                item_cells_held_off_zero: f
+                    .best
+                    .as_ref()
+                    .and_then(|b| b.run.model.components.guard("item_cells_held_off_zero")),
                 parameters_named,
                 standard_errors,
                 effects,
@@ -398,12 +398,12 @@ pub fn results(
                 .search
                 .structures
                 .iter()
-                .map(|s| crate::fit::covariance_label(s, data.d() > 0))
+                .map(|s| crate::fit::covariance_label(s, study.reads(crate::spec::FamilyKey::Covariance)))
                 .collect(),
             covariance_prior: study.search.covariance_prior,
             variance_floor: study.search.variance_floor,
-            indicator_kinds: data.indicator_kinds.iter().map(|k| k.word()).collect(),
-            item_values_missing: data.items.as_ref().map_or(0, |b| b.missing_values),
+            indicator_kinds: study.indicator_families.iter().map(|f| f.indicator_word).collect(),
+            item_values_missing: data.indicator_sets.iter().map(|s| s.missing_values()).sum(),
             item_smoothing: study.smoothing,
             exposure: study.exposure.as_ref().map(|e| e.name.clone()),
         },

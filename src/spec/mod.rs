@@ -30,8 +30,11 @@
 //! [`load`] parses and checks everything that can be checked without the data; the data
 //! module checks column names against the CSV header, pointing back at the spec.
 
+pub mod families;
 pub mod raw;
 pub mod settings;
+
+pub use families::{FamilyInfo, FamilyKey, Layout, TypeKind};
 
 pub use settings::{CompareSettings, CovarianceStructure, ErrorMethod, Orientation, Shape, Volume};
 
@@ -73,6 +76,16 @@ pub enum VariableType {
 }
 
 impl VariableType {
+    /// The type without its levels.
+    pub fn kind(&self) -> TypeKind {
+        match self {
+            VariableType::Continuous => TypeKind::Continuous,
+            VariableType::Binary => TypeKind::Binary,
+            VariableType::Categorical { .. } => TypeKind::Categorical,
+            VariableType::Count => TypeKind::Count,
+        }
+    }
+
     /// The word used in the spec.
     pub fn word(&self) -> &'static str {
         match self {
@@ -95,55 +108,35 @@ pub struct ColumnRef {
     pub key: String,
 }
 
-/// Component family of the indicators.
+/// The spec's choice of component family for the indicators.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum FamilyKind {
-    /// Multivariate normal regression within each cluster.
-    Gaussian,
-    /// Binary and categorical items, independent given the cluster (latent class model).
-    Items,
-    /// Poisson log-linear regressions, independent given the cluster.
-    Counts,
-    /// Blocks of the above formed by each indicator's declared type, independent given
-    /// the cluster.
+pub enum FamilyChoice {
+    /// Every indicator in one family.
+    One(&'static FamilyInfo),
+    /// Each indicator in the family its declared type belongs to ([`FamilyInfo::mixed`]).
     Mixed,
 }
 
-impl FamilyKind {
+impl FamilyChoice {
     /// The word used in the spec.
     pub fn word(&self) -> &'static str {
         match self {
-            FamilyKind::Gaussian => "gaussian",
-            FamilyKind::Items => "items",
-            FamilyKind::Counts => "counts",
-            FamilyKind::Mixed => "mixed",
+            FamilyChoice::One(f) => f.word,
+            FamilyChoice::Mixed => MIXED,
         }
     }
-
-    /// Every family word, for messages.
-    pub const WORDS: [&'static str; 4] = ["gaussian", "items", "counts", "mixed"];
 }
 
-/// How one indicator is modelled inside a cluster, from the family and its declared type.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum IndicatorKind {
-    /// A continuous indicator in the Gaussian block.
-    Gaussian,
-    /// A binary or categorical item.
-    Item,
-    /// A count in the Poisson block.
-    Count,
-}
+/// The spec word for indicators each in the family of their declared type.
+pub const MIXED: &str = "mixed";
 
-impl IndicatorKind {
-    /// Plain word.
-    pub fn word(&self) -> &'static str {
-        match self {
-            IndicatorKind::Gaussian => "gaussian",
-            IndicatorKind::Item => "item",
-            IndicatorKind::Count => "count",
-        }
-    }
+/// The indicators of one family: they form one block of the component model.
+#[derive(Debug, Clone, PartialEq)]
+pub struct IndicatorBlock {
+    /// The family.
+    pub family: &'static FamilyInfo,
+    /// Its indicators, in spec order.
+    pub columns: Vec<ColumnRef>,
 }
 
 /// How cluster proportions are modelled when the gating network has no covariates.
@@ -289,12 +282,15 @@ pub struct Study {
     pub output: Option<PathBuf>,
     /// Declared column types, by name, with their spans.
     pub variables: BTreeMap<String, (VariableType, Range<usize>)>,
-    /// Family of the indicators.
-    pub family: FamilyKind,
+    /// Family of the indicators, as the spec chose it.
+    pub family: FamilyChoice,
     /// Indicator columns.
     pub indicators: Vec<ColumnRef>,
-    /// How each indicator is modelled (same order as `indicators`).
-    pub indicator_kinds: Vec<IndicatorKind>,
+    /// The family of each indicator (same order as `indicators`).
+    pub indicator_families: Vec<&'static FamilyInfo>,
+    /// The indicators by family, in the order the program lists its families: the blocks
+    /// of the component model.
+    pub blocks: Vec<IndicatorBlock>,
     /// Exposure (person-time) column of count indicators.
     pub exposure: Option<ColumnRef>,
     /// Pseudo-count spread over each item's levels in every cluster (0 = none).
@@ -345,26 +341,27 @@ impl Study {
         Diagnostic::new(message).at(Location::from_span(&self.spec_path, &self.spec_text, span))
     }
 
-    /// The type of a column: declared, or for an undeclared indicator the family's
-    /// natural type (gaussian: continuous, items: categorical, counts: count).
+    /// The type of a column: declared, or for an undeclared indicator its family's
+    /// default type (gaussian: continuous, items: categorical, counts: count).
     pub fn variable_type(&self, name: &str) -> Option<VariableType> {
         if let Some((t, _)) = self.variables.get(name) {
             return Some(t.clone());
         }
-        let is_indicator = self.indicators.iter().any(|c| c.name == name);
-        if !is_indicator {
-            return None;
-        }
-        default_indicator_type(self.family)
+        let at = self.indicators.iter().position(|c| c.name == name)?;
+        Some(self.indicator_families[at].default_type.undeclared())
     }
 
-    /// Names of the indicators of one kind, in spec order.
-    pub fn indicators_of(&self, kind: IndicatorKind) -> Vec<&ColumnRef> {
-        self.indicators
+    /// Whether some indicator's family reads `key`.
+    pub fn reads(&self, key: FamilyKey) -> bool {
+        self.blocks.iter().any(|b| b.family.reads(key))
+    }
+
+    /// The indicators of the families that read `key`, in block order.
+    pub fn indicators_reading(&self, key: FamilyKey) -> Vec<&ColumnRef> {
+        self.blocks
             .iter()
-            .zip(&self.indicator_kinds)
-            .filter(|(_, k)| **k == kind)
-            .map(|(c, _)| c)
+            .filter(|b| b.family.reads(key))
+            .flat_map(|b| &b.columns)
             .collect()
     }
 
@@ -391,10 +388,11 @@ impl Study {
     }
 }
 
-/// Read and validate a spec file.
-pub fn load(path: &Path) -> Result<Study> {
+/// Read and validate a spec file against the component families the program offers
+/// (in their order).
+pub fn load(path: &Path, families: &[&'static FamilyInfo]) -> Result<Study> {
     let text = read_text(path, "spec")?;
-    parse(path, &text)
+    parse(path, &text, families)
 }
 
 /// Join a spec-relative path to the spec's folder and drop `a/..` pairs, so messages
@@ -454,10 +452,10 @@ pub fn io_words(e: &std::io::Error) -> String {
     }
 }
 
-/// Parse and validate spec text that was read from `path`.
-pub fn parse(path: &Path, text: &str) -> Result<Study> {
+/// Parse and validate spec text that was read from `path` (see [`load`]).
+pub fn parse(path: &Path, text: &str, families: &[&'static FamilyInfo]) -> Result<Study> {
     let raw: RawSpec = toml::from_str(text).map_err(|e| toml_error(path, text, &e))?;
-    validate(path, text, raw)
+    validate(path, text, raw, families)
 }
 
 fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
@@ -553,8 +551,8 @@ fn cluster_list(ctx: &Ctx, v: &Spanned<Vec<Spanned<i64>>>, key: &str) -> Result<
     Ok(out)
 }
 
-/// Validate a parsed spec into a [`Study`].
-pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
+/// Validate a parsed spec into a [`Study`] (see [`load`]).
+pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static FamilyInfo]) -> Result<Study> {
     let ctx = Ctx { path, text };
     let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
     let study = raw.study.get_ref();
@@ -630,24 +628,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
 
     // [indicators]
     let ind = raw.indicators.get_ref();
-    let family = match &ind.family {
-        None => FamilyKind::Gaussian,
-        Some(f) => match f.get_ref().as_str() {
-            "gaussian" => FamilyKind::Gaussian,
-            "items" => FamilyKind::Items,
-            "counts" => FamilyKind::Counts,
-            "mixed" => FamilyKind::Mixed,
-            other => {
-                let mut d = ctx.err(f.span(), format!("unknown family '{other}'"));
-                if let Some(s) = did_you_mean(other, FamilyKind::WORDS) {
-                    d = d.help(format!("did you mean '{s}'?"));
-                }
-                return Err(Error::input(
-                    d.help(format!("families: {}", FamilyKind::WORDS.join(", "))),
-                ));
-            }
-        },
-    };
+    let family = family_choice(&ctx, ind.family.as_ref(), families)?;
     let indicators = column_list(&Some(ind.columns.clone()), "[indicators].columns");
     if indicators.is_empty() {
         return Err(Error::input(
@@ -656,15 +637,27 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         ));
     }
     check_unique(&ctx, &indicators)?;
-    let indicator_kinds = indicators
+    let indicator_families = indicators
         .iter()
-        .map(|c| indicator_kind(&ctx, family, c, variables.get(&c.name).map(|(t, _)| t)))
+        .map(|c| indicator_family(&ctx, family, families, c, variables.get(&c.name).map(|(t, _)| t)))
         .collect::<Result<Vec<_>>>()?;
-    let has_counts = indicator_kinds.contains(&IndicatorKind::Count);
-    let has_items = indicator_kinds.contains(&IndicatorKind::Item);
+    let blocks: Vec<IndicatorBlock> = families
+        .iter()
+        .filter(|f| indicator_families.contains(f))
+        .map(|f| IndicatorBlock {
+            family: f,
+            columns: indicators
+                .iter()
+                .zip(&indicator_families)
+                .filter(|(_, g)| *g == f)
+                .map(|(c, _)| c.clone())
+                .collect(),
+        })
+        .collect();
+    let reads = |key| blocks.iter().any(|b| b.family.reads(key));
     let exposure = ind.exposure.as_ref().map(|e| column_ref(e, "[indicators].exposure"));
     if let Some(e) = &exposure {
-        if !has_counts {
+        if !reads(FamilyKey::Exposure) {
             return Err(Error::input(
                 ctx.err(
                     e.span.clone(),
@@ -693,7 +686,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
                     .help("it is a pseudo-count per item and cluster; 1 is a mild value, 0 turns it off"),
                 ));
             }
-            if a > 0.0 && !has_items {
+            if a > 0.0 && !reads(FamilyKey::Smoothing) {
                 return Err(Error::input(
                     ctx.err(v.span(), "[indicators].smoothing is given, but no indicator is an item")
                         .help("smoothing keeps item probabilities off 0 and 1; remove it"),
@@ -704,10 +697,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
     };
 
     // [search]
-    let n_gaussian = indicator_kinds
+    let n_gaussian: usize = blocks
         .iter()
-        .filter(|k| **k == IndicatorKind::Gaussian)
-        .count();
+        .filter(|b| b.family.reads(FamilyKey::Covariance))
+        .map(|b| b.columns.len())
+        .sum();
     let default_span = raw
         .search
         .as_ref()
@@ -767,7 +761,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         });
     }
     for p in &raw.placement {
-        let placement = placement(&ctx, p, &default_clusters, &default_span, &indicators, &indicator_kinds)?;
+        let placement = placement(&ctx, p, &default_clusters, &default_span, &indicators, &blocks)?;
         if let Some(first) = placements.iter().find(|q: &&Placement| q.name == placement.name) {
             let _ = first;
             return Err(Error::input(
@@ -826,7 +820,8 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec) -> Result<Study> {
         variables,
         family,
         indicators,
-        indicator_kinds,
+        indicator_families,
+        blocks,
         exposure,
         smoothing,
         search,
@@ -1188,7 +1183,7 @@ fn placement(
     default_clusters: &[usize],
     default_span: &Range<usize>,
     indicators: &[ColumnRef],
-    kinds: &[IndicatorKind],
+    blocks: &[IndicatorBlock],
 ) -> Result<Placement> {
     let r = p.get_ref();
     let name = r.name.get_ref().trim().to_string();
@@ -1279,7 +1274,7 @@ fn placement(
             .help("remove the gating list, or remove the proportions key (default \"free\")"),
         ));
     }
-    let acts_on = acts_on(ctx, r, &components, indicators, kinds)?;
+    let acts_on = acts_on(ctx, r, &components, indicators, blocks)?;
     let mut method = Method::OneStep;
     if let Some(m) = &r.method {
         let all = [Method::OneStep, Method::ThreeStepBch, Method::ThreeStepMl];
@@ -1317,14 +1312,14 @@ fn placement(
 }
 
 /// `acts_on = { covariate = ["indicator", ...] }`: each key a component covariate of the
-/// placement, each value a non-empty list of indicators. Gaussian indicators share one
-/// regression design, so a covariate acts on all of them or on none.
+/// placement, each value a non-empty list of indicators. The indicators of a family that
+/// shares one regression design (the continuous ones) are acted on all or none.
 fn acts_on(
     ctx: &Ctx,
     r: &RawPlacement,
     components: &[ColumnRef],
     indicators: &[ColumnRef],
-    kinds: &[IndicatorKind],
+    blocks: &[IndicatorBlock],
 ) -> Result<BTreeMap<String, Vec<String>>> {
     let mut out = BTreeMap::new();
     let Some(table) = &r.acts_on else { return Ok(out) };
@@ -1361,105 +1356,127 @@ fn acts_on(
                 return Err(Error::input(d));
             }
         }
-        let gaussian: Vec<&ColumnRef> = indicators
-            .iter()
-            .zip(kinds)
-            .filter(|(_, k)| **k == IndicatorKind::Gaussian)
-            .map(|(c, _)| c)
-            .collect();
-        let hit = gaussian
-            .iter()
-            .filter(|g| targets.iter().any(|t| t.name == g.name))
-            .count();
-        if hit > 0 && hit < gaussian.len() {
-            return Err(Error::input(
-                ctx.err(
-                    list.span(),
-                    format!("'{covariate}' acts on some but not all of the continuous indicators"),
-                )
-                .help(format!(
-                    "continuous indicators share one regression, so list all of them ({}) or none",
-                    gaussian.iter().map(|g| g.name.as_str()).collect::<Vec<_>>().join(", ")
-                )),
-            ));
+        for block in blocks {
+            if let Some(adjective) = block.family.shared_design {
+                shared_design_all_or_none(ctx, covariate, list, &targets, &block.columns, adjective)?;
+            }
         }
         out.insert(covariate.clone(), targets.into_iter().map(|t| t.name).collect());
     }
     Ok(out)
 }
 
-/// The natural type of an undeclared indicator in each family (mixed needs declarations).
-fn default_indicator_type(family: FamilyKind) -> Option<VariableType> {
-    match family {
-        FamilyKind::Gaussian => Some(VariableType::Continuous),
-        FamilyKind::Items => Some(VariableType::Categorical {
-            reference: None,
-            levels: None,
-        }),
-        FamilyKind::Counts => Some(VariableType::Count),
-        FamilyKind::Mixed => None,
+/// A component covariate acts on all of a shared-design family's indicators or on none.
+fn shared_design_all_or_none(
+    ctx: &Ctx,
+    covariate: &str,
+    list: &SList,
+    targets: &[ColumnRef],
+    members: &[ColumnRef],
+    adjective: &str,
+) -> Result<()> {
+    let hit = members
+        .iter()
+        .filter(|g| targets.iter().any(|t| t.name == g.name))
+        .count();
+    if hit > 0 && hit < members.len() {
+        return Err(Error::input(
+            ctx.err(
+                list.span(),
+                format!("'{covariate}' acts on some but not all of the {adjective} indicators"),
+            )
+            .help(format!(
+                "{adjective} indicators share one regression, so list all of them ({}) or none",
+                members.iter().map(|g| g.name.as_str()).collect::<Vec<_>>().join(", ")
+            )),
+        ));
     }
+    Ok(())
 }
 
-/// How an indicator is modelled, from the family and its declared type.
-fn indicator_kind(
+/// `[indicators] family`: a family's word or `mixed`; absent, the first family listed.
+fn family_choice(ctx: &Ctx, word: Option<&SStr>, families: &[&'static FamilyInfo]) -> Result<FamilyChoice> {
+    let Some(f) = word else {
+        let first = families.first().expect("the program offers at least one family");
+        return Ok(FamilyChoice::One(first));
+    };
+    if f.get_ref() == MIXED {
+        return Ok(FamilyChoice::Mixed);
+    }
+    if let Some(found) = families.iter().find(|x| x.word == f.get_ref()) {
+        return Ok(FamilyChoice::One(found));
+    }
+    let words: Vec<&str> = families.iter().map(|x| x.word).chain([MIXED]).collect();
+    let mut d = ctx.err(f.span(), format!("unknown family '{}'", f.get_ref()));
+    if let Some(s) = did_you_mean(f.get_ref(), words.iter().copied()) {
+        d = d.help(format!("did you mean '{s}'?"));
+    }
+    Err(Error::input(d.help(format!("families: {}", words.join(", ")))))
+}
+
+/// The family an indicator belongs to, from the spec's choice and its declared type.
+fn indicator_family(
     ctx: &Ctx,
-    family: FamilyKind,
+    choice: FamilyChoice,
+    families: &[&'static FamilyInfo],
     c: &ColumnRef,
     declared: Option<&VariableType>,
-) -> Result<IndicatorKind> {
-    let t = match (declared, default_indicator_type(family)) {
-        (Some(t), _) => t.clone(),
-        (None, Some(t)) => t,
-        (None, None) => {
-            return Err(Error::input(
-                ctx.err(c.span.clone(), format!("indicator '{}' has no type in [variables]", c.name))
-                    .help(format!(
-                        "the mixed family forms its blocks by type: add {} = \"continuous\", \"binary\", \"categorical\" or \"count\" under [variables]",
-                        c.name
-                    )),
-            ))
-        }
-    };
-    let kind = match &t {
-        VariableType::Continuous => IndicatorKind::Gaussian,
-        VariableType::Binary | VariableType::Categorical { .. } => IndicatorKind::Item,
-        VariableType::Count => IndicatorKind::Count,
-    };
-    let wanted = match family {
-        FamilyKind::Gaussian => Some((IndicatorKind::Gaussian, "continuous")),
-        FamilyKind::Items => Some((IndicatorKind::Item, "binary or categorical")),
-        FamilyKind::Counts => Some((IndicatorKind::Count, "count")),
-        FamilyKind::Mixed => None,
-    };
-    if let Some((k, words)) = wanted {
-        if k != kind {
-            return Err(Error::input(
-                ctx.err(
-                    c.span.clone(),
-                    format!(
-                        "indicator '{}' is declared {}, but the {} family needs {words} indicators",
-                        c.name,
-                        t.word(),
-                        family.word()
-                    ),
-                )
+) -> Result<&'static FamilyInfo> {
+    match (choice, declared) {
+        (FamilyChoice::One(f), None) => Ok(f),
+        (FamilyChoice::One(f), Some(t)) if f.accepts(t) => Ok(f),
+        (FamilyChoice::One(f), Some(t)) => Err(Error::input(
+            ctx.err(
+                c.span.clone(),
+                format!(
+                    "indicator '{}' is declared {}, but the {} family needs {} indicators",
+                    c.name,
+                    t.word(),
+                    f.word,
+                    f.wanted
+                ),
+            )
+            .help(format!(
+                "declare its type to match, use family = \"{MIXED}\", or drop it from the indicators ({})",
+                c.name
+            )),
+        )),
+        (FamilyChoice::Mixed, None) => Err(Error::input(
+            ctx.err(c.span.clone(), format!("indicator '{}' has no type in [variables]", c.name))
                 .help(format!(
-                    "declare its type to match, use family = \"mixed\", or drop it from the indicators ({})",
+                    "the mixed family forms its blocks by type: add {} = \"continuous\", \"binary\", \"categorical\" or \"count\" under [variables]",
                     c.name
                 )),
-            ));
-        }
+        )),
+        (FamilyChoice::Mixed, Some(t)) => families.iter().copied().find(|f| f.mixed.contains(&t.kind())).ok_or_else(|| {
+            Error::input(ctx.err(
+                c.span.clone(),
+                format!("indicator '{}' is declared {}, and no family takes such indicators", c.name, t.word()),
+            ))
+        }),
     }
-    Ok(kind)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
 
+    /// A family of continuous indicators, as the program's first family is (the spec
+    /// layer's tests cannot see the model layer's families).
+    static CONTINUOUS: FamilyInfo = FamilyInfo {
+        word: "gaussian",
+        indicator_word: "gaussian",
+        wanted: "continuous",
+        types: &[TypeKind::Continuous],
+        default_type: TypeKind::Continuous,
+        mixed: &[TypeKind::Continuous],
+        layout: Layout::Rows,
+        shared_design: Some("continuous"),
+        keys: &[FamilyKey::Covariance],
+    };
+
     fn spec(body: &str) -> std::result::Result<Study, String> {
-        parse(Path::new("s.toml"), body).map_err(|e| e.to_string())
+        parse(Path::new("s.toml"), body, &[&CONTINUOUS]).map_err(|e| e.to_string())
     }
 
     const BASE: &str = "[study]\ntitle = \"t\"\ndata = \"d.csv\"\n[indicators]\ncolumns = [\"a\", \"b\"]\n";

@@ -18,7 +18,8 @@ fn extrapolated_em_ends_where_plain_em_ends_on_iris() {
     let (y, n) = iris_measurements();
     let d = 4;
     let ones = vec![1.0; n];
-    let data = super::common::unadjusted_data(&y, d, &ones);
+    let data = super::common::unadjusted_data(&ones);
+    let blocks = super::common::gaussian_block(&y, d, &cohortmix::data::Design::intercept(n));
     let run = |structure: CovarianceStructure, g: usize, s: usize, accelerate: bool| -> EmRun {
         let mut rng = Stream::new(11, &format!("iris|{g}|{s}"));
         let tau = partition(StartKind::for_start(s, g), &y, d, &ones, g, &mut rng);
@@ -29,7 +30,7 @@ fn extrapolated_em_ends_where_plain_em_ends_on_iris() {
         };
         em::run(
             &data,
-            initial_model(&data, &free_placement(), g, plain_options(structure)),
+            initial_model(&data, &blocks, &free_placement(), g, plain_options(structure)),
             tau,
             settings,
         )

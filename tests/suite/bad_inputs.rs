@@ -93,21 +93,26 @@ fn a_bom_crlf_and_quoted_commas_are_read_like_plain_csv() {
     let load = |csv: &str| {
         let dir = tempfile::tempdir().unwrap();
         std::fs::write(dir.path().join("data.csv"), csv).unwrap();
-        let study = cohortmix::spec::parse(&dir.path().join("spec.toml"), &spec_text).unwrap();
+        let study = cohortmix::spec::parse(
+            &dir.path().join("spec.toml"),
+            &spec_text,
+            &super::common::families().infos(),
+        )
+        .unwrap();
         let streamed = cohortmix::data::load(&study).unwrap();
         // The file read as a stream gives what its whole text gives, hash included.
         let whole = cohortmix::data::from_text(&study, csv).unwrap();
         assert_eq!(streamed.sha256, whole.sha256);
         assert_eq!(streamed.ids, whole.ids);
         assert_eq!(
-            (streamed.rows_read, &streamed.y, &streamed.columns),
-            (whole.rows_read, &whole.y, &whole.columns)
+            (streamed.rows_read, &streamed.indicator_sets, &streamed.columns),
+            (whole.rows_read, &whole.indicator_sets, &whole.columns)
         );
         streamed
     };
     let (a, b) = (load(&plain), load(&awkward));
     assert_eq!(&b.ids[0], "w,01");
     assert!(a.ids.iter().skip(1).eq(b.ids.iter().skip(1)));
-    assert_eq!(a.y, b.y);
+    assert_eq!(a.indicator_sets, b.indicator_sets);
     assert_eq!(a.columns, b.columns);
 }

@@ -1,8 +1,17 @@
 //! Helpers shared by the integration tests.
 
-use cohortmix::data::Column;
+use cohortmix::data::{Column, Design};
+use cohortmix::model::family::gaussian::GaussianRows;
+use cohortmix::model::family::items::ItemData;
+use cohortmix::model::family::Prepared;
 use cohortmix::spec::VariableType;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+/// The families the program offers.
+pub fn families() -> cohortmix::model::family::Families {
+    cohortmix::model::family::Families::standard()
+}
 
 /// A path under the crate root.
 pub fn root(rel: &str) -> PathBuf {
@@ -74,7 +83,10 @@ pub fn param_value(
     params
         .iter()
         .find(|p| {
-            p.block == block && p.cluster == cluster && p.indicator.as_deref() == indicator && p.term.as_deref() == term
+            p.block.name == block
+                && p.cluster == cluster
+                && p.indicator.as_deref() == indicator
+                && p.term.as_deref() == term
         })
         .unwrap_or_else(|| panic!("no parameter {block} {cluster} {indicator:?} {term:?}"))
         .value
@@ -107,18 +119,45 @@ pub fn iris_measurements() -> (Vec<f64>, usize) {
     (y, n)
 }
 
-/// The arrays of a mixture without covariates on `y` (n×d, row-major): every case weight,
-/// design and gating column is `ones` (length n).
-pub fn unadjusted_data<'a>(y: &'a [f64], d: usize, ones: &'a [f64]) -> cohortmix::model::FitData<'a> {
+/// What every block of a fit without covariates shares: every case weight and gating
+/// column is `ones` (length n).
+pub fn unadjusted_data(ones: &[f64]) -> cohortmix::model::FitData<'_> {
     cohortmix::model::FitData {
         n: ones.len(),
         weights: ones,
-        y,
-        d,
-        z: ones,
-        q: 1,
         w: ones,
         p: 1,
-        ..Default::default()
     }
+}
+
+/// The prepared Gaussian block of `y` (n×d, row-major) on `design`; the indicators are
+/// named y1, y2, ...
+pub fn gaussian_block(y: &[f64], d: usize, design: &Design) -> Vec<Arc<dyn Prepared>> {
+    let names: Vec<String> = (1..=d).map(|j| format!("y{j}")).collect();
+    named_gaussian_block(&names, y, design)
+}
+
+/// The prepared Gaussian block of indicators `names` with values `y` (row-major) on `design`.
+pub fn named_gaussian_block(names: &[String], y: &[f64], design: &Design) -> Vec<Arc<dyn Prepared>> {
+    vec![cohortmix::model::family::gaussian::prepared(GaussianRows::new(
+        names.to_vec(),
+        Arc::new(y.to_vec()),
+        design.clone(),
+    ))]
+}
+
+/// Item data: codes (n×J), levels per item (named 0, 1, ...), the component design and
+/// each item's design columns.
+pub fn item_data(names: &[String], codes: &[u16], levels: &[usize], design: &Design, terms: &[Vec<usize>]) -> ItemData {
+    let level_names = levels
+        .iter()
+        .map(|l| (0..*l).map(|v| v.to_string()).collect())
+        .collect();
+    ItemData::new(
+        names.to_vec(),
+        Arc::new(codes.to_vec()),
+        level_names,
+        design.clone(),
+        terms.to_vec(),
+    )
 }

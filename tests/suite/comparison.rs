@@ -92,13 +92,13 @@ fn study(placements: &str) -> (tempfile::TempDir, spec::Study) {
     let text = format!(
         "[study]\ntitle = \"t\"\ndata = \"three.csv\"\nid = \"pid\"\n[variables]\nage = \"continuous\"\ngroup = \"categorical\"\n[indicators]\ncolumns = [\"y1\", \"y2\"]\n[search]\nstarts = 6\n{placements}"
     );
-    let s = spec::parse(&dir.path().join("s.toml"), &text).unwrap();
+    let s = spec::parse(&dir.path().join("s.toml"), &text, &super::common::families().infos()).unwrap();
     (dir, s)
 }
 
 fn run(s: &spec::Study) -> (data::Dataset, Vec<fit::PreparedPlacement>, Vec<fit::FitResult>) {
     let d = data::load(s).unwrap();
-    let p = fit::prepare(s, &d).unwrap();
+    let p = fit::prepare(s, &d, &super::common::families()).unwrap();
     let f = fit::fit_grid(s, &d, &p, |_, _, _| {});
     (d, p, f)
 }

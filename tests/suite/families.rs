@@ -2,15 +2,17 @@
 //! memberships on open data, and a published latent class analysis.
 
 use super::common::*;
-use cohortmix::data::{Column, Design, MISSING_ITEM};
+use cohortmix::data::{Column, Design, Exposure, MISSING_ITEM};
 use cohortmix::fit::em::{self, EmSettings};
 use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
-use cohortmix::model::family::items::ItemRows;
-use cohortmix::model::family::{ComponentFamily, CountComponents, CovarianceStructure, ItemComponents, Naming};
-use cohortmix::model::{CountData, FitData, ItemData};
+use cohortmix::model::family::counts::CountData;
+use cohortmix::model::family::items::ItemData;
+use cohortmix::model::family::{Block, CountComponents, CovarianceStructure, ItemComponents};
+use cohortmix::model::FitData;
 use cohortmix::rng::Stream;
 use serde_json::Value;
+use std::sync::Arc;
 
 fn fixture() -> Value {
     serde_json::from_str(&std::fs::read_to_string(root("tests/reference/families_reference.json")).unwrap()).unwrap()
@@ -74,47 +76,38 @@ fn count_component_matches_statsmodels_poisson_on_ships() {
     let named: Vec<(&str, &Column)> = ["type", "year", "period"].iter().copied().zip(columns.iter()).collect();
     let design = Design::from_columns(n, &named).unwrap();
     let y = parsed(&header, &cols, "incidents");
-    let ln_factorial: Vec<f64> = y
-        .iter()
-        .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
-        .collect();
     let service = parsed(&header, &cols, "service");
     let log_service: Vec<f64> = service.iter().map(|s| s.ln()).collect();
     let weights = parsed(&header, &cols, "weight");
     let labels: Vec<usize> = parsed(&header, &cols, "cluster").iter().map(|v| *v as usize).collect();
     let terms = vec![(0..design.p()).collect::<Vec<_>>()];
     let names = vec!["incidents".to_string()];
+    let ones = vec![1.0; n];
     let data = FitData {
         n,
         weights: &weights,
-        w: &vec![1.0; n],
+        w: &ones,
         p: 1,
-        counts: Some(CountData {
-            names: &names,
-            y: &y,
-            ln_factorial: &ln_factorial,
-            z: &design.x,
-            qz: design.p(),
-            terms: &terms,
-            x: &[design.x.to_vec()],
-            exposure: Some(&service),
-            log_exposure: Some(&log_service),
-        }),
-        ..Default::default()
     };
+    let exposure = Exposure {
+        values: service,
+        logs: log_service,
+    };
+    let rows = CountData::new(
+        names.clone(),
+        Arc::new(y),
+        design.clone(),
+        terms,
+        Some(Arc::new(exposure)),
+    );
     let tau = hard(&labels, 2);
-    let mut comps = CountComponents::new(&data, 2, names.clone());
+    let mut comps = CountComponents::new(Arc::new(rows), 2);
     for _ in 0..60 {
-        comps.m_step(&data, &tau).unwrap();
+        comps.m_step(&data, &tau, None).unwrap();
     }
-    let params = comps.parameters(Naming {
-        indicators: &[],
-        design: &design,
-        components: &design,
-        item_levels: &[],
-    });
+    let params = comps.parameters();
     let mut ll = vec![0.0; n * 2];
-    comps.add_log_density(&data, &mut ll);
+    comps.add_log_density(&mut ll);
     let mut worst = 16.0f64;
     for (k, case) in reference["ships_poisson"].as_array().unwrap().iter().enumerate() {
         for (term, want) in case["terms"]
@@ -170,36 +163,27 @@ fn item_logits_match_statsmodels_on_birthwt() {
             vec![1.0; n]
         };
         let names = vec![item.to_string()];
-        let level_counts = vec![levels];
         let term_lists = vec![terms.clone()];
-        let item_rows = ItemRows::build(&codes, &level_counts, &design.x, design.p(), &term_lists);
+        let ones = vec![1.0; n];
         let data = FitData {
             n,
             weights: &weights,
-            w: &vec![1.0; n],
+            w: &ones,
             p: 1,
-            items: Some(ItemData {
-                names: &names,
-                codes: &codes,
-                levels: &level_counts,
-                z: &design.x,
-                qz: design.p(),
-                terms: &term_lists,
-                rows: &item_rows,
-            }),
-            ..Default::default()
         };
-        let mut comps = ItemComponents::new(&data, 2, names.clone(), 0.0);
-        for _ in 0..60 {
-            comps.m_step(&data, &tau).unwrap();
-        }
         let level_names: Vec<Vec<String>> = vec![(0..levels).map(|l| (l + offset as usize).to_string()).collect()];
-        let params = comps.parameters(Naming {
-            indicators: &[],
-            design: &design,
-            components: &design,
-            item_levels: &level_names,
-        });
+        let rows = ItemData::new(
+            names.clone(),
+            Arc::new(codes),
+            level_names.clone(),
+            design.clone(),
+            term_lists,
+        );
+        let mut comps = ItemComponents::new(Arc::new(rows), 2, 0.0);
+        for _ in 0..60 {
+            comps.m_step(&data, &tau, None).unwrap();
+        }
+        let params = comps.parameters();
         for (k, case) in reference[case_key].as_array().unwrap().iter().enumerate() {
             let per_level: Vec<Vec<f64>> = if levels == 2 {
                 vec![floats(&case["coefficients"])]
@@ -215,7 +199,7 @@ fn item_logits_match_statsmodels_on_birthwt() {
                 }
             }
             let mut ll = vec![0.0; n * 2];
-            comps.add_log_density(&data, &mut ll);
+            comps.add_log_density(&mut ll);
             worst = worst.min(digits(
                 hard_loglik(&ll, &labels, &weights, k),
                 case["loglik"].as_f64().unwrap(),
@@ -247,23 +231,19 @@ fn best_latent_class_loglik(codes: &[u16], counts: &[f64], j: usize, g: usize) -
     let terms = vec![vec![0usize]; j];
     let names: Vec<String> = (0..j).map(|i| format!("item{i}")).collect();
     let ones = vec![1.0; n];
-    let item_rows = ItemRows::build(codes, &levels, &ones, 1, &terms);
     let data = FitData {
         n,
         weights: counts,
         w: &ones,
         p: 1,
-        items: Some(ItemData {
-            names: &names,
-            codes,
-            levels: &levels,
-            z: &ones,
-            qz: 1,
-            terms: &terms,
-            rows: &item_rows,
-        }),
-        ..Default::default()
     };
+    let blocks = vec![cohortmix::model::family::items::prepared(item_data(
+        &names,
+        codes,
+        &levels,
+        &Design::intercept(n),
+        &terms,
+    ))];
     let seeding: Vec<f64> = codes.iter().map(|c| f64::from(*c)).collect();
     let options = ModelOptions {
         structure: CovarianceStructure::UNCONSTRAINED,
@@ -278,7 +258,7 @@ fn best_latent_class_loglik(codes: &[u16], counts: &[f64], j: usize, g: usize) -
         let tau = partition(StartKind::for_start(s, g), &seeding, j, counts, g, &mut rng);
         let run = em::run(
             &data,
-            initial_model(&data, &free_placement(), g, options),
+            initial_model(&data, &blocks, &free_placement(), g, options),
             tau,
             EmSettings {
                 max_iterations: 20_000,
@@ -366,23 +346,19 @@ fn missing_items_are_skipped_in_the_likelihood() {
     let terms = vec![vec![0usize]; 4];
     let names: Vec<String> = (0..4).map(|i| format!("item{i}")).collect();
     let ones = vec![1.0; n];
-    let item_rows = ItemRows::build(&codes, &levels, &ones, 1, &terms);
     let data = FitData {
         n,
         weights: &counts,
         w: &ones,
         p: 1,
-        items: Some(ItemData {
-            names: &names,
-            codes: &codes,
-            levels: &levels,
-            z: &ones,
-            qz: 1,
-            terms: &terms,
-            rows: &item_rows,
-        }),
-        ..Default::default()
     };
+    let blocks = vec![cohortmix::model::family::items::prepared(item_data(
+        &names,
+        &codes,
+        &levels,
+        &Design::intercept(n),
+        &terms,
+    ))];
     let options = ModelOptions {
         structure: CovarianceStructure::UNCONSTRAINED,
         gating_ridge: 0.0,
@@ -398,7 +374,7 @@ fn missing_items_are_skipped_in_the_likelihood() {
     let tau = partition(StartKind::SeededCentres, &seeding, 4, &counts, 2, &mut rng);
     let run = em::run(
         &data,
-        initial_model(&data, &free_placement(), 2, options),
+        initial_model(&data, &blocks, &free_placement(), 2, options),
         tau,
         EmSettings {
             max_iterations: 5000,
@@ -407,7 +383,7 @@ fn missing_items_are_skipped_in_the_likelihood() {
         },
     );
     assert!(run.termination.usable());
-    let items = run.model.components.items.as_ref().unwrap();
+    let items = run.model.components.find::<ItemComponents>().unwrap();
     let cohortmix::model::gating::Gating::Free { log_pi } = &run.model.gating else {
         panic!("free proportions expected")
     };

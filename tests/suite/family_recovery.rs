@@ -44,9 +44,14 @@ fn fit_truth(
     let truth = simulate::parse(&dir.path().join("truth.toml"), truth_text).unwrap();
     let sim = simulate::generate(&truth);
     std::fs::write(&truth.output, &sim.csv).unwrap();
-    let study = spec::parse(&dir.path().join("study.toml"), study_text).unwrap();
+    let study = spec::parse(
+        &dir.path().join("study.toml"),
+        study_text,
+        &super::common::families().infos(),
+    )
+    .unwrap();
     let data = data::load(&study).unwrap();
-    let prepared = fit::prepare(&study, &data).unwrap();
+    let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
     let result = fit::fit_cell(&study, &data, &prepared[0], 0, g, CovarianceStructure::UNCONSTRAINED);
     let best = result
         .best
@@ -70,7 +75,7 @@ fn fit_truth(
     for (k, t) in assignment.iter().enumerate() {
         order[t.expect("square assignment")] = k + 1;
     }
-    let params = cohortmix::inference::named_parameters(&best.run.model, &data, &prepared[0]);
+    let params = cohortmix::inference::named_parameters(&best.run.model, &prepared[0]);
     (truth, params, order)
 }
 

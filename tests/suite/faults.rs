@@ -16,16 +16,12 @@ fn run_on(y: &[f64], d: usize, g: usize, seed: u64) -> Termination {
     let fd = FitData {
         n,
         weights: &weights,
-        y,
-        d,
-        z: &one.x,
-        q: 1,
         w: &one.x,
         p: 1,
-        ..Default::default()
     };
+    let blocks = super::common::gaussian_block(y, d, &one);
     let options = super::common::plain_options(CovarianceStructure::UNCONSTRAINED);
-    let model = initial_model(&fd, &super::common::free_placement(), g, options);
+    let model = initial_model(&fd, &blocks, &super::common::free_placement(), g, options);
     let kind = if g == 1 {
         StartKind::Single
     } else {

@@ -5,7 +5,7 @@ use cohortmix::data::Design;
 use cohortmix::fit::em::{self, EmSettings};
 use cohortmix::fit::initial_model;
 use cohortmix::inference::{gating_parameters, uncertainty_of, ErrorMethod, InferenceSettings};
-use cohortmix::model::family::{ComponentFamily, CovarianceStructure, Naming};
+use cohortmix::model::family::CovarianceStructure;
 use cohortmix::model::{FitData, Model};
 use cohortmix::rng::Stream;
 use serde_json::Value;
@@ -47,9 +47,14 @@ fn simulated(
     let dir = tempfile::tempdir().unwrap();
     let truth = simulate::parse(&dir.path().join("truth.toml"), truth_text).unwrap();
     std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
-    let study = spec::parse(&dir.path().join("study.toml"), study_text).unwrap();
+    let study = spec::parse(
+        &dir.path().join("study.toml"),
+        study_text,
+        &super::common::families().infos(),
+    )
+    .unwrap();
     let data = data::load(&study).unwrap();
-    let prepared = fit::prepare(&study, &data).unwrap();
+    let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
     (dir, study, data, prepared)
 }
 
@@ -86,16 +91,12 @@ fn check_anes96_standard_errors(weighted: bool) {
     let fd = FitData {
         n,
         weights: &weights,
-        y: &y,
-        d: 1,
-        z: &intercept.x,
-        q: 1,
         w: &design.x,
         p: design.p(),
-        ..Default::default()
     };
+    let blocks = gaussian_block(&y, 1, &intercept);
     let options = plain_options(CovarianceStructure::all()[1]);
-    let mut model = initial_model(&fd, &free_placement(), g, options);
+    let mut model = initial_model(&fd, &blocks, &free_placement(), g, options);
     model.gating.prepare_bound(fd.w, fd.weights);
     let run = em::run(&fd, model, tau.clone(), settings(ErrorMethod::ObservedInformation).em);
     assert!(run.termination.usable(), "{:?}", run.termination);
@@ -173,34 +174,25 @@ fn mixture_standard_errors_match_an_independent_numerical_hessian() {
     let fd = FitData {
         n,
         weights: &weights,
-        y: &y,
-        d: 2,
-        z: &intercept.x,
-        q: 1,
         w: &design.x,
         p: design.p(),
-        ..Default::default()
     };
+    let names = vec!["petal_length".to_string(), "petal_width".to_string()];
+    let blocks = named_gaussian_block(&names, &y, &intercept);
     let options = plain_options(CovarianceStructure::UNCONSTRAINED);
     let g = 3;
     let mut tau = vec![0.0; n * g];
     for (i, k) in species.iter().enumerate() {
         tau[i * g + k] = 1.0;
     }
-    let mut model = initial_model(&fd, &free_placement(), g, options);
+    let mut model = initial_model(&fd, &blocks, &free_placement(), g, options);
     model.gating.prepare_bound(fd.w, fd.weights);
     let run = em::run(&fd, model, tau, settings(ErrorMethod::ObservedInformation).em);
     let ref_ll = reference["loglik"].as_f64().unwrap();
     assert!(digits(run.loglik, ref_ll) >= 8.0, "loglik {} vs {ref_ll}", run.loglik);
-    let names = vec!["petal_length".to_string(), "petal_width".to_string()];
     let reported = |m: &Model| {
         let mut out = gating_parameters(&m.gating, &design);
-        out.extend(m.components.parameters(Naming {
-            indicators: &names,
-            design: &intercept,
-            components: &intercept,
-            item_levels: &[],
-        }));
+        out.extend(m.components.parameters());
         out
     };
     let u = uncertainty_of(
@@ -426,9 +418,9 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
         .replace("clusters = [1, 2, 3, 4]", "clusters = [3]")
         .replace("starts = 10", "starts = 3");
     let spec_path = root("configs/symptoms-test.toml");
-    let study = spec::parse(&spec_path, &text).unwrap();
+    let study = spec::parse(&spec_path, &text, &super::common::families().infos()).unwrap();
     let data = data::load(&study).unwrap();
-    let prepared = fit::prepare(&study, &data).unwrap();
+    let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
     let fits = fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
     let json = serde_json::to_string(&saved::save(&study, &data, &prepared, &fits)).unwrap();
     let stored: saved::SavedRun = serde_json::from_str(&json).unwrap();
@@ -437,8 +429,8 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
     let csv = std::fs::read_to_string(root("demo-data/symptoms.csv")).unwrap();
     let copy = dir.path().join("same.csv");
     std::fs::write(&copy, &csv).unwrap();
-    let (saved_study, new) = saved::load_new_data(&stored, &copy).unwrap();
-    let predicted = saved::predict(&stored, &saved_study, &new).unwrap();
+    let (saved_study, new) = saved::load_new_data(&stored, &copy, &super::common::families()).unwrap();
+    let predicted = saved::predict(&stored, &saved_study, &new, &super::common::families()).unwrap();
     for (p, f) in predicted.iter().zip(&fits) {
         assert_eq!(p.placement, f.placement);
         let fitted = &f.best.as_ref().unwrap().run.tau;
@@ -453,8 +445,10 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
     // A covariate level the model never saw.
     let odd = csv.replacen(",male,", ",intersex,", 1);
     std::fs::write(&copy, &odd).unwrap();
-    let (saved_study, new) = saved::load_new_data(&stored, &copy).unwrap();
-    let err = saved::predict(&stored, &saved_study, &new).unwrap_err().to_string();
+    let (saved_study, new) = saved::load_new_data(&stored, &copy, &super::common::families()).unwrap();
+    let err = saved::predict(&stored, &saved_study, &new, &super::common::families())
+        .unwrap_err()
+        .to_string();
     assert!(
         err.contains("'sex' has the level 'intersex'") && err.contains("female, male"),
         "{err}"
@@ -463,7 +457,9 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
     // check catches it, with the line and column).
     let odd = csv.replacen(",often,", ",daily,", 1);
     std::fs::write(&copy, &odd).unwrap();
-    let err = saved::load_new_data(&stored, &copy).unwrap_err().to_string();
+    let err = saved::load_new_data(&stored, &copy, &super::common::families())
+        .unwrap_err()
+        .to_string();
     assert!(
         err.contains("'daily' is not a level of item 'chest_tightness'") && err.contains("same.csv:2:"),
         "{err}"
@@ -471,7 +467,9 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
     // A missing column.
     let header_cut = csv.replacen("worker_id,age,", "worker_id,age_years,", 1);
     std::fs::write(&copy, &header_cut).unwrap();
-    let err = saved::load_new_data(&stored, &copy).unwrap_err().to_string();
+    let err = saved::load_new_data(&stored, &copy, &super::common::families())
+        .unwrap_err()
+        .to_string();
     assert!(err.contains("'age'"), "{err}");
 }
 
@@ -504,7 +502,14 @@ fn three_step_corrections_undo_the_attenuation_of_classify_analyze() {
     let bch = three_step::estimate(Method::ThreeStepBch, &best.run.tau, 2, &data.weights, design).unwrap();
     // Fitted cluster 1 is the larger one; when that is the truth's second cluster the
     // log relative risks change sign.
-    let mean = |k: usize| best.run.model.components.gaussian.as_ref().unwrap().coef[k * 2];
+    let mean = |k: usize| {
+        best.run
+            .model
+            .components
+            .find::<cohortmix::model::family::GaussianComponents>()
+            .unwrap()
+            .coef[k * 2]
+    };
     let sign = if mean(0) > mean(1) { 1.0 } else { -1.0 };
     let original = |gamma: &[f64], cov: &nalgebra::DMatrix<f64>, j: usize| {
         let value = sign * design.to_original_scale(gamma)[j];
@@ -549,9 +554,14 @@ fn direct_effect_screen_finds_the_true_direct_effects() {
         .unwrap()
         .replace("clusters = [1, 2, 3, 4]", "clusters = [3]")
         .replace("starts = 10", "starts = 3");
-    let study = spec::parse(&root("configs/symptoms-test.toml"), &text).unwrap();
+    let study = spec::parse(
+        &root("configs/symptoms-test.toml"),
+        &text,
+        &super::common::families().infos(),
+    )
+    .unwrap();
     let data = data::load(&study).unwrap();
-    let prepared = fit::prepare(&study, &data).unwrap();
+    let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
     let fits = fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
     let which: Vec<usize> = fits
         .iter()

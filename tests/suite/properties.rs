@@ -1,17 +1,22 @@
 //! Invariants checked over random problems: EM never lowers the log-likelihood, and the
 //! gating score and Hessian are the derivatives of the gating objective.
 
+use cohortmix::data::Exposure;
 use cohortmix::data::{Column, Design};
 use cohortmix::fit::em::{self, EmSettings};
 use cohortmix::fit::starts::{partition, StartKind};
 use cohortmix::fit::{initial_model, ModelOptions};
-use cohortmix::model::family::items::ItemRows;
-use cohortmix::model::family::{ComponentFamily, CovarianceStructure};
+use cohortmix::model::family::counts::CountData;
+use cohortmix::model::family::gaussian::GaussianRows;
+use cohortmix::model::family::{
+    Components, CountComponents, CovarianceStructure, GaussianComponents, ItemComponents, Prepared,
+};
 use cohortmix::model::gating::{logit_objective, logit_score_hessian, Gating};
-use cohortmix::model::{design_rows, e_step, FitData};
+use cohortmix::model::{e_step, FitData};
 use cohortmix::rng::Stream;
 use cohortmix::spec::VariableType;
 use proptest::prelude::*;
+use std::sync::Arc;
 
 /// A random problem: n rows, d indicators drawn from a loose g-group mixture, with one
 /// gating and one component covariate when asked.
@@ -63,11 +68,12 @@ proptest! {
                                   with_w: bool, with_z: bool, random_start: bool, structure in 0usize..14,
                                   prior: bool, accelerate: bool) {
         let (y, w, z, weights) = problem(seed, n, d, g, with_w, with_z);
-        let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p() , ..Default::default()};
+        let fd = FitData { n, weights: &weights, w: &w.x, p: w.p() };
+        let blocks = super::common::gaussian_block(&y, d, &z);
         let structure = CovarianceStructure::all()[structure];
         let structure = if d == 1 && !structure.fits_one_indicator() { CovarianceStructure::all()[1] } else { structure };
         let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: prior, variance_floor: 0.0, smoothing: 0.0 };
-        let model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let model = initial_model(&fd, &blocks, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");
         let tau = partition(kind, &y, d, &weights, g, &mut rng);
@@ -136,15 +142,12 @@ struct BlockProblem {
     levels: Vec<usize>,
     item_names: Vec<String>,
     counts: Vec<f64>,
-    ln_factorial: Vec<f64>,
     count_names: Vec<String>,
     log_exposure: Vec<f64>,
     w: Design,
     z: Design,
     item_terms: Vec<Vec<usize>>,
     count_terms: Vec<Vec<usize>>,
-    item_rows: Vec<ItemRows>,
-    count_x: Vec<Vec<f64>>,
     exposure: Vec<f64>,
     seeding: Vec<f64>,
     seeding_d: usize,
@@ -192,10 +195,6 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
         .flat_map(|c| (0..n).map(move |i| (i, c)))
         .map(|(i, c)| counts[i * n_counts + c])
         .collect();
-    let ln_factorial = counts_by_column
-        .iter()
-        .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
-        .collect();
     let col = Column::Numeric {
         kind: VariableType::Continuous,
         values: x,
@@ -227,17 +226,6 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
         weights,
         y,
         d: n_gauss,
-        item_rows: ItemRows::build(&codes, &levels, &z.x, z.p(), &item_terms),
-        count_x: count_terms
-            .iter()
-            .map(|cols| {
-                if cols.len() > 1 {
-                    design_rows(&z.x, z.p(), cols)
-                } else {
-                    Vec::new()
-                }
-            })
-            .collect(),
         exposure: log_exposure.iter().map(|v| v.exp()).collect(),
         item_terms,
         count_terms,
@@ -246,7 +234,6 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
         codes,
         levels,
         counts: counts_by_column,
-        ln_factorial,
         log_exposure,
         w,
         z,
@@ -260,41 +247,53 @@ impl BlockProblem {
         FitData {
             n: self.n,
             weights: &self.weights,
-            y: &self.y,
-            d: self.d,
-            z: &self.z.x,
-            q: self.z.p(),
             w: &self.w.x,
             p: self.w.p(),
-            items: (!self.levels.is_empty()).then(|| cohortmix::model::ItemData {
-                names: &self.item_names,
-                codes: &self.codes,
-                levels: &self.levels,
-                z: &self.z.x,
-                qz: self.z.p(),
-                terms: &self.item_terms,
-                rows: &self.item_rows,
-            }),
-            counts: (!self.count_names.is_empty()).then(|| cohortmix::model::CountData {
-                names: &self.count_names,
-                y: &self.counts,
-                ln_factorial: &self.ln_factorial,
-                z: &self.z.x,
-                qz: self.z.p(),
-                terms: &self.count_terms,
-                x: &self.count_x,
-                exposure: Some(&self.exposure),
-                log_exposure: Some(&self.log_exposure),
-            }),
         }
+    }
+
+    /// The problem's blocks, in block order: Gaussian, items, counts (those it has).
+    fn blocks(&self) -> Vec<Arc<dyn Prepared>> {
+        let mut out = Vec::new();
+        if self.d > 0 {
+            let names = (0..self.d).map(|j| format!("y{j}")).collect();
+            out.push(cohortmix::model::family::gaussian::prepared(GaussianRows::new(
+                names,
+                Arc::new(self.y.clone()),
+                self.z.clone(),
+            )));
+        }
+        if !self.levels.is_empty() {
+            out.push(cohortmix::model::family::items::prepared(super::common::item_data(
+                &self.item_names,
+                &self.codes,
+                &self.levels,
+                &self.z,
+                &self.item_terms,
+            )));
+        }
+        if !self.count_names.is_empty() {
+            let exposure = Exposure {
+                values: self.exposure.clone(),
+                logs: self.log_exposure.clone(),
+            };
+            out.push(cohortmix::model::family::counts::prepared(CountData::new(
+                self.count_names.clone(),
+                Arc::new(self.counts.clone()),
+                self.z.clone(),
+                self.count_terms.clone(),
+                Some(Arc::new(exposure)),
+            )));
+        }
+        out
     }
 }
 
 /// Σ_i c_i Σ_k τ_ik log f_k(y_i): the component part of EM's expected complete-data
 /// log-likelihood.
-fn expected_complete(comps: &impl ComponentFamily, data: &FitData, tau: &[f64], g: usize) -> f64 {
+fn expected_complete(comps: &Components, data: &FitData, tau: &[f64], g: usize) -> f64 {
     let mut out = vec![0.0; data.n * g];
-    comps.add_log_density(data, &mut out);
+    comps.log_density(&mut out);
     out.iter()
         .zip(tau)
         .enumerate()
@@ -314,8 +313,9 @@ proptest! {
                                                              accelerate: bool) {
         let pb = block_problem(seed, n, family, g, with_w, with_z);
         let fd = pb.data();
+        let blocks = pb.blocks();
         let options = ModelOptions { structure: CovarianceStructure::UNCONSTRAINED, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing };
-        let model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let model = initial_model(&fd, &blocks, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else if random_start { StartKind::RandomPartition } else { StartKind::SeededCentres };
         let mut rng = Stream::new(seed, "start");
         let tau = partition(kind, &pb.seeding, pb.seeding_d, &pb.weights, g, &mut rng);
@@ -363,13 +363,14 @@ proptest! {
     fn m_steps_reach_a_zero_finite_difference_gradient(seed in 0u64..10_000, family in 0usize..3, g in 1usize..3) {
         let pb = block_problem(seed, 150, family, g, false, true);
         let fd = pb.data();
+        let blocks = pb.blocks();
         let options = ModelOptions { structure: CovarianceStructure::UNCONSTRAINED, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing: 0.0 };
-        let mut model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let mut model = initial_model(&fd, &blocks, &super::common::free_placement(), g, options);
         let mut rng = Stream::new(seed, "fixed tau");
         let tau: Vec<f64> = (0..pb.n * g).map(|_| 0.2 + rng.uniform()).collect::<Vec<_>>()
             .chunks(g).flat_map(|r| { let t: f64 = r.iter().sum(); r.iter().map(move |v| v / t).collect::<Vec<_>>() }).collect();
         for _ in 0..80 {
-            prop_assume!(model.components.m_step(&fd, &tau).is_ok());
+            prop_assume!(model.components.m_step(&fd, &tau, None).is_ok());
         }
         let h = 1e-6;
         let mut checked = 0;
@@ -383,24 +384,24 @@ proptest! {
             (expected_complete(&up, &fd, &tau, g) - expected_complete(&dn, &fd, &tau, g)) / (2.0 * h)
         };
         let tol = 1e-5 * q0.abs().max(1.0);
-        if let Some(gc) = &comps.gaussian {
+        if let Some(gc) = comps.find::<GaussianComponents>() {
             for i in 0..gc.coef.len() {
-                let d = gradient(&|c, e| c.gaussian.as_mut().unwrap().coef[i] += e);
+                let d = gradient(&|c, e| c.find_mut::<GaussianComponents>().unwrap().coef[i] += e);
                 prop_assert!(d.abs() <= tol, "gaussian coefficient {i}: gradient {d}");
             }
         }
-        if let Some(ic) = &comps.items {
+        if let Some(ic) = comps.find::<ItemComponents>() {
             for j in 0..ic.coef.len() {
                 for i in 0..ic.coef[j].len() {
-                    let d = gradient(&|c, e| c.items.as_mut().unwrap().coef[j][i] += e);
+                    let d = gradient(&|c, e| c.find_mut::<ItemComponents>().unwrap().coef[j][i] += e);
                     prop_assert!(d.abs() <= tol, "item {j} logit coefficient {i}: gradient {d}");
                 }
             }
         }
-        if let Some(cc) = &comps.counts {
+        if let Some(cc) = comps.find::<CountComponents>() {
             for j in 0..cc.coef.len() {
                 for i in 0..cc.coef[j].len() {
-                    let d = gradient(&|c, e| c.counts.as_mut().unwrap().coef[j][i] += e);
+                    let d = gradient(&|c, e| c.find_mut::<CountComponents>().unwrap().coef[j][i] += e);
                     prop_assert!(d.abs() <= tol, "count {j} coefficient {i}: gradient {d}");
                 }
             }
@@ -513,11 +514,12 @@ proptest! {
                                                             with_w: bool, with_z: bool, structure in 0usize..14) {
         let n = 150;
         let (y, w, z, weights) = problem(seed, n, d, g, with_w, with_z);
-        let fd = FitData { n, weights: &weights, y: &y, d, z: &z.x, q: z.p(), w: &w.x, p: w.p(), ..Default::default() };
+        let fd = FitData { n, weights: &weights, w: &w.x, p: w.p() };
+        let blocks = super::common::gaussian_block(&y, d, &z);
         let structure = CovarianceStructure::all()[structure];
         let structure = if d == 1 && !structure.fits_one_indicator() { CovarianceStructure::all()[1] } else { structure };
         let options = ModelOptions { structure, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing: 0.0 };
-        let model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let model = initial_model(&fd, &blocks, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else { StartKind::SeededCentres };
         let tau = partition(kind, &y, d, &weights, g, &mut Stream::new(seed, "start"));
         let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10, accelerate: true });
@@ -533,8 +535,9 @@ proptest! {
                                                                      with_w: bool, with_z: bool) {
         let pb = block_problem(seed, 150, family, g, with_w, with_z);
         let fd = pb.data();
+        let blocks = pb.blocks();
         let options = ModelOptions { structure: CovarianceStructure::UNCONSTRAINED, gating_ridge: 0.0, covariance_prior: false, variance_floor: 0.0, smoothing: 0.5 };
-        let model = initial_model(&fd, &super::common::free_placement(), g, options);
+        let model = initial_model(&fd, &blocks, &super::common::free_placement(), g, options);
         let kind = if g == 1 { StartKind::Single } else { StartKind::SeededCentres };
         let tau = partition(kind, &pb.seeding, pb.seeding_d, &pb.weights, g, &mut Stream::new(seed, "start"));
         let run = em::run(&fd, model, tau, EmSettings { max_iterations: 200, tolerance: 1e-10, accelerate: true });

@@ -89,9 +89,9 @@ fn mixture_of_experts_parameters_are_recovered() {
     let truth = simulate::parse(&dir.path().join("truth.toml"), TRUTH).unwrap();
     std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
     let spec_path = dir.path().join("study.toml");
-    let study = spec::parse(&spec_path, STUDY).unwrap();
+    let study = spec::parse(&spec_path, STUDY, &super::common::families().infos()).unwrap();
     let data = data::load(&study).unwrap();
-    let prepared = fit::prepare(&study, &data).unwrap();
+    let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
     let result = fit::fit_cell(
         &study,
         &data,
@@ -102,7 +102,7 @@ fn mixture_of_experts_parameters_are_recovered() {
     );
     let best = result.best.as_ref().expect("a usable fit");
     assert!(best.reaching >= 2, "best optimum reached by {} starts", best.reaching);
-    let params = &cohortmix::inference::named_parameters(&best.run.model, &data, &prepared[0]);
+    let params = &cohortmix::inference::named_parameters(&best.run.model, &prepared[0]);
 
     // Match fitted clusters to true ones by the fev1 intercept (70, 78, 100 are far apart).
     let fitted: Vec<f64> = (1..=3)

@@ -3,10 +3,12 @@
 
 use super::common::*;
 use cohortmix::data::Design;
-use cohortmix::model::family::{ComponentFamily, CovarianceStructure, GaussianComponents, Naming};
+use cohortmix::model::family::gaussian::GaussianRows;
+use cohortmix::model::family::{Block, CovarianceStructure, GaussianComponents};
 use cohortmix::model::gating::{fit_multinomial_logit, logit_objective, LogitRows, MAX_NEWTON_ITERATIONS};
 use cohortmix::model::FitData;
 use serde_json::Value;
+use std::sync::Arc;
 
 fn fixture(name: &str) -> Value {
     let text = std::fs::read_to_string(root(&format!("tests/reference/{name}"))).unwrap();
@@ -108,26 +110,18 @@ fn gaussian_components_match_statsmodels_wls_on_iris() {
     for (i, v) in col(&header, &cols, "species").iter().enumerate() {
         tau[i * g + v.parse::<usize>().unwrap()] = 1.0;
     }
+    let ones = vec![1.0; n];
     let data = FitData {
         n,
         weights: &weights,
-        y: &y,
-        d: 2,
-        z: &design.x,
-        q: design.p(),
-        w: &vec![1.0; n],
+        w: &ones,
         p: 1,
-        ..Default::default()
     };
-    let mut comps = GaussianComponents::new(&data, g, CovarianceStructure::UNCONSTRAINED);
-    comps.m_step(&data, &tau).unwrap();
     let indicators = vec!["petal_length".to_string(), "petal_width".to_string()];
-    let params = comps.parameters(Naming {
-        indicators: &indicators,
-        design: &design,
-        components: &design,
-        item_levels: &[],
-    });
+    let rows = GaussianRows::new(indicators.clone(), Arc::new(y), design.clone());
+    let mut comps = GaussianComponents::new(Arc::new(rows), &weights, g, CovarianceStructure::UNCONSTRAINED);
+    comps.m_step(&data, &tau, None).unwrap();
+    let params = comps.parameters();
     let terms = ["intercept", "sepal_length", "sepal_width"];
     let mut worst = 16.0f64;
     for (k, cl) in reference["clusters"].as_array().unwrap().iter().enumerate() {
@@ -136,7 +130,7 @@ fn gaussian_components_match_statsmodels_wls_on_iris() {
                 let ours = params
                     .iter()
                     .find(|p| {
-                        p.block == "mean"
+                        p.block.name == "mean"
                             && p.cluster == k + 1
                             && p.indicator.as_deref() == Some(&indicators[j])
                             && p.term.as_deref() == Some(*t)
@@ -179,7 +173,8 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
     let (y, n) = super::common::iris_measurements();
     let d = 4;
     let ones = vec![1.0; n];
-    let data = super::common::unadjusted_data(&y, d, &ones);
+    let data = super::common::unadjusted_data(&ones);
+    let blocks = super::common::gaussian_block(&y, d, &cohortmix::data::Design::intercept(n));
     let floor = 1e-3 * reference["pooled_min_eigenvalue"].as_f64().unwrap();
     let min_rows = reference["exclusion_rule"]["min_rows"].as_f64().unwrap();
     let placement = super::common::free_placement();
@@ -212,7 +207,7 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
             let tau = partition(kind, &y, d, &ones, g, &mut rng);
             let run = em::run(
                 &data,
-                initial_model(&data, &placement, g, options),
+                initial_model(&data, &blocks, &placement, g, options),
                 tau,
                 EmSettings {
                     max_iterations: 20_000,
@@ -223,7 +218,11 @@ fn mixtures_match_scikit_learn_on_iris_for_four_structures() {
             if !run.termination.usable() {
                 continue;
             }
-            let comps = run.model.components.gaussian.as_ref().expect("a gaussian block");
+            let comps = run
+                .model
+                .components
+                .find::<cohortmix::model::family::GaussianComponents>()
+                .expect("a gaussian block");
             let admissible = comps
                 .cov
                 .iter()

@@ -3,11 +3,14 @@
 //! Hessian, over shapes that take each kernel (registers or general loops, short tiles,
 //! several parallel tasks, zero case weights), and the same bits at 1 and 2 threads.
 
-use cohortmix::model::family::{ComponentFamily, Components, CovarianceStructure, GaussianComponents};
+use cohortmix::data::Design;
+use cohortmix::model::family::gaussian::GaussianRows;
+use cohortmix::model::family::{Block, Components, CovarianceStructure, GaussianComponents};
 use cohortmix::model::gating::{Gating, GatingStats};
 use cohortmix::model::{e_step_sums, e_step_with, FitData, GaussianStats, Model};
 use cohortmix::rng::Stream;
 use nalgebra::DMatrix;
+use std::sync::Arc;
 
 struct Case {
     n: usize,
@@ -42,8 +45,8 @@ fn arrays(case: &Case, rng: &mut Stream) -> Arrays {
     Arrays { y, z, w, c }
 }
 
-fn model(case: &Case, fd: &FitData, rng: &mut Stream) -> Model {
-    let Case { d, q, p, g, .. } = *case;
+fn model(case: &Case, fd: &FitData, ar: &Arrays, rng: &mut Stream) -> Model {
+    let Case { n, d, q, p, g, .. } = *case;
     let coef = (0..g * q * d).map(|_| rng.normal()).collect();
     let cov = (0..g)
         .map(|_| {
@@ -51,7 +54,21 @@ fn model(case: &Case, fd: &FitData, rng: &mut Stream) -> Model {
             &a * a.transpose() + DMatrix::identity(d, d) * 0.7
         })
         .collect();
-    let gaussian = GaussianComponents::new(fd, g, CovarianceStructure::UNCONSTRAINED)
+    let design = Design {
+        terms: (0..q)
+            .map(|a| cohortmix::data::Term {
+                name: format!("z{a}"),
+                covariate: (a > 0).then(|| format!("z{a}")),
+                center: 0.0,
+                scale: 1.0,
+            })
+            .collect(),
+        x: Arc::new(ar.z.clone()),
+        n,
+    };
+    let names = (0..d).map(|j| format!("y{j}")).collect();
+    let rows = Arc::new(GaussianRows::new(names, Arc::new(ar.y.clone()), design));
+    let gaussian = GaussianComponents::new(rows, fd.weights, g, CovarianceStructure::UNCONSTRAINED)
         .with_parameters(coef, cov)
         .expect("positive definite");
     let gating = if case.logit && g > 1 {
@@ -72,8 +89,7 @@ fn model(case: &Case, fd: &FitData, rng: &mut Stream) -> Model {
     Model {
         gating,
         components: Components {
-            gaussian: Some(gaussian),
-            ..Components::default()
+            blocks: vec![Box::new(gaussian)],
         },
     }
 }
@@ -88,11 +104,11 @@ struct Expected {
     cluster_weight: Vec<f64>,
 }
 
-fn expected(case: &Case, fd: &FitData, m: &Model) -> Expected {
+fn expected(case: &Case, fd: &FitData, ar: &Arrays, m: &Model) -> Expected {
     let Case { n, d, q, p, g, .. } = *case;
-    let gc = m.components.gaussian.as_ref().expect("gaussian");
+    let gc = m.components.find::<GaussianComponents>().expect("gaussian");
     let mut logd = vec![0.0; n * g];
-    gc.add_log_density(fd, &mut logd);
+    gc.add_log_density(&mut logd);
     let mut tau = vec![0.0; n * g];
     let mut loglik = 0.0;
     let mut st = GaussianStats {
@@ -113,8 +129,8 @@ fn expected(case: &Case, fd: &FitData, m: &Model) -> Expected {
     for i in 0..n {
         let (w, z, y, c) = (
             &fd.w[i * p..(i + 1) * p],
-            &fd.z[i * q..(i + 1) * q],
-            &fd.y[i * d..(i + 1) * d],
+            &ar.z[i * q..(i + 1) * q],
+            &ar.y[i * d..(i + 1) * d],
             fd.weights[i],
         );
         m.gating.log_priors(w, &mut lp);
@@ -202,17 +218,11 @@ fn run(case: Case, seed: u64) {
     let fd = FitData {
         n: case.n,
         weights: &ar.c,
-        y: &ar.y,
-        d: case.d,
-        z: &ar.z,
-        q: case.q,
         w: &ar.w,
         p: case.p,
-        items: None,
-        counts: None,
     };
-    let m = model(&case, &fd, &mut rng);
-    let want = expected(&case, &fd, &m);
+    let m = model(&case, &fd, &ar, &mut rng);
+    let want = expected(&case, &fd, &ar, &m);
     let pass = |threads: usize| {
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(threads)

@@ -69,14 +69,10 @@ fn best_fit(y: &[f64], n: usize, options: ModelOptions, starts: usize) -> EmRun 
     let data = FitData {
         n,
         weights: &ones,
-        y,
-        d: D,
-        z: &ones,
-        q: 1,
         w: &ones,
         p: 1,
-        ..Default::default()
     };
+    let blocks = super::common::gaussian_block(y, D, &cohortmix::data::Design::intercept(n));
     let placement = super::common::free_placement();
     (0..starts)
         .filter_map(|i| {
@@ -84,7 +80,7 @@ fn best_fit(y: &[f64], n: usize, options: ModelOptions, starts: usize) -> EmRun 
             let tau = partition(StartKind::for_start(i, G), y, D, &ones, G, &mut rng);
             let run = em::run(
                 &data,
-                initial_model(&data, &placement, G, options),
+                initial_model(&data, &blocks, &placement, G, options),
                 tau,
                 EmSettings {
                     max_iterations: 2000,
@@ -111,7 +107,11 @@ fn each_structure_recovers_its_own_truth() {
     for s in CovarianceStructure::all() {
         let (y, _) = simulate(s, n, 1);
         let run = best_fit(&y, n, plain(s), 6);
-        let c = run.model.components.gaussian.as_ref().expect("a gaussian block");
+        let c = run
+            .model
+            .components
+            .find::<cohortmix::model::family::GaussianComponents>()
+            .expect("a gaussian block");
         // Match clusters by the first mean (0 versus 7).
         let order: Vec<usize> = if c.coef[0] < c.coef[D] { vec![0, 1] } else { vec![1, 0] };
         let want = truth(s);
@@ -244,7 +244,11 @@ fn the_variance_floor_acts_and_is_counted() {
         1,
     );
     assert!(run.termination.usable(), "{:?}", run.termination);
-    let c = run.model.components.gaussian.as_ref().expect("a gaussian block");
+    let c = run
+        .model
+        .components
+        .find::<cohortmix::model::family::GaussianComponents>()
+        .expect("a gaussian block");
     assert!(c.floor_hits > 0, "the floor never acted");
     for cov in &c.cov {
         let smallest = cov.clone().symmetric_eigenvalues().min();

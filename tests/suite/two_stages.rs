@@ -64,12 +64,12 @@ name = "gating"
 gating = ["age"]
 "#
     );
-    spec::parse(&dir.join("study.toml"), &text).unwrap()
+    spec::parse(&dir.join("study.toml"), &text, &super::common::families().infos()).unwrap()
 }
 
 fn fit(study: &spec::Study) -> FitResult {
     let data = data::load(study).unwrap();
-    let prepared = fit::prepare(study, &data).unwrap();
+    let prepared = fit::prepare(study, &data, &super::common::families()).unwrap();
     fit::fit_cell(study, &data, &prepared[0], 0, 4, CovarianceStructure::UNCONSTRAINED)
 }
 
@@ -137,7 +137,7 @@ fn finalists_follow_the_single_run_path_and_are_the_best_after_the_warm_up() {
     // steps, whose fits differ in their last digits.
     let key = |s: &spec::Study| {
         let data = data::load(s).unwrap();
-        let prepared = fit::prepare(s, &data).unwrap();
+        let prepared = fit::prepare(s, &data, &super::common::families()).unwrap();
         fit::cache::fit_key(s, &data, &prepared[0], 4, CovarianceStructure::UNCONSTRAINED)
     };
     let all_named = study(dir.path(), "warmup_iterations = 8\nfinish_best = 10");

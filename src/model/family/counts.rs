@@ -9,22 +9,193 @@
 //! exp(β) = Σ v y / Σ v exposure; with covariates one Newton step with step-halving per EM
 //! iteration ([`crate::model::glm`]), a generalised EM step.
 
-use super::items::subset_to_original;
-use super::{ComponentFamily, Degeneracy, Naming, Parameter};
+use super::{
+    read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family, ParamBlock,
+    Parameter, Prepared, RowSampler, RowScorer,
+};
+use crate::data::{Dataset, Design, Exposure, IndicatorSet, IndicatorValues};
 use crate::model::glm::{fit_poisson, PoissonRows};
-use crate::model::FitData;
+use crate::model::{design_rows, FitData, ModelOptions};
+use crate::rng::Stream;
+use crate::spec::{FamilyInfo, FamilyKey, Layout, TypeKind};
+use std::any::Any;
+use std::sync::Arc;
+
+/// What the spec and data layers know of the family.
+pub static INFO: FamilyInfo = FamilyInfo {
+    word: "counts",
+    indicator_word: "count",
+    wanted: "count",
+    types: &[TypeKind::Count],
+    default_type: TypeKind::Count,
+    mixed: &[TypeKind::Count],
+    layout: Layout::Columns,
+    shared_design: None,
+    keys: &[FamilyKey::Exposure],
+};
+
+/// The family of Poisson counts.
+#[derive(Debug)]
+pub struct Counts;
+
+/// The counts family, as [`super::Families`] lists it.
+pub static COUNTS: Counts = Counts;
+
+/// The parameter blocks the family writes.
+const RATE: ParamBlock = ParamBlock::plain("count_rate");
+const LOG_RATE: ParamBlock = ParamBlock::effects("count_log_rate", "rate ratio", true);
+
+impl Family for Counts {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn prepare(&self, set: &IndicatorSet, data: &Dataset, designs: &BlockDesigns) -> Arc<dyn Prepared> {
+        let design = designs.components.clone();
+        let terms: Vec<Vec<usize>> = set.names.iter().map(|nm| designs.terms_for(nm)).collect();
+        prepared(CountData::new(
+            set.names.clone(),
+            Arc::clone(set.numbers()),
+            design,
+            terms,
+            data.exposure.clone(),
+        ))
+    }
+}
+
+/// The prepared block of these arrays.
+pub fn prepared(data: CountData) -> Arc<dyn Prepared> {
+    Arc::new(Arc::new(data))
+}
+
+/// The count block's arrays for one placement.
+#[derive(Debug, Clone)]
+pub struct CountData {
+    /// Count names, in spec order.
+    pub names: Vec<String>,
+    /// Counts, column by column: count c of row i at `y[c * n + i]`.
+    pub y: Arc<Vec<f64>>,
+    /// log(y!) of every count, laid out as `y`.
+    pub ln_factorial: Vec<f64>,
+    /// The placement's whole component design, n×qz (intercept first).
+    pub design: Design,
+    /// Per count, the design columns its regression uses (intercept first).
+    pub terms: Vec<Vec<usize>>,
+    /// Per count with covariates, its design on those columns (n×q, row-major; empty for
+    /// a count without covariates).
+    pub x: Vec<Vec<f64>>,
+    /// Exposure per row and its log (the offset), if an exposure is given.
+    pub exposure: Option<Arc<Exposure>>,
+}
+
+impl CountData {
+    /// The arrays of counts `names` (column by column), the component design, each
+    /// count's design columns and the exposure.
+    pub fn new(
+        names: Vec<String>,
+        y: Arc<Vec<f64>>,
+        design: Design,
+        terms: Vec<Vec<usize>>,
+        exposure: Option<Arc<Exposure>>,
+    ) -> CountData {
+        let ln_factorial = y
+            .iter()
+            .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
+            .collect();
+        let x = terms
+            .iter()
+            .map(|cols| {
+                if cols.len() > 1 {
+                    design_rows(&design.x, design.p(), cols)
+                } else {
+                    Vec::new()
+                }
+            })
+            .collect();
+        CountData {
+            names,
+            y,
+            ln_factorial,
+            design,
+            terms,
+            x,
+            exposure,
+        }
+    }
+
+    /// Rows.
+    pub fn n(&self) -> usize {
+        self.design.n
+    }
+
+    /// Row `i`'s component design.
+    fn z(&self, i: usize) -> &[f64] {
+        let qz = self.design.p();
+        &self.design.x[i * qz..(i + 1) * qz]
+    }
+
+    /// Row `i`'s offset: log exposure, or 0.
+    fn offset(&self, i: usize) -> f64 {
+        self.exposure.as_ref().map_or(0.0, |e| e.logs[i])
+    }
+}
+
+impl Prepared for Arc<CountData> {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn block(&self, _fd: &FitData, g: usize, _options: &ModelOptions) -> Box<dyn Block> {
+        Box::new(CountComponents::new(Arc::clone(self), g))
+    }
+
+    fn restore(
+        &self,
+        _fd: &FitData,
+        g: usize,
+        _options: &ModelOptions,
+        state: &serde_json::Value,
+    ) -> std::result::Result<Box<dyn Block>, String> {
+        let saved: SavedCounts = read_state(INFO.word, state)?;
+        let mut b = CountComponents::new(Arc::clone(self), g);
+        b.coef = saved.coefficients;
+        b.started = saved.started;
+        Ok(Box::new(b))
+    }
+
+    /// log(1 + y) of each count.
+    fn seeding_columns(&self) -> Vec<Vec<f64>> {
+        self.y
+            .chunks_exact(self.n())
+            .map(|col| col.iter().map(|y| y.ln_1p()).collect())
+            .collect()
+    }
+
+    fn profile_columns(&self) -> Vec<String> {
+        self.names.iter().map(|n| format!("{n} (rate)")).collect()
+    }
+}
+
+/// The saved state of a count block.
+#[derive(Debug, serde::Serialize, serde::Deserialize)]
+struct SavedCounts {
+    /// Per count, log-rate coefficients on the fitting scale, `[k q + a]`.
+    coefficients: Vec<Vec<f64>>,
+    /// Whether an M-step has run.
+    started: bool,
+}
 
 /// Largest |coefficient| (fitting scale) taken as estimable: a log rate ratio of 50 is a
 /// factor of 5e21, so a larger value means a cluster's events are separated by covariates.
 pub const SEPARATION_LOG_RATE: f64 = 50.0;
 
 /// Parameters of G clusters' count regressions.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone)]
 pub struct CountComponents {
+    /// The arrays the components are fitted to.
+    pub rows: Arc<CountData>,
     /// Clusters.
     pub g: usize,
-    /// Count names.
-    pub names: Vec<String>,
     /// Design columns per count (intercept first).
     pub terms: Vec<Vec<usize>>,
     /// Per count: coefficients on the fitting scale, `[k * q + a]`.
@@ -34,14 +205,13 @@ pub struct CountComponents {
 }
 
 impl CountComponents {
-    /// Empty parameters for the data's counts; [`ComponentFamily::m_step`] fills them.
-    pub fn new(data: &FitData, g: usize, names: Vec<String>) -> CountComponents {
-        let ct = data.counts.expect("count components need count data");
-        let terms = ct.terms.to_vec();
+    /// Empty parameters over `rows`' counts; [`Block::m_step`] fills them.
+    pub fn new(rows: Arc<CountData>, g: usize) -> CountComponents {
+        let terms = rows.terms.clone();
         let coef = terms.iter().map(|t| vec![0.0; g * t.len()]).collect();
         CountComponents {
+            rows,
             g,
-            names,
             terms,
             coef,
             started: false,
@@ -60,13 +230,29 @@ impl CountComponents {
     }
 }
 
-impl ComponentFamily for CountComponents {
-    fn add_log_density(&self, data: &FitData, out: &mut [f64]) {
-        let ct = data.counts.expect("count data");
-        let (g, nc, qz, n) = (self.g, self.terms.len(), ct.qz, data.n);
+impl Block for CountComponents {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn as_any(&self) -> &dyn Any {
+        self
+    }
+
+    fn as_any_mut(&mut self) -> &mut dyn Any {
+        self
+    }
+
+    fn clone_block(&self) -> Box<dyn Block> {
+        Box::new(self.clone())
+    }
+
+    fn add_log_density(&self, out: &mut [f64]) {
+        let ct = &self.rows;
+        let (g, nc, n) = (self.g, self.terms.len(), ct.n());
         for i in 0..n {
-            let z = &ct.z[i * qz..(i + 1) * qz];
-            let offset = ct.log_exposure.map_or(0.0, |o| o[i]);
+            let z = ct.z(i);
+            let offset = ct.offset(i);
             let row = &mut out[i * g..(i + 1) * g];
             for c in 0..nc {
                 let y = ct.y[c * n + i];
@@ -79,17 +265,23 @@ impl ComponentFamily for CountComponents {
         }
     }
 
-    fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
-        let ct = data.counts.expect("count data");
+    fn m_step(
+        &mut self,
+        data: &FitData,
+        tau: &[f64],
+        _sums: Option<&crate::model::GaussianStats>,
+    ) -> std::result::Result<(), Degeneracy> {
+        let ct = Arc::clone(&self.rows);
         let (g, nc, n) = (self.g, self.terms.len(), data.n);
         let ones;
-        let exposure = match ct.exposure {
-            Some(e) => e,
+        let exposure = match &ct.exposure {
+            Some(e) => &e.values[..],
             None => {
                 ones = vec![1.0; n];
                 &ones
             }
         };
+        let offset = ct.exposure.as_ref().map(|e| &e.logs[..]);
         for c in 0..nc {
             let q = self.terms[c].len();
             let y = &ct.y[c * n..(c + 1) * n];
@@ -115,7 +307,7 @@ impl ComponentFamily for CountComponents {
                         cluster: k + 1,
                         reason: format!(
                             "it has no events of '{}', so a rate regression on covariates cannot be estimated; drop the covariates from this count (acts_on) or fit fewer clusters",
-                            self.names[c]
+                            ct.names[c]
                         ),
                     });
                 }
@@ -128,7 +320,7 @@ impl ComponentFamily for CountComponents {
                     x,
                     q,
                     y,
-                    offset: ct.log_exposure,
+                    offset,
                     weights: &v,
                 };
                 let fit = fit_poisson(&rows, &start, 1);
@@ -137,7 +329,7 @@ impl ComponentFamily for CountComponents {
                         cluster: k + 1,
                         reason: format!(
                             "the rate of '{}' inside it grows without bound along a covariate (separation); restrict the covariates with acts_on or fit fewer clusters",
-                            self.names[c]
+                            ct.names[c]
                         ),
                     });
                 }
@@ -166,7 +358,7 @@ impl ComponentFamily for CountComponents {
         }
     }
 
-    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
+    fn set_coordinates(&mut self, c: &[f64]) -> std::result::Result<usize, Degeneracy> {
         let mut read = 0;
         for v in &mut self.coef {
             let len = v.len();
@@ -176,24 +368,32 @@ impl ComponentFamily for CountComponents {
         Ok(read)
     }
 
-    fn parameters(&self, naming: Naming) -> Vec<Parameter> {
+    fn chart(&self) -> std::result::Result<Box<dyn BlockChart + '_>, String> {
+        Ok(Box::new(CountChart {
+            base: self,
+            len: self.coef.iter().map(Vec::len).sum(),
+        }))
+    }
+
+    fn parameters(&self) -> Vec<Parameter> {
         let mut out = Vec::new();
         for k in 0..self.g {
             for c in 0..self.terms.len() {
                 let q = self.terms[c].len();
                 let beta = &self.coef[c][k * q..(k + 1) * q];
+                let name = &self.rows.names[c];
                 out.push(Parameter {
-                    block: "count_rate",
+                    block: RATE,
                     cluster: k + 1,
-                    indicator: Some(self.names[c].clone()),
+                    indicator: Some(name.clone()),
                     term: None,
                     value: beta[0].exp(),
                 });
-                for (term, value) in subset_to_original(naming.components, &self.terms[c], beta) {
+                for (term, value) in subset_to_original(&self.rows.design, &self.terms[c], beta) {
                     out.push(Parameter {
-                        block: "count_log_rate",
+                        block: LOG_RATE,
                         cluster: k + 1,
-                        indicator: Some(self.names[c].clone()),
+                        indicator: Some(name.clone()),
                         term: Some(term),
                         value,
                     });
@@ -201,5 +401,122 @@ impl ComponentFamily for CountComponents {
             }
         }
         out
+    }
+
+    fn profile(&self, k: usize, row: Option<usize>, out: &mut Vec<f64>) {
+        let reference;
+        let z = match row {
+            Some(i) => self.rows.z(i),
+            None => {
+                reference = reference_row(self.rows.design.p());
+                &reference[..]
+            }
+        };
+        out.extend((0..self.terms.len()).map(|c| self.eta(c, k, z).exp()));
+    }
+
+    fn sampler(&self) -> Box<dyn RowSampler + '_> {
+        Box::new(CountSampler {
+            block: self,
+            y: self.rows.y.to_vec(),
+        })
+    }
+
+    fn state(&self) -> serde_json::Value {
+        let saved = SavedCounts {
+            coefficients: self.coef.clone(),
+            started: self.started,
+        };
+        serde_json::to_value(saved).expect("numbers encode")
+    }
+}
+
+/// Draws each count from its cluster's Poisson rate at the row's covariates and exposure.
+struct CountSampler<'a> {
+    block: &'a CountComponents,
+    y: Vec<f64>,
+}
+
+impl RowSampler for CountSampler<'_> {
+    fn draw(&mut self, i: usize, k: usize, rng: &mut Stream) {
+        let ct = self.block;
+        let n = ct.rows.n();
+        let z = ct.rows.z(i);
+        let offset = ct.rows.offset(i);
+        for c in 0..ct.terms.len() {
+            self.y[c * n + i] = rng.poisson((ct.eta(c, k, z) + offset).exp()) as f64;
+        }
+    }
+
+    fn finish(self: Box<Self>) -> IndicatorValues {
+        IndicatorValues::Columns(Arc::new(self.y))
+    }
+}
+
+/// The count block's local chart: the log-rate coefficients on the fitting scale.
+struct CountChart<'a> {
+    base: &'a CountComponents,
+    len: usize,
+}
+
+impl BlockChart for CountChart<'_> {
+    fn len(&self) -> usize {
+        self.len
+    }
+
+    fn scales(&self) -> Vec<f64> {
+        vec![1.0; self.len]
+    }
+
+    fn at(&self, theta: &[f64]) -> std::result::Result<Box<dyn Block>, Degeneracy> {
+        let mut ct = self.base.clone();
+        let mut off = 0;
+        for v in &mut ct.coef {
+            for (a, b) in v.iter_mut().zip(&theta[off..]) {
+                *a += b;
+            }
+            off += v.len();
+        }
+        Ok(Box::new(ct))
+    }
+
+    fn scorer<'b>(&'b self, block: &'b dyn Block, _theta: &'b [f64]) -> Box<dyn RowScorer + 'b> {
+        let ct = block
+            .as_any()
+            .downcast_ref::<CountComponents>()
+            .expect("a count chart scores count blocks");
+        Box::new(CountScorer { ct })
+    }
+}
+
+/// Row scores of the count block: (y − rate) times each count's design terms, weighted
+/// by the posterior.
+struct CountScorer<'a> {
+    ct: &'a CountComponents,
+}
+
+impl RowScorer for CountScorer<'_> {
+    fn add(&mut self, i: usize, c: f64, t: &[f64], s: &mut [f64]) {
+        let ct = self.ct;
+        let n = ct.rows.n();
+        let z = ct.rows.z(i);
+        let offset = ct.rows.offset(i);
+        let mut at = 0;
+        for (cc, terms) in ct.terms.iter().enumerate() {
+            let y = ct.rows.y[cc * n + i];
+            let q = terms.len();
+            for (k, tk) in t.iter().enumerate() {
+                let v = c * tk;
+                if v == 0.0 {
+                    continue;
+                }
+                let resid = v * (y - (ct.eta(cc, k, z) + offset).exp());
+                let base = at + k * q;
+                for (a, col) in terms.iter().enumerate() {
+                    s[base + a] += resid * z[*col];
+                }
+            }
+            at += ct.coef[cc].len();
+        }
     }
 }

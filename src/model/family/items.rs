@@ -13,11 +13,199 @@
 //!
 //! A missing item value is skipped in that row's likelihood (missing at random).
 
-use super::{ComponentFamily, Degeneracy, Naming, Parameter};
-use crate::data::MISSING_ITEM;
+use super::{
+    read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family, Guard,
+    ParamBlock, Parameter, Prepared, RowSampler, RowScorer,
+};
+use crate::data::{Dataset, Design, IndicatorSet, IndicatorValues, MISSING_ITEM};
 use crate::model::gating::{fit_multinomial_logit, LogitRows};
+use crate::model::{FitData, ModelOptions};
 use crate::numerics::log_sum_exp;
-use crate::model::FitData;
+use crate::rng::Stream;
+use crate::spec::{FamilyInfo, FamilyKey, Layout, TypeKind};
+use std::any::Any;
+use std::sync::Arc;
+
+/// What the spec and data layers know of the family.
+pub static INFO: FamilyInfo = FamilyInfo {
+    word: "items",
+    indicator_word: "item",
+    wanted: "binary or categorical",
+    types: &[TypeKind::Binary, TypeKind::Categorical],
+    default_type: TypeKind::Categorical,
+    mixed: &[TypeKind::Binary, TypeKind::Categorical],
+    layout: Layout::Levels,
+    shared_design: None,
+    keys: &[FamilyKey::Smoothing],
+};
+
+/// The family of binary and categorical items.
+#[derive(Debug)]
+pub struct Items;
+
+/// The items family, as [`super::Families`] lists it.
+pub static ITEMS: Items = Items;
+
+/// The parameter blocks the family writes.
+const PROBABILITY: ParamBlock = ParamBlock::plain("item_probability");
+const LOGIT: ParamBlock = ParamBlock::effects("item_logit", "odds ratio", true);
+
+impl Family for Items {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn prepare(&self, set: &IndicatorSet, _data: &Dataset, designs: &BlockDesigns) -> Arc<dyn Prepared> {
+        let (codes, level_names) = set.levels();
+        let design = designs.components.clone();
+        let terms: Vec<Vec<usize>> = set.names.iter().map(|nm| designs.terms_for(nm)).collect();
+        prepared(ItemData::new(
+            set.names.clone(),
+            Arc::clone(codes),
+            level_names.to_vec(),
+            design,
+            terms,
+        ))
+    }
+}
+
+/// The prepared block of these arrays.
+pub fn prepared(data: ItemData) -> Arc<dyn Prepared> {
+    Arc::new(Arc::new(data))
+}
+
+/// The item block's arrays for one placement.
+#[derive(Debug, Clone)]
+pub struct ItemData {
+    /// Item names, in spec order.
+    pub names: Vec<String>,
+    /// Level codes, n×J row-major; [`MISSING_ITEM`] where missing.
+    pub codes: Arc<Vec<u16>>,
+    /// Level names of each item (code l is `level_names[j][l]`).
+    pub level_names: Vec<Vec<String>>,
+    /// Levels per item.
+    pub levels: Vec<usize>,
+    /// The placement's whole component design, n×qz (intercept first).
+    pub design: Design,
+    /// Per item, the design columns its logits use (column 0, the intercept, first).
+    pub terms: Vec<Vec<usize>>,
+    /// Per item, the arrays its M-step reuses at every EM iteration.
+    pub rows: Vec<ItemRows>,
+}
+
+impl ItemData {
+    /// The arrays of items `names` with codes (n×J), their level names, the component
+    /// design and each item's design columns.
+    pub fn new(
+        names: Vec<String>,
+        codes: Arc<Vec<u16>>,
+        level_names: Vec<Vec<String>>,
+        design: Design,
+        terms: Vec<Vec<usize>>,
+    ) -> ItemData {
+        let levels: Vec<usize> = level_names.iter().map(Vec::len).collect();
+        let rows = ItemRows::build(&codes, &levels, &design.x, design.p(), &terms);
+        ItemData {
+            names,
+            codes,
+            level_names,
+            levels,
+            design,
+            terms,
+            rows,
+        }
+    }
+
+    /// Rows.
+    pub fn n(&self) -> usize {
+        self.design.n
+    }
+
+    /// Row `i`'s component design.
+    fn z(&self, i: usize) -> &[f64] {
+        let qz = self.design.p();
+        &self.design.x[i * qz..(i + 1) * qz]
+    }
+}
+
+/// The levels that stand for an item in profiles and in seeding distances: level 1 of
+/// a binary item (level 0 is its complement), every level otherwise.
+pub fn shown_levels(levels: &[String]) -> Vec<usize> {
+    if levels.len() == 2 {
+        vec![1]
+    } else {
+        (0..levels.len()).collect()
+    }
+}
+
+impl Prepared for Arc<ItemData> {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn block(&self, _fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block> {
+        Box::new(ItemComponents::new(Arc::clone(self), g, options.smoothing))
+    }
+
+    fn restore(
+        &self,
+        _fd: &FitData,
+        g: usize,
+        _options: &ModelOptions,
+        state: &serde_json::Value,
+    ) -> std::result::Result<Box<dyn Block>, String> {
+        let saved: SavedItems = read_state(INFO.word, state)?;
+        let mut b = ItemComponents::new(Arc::clone(self), g, saved.smoothing);
+        b.log_prob = saved.log_probabilities;
+        b.coef = saved.logit_coefficients;
+        b.empty_cells = saved.empty_cells;
+        Ok(Box::new(b))
+    }
+
+    /// A binary item as 0/1, a categorical item as one 0/1 column per level; a missing
+    /// value takes the item's observed mean.
+    fn seeding_columns(&self) -> Vec<Vec<f64>> {
+        let (n, nj) = (self.n(), self.names.len());
+        let mut cols = Vec::new();
+        for (j, levels) in self.level_names.iter().enumerate() {
+            for l in shown_levels(levels) {
+                let raw: Vec<Option<f64>> = (0..n)
+                    .map(|i| {
+                        let c = self.codes[i * nj + j];
+                        (c != MISSING_ITEM).then(|| f64::from(u8::from(usize::from(c) == l)))
+                    })
+                    .collect();
+                let seen: Vec<f64> = raw.iter().flatten().copied().collect();
+                let mean = seen.iter().sum::<f64>() / seen.len().max(1) as f64;
+                cols.push(raw.into_iter().map(|v| v.unwrap_or(mean)).collect());
+            }
+        }
+        cols
+    }
+
+    fn profile_columns(&self) -> Vec<String> {
+        let mut out = Vec::new();
+        for (name, levels) in self.names.iter().zip(&self.level_names) {
+            for l in shown_levels(levels) {
+                out.push(format!("{name}={}", levels[l]));
+            }
+        }
+        out
+    }
+}
+
+/// The saved state of an item block.
+#[derive(Debug, serde::Serialize, serde::Deserialize)]
+struct SavedItems {
+    /// Per item without covariates: log probabilities `[k L + l]` (else empty).
+    log_probabilities: Vec<Vec<f64>>,
+    /// Per item with covariates: logit coefficients `[(k (L − 1) + l − 1) q + a]` (else empty).
+    logit_coefficients: Vec<Vec<f64>>,
+    /// Smoothing pseudo-count.
+    smoothing: f64,
+    /// Cells held off 0 by smoothing at the last M-step.
+    empty_cells: usize,
+}
 
 /// Largest |coefficient| (log odds, fitting scale) taken as estimable. A log odds of 50
 /// puts a probability within e^-50 ≈ 2e-22 of 0 or 1: beyond what any data can support,
@@ -25,12 +213,12 @@ use crate::model::FitData;
 pub const SEPARATION_LOGIT: f64 = 50.0;
 
 /// Parameters of G clusters' item distributions.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone)]
 pub struct ItemComponents {
+    /// The arrays the components are fitted to.
+    pub rows: Arc<ItemData>,
     /// Clusters.
     pub g: usize,
-    /// Item names.
-    pub names: Vec<String>,
     /// Levels per item.
     pub levels: Vec<usize>,
     /// Design columns per item (intercept first); one column = no covariates.
@@ -48,11 +236,10 @@ pub struct ItemComponents {
 }
 
 impl ItemComponents {
-    /// Empty parameters for the data's items; [`ComponentFamily::m_step`] fills them.
-    pub fn new(data: &FitData, g: usize, names: Vec<String>, smoothing: f64) -> ItemComponents {
-        let it = data.items.expect("item components need item data");
-        let levels = it.levels.to_vec();
-        let terms = it.terms.to_vec();
+    /// Empty parameters over `rows`' items; [`Block::m_step`] fills them.
+    pub fn new(rows: Arc<ItemData>, g: usize, smoothing: f64) -> ItemComponents {
+        let levels = rows.levels.clone();
+        let terms = rows.terms.clone();
         let log_prob = levels
             .iter()
             .zip(&terms)
@@ -76,8 +263,8 @@ impl ItemComponents {
             })
             .collect();
         ItemComponents {
+            rows,
             g,
-            names,
             levels,
             terms,
             log_prob,
@@ -119,14 +306,30 @@ impl ItemComponents {
     }
 }
 
-impl ComponentFamily for ItemComponents {
-    fn add_log_density(&self, data: &FitData, out: &mut [f64]) {
-        let it = data.items.expect("item data");
-        let (g, nj, qz) = (self.g, self.levels.len(), it.qz);
+impl Block for ItemComponents {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn as_any(&self) -> &dyn Any {
+        self
+    }
+
+    fn as_any_mut(&mut self) -> &mut dyn Any {
+        self
+    }
+
+    fn clone_block(&self) -> Box<dyn Block> {
+        Box::new(self.clone())
+    }
+
+    fn add_log_density(&self, out: &mut [f64]) {
+        let it = &self.rows;
+        let (g, nj) = (self.g, self.levels.len());
         let mut eta = Vec::with_capacity(self.levels.iter().copied().max().unwrap_or(2));
-        for i in 0..data.n {
+        for i in 0..it.n() {
             let codes = &it.codes[i * nj..(i + 1) * nj];
-            let z = &it.z[i * qz..(i + 1) * qz];
+            let z = it.z(i);
             let row = &mut out[i * g..(i + 1) * g];
             for (j, &c) in codes.iter().enumerate() {
                 if c == MISSING_ITEM {
@@ -139,8 +342,13 @@ impl ComponentFamily for ItemComponents {
         }
     }
 
-    fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
-        let it = data.items.expect("item data");
+    fn m_step(
+        &mut self,
+        data: &FitData,
+        tau: &[f64],
+        _sums: Option<&crate::model::GaussianStats>,
+    ) -> std::result::Result<(), Degeneracy> {
+        let it = Arc::clone(&self.rows);
         let (g, nj) = (self.g, self.levels.len());
         let alpha = self.smoothing;
         self.empty_cells = 0;
@@ -203,7 +411,7 @@ impl ComponentFamily for ItemComponents {
                         cluster: k + 1,
                         reason: format!(
                             "item '{}' is perfectly predicted by its covariates inside it (separation): its log odds grow without bound; set [indicators] smoothing (e.g. 1), or restrict the covariates with acts_on",
-                            self.names[j]
+                            self.rows.names[j]
                         ),
                     });
                 }
@@ -267,7 +475,7 @@ impl ComponentFamily for ItemComponents {
         }
     }
 
-    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
+    fn set_coordinates(&mut self, c: &[f64]) -> std::result::Result<usize, Degeneracy> {
         let mut read = 0;
         for j in 0..self.levels.len() {
             let l = self.levels[j];
@@ -287,18 +495,42 @@ impl ComponentFamily for ItemComponents {
         Ok(read)
     }
 
-    fn parameters(&self, naming: Naming) -> Vec<Parameter> {
+    fn chart(&self) -> std::result::Result<Box<dyn BlockChart + '_>, String> {
+        for (j, lp) in self.log_prob.iter().enumerate() {
+            if self.terms[j].len() == 1 && lp.iter().any(|v| !v.is_finite()) {
+                return Err(format!(
+                    "a level of item '{}' has probability 0 in some cluster, a boundary \
+                     where standard errors do not exist; set [indicators] smoothing",
+                    self.rows.names[j]
+                ));
+            }
+        }
+        let mut offsets = Vec::new();
+        let mut len = 0;
+        for (j, l) in self.levels.iter().enumerate() {
+            offsets.push(len);
+            len += self.g * (l - 1) * self.terms[j].len();
+        }
+        Ok(Box::new(ItemChart {
+            base: self,
+            offsets,
+            len,
+        }))
+    }
+
+    fn parameters(&self) -> Vec<Parameter> {
         let mut out = Vec::new();
-        let design = naming.components;
+        let design = &self.rows.design;
         for k in 0..self.g {
             for j in 0..self.levels.len() {
                 let l = self.levels[j];
-                let level_names = &naming.item_levels[j];
+                let level_names = &self.rows.level_names[j];
+                let name = &self.rows.names[j];
                 for (lv, p) in self.reference_probabilities(j, k).into_iter().enumerate() {
                     out.push(Parameter {
-                        block: "item_probability",
+                        block: PROBABILITY,
                         cluster: k + 1,
-                        indicator: Some(format!("{}={}", self.names[j], level_names[lv])),
+                        indicator: Some(format!("{name}={}", level_names[lv])),
                         term: None,
                         value: p,
                     });
@@ -312,9 +544,9 @@ impl ComponentFamily for ItemComponents {
                     let beta = &self.coef[j][start..start + q];
                     for (term, value) in subset_to_original(design, &self.terms[j], beta) {
                         out.push(Parameter {
-                            block: "item_logit",
+                            block: LOGIT,
                             cluster: k + 1,
-                            indicator: Some(format!("{}={}", self.names[j], level_names[lv])),
+                            indicator: Some(format!("{name}={}", level_names[lv])),
                             term: Some(term),
                             value,
                         });
@@ -324,13 +556,187 @@ impl ComponentFamily for ItemComponents {
         }
         out
     }
+
+    fn profile(&self, k: usize, row: Option<usize>, out: &mut Vec<f64>) {
+        let reference;
+        let z = match row {
+            Some(i) => self.rows.z(i),
+            None => {
+                reference = reference_row(self.rows.design.p());
+                &reference[..]
+            }
+        };
+        let mut eta = Vec::new();
+        for (j, item_levels) in self.rows.level_names.iter().enumerate() {
+            for l in shown_levels(item_levels) {
+                out.push(self.log_probability(j, k, z, l, &mut eta).exp());
+            }
+        }
+    }
+
+    fn guards(&self) -> Vec<Guard> {
+        if self.smoothing > 0.0 {
+            vec![Guard {
+                name: "item_cells_held_off_zero",
+                count: self.empty_cells,
+            }]
+        } else {
+            Vec::new()
+        }
+    }
+
+    fn sampler(&self) -> Box<dyn RowSampler + '_> {
+        Box::new(ItemSampler {
+            block: self,
+            codes: self.rows.codes.to_vec(),
+            eta: Vec::new(),
+        })
+    }
+
+    fn state(&self) -> serde_json::Value {
+        let saved = SavedItems {
+            log_probabilities: self.log_prob.clone(),
+            logit_coefficients: self.coef.clone(),
+            smoothing: self.smoothing,
+            empty_cells: self.empty_cells,
+        };
+        serde_json::to_value(saved).expect("numbers encode")
+    }
+}
+
+/// Draws each observed item value from its cluster's level probabilities at the row's
+/// covariates; missing values stay missing.
+struct ItemSampler<'a> {
+    block: &'a ItemComponents,
+    codes: Vec<u16>,
+    eta: Vec<f64>,
+}
+
+impl RowSampler for ItemSampler<'_> {
+    fn draw(&mut self, i: usize, k: usize, rng: &mut Stream) {
+        let it = self.block;
+        let nj = it.levels.len();
+        let z = it.rows.z(i);
+        for j in 0..nj {
+            if self.codes[i * nj + j] == MISSING_ITEM {
+                continue;
+            }
+            let probs: Vec<f64> = (0..it.levels[j])
+                .map(|l| it.log_probability(j, k, z, l, &mut self.eta).exp())
+                .collect();
+            self.codes[i * nj + j] = rng.weighted_index(&probs) as u16;
+        }
+    }
+
+    fn finish(self: Box<Self>) -> IndicatorValues {
+        IndicatorValues::Levels {
+            codes: Arc::new(self.codes),
+            levels: self.block.rows.level_names.clone(),
+            missing: self.block.rows.codes.iter().filter(|c| **c == MISSING_ITEM).count(),
+        }
+    }
+}
+
+/// The item block's local chart: the baseline-category logits of each item (per level
+/// above the first, per design term), moved from the fit.
+struct ItemChart<'a> {
+    base: &'a ItemComponents,
+    offsets: Vec<usize>,
+    len: usize,
+}
+
+fn add(x: &mut [f64], delta: &[f64]) {
+    for (a, b) in x.iter_mut().zip(delta) {
+        *a += b;
+    }
+}
+
+impl BlockChart for ItemChart<'_> {
+    fn len(&self) -> usize {
+        self.len
+    }
+
+    fn scales(&self) -> Vec<f64> {
+        vec![1.0; self.len]
+    }
+
+    fn at(&self, theta: &[f64]) -> std::result::Result<Box<dyn Block>, Degeneracy> {
+        let mut it = self.base.clone();
+        for (j, &off) in self.offsets.iter().enumerate() {
+            let l = it.levels[j];
+            let q = it.terms[j].len();
+            let part = &theta[off..off + it.g * (l - 1) * q];
+            if q > 1 {
+                add(&mut it.coef[j], part);
+                continue;
+            }
+            for k in 0..it.g {
+                let lp = &mut it.log_prob[j][k * l..(k + 1) * l];
+                let mut eta: Vec<f64> = lp.iter().map(|v| v - lp[0]).collect();
+                add(&mut eta[1..], &part[k * (l - 1)..(k + 1) * (l - 1)]);
+                let lse = log_sum_exp(&eta);
+                for (o, e) in lp.iter_mut().zip(&eta) {
+                    *o = e - lse;
+                }
+            }
+        }
+        Ok(Box::new(it))
+    }
+
+    fn scorer<'b>(&'b self, block: &'b dyn Block, _theta: &'b [f64]) -> Box<dyn RowScorer + 'b> {
+        let it = block
+            .as_any()
+            .downcast_ref::<ItemComponents>()
+            .expect("an item chart scores item blocks");
+        Box::new(ItemScorer {
+            it,
+            offsets: &self.offsets,
+            eta: Vec::new(),
+        })
+    }
+}
+
+/// Row scores of the item block: per observed item, (indicator − probability) of each
+/// level above the first times the item's design terms, weighted by the posterior.
+struct ItemScorer<'a> {
+    it: &'a ItemComponents,
+    offsets: &'a [usize],
+    eta: Vec<f64>,
+}
+
+impl RowScorer for ItemScorer<'_> {
+    fn add(&mut self, i: usize, c: f64, t: &[f64], s: &mut [f64]) {
+        let it = self.it;
+        let nj = it.levels.len();
+        let z = it.rows.z(i);
+        for (j, &code) in it.rows.codes[i * nj..(i + 1) * nj].iter().enumerate() {
+            if code == MISSING_ITEM {
+                continue;
+            }
+            let (l, q) = (it.levels[j], it.terms[j].len());
+            for (k, tk) in t.iter().enumerate() {
+                let v = c * tk;
+                if v == 0.0 {
+                    continue;
+                }
+                for level in 1..l {
+                    let p = it.log_probability(j, k, z, level, &mut self.eta).exp();
+                    let resid = v * (f64::from(u8::from(usize::from(code) == level)) - p);
+                    let at = self.offsets[j] + (k * (l - 1) + level - 1) * q;
+                    for (a, col) in it.terms[j].iter().enumerate() {
+                        s[at + a] += resid * z[*col];
+                    }
+                }
+            }
+        }
+    }
 }
 
 impl ItemComponents {
     fn empty(&self, k: usize, j: usize) -> Degeneracy {
         Degeneracy {
             cluster: k + 1,
-            reason: format!("no row in it has a value of item '{}'", self.names[j]),
+            reason: format!("no row in it has a value of item '{}'", self.rows.names[j]),
         }
     }
 }
@@ -381,18 +787,4 @@ impl ItemRows {
             })
             .collect()
     }
-}
-
-/// Coefficients on a subset of a design's columns, mapped to the original scale:
-/// (term name, value) for each column of the subset.
-pub fn subset_to_original(design: &crate::data::Design, columns: &[usize], beta: &[f64]) -> Vec<(String, f64)> {
-    let mut full = vec![0.0; design.p()];
-    for (a, col) in columns.iter().enumerate() {
-        full[*col] = beta[a];
-    }
-    let orig = design.to_original_scale(&full);
-    columns
-        .iter()
-        .map(|col| (design.terms[*col].name.clone(), orig[*col]))
-        .collect()
 }

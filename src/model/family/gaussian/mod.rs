@@ -4,10 +4,189 @@
 //! B_g = (Z'VZ)^-1 Z'VY, then Sigma_g = sum_i v_i r_i r_i' / sum_i v_i from the residuals
 //! r_i = y_i − B_g' z_i (the maximum-likelihood divisor, not n − p).
 
+mod chart;
+
 use super::covariance::{self, CovarianceStructure};
-use super::{ComponentFamily, Degeneracy, Naming, Parameter};
-use crate::model::FitData;
+use super::{
+    read_state, reference_row, Block, BlockChart, BlockDesigns, Degeneracy, Family, FusedPass, Guard, ParamBlock,
+    Parameter, Prepared, RowSampler,
+};
+use crate::data::{Dataset, Design, IndicatorSet, IndicatorValues};
+use crate::error::{Error, Result};
+use crate::model::gating::{Gating, GatingStats};
+use crate::model::rows::{self, Base, GaussianStats, PassRows};
+use crate::model::{FitData, ModelOptions};
+use crate::rng::Stream;
+use crate::spec::{FamilyInfo, FamilyKey, Layout, Study, TypeKind};
 use nalgebra::DMatrix;
+use std::any::Any;
+use std::sync::Arc;
+
+/// What the spec and data layers know of the family.
+pub static INFO: FamilyInfo = FamilyInfo {
+    word: "gaussian",
+    indicator_word: "gaussian",
+    wanted: "continuous",
+    types: &[TypeKind::Continuous],
+    default_type: TypeKind::Continuous,
+    mixed: &[TypeKind::Continuous],
+    layout: Layout::Rows,
+    shared_design: Some("continuous"),
+    keys: &[FamilyKey::Covariance],
+};
+
+/// The family of continuous indicators.
+#[derive(Debug)]
+pub struct Gaussian;
+
+/// The Gaussian family, as [`super::Families`] lists it.
+pub static GAUSSIAN: Gaussian = Gaussian;
+
+/// The parameter blocks the family writes.
+const MEAN: ParamBlock = ParamBlock::effects("mean", "mean difference", false);
+const COVARIANCE: ParamBlock = ParamBlock::plain("covariance");
+
+/// Largest ratio of two continuous indicators' variances that fitting can take: beyond
+/// it, rounding swamps the smaller indicator and the collapse check (relative to the
+/// largest variance) cannot tell a collapsed cluster from a small scale.
+pub const MAX_VARIANCE_RATIO: f64 = 1e14;
+
+impl Family for Gaussian {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    /// Continuous indicators must have a finite, non-zero variance, on scales within
+    /// [`MAX_VARIANCE_RATIO`] of each other.
+    fn check(&self, study: &Study, set: &IndicatorSet) -> Result<()> {
+        check_scales(study, set)
+    }
+
+    fn prepare(&self, set: &IndicatorSet, _data: &Dataset, designs: &BlockDesigns) -> Arc<dyn Prepared> {
+        let design = designs.design_for(&set.names[0]);
+        prepared(GaussianRows::new(set.names.clone(), Arc::clone(set.numbers()), design))
+    }
+}
+
+/// The prepared block of these arrays.
+pub fn prepared(rows: GaussianRows) -> Arc<dyn Prepared> {
+    Arc::new(Arc::new(rows))
+}
+
+/// The Gaussian block's arrays for one placement.
+#[derive(Debug, Clone)]
+pub struct GaussianRows {
+    /// Indicator names, in spec order.
+    pub names: Vec<String>,
+    /// Indicators, row-major n×d.
+    pub y: Arc<Vec<f64>>,
+    /// Indicators.
+    pub d: usize,
+    /// The regression design of the covariates acting on them, n×q (intercept first).
+    pub design: Design,
+}
+
+impl GaussianRows {
+    /// The arrays: names, the indicators (row-major, one column per name) and the design.
+    pub fn new(names: Vec<String>, y: Arc<Vec<f64>>, design: Design) -> GaussianRows {
+        let d = names.len();
+        assert_eq!(y.len(), d * design.n, "indicators and design cover the same rows");
+        GaussianRows { names, y, d, design }
+    }
+
+    /// Rows.
+    pub fn n(&self) -> usize {
+        self.design.n
+    }
+
+    /// Design columns.
+    pub fn q(&self) -> usize {
+        self.design.p()
+    }
+
+    /// What the tiled pass reads, with the shared arrays of `fd`.
+    pub fn pass_rows<'a>(&'a self, fd: &FitData<'a>) -> PassRows<'a> {
+        PassRows {
+            n: fd.n,
+            weights: fd.weights,
+            w: fd.w,
+            p: fd.p,
+            y: &self.y,
+            d: self.d,
+            z: &self.design.x,
+            q: self.q(),
+        }
+    }
+}
+
+impl Prepared for Arc<GaussianRows> {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn block(&self, fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block> {
+        let mut block = GaussianComponents::new(Arc::clone(self), fd.weights, g, options.structure);
+        if options.covariance_prior {
+            block = block.with_default_prior(fd.weights);
+        }
+        block.variance_floor = options.variance_floor;
+        Box::new(block)
+    }
+
+    fn restore(
+        &self,
+        fd: &FitData,
+        g: usize,
+        options: &ModelOptions,
+        state: &serde_json::Value,
+    ) -> std::result::Result<Box<dyn Block>, String> {
+        let saved: SavedGaussian = read_state(INFO.word, state)?;
+        let d = self.d;
+        let mut block = GaussianComponents::new(Arc::clone(self), fd.weights, g, saved.structure);
+        if options.covariance_prior {
+            block = block.with_default_prior(fd.weights);
+        }
+        block.variance_floor = options.variance_floor;
+        let covs = saved
+            .covariances
+            .iter()
+            .map(|c| DMatrix::from_row_slice(d, d, c))
+            .collect();
+        let mut block = block
+            .with_parameters(saved.coefficients, covs)
+            .map_err(|e| format!("cluster {}: {}", e.cluster, e.reason))?;
+        block.set_common_orientation(saved.orientation.map(|o| DMatrix::from_row_slice(d, d, &o)));
+        block.floor_hits = saved.floor_hits;
+        Ok(Box::new(block))
+    }
+
+    fn seeding_columns(&self) -> Vec<Vec<f64>> {
+        let (n, d) = (self.n(), self.d);
+        (0..d).map(|j| (0..n).map(|i| self.y[i * d + j]).collect()).collect()
+    }
+
+    fn seeding_rows(&self) -> Option<(&[f64], usize)> {
+        Some((&self.y, self.d))
+    }
+
+    fn profile_columns(&self) -> Vec<String> {
+        self.names.clone()
+    }
+}
+
+/// The saved state of a Gaussian block.
+#[derive(Debug, serde::Serialize, serde::Deserialize)]
+struct SavedGaussian {
+    structure: CovarianceStructure,
+    /// Coefficients on the fitting scale, `[(k q + a) d + j]`.
+    coefficients: Vec<f64>,
+    /// Covariance per cluster, row-major.
+    covariances: Vec<Vec<f64>>,
+    /// The orientation the clusters share (structures with one), row-major.
+    orientation: Option<Vec<f64>>,
+    /// Times the variance floor acted.
+    floor_hits: usize,
+}
 
 /// ln(2π).
 const LN_2PI: f64 = 1.837_877_066_409_345_5;
@@ -28,8 +207,10 @@ pub struct CovariancePrior {
 }
 
 /// Parameters of G Gaussian regression components.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone)]
 pub struct GaussianComponents {
+    /// The arrays the components are fitted to.
+    pub rows: Arc<GaussianRows>,
     /// Clusters.
     pub g: usize,
     /// Indicators.
@@ -61,31 +242,31 @@ pub struct GaussianComponents {
 }
 
 impl GaussianComponents {
-    /// Empty components sized for the data; call [`ComponentFamily::m_step`] to fill them.
-    pub fn new(data: &FitData, g: usize, structure: CovarianceStructure) -> GaussianComponents {
-        let (d, q) = (data.d, data.q);
-        let total: f64 = data.weights.iter().sum();
+    /// Empty components over `rows` with case weights `weights`; [`Block::m_step`] fills
+    /// them.
+    pub fn new(
+        rows: Arc<GaussianRows>,
+        weights: &[f64],
+        g: usize,
+        structure: CovarianceStructure,
+    ) -> GaussianComponents {
+        let (d, q) = (rows.d, rows.q());
+        let total: f64 = weights.iter().sum();
         let y_mean: Vec<f64> = (0..d)
-            .map(|j| {
-                data.y
-                    .chunks_exact(d)
-                    .zip(data.weights)
-                    .map(|(y, c)| c * y[j])
-                    .sum::<f64>()
-                    / total
-            })
+            .map(|j| rows.y.chunks_exact(d).zip(weights).map(|(y, c)| c * y[j]).sum::<f64>() / total)
             .collect();
         let y_var = (0..d)
             .map(|j| {
-                data.y
+                rows.y
                     .chunks_exact(d)
-                    .zip(data.weights)
+                    .zip(weights)
                     .map(|(y, c)| c * (y[j] - y_mean[j]).powi(2))
                     .sum::<f64>()
                     / total
             })
             .collect();
         GaussianComponents {
+            rows,
             g,
             d,
             q,
@@ -105,17 +286,18 @@ impl GaussianComponents {
 
     /// Use the default conjugate prior of Fraley & Raftery (2007) for these data:
     /// ν_p = d + 2, Λ_p = (weighted data covariance) / G^(2/d).
-    pub fn with_default_prior(mut self, data: &FitData) -> GaussianComponents {
+    pub fn with_default_prior(mut self, weights: &[f64]) -> GaussianComponents {
         let d = self.d;
-        let total: f64 = data.weights.iter().sum();
+        let y = Arc::clone(&self.rows.y);
+        let total: f64 = weights.iter().sum();
         let mut mean = vec![0.0; d];
-        for (y, c) in data.y.chunks_exact(d).zip(data.weights) {
+        for (y, c) in y.chunks_exact(d).zip(weights) {
             for (m, v) in mean.iter_mut().zip(y) {
                 *m += c * v / total;
             }
         }
         let mut cov = DMatrix::<f64>::zeros(d, d);
-        for (y, c) in data.y.chunks_exact(d).zip(data.weights) {
+        for (y, c) in y.chunks_exact(d).zip(weights) {
             for a in 0..d {
                 for b in 0..d {
                     cov[(a, b)] += c * (y[a] - mean[a]) * (y[b] - mean[b]) / total;
@@ -132,7 +314,7 @@ impl GaussianComponents {
 
     /// Set parameters directly (simulation truth, tests); fails if a covariance is not
     /// positive definite.
-    pub fn with_parameters(mut self, coef: Vec<f64>, cov: Vec<DMatrix<f64>>) -> Result<Self, Degeneracy> {
+    pub fn with_parameters(mut self, coef: Vec<f64>, cov: Vec<DMatrix<f64>>) -> std::result::Result<Self, Degeneracy> {
         assert_eq!(coef.len(), self.g * self.q * self.d);
         self.coef = coef;
         for (k, s) in cov.into_iter().enumerate() {
@@ -141,7 +323,7 @@ impl GaussianComponents {
         Ok(self)
     }
 
-    fn set_covariance(&mut self, k: usize, s: DMatrix<f64>) -> Result<(), Degeneracy> {
+    fn set_covariance(&mut self, k: usize, s: DMatrix<f64>) -> std::result::Result<(), Degeneracy> {
         let collapsed = || Degeneracy {
             cluster: k + 1,
             reason: "its covariance is singular (the cluster collapsed onto a point or a line)".to_string(),
@@ -200,7 +382,7 @@ impl GaussianComponents {
     /// The M-step from sums taken around coefficients `st.at` (see
     /// [`crate::model::GaussianStats`]): weighted least squares for the coefficients, then
     /// the structure's covariance estimate from the scatter about the new means.
-    pub fn m_step_from_stats(&mut self, st: &crate::model::GaussianStats) -> Result<(), Degeneracy> {
+    pub fn m_step_from_stats(&mut self, st: &crate::model::GaussianStats) -> std::result::Result<(), Degeneracy> {
         let (d, q, g) = (self.d, self.q, self.g);
         let needed = (d + q) as f64;
         let mut scatter = Vec::with_capacity(g);
@@ -244,7 +426,11 @@ impl GaussianComponents {
     }
 
     /// Prior, structure and variance floor applied to the scatter matrices.
-    fn finish_covariances(&mut self, mut scatter: Vec<DMatrix<f64>>, mut n_eff: Vec<f64>) -> Result<(), Degeneracy> {
+    fn finish_covariances(
+        &mut self,
+        mut scatter: Vec<DMatrix<f64>>,
+        mut n_eff: Vec<f64>,
+    ) -> std::result::Result<(), Degeneracy> {
         let d = self.d;
         if let Some(prior) = &self.prior {
             // Posterior mode: the structure's M-step on the augmented scatter.
@@ -290,9 +476,26 @@ impl GaussianComponents {
     }
 }
 
-impl ComponentFamily for GaussianComponents {
-    fn add_log_density(&self, data: &FitData, out: &mut [f64]) {
+impl Block for GaussianComponents {
+    fn info(&self) -> &'static FamilyInfo {
+        &INFO
+    }
+
+    fn as_any(&self) -> &dyn Any {
+        self
+    }
+
+    fn as_any_mut(&mut self) -> &mut dyn Any {
+        self
+    }
+
+    fn clone_block(&self) -> Box<dyn Block> {
+        Box::new(self.clone())
+    }
+
+    fn add_log_density(&self, out: &mut [f64]) {
         let (d, g, q) = (self.d, self.g, self.q);
+        let (y_all, z_all) = (&self.rows.y, &self.rows.design.x);
         let mut mu = vec![0.0; d];
         let mut u = vec![0.0; d];
         let constant = -0.5 * d as f64 * LN_2PI;
@@ -300,9 +503,9 @@ impl ComponentFamily for GaussianComponents {
             let l = &self.chol[k];
             let base = constant - 0.5 * self.log_det[k];
             let coef = &self.coef[k * q * d..(k + 1) * q * d];
-            for i in 0..data.n {
-                let y = &data.y[i * d..(i + 1) * d];
-                let z = &data.z[i * q..(i + 1) * q];
+            for i in 0..self.rows.n() {
+                let y = &y_all[i * d..(i + 1) * d];
+                let z = &z_all[i * q..(i + 1) * q];
                 mu.copy_from_slice(&coef[..d]);
                 for a in 1..q {
                     for (m, b) in mu.iter_mut().zip(&coef[a * d..(a + 1) * d]) {
@@ -325,14 +528,27 @@ impl ComponentFamily for GaussianComponents {
         }
     }
 
-    fn m_step(&mut self, data: &FitData, tau: &[f64]) -> Result<(), Degeneracy> {
+    fn fused(&self) -> Option<&dyn FusedPass> {
+        Some(self)
+    }
+
+    fn m_step(
+        &mut self,
+        fd: &FitData,
+        tau: &[f64],
+        sums: Option<&GaussianStats>,
+    ) -> std::result::Result<(), Degeneracy> {
+        if let Some(st) = sums {
+            return self.m_step_from_stats(st);
+        }
         // Sums around the overall means, so that large means do not cost precision.
         let (d, q) = (self.d, self.q);
         let mut at = vec![0.0; self.g * q * d];
         for block in at.chunks_exact_mut(q * d) {
             block[..d].copy_from_slice(&self.y_mean);
         }
-        let st = crate::model::rows::gaussian_stats(data, self.g, &at, tau);
+        let rows = Arc::clone(&self.rows);
+        let st = rows::gaussian_stats(&rows.pass_rows(fd), self.g, &at, tau);
         self.m_step_from_stats(&st)
     }
 
@@ -383,7 +599,7 @@ impl ComponentFamily for GaussianComponents {
         }
     }
 
-    fn set_coordinates(&mut self, c: &[f64]) -> Result<usize, Degeneracy> {
+    fn set_coordinates(&mut self, c: &[f64]) -> std::result::Result<usize, Degeneracy> {
         let d = self.d;
         let sd = self.indicator_sds();
         let n_coef = self.coef.len();
@@ -405,17 +621,22 @@ impl ComponentFamily for GaussianComponents {
         Ok(read)
     }
 
-    fn parameters(&self, naming: Naming) -> Vec<Parameter> {
+    fn chart(&self) -> std::result::Result<Box<dyn BlockChart + '_>, String> {
+        Ok(Box::new(chart::GaussianChart::new(self)?))
+    }
+
+    fn parameters(&self) -> Vec<Parameter> {
         let (d, q) = (self.d, self.q);
+        let (names, design) = (&self.rows.names, &self.rows.design);
         let mut out = Vec::new();
         for k in 0..self.g {
             for j in 0..d {
                 let beta: Vec<f64> = (0..q).map(|a| self.coef[(k * q + a) * d + j]).collect();
-                for (term, value) in naming.design.terms.iter().zip(naming.design.to_original_scale(&beta)) {
+                for (term, value) in design.terms.iter().zip(design.to_original_scale(&beta)) {
                     out.push(Parameter {
-                        block: "mean",
+                        block: MEAN,
                         cluster: k + 1,
-                        indicator: Some(naming.indicators[j].clone()),
+                        indicator: Some(names[j].clone()),
                         term: Some(term.name.clone()),
                         value,
                     });
@@ -424,12 +645,12 @@ impl ComponentFamily for GaussianComponents {
             for a in 0..d {
                 for b in 0..=a {
                     let pair = if a == b {
-                        naming.indicators[a].clone()
+                        names[a].clone()
                     } else {
-                        format!("{}~{}", naming.indicators[b], naming.indicators[a])
+                        format!("{}~{}", names[b], names[a])
                     };
                     out.push(Parameter {
-                        block: "covariance",
+                        block: COVARIANCE,
                         cluster: k + 1,
                         indicator: Some(pair),
                         term: None,
@@ -440,4 +661,170 @@ impl ComponentFamily for GaussianComponents {
         }
         out
     }
+
+    fn profile(&self, k: usize, row: Option<usize>, out: &mut Vec<f64>) {
+        let q = self.q;
+        let reference;
+        let z = match row {
+            Some(i) => &self.rows.design.x[i * q..(i + 1) * q],
+            None => {
+                reference = reference_row(q);
+                &reference[..]
+            }
+        };
+        let start = out.len();
+        out.resize(start + self.d, 0.0);
+        self.mean(k, z, &mut out[start..]);
+    }
+
+    fn guards(&self) -> Vec<Guard> {
+        vec![Guard {
+            name: "variance_floor_hits",
+            count: self.floor_hits,
+        }]
+    }
+
+    fn sampler(&self) -> Box<dyn RowSampler + '_> {
+        Box::new(GaussianSampler {
+            block: self,
+            chol: self
+                .cov
+                .iter()
+                .map(|c| c.clone().cholesky().expect("a fitted covariance").l())
+                .collect(),
+            y: self.rows.y.to_vec(),
+            mu: vec![0.0; self.d],
+            e: vec![0.0; self.d],
+        })
+    }
+
+    fn state(&self) -> serde_json::Value {
+        let saved = SavedGaussian {
+            structure: self.structure,
+            coefficients: self.coef.clone(),
+            covariances: self.cov.iter().map(|s| s.transpose().as_slice().to_vec()).collect(),
+            orientation: self.orientation.as_ref().map(|o| o.transpose().as_slice().to_vec()),
+            floor_hits: self.floor_hits,
+        };
+        serde_json::to_value(saved).expect("numbers and words encode")
+    }
+}
+
+impl FusedPass for GaussianComponents {
+    fn pass(
+        &self,
+        fd: &FitData,
+        gating: &Gating,
+        base: Base,
+        tau: Option<&mut [f64]>,
+        gating_stats: Option<&mut GatingStats>,
+        sums: Option<&mut GaussianStats>,
+    ) -> f64 {
+        rows::e_step(
+            self.rows.pass_rows(fd),
+            Some(self),
+            gating,
+            base,
+            tau,
+            gating_stats,
+            sums,
+        )
+    }
+
+    fn steps_from_sums(&self) -> bool {
+        true
+    }
+}
+
+/// Draws continuous indicators: the cluster mean at the row's covariates plus
+/// L·e, with L the covariance's Cholesky factor and e standard normals.
+struct GaussianSampler<'a> {
+    block: &'a GaussianComponents,
+    chol: Vec<DMatrix<f64>>,
+    y: Vec<f64>,
+    mu: Vec<f64>,
+    e: Vec<f64>,
+}
+
+impl RowSampler for GaussianSampler<'_> {
+    fn draw(&mut self, i: usize, k: usize, rng: &mut Stream) {
+        let (d, q) = (self.block.d, self.block.q);
+        self.block
+            .mean(k, &self.block.rows.design.x[i * q..(i + 1) * q], &mut self.mu);
+        for v in self.e.iter_mut() {
+            *v = rng.normal();
+        }
+        for a in 0..d {
+            let shift: f64 = (0..=a).map(|b| self.chol[k][(a, b)] * self.e[b]).sum();
+            self.y[i * d + a] = self.mu[a] + shift;
+        }
+    }
+
+    fn finish(self: Box<Self>) -> IndicatorValues {
+        IndicatorValues::Rows(Arc::new(self.y))
+    }
+}
+
+/// Continuous indicators must have a finite, non-zero variance, on scales within
+/// [`MAX_VARIANCE_RATIO`] of each other.
+fn check_scales(study: &Study, set: &IndicatorSet) -> Result<()> {
+    let y = set.numbers();
+    let d = set.names.len();
+    let n = y.len() / d;
+    if d == 0 || n == 0 {
+        return Ok(());
+    }
+    let column = |name: &str| {
+        study
+            .indicators
+            .iter()
+            .find(|c| c.name == name)
+            .expect("the set's indicators are the spec's")
+    };
+    let mut variances = Vec::with_capacity(d);
+    for j in 0..d {
+        let mean = (0..n).map(|i| y[i * d + j]).sum::<f64>() / n as f64;
+        let var = (0..n).map(|i| (y[i * d + j] - mean).powi(2)).sum::<f64>() / n as f64;
+        let c = column(&set.names[j]);
+        if !var.is_finite() {
+            return Err(Error::input(
+                study
+                    .error_at(c.span.clone(), format!("indicator '{}' has values so large that their squares overflow", c.name))
+                    .help("rescale it (for example to thousands or millions of its unit) so its values stay below about 1e150"),
+            ));
+        }
+        if !(var > 0.0) {
+            return Err(Error::input(
+                study
+                    .error_at(
+                        c.span.clone(),
+                        format!("indicator '{}' has the same value in every row used", c.name),
+                    )
+                    .help("a constant indicator cannot separate clusters; leave it out"),
+            ));
+        }
+        variances.push(var);
+    }
+    let (lo, hi) = variances.iter().enumerate().fold((0, 0), |(lo, hi), (j, v)| {
+        (
+            if *v < variances[lo] { j } else { lo },
+            if *v > variances[hi] { j } else { hi },
+        )
+    });
+    if variances[hi] / variances[lo] > MAX_VARIANCE_RATIO {
+        let (a, b) = (column(&set.names[lo]), column(&set.names[hi]));
+        return Err(Error::input(
+            study
+                .error_at(
+                    a.span.clone(),
+                    format!(
+                        "indicators '{}' and '{}' are on scales too far apart to fit together (their variances differ by a factor of {:.1e})",
+                        a.name, b.name,
+                        variances[hi] / variances[lo]
+                    ),
+                )
+                .help(format!("rescale one of them so their spreads are within a factor of {:.0e} of each other", MAX_VARIANCE_RATIO.sqrt())),
+        ));
+    }
+    Ok(())
 }
