@@ -149,28 +149,8 @@ pub fn load_study(spec_path: &Path) -> Result<(Study, Dataset, Vec<PreparedPlace
     let study = spec::load(spec_path, &families.infos())?;
     let data = crate::data::load(&study)?;
     let prepared = fit::prepare(&study, &data, &families)?;
-    check_rows(&study, &data, &prepared)?;
+    fit::check_rows(&study, &data, &prepared)?;
     Ok((study, data, prepared))
-}
-
-fn check_rows(study: &Study, data: &Dataset, prepared: &[PreparedPlacement]) -> Result<()> {
-    for cell in fit::grid(study) {
-        let pp = &prepared[cell.placement];
-        let fd = fit::fit_data(data, pp);
-        let g = cell.clusters;
-        {
-            let options = fit::ModelOptions::for_study(study, cell.structure);
-            let k = fit::initial_model(&fd, &pp.blocks, &pp.placement, g, options).n_params();
-            if data.n() <= k {
-                return Err(Error::input(
-                    study
-                        .error_at(pp.placement.clusters_span.clone(), format!("too few rows: {} rows are used, but placement '{}' with {g} clusters ({}) has {k} parameters", data.n(), pp.placement.name, fit::covariance_label(&cell.structure, pp.uses_structure())))
-                        .help("fit fewer clusters, use fewer covariates, or use more data (the rows must outnumber the parameters)"),
-                ));
-            }
-        }
-    }
-    Ok(())
 }
 
 fn check(spec_path: &Path) -> Result<()> {

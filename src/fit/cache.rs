@@ -2,10 +2,11 @@
 //! everything that defines it, so a rerun refits only what changed and a run killed
 //! part-way resumes where it stopped.
 //!
-//! Key: SHA-256 of the program version, the data file's hash, the rows used, the column
-//! types, the indicators and their settings, the search settings, the seed, the
-//! placement (name, covariates, `acts_on`, proportions, method), the cluster count and the
-//! covariance structure. Entry: `cache/<key>.json`, whose first line is the SHA-256 of the
+//! Key: SHA-256 of the fit's canonical definition ([`FitSpec::key`]): the program version,
+//! the data file's hash, the rows used and their weights, the column types, the
+//! indicators and their families, the placement (name, covariates, `acts_on`,
+//! proportions, method), the cluster count, the model options, the search settings, the
+//! seed and the random streams. Entry: `cache/<key>.json`, whose first line is the SHA-256 of the
 //! rest; an entry whose hash does not match (truncated, edited, corrupted) is refitted,
 //! never trusted. An entry holds the best start's parameters and every start's record;
 //! the posteriors are recomputed from the parameters by one E-step, which gives the same
@@ -13,74 +14,14 @@
 
 use super::em::{EmRun, Termination};
 use super::saved::SavedModel;
-use super::{fit_data, initial_model, BestFit, Cell, FitResult, ModelOptions, PreparedPlacement, StartRecord};
+use super::{fit_data, initial_model, BestFit, FitResult, FitSpec, PreparedPlacement, StartRecord};
 use crate::data::Dataset;
-use crate::model::family::CovarianceStructure;
 use crate::numerics::sha256_hex;
-use crate::spec::Study;
 use serde::{Deserialize, Serialize};
-use std::fmt::Write as _;
 use std::path::Path;
 
 /// Folder of the cache inside a run folder.
 pub const CACHE_DIR: &str = "cache";
-
-/// The key of one fit.
-pub fn fit_key(
-    study: &Study,
-    data: &Dataset,
-    prepared: &PreparedPlacement,
-    g: usize,
-    structure: CovarianceStructure,
-) -> String {
-    let mut s = String::new();
-    let _ = writeln!(s, "cohortmix {}", env!("CARGO_PKG_VERSION"));
-    let _ = writeln!(s, "data {}", data.sha256);
-    let _ = writeln!(s, "rows {}", sha256_hex(data.ids.joined().as_bytes()));
-    let weights: Vec<u8> = data.weights.iter().flat_map(|w| w.to_le_bytes()).collect();
-    let _ = writeln!(s, "weights {}", sha256_hex(&weights));
-    for (name, (kind, _)) in &study.variables {
-        let _ = writeln!(s, "variable {name} {kind:?}");
-    }
-    let names: Vec<&str> = study.indicators.iter().map(|c| c.name.as_str()).collect();
-    let kinds: Vec<&str> = study.indicator_families.iter().map(|f| f.word).collect();
-    let _ = writeln!(s, "indicators {:?} {:?} {:?}", names, kinds, study.family.word());
-    let _ = writeln!(
-        s,
-        "exposure {:?} smoothing {:?} weights {:?}",
-        study.exposure.as_ref().map(|c| &c.name),
-        study.smoothing,
-        study.weights.as_ref().map(|c| &c.name)
-    );
-    let q = &study.search;
-    let _ = writeln!(
-        s,
-        "search starts {} iterations {} tolerance {:?} ridge {:?} prior {} floor {:?} seed {}",
-        q.starts, q.max_iterations, q.tolerance, q.gating_ridge, q.covariance_prior, q.variance_floor, study.seed
-    );
-    if q.accelerate {
-        // Keys of fits made without extrapolation, before it was offered, stay the same.
-        let _ = writeln!(s, "extrapolated steps");
-    }
-    if q.two_stages() {
-        // Only then do they change a fit, so that specs without them keep their keys.
-        let _ = writeln!(s, "two stages warmup {} finish {}", q.warmup_iterations, q.finish_best);
-    }
-    let p = &prepared.placement;
-    let cols = |v: &[crate::spec::ColumnRef]| v.iter().map(|c| c.name.clone()).collect::<Vec<_>>();
-    let _ = writeln!(
-        s,
-        "placement {:?} gating {:?} components {:?} acts_on {:?} proportions {:?} method {:?}",
-        p.name,
-        cols(&p.gating),
-        cols(&p.components),
-        p.acts_on,
-        p.proportions,
-        p.method
-    );
-    let _ = writeln!(s, "clusters {g} structure {structure:?}");
-    sha256_hex(s.as_bytes())
-}
 
 /// What a cache entry holds.
 #[derive(Debug, Serialize, Deserialize)]
@@ -145,15 +86,8 @@ pub enum Lookup {
     Found(Box<FitResult>),
 }
 
-/// Look up the fit of grid cell `cell` (whose placement is `prepared`).
-pub fn load(
-    folder: &Path,
-    key: &str,
-    study: &Study,
-    data: &Dataset,
-    prepared: &PreparedPlacement,
-    cell: Cell,
-) -> Lookup {
+/// Look up the fit `spec` (whose placement is `prepared`) under `key`, its key.
+pub fn load(folder: &Path, key: &str, spec: &FitSpec, data: &Dataset, prepared: &PreparedPlacement) -> Lookup {
     let path = folder.join(CACHE_DIR).join(format!("{key}.json"));
     let Ok(text) = std::fs::read_to_string(&path) else {
         return Lookup::Missing;
@@ -171,25 +105,19 @@ pub fn load(
     if entry.key != key {
         return Lookup::Corrupt(format!("{} holds another fit", path.display()));
     }
-    match rebuild(entry, study, data, prepared, cell) {
+    match rebuild(entry, spec, data, prepared) {
         Ok(r) => Lookup::Found(Box::new(r)),
         Err(e) => Lookup::Corrupt(format!("{}: {e}", path.display())),
     }
 }
 
-fn rebuild(
-    entry: Entry,
-    study: &Study,
-    data: &Dataset,
-    prepared: &PreparedPlacement,
-    cell: Cell,
-) -> Result<FitResult, String> {
-    let (g, structure) = (cell.clusters, cell.structure);
+fn rebuild(entry: Entry, spec: &FitSpec, data: &Dataset, prepared: &PreparedPlacement) -> Result<FitResult, String> {
+    let (g, structure) = (spec.clusters, spec.structure());
     let fd = fit_data(data, prepared);
     let best = match entry.best {
         None => None,
         Some(c) => {
-            let options = ModelOptions::for_study(study, structure);
+            let options = spec.options;
             let mut model = initial_model(&fd, &prepared.blocks, &prepared.placement, g, options);
             model.gating.prepare_bound(fd.w, fd.weights);
             c.model.gating.apply_to(&mut model.gating)?;
@@ -215,8 +143,9 @@ fn rebuild(
     };
     let step_three = super::step_three_of(prepared, best.as_ref(), g, &data.weights);
     Ok(FitResult {
+        spec: spec.clone(),
         step_three,
-        placement_index: cell.placement,
+        placement_index: spec.placement_index,
         placement: prepared.placement.name.clone(),
         clusters: g,
         structure,

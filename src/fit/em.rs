@@ -57,7 +57,7 @@ impl Termination {
 pub const NEVER_STOP_EARLY: f64 = -1.0;
 
 /// Settings of the loop.
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct EmSettings {
     /// Iteration cap.
     pub max_iterations: usize,

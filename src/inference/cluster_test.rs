@@ -9,7 +9,7 @@
 //! streams, so the result does not depend on the thread count.
 
 use crate::data::Dataset;
-use crate::fit::{assemble, fit_cell_with, fit_data, FitResult, PreparedPlacement};
+use crate::fit::{assemble, fit_cell, fit_data, FitResult, PreparedPlacement};
 use crate::model::Model;
 use crate::rng::Stream;
 use crate::spec::Study;
@@ -69,7 +69,6 @@ pub fn test(
     which: &[usize],
     replicates: usize,
 ) -> Vec<ClusterCountTest> {
-    let starts = study.search.starts;
     let mut out = Vec::new();
     for &fi in which {
         let f = &fits[fi];
@@ -79,7 +78,7 @@ pub fn test(
         };
         let pp = &prepared[f.placement_index];
         let fit_at = |d: &Dataset, pp: &PreparedPlacement, g: usize, streams: &str| -> FitResult {
-            fit_cell_with(study, d, pp, f.placement_index, g, structure, streams, starts)
+            fit_cell(&f.spec.with(g, streams), d, pp)
         };
         let null_fit = fits
             .iter()

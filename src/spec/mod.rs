@@ -58,7 +58,8 @@ pub const DEFAULT_WARMUP_ITERATIONS: usize = 25;
 pub const DEFAULT_SEED: u64 = 1;
 
 /// The type of a data column.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
 pub enum VariableType {
     /// A real number.
     Continuous,
@@ -140,7 +141,8 @@ pub struct IndicatorBlock {
 }
 
 /// How cluster proportions are modelled when the gating network has no covariates.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
 pub enum Proportions {
     /// Estimated (a multinomial logit with covariates, or free shares without).
     Free,

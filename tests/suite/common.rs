@@ -13,6 +13,21 @@ pub fn families() -> cohortmix::model::family::Families {
     cohortmix::model::family::Families::standard()
 }
 
+/// The fit of a study's placement `placement` at `g` clusters with `structure`, as the
+/// grid makes it.
+pub fn fit_one(
+    study: &cohortmix::spec::Study,
+    data: &cohortmix::data::Dataset,
+    prepared: &cohortmix::fit::PreparedPlacement,
+    placement: usize,
+    g: usize,
+    structure: cohortmix::model::family::CovarianceStructure,
+) -> cohortmix::fit::FitResult {
+    let identity = cohortmix::fit::DataIdentity::of(data);
+    let spec = cohortmix::fit::fit_spec(study, &identity, placement, g, structure);
+    cohortmix::fit::fit_cell(&spec, data, prepared)
+}
+
 /// A path under the crate root.
 pub fn root(rel: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join(rel)

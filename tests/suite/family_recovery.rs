@@ -52,7 +52,7 @@ fn fit_truth(
     .unwrap();
     let data = data::load(&study).unwrap();
     let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
-    let result = fit::fit_cell(&study, &data, &prepared[0], 0, g, CovarianceStructure::UNCONSTRAINED);
+    let result = super::common::fit_one(&study, &data, &prepared[0], 0, g, CovarianceStructure::UNCONSTRAINED);
     let best = result
         .best
         .as_ref()

@@ -297,7 +297,7 @@ gating = ["age", "smoker"]
 #[test]
 #[ignore = "slow coverage simulation (about a minute); CI runs it"]
 fn gating_intervals_cover_the_truth_95_percent_of_the_time() {
-    use cohortmix::{fit, inference};
+    use cohortmix::inference;
     use rayon::prelude::*;
     let truth_values = [("age", 0.04), ("smoker", 0.7)];
     let replicates = 500;
@@ -308,7 +308,7 @@ fn gating_intervals_cover_the_truth_95_percent_of_the_time() {
                 .replace("{rows}", "800")
                 .replace("{seed}", &(1000 + r).to_string());
             let (_dir, study, data, prepared) = simulated(&text, COVERAGE_STUDY);
-            let result = fit::fit_cell(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
+            let result = super::common::fit_one(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
             let best = result.best.as_ref()?;
             let u = inference::uncertainty(
                 &best.run.model,
@@ -360,10 +360,10 @@ fn gating_intervals_cover_the_truth_95_percent_of_the_time() {
 /// one thread and on two.
 #[test]
 fn sandwich_and_bootstrap_agree_with_the_observed_information() {
-    use cohortmix::{fit, inference};
+    use cohortmix::inference;
     let text = COVERAGE_TRUTH.replace("{rows}", "2000").replace("{seed}", "31");
     let (_dir, study, data, prepared) = simulated(&text, COVERAGE_STUDY);
-    let result = fit::fit_cell(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
+    let result = super::common::fit_one(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
     let best = result.best.as_ref().unwrap();
     let run = |method, replicates| {
         let mut s = inference::settings_for(&study);
@@ -480,7 +480,6 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
 /// own standard errors), as Vermunt (2010) and Bakk, Tekle & Vermunt (2013) found.
 #[test]
 fn three_step_corrections_undo_the_attenuation_of_classify_analyze() {
-    use cohortmix::fit;
     use cohortmix::fit::three_step;
     use cohortmix::spec::Method;
     let text = COVERAGE_TRUTH
@@ -496,7 +495,7 @@ fn three_step_corrections_undo_the_attenuation_of_classify_analyze() {
         .step_three
         .as_ref()
         .expect("a three-step placement keeps its covariates");
-    let result = fit::fit_cell(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
+    let result = super::common::fit_one(&study, &data, &prepared[0], 0, 2, CovarianceStructure::UNCONSTRAINED);
     let best = result.best.as_ref().unwrap();
     let ml = result.step_three.as_ref().unwrap().as_ref().unwrap();
     let bch = three_step::estimate(Method::ThreeStepBch, &best.run.tau, 2, &data.weights, design).unwrap();

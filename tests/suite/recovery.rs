@@ -92,7 +92,7 @@ fn mixture_of_experts_parameters_are_recovered() {
     let study = spec::parse(&spec_path, STUDY, &super::common::families().infos()).unwrap();
     let data = data::load(&study).unwrap();
     let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
-    let result = fit::fit_cell(
+    let result = super::common::fit_one(
         &study,
         &data,
         &prepared[0],

@@ -70,7 +70,7 @@ gating = ["age"]
 fn fit(study: &spec::Study) -> FitResult {
     let data = data::load(study).unwrap();
     let prepared = fit::prepare(study, &data, &super::common::families()).unwrap();
-    fit::fit_cell(study, &data, &prepared[0], 0, 4, CovarianceStructure::UNCONSTRAINED)
+    super::common::fit_one(study, &data, &prepared[0], 0, 4, CovarianceStructure::UNCONSTRAINED)
 }
 
 #[test]
@@ -138,7 +138,15 @@ fn finalists_follow_the_single_run_path_and_are_the_best_after_the_warm_up() {
     let key = |s: &spec::Study| {
         let data = data::load(s).unwrap();
         let prepared = fit::prepare(s, &data, &super::common::families()).unwrap();
-        fit::cache::fit_key(s, &data, &prepared[0], 4, CovarianceStructure::UNCONSTRAINED)
+        let _ = &prepared;
+        fit::fit_spec(
+            s,
+            &fit::DataIdentity::of(&data),
+            0,
+            4,
+            CovarianceStructure::UNCONSTRAINED,
+        )
+        .key()
     };
     let all_named = study(dir.path(), "warmup_iterations = 8\nfinish_best = 10");
     assert_eq!(key(&every), key(&all_named));
