@@ -27,8 +27,10 @@ pub mod fit;
 pub mod inference;
 pub mod model;
 pub mod numerics;
-pub mod report;
+pub mod pipeline;
+pub mod render;
 pub mod rng;
+pub mod runfolder;
 pub mod simulate;
 pub mod spec;
 

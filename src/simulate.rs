@@ -34,12 +34,10 @@
 //! ```
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
-use crate::report::csv_field;
 use crate::rng::Stream;
 use nalgebra::DMatrix;
 use serde::Deserialize;
 use std::collections::BTreeMap;
-use std::fmt::Write as _;
 use std::ops::Range;
 use std::path::{Path, PathBuf};
 use toml::Spanned;
@@ -689,17 +687,14 @@ pub struct Simulated {
 /// Draw the data. Covariate values used by the model are the rounded values written.
 pub fn generate(truth: &Truth) -> Simulated {
     let mut rng = Stream::new(truth.seed, "simulate");
-    let mut csv = String::new();
-    let mut header = vec![csv_field(&truth.id)];
-    header.extend(truth.covariates.iter().map(|c| csv_field(&c.name)));
-    header.extend(truth.indicators.iter().map(|c| csv_field(c)));
-    header.extend(truth.items.iter().map(|(c, _)| csv_field(c)));
-    header.extend(truth.counts.iter().map(|c| csv_field(c)));
-    if let Some(t) = &truth.truth_column {
-        header.push(csv_field(t));
-    }
-    csv.push_str(&header.join(","));
-    csv.push('\n');
+    let mut out = csv::WriterBuilder::new().flexible(true).from_writer(Vec::new());
+    let mut header = vec![truth.id.clone()];
+    header.extend(truth.covariates.iter().map(|c| c.name.clone()));
+    header.extend(truth.indicators.iter().cloned());
+    header.extend(truth.items.iter().map(|(c, _)| c.clone()));
+    header.extend(truth.counts.iter().cloned());
+    header.extend(truth.truth_column.iter().cloned());
+    out.write_record(&header).expect("writing to memory does not fail");
     let d = truth.indicators.len();
     let chol: Vec<DMatrix<f64>> = truth
         .clusters
@@ -715,59 +710,67 @@ pub fn generate(truth: &Truth) -> Simulated {
     let mut classes = Vec::with_capacity(truth.rows);
     let width = truth.rows.to_string().len();
     for i in 0..truth.rows {
-        // Draw covariates; remember each term's value for the linear predictors.
-        let mut term_values: BTreeMap<String, f64> = BTreeMap::new();
-        let mut cells = Vec::with_capacity(truth.covariates.len());
-        for c in &truth.covariates {
-            let (text, values) = draw_covariate(c, &mut rng);
-            term_values.extend(values);
-            let missing = c.missing > 0.0 && rng.uniform() < c.missing;
-            cells.push(if missing { String::new() } else { text });
+        let (k, row) = draw_row(truth, &chol, &mut rng);
+        classes.push(k);
+        let mut record = vec![format!("{:0width$}", i + 1)];
+        record.extend(row);
+        if truth.truth_column.is_some() {
+            record.push((k + 1).to_string());
         }
-        let eta: Vec<f64> = truth
-            .clusters
-            .iter()
-            .enumerate()
-            .map(|(k, cl)| if k == 0 { 0.0 } else { linear(&cl.gating, &term_values) })
-            .collect();
+        out.write_record(&record).expect("writing to memory does not fail");
+    }
+    let csv = String::from_utf8(out.into_inner().expect("a flushed buffer")).expect("the data are text");
+    Simulated { csv, clusters: classes }
+}
+
+/// One row: its true cluster, and its covariates' and indicators' cells.
+fn draw_row(truth: &Truth, chol: &[DMatrix<f64>], rng: &mut Stream) -> (usize, Vec<String>) {
+    let d = truth.indicators.len();
+    // Draw covariates; remember each term's value for the linear predictors.
+    let mut term_values: BTreeMap<String, f64> = BTreeMap::new();
+    let mut row = Vec::with_capacity(truth.covariates.len() + d);
+    for c in &truth.covariates {
+        let (text, values) = draw_covariate(c, rng);
+        term_values.extend(values);
+        let missing = c.missing > 0.0 && rng.uniform() < c.missing;
+        row.push(if missing { String::new() } else { text });
+    }
+    let eta: Vec<f64> = truth
+        .clusters
+        .iter()
+        .enumerate()
+        .map(|(k, cl)| if k == 0 { 0.0 } else { linear(&cl.gating, &term_values) })
+        .collect();
+    let m = eta.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let probs: Vec<f64> = eta.iter().map(|e| (e - m).exp()).collect();
+    let k = rng.weighted_index(&probs);
+    let cl = &truth.clusters[k];
+    let e: Vec<f64> = (0..d).map(|_| rng.normal()).collect();
+    for j in 0..d {
+        let noise: f64 = (0..=j).map(|c| chol[k][(j, c)] * e[c]).sum();
+        let y = cl.mean[j] + linear(&cl.effects[j], &term_values) + noise;
+        row.push(format!("{:.*}", truth.decimals, y));
+    }
+    for (j, (_, levels)) in truth.items.iter().enumerate() {
+        let mut eta = vec![0.0];
+        for (base, effects) in cl.item_logits[j].iter().zip(&cl.item_effects[j]) {
+            eta.push(base + linear(effects, &term_values));
+        }
         let m = eta.iter().copied().fold(f64::NEG_INFINITY, f64::max);
         let probs: Vec<f64> = eta.iter().map(|e| (e - m).exp()).collect();
-        let k = rng.weighted_index(&probs);
-        classes.push(k);
-        let cl = &truth.clusters[k];
-        let e: Vec<f64> = (0..d).map(|_| rng.normal()).collect();
-        let mut row = vec![format!("{:0width$}", i + 1)];
-        row.extend(cells);
-        for j in 0..d {
-            let noise: f64 = (0..=j).map(|c| chol[k][(j, c)] * e[c]).sum();
-            let y = cl.mean[j] + linear(&cl.effects[j], &term_values) + noise;
-            row.push(format!("{:.*}", truth.decimals, y));
-        }
-        for (j, (_, levels)) in truth.items.iter().enumerate() {
-            let mut eta = vec![0.0];
-            for (base, effects) in cl.item_logits[j].iter().zip(&cl.item_effects[j]) {
-                eta.push(base + linear(effects, &term_values));
-            }
-            let m = eta.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-            let probs: Vec<f64> = eta.iter().map(|e| (e - m).exp()).collect();
-            let level = rng.weighted_index(&probs);
-            let missing = truth.missing_items > 0.0 && rng.uniform() < truth.missing_items;
-            row.push(if missing { String::new() } else { levels[level].clone() });
-        }
-        for c in 0..truth.counts.len() {
-            let exposure = truth
-                .exposure
-                .as_ref()
-                .map_or(1.0, |e| term_values.get(e).copied().unwrap_or(1.0));
-            let mean = (cl.log_rate[c] + linear(&cl.count_effects[c], &term_values)).exp() * exposure;
-            row.push(rng.poisson(mean).to_string());
-        }
-        if truth.truth_column.is_some() {
-            row.push((k + 1).to_string());
-        }
-        let _ = writeln!(csv, "{}", row.join(","));
+        let level = rng.weighted_index(&probs);
+        let missing = truth.missing_items > 0.0 && rng.uniform() < truth.missing_items;
+        row.push(if missing { String::new() } else { levels[level].clone() });
     }
-    Simulated { csv, clusters: classes }
+    for c in 0..truth.counts.len() {
+        let exposure = truth
+            .exposure
+            .as_ref()
+            .map_or(1.0, |e| term_values.get(e).copied().unwrap_or(1.0));
+        let mean = (cl.log_rate[c] + linear(&cl.count_effects[c], &term_values)).exp() * exposure;
+        row.push(rng.poisson(mean).to_string());
+    }
+    (k, row)
 }
 
 fn linear(coefs: &BTreeMap<String, f64>, values: &BTreeMap<String, f64>) -> f64 {

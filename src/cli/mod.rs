@@ -2,12 +2,13 @@
 //!
 //! Exit status: 0 success, 2 bad spec, data or usage, 1 any other failure.
 
-use crate::data::Dataset;
 use crate::error::{Diagnostic, Error, Result};
-use crate::fit::{self, FitResult, PreparedPlacement};
+use crate::fit::{self, FitResult};
 use crate::model::family::Families;
-use crate::report::{self, Manifest, RunFiles};
-use crate::spec::{self, Study};
+use crate::pipeline::{self, Cache, Loaded, Mode, Observer, Stage};
+use crate::render;
+use crate::runfolder::{Manifest, RunFiles};
+use crate::spec::Study;
 use clap::{Parser, Subcommand};
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -136,25 +137,20 @@ pub fn run(cli: Cli) -> Result<()> {
     }
     match cli.command {
         Command::Check { spec } => check(&spec),
-        Command::Fit { spec, out, fresh } => fit_command(&spec, out.as_deref(), false, fresh),
-        Command::Compare { spec, out, fresh } => fit_command(&spec, out.as_deref(), true, fresh),
+        Command::Fit { spec, out, fresh } => fit_command(&spec, out.as_deref(), Mode::Fit, fresh),
+        Command::Compare { spec, out, fresh } => fit_command(&spec, out.as_deref(), Mode::Compare, fresh),
         Command::Simulate { spec, out } => simulate_command(&spec, out.as_deref()),
         Command::Predict { run, data, out } => predict_command(&run, &data, out.as_deref()),
     }
 }
 
 /// Read spec and data, build designs, and check there are enough rows for every fit.
-pub fn load_study(spec_path: &Path) -> Result<(Study, Dataset, Vec<PreparedPlacement>)> {
-    let families = Families::standard();
-    let study = spec::load(spec_path, &families.infos())?;
-    let data = crate::data::load(&study)?;
-    let prepared = fit::prepare(&study, &data, &families)?;
-    fit::check_rows(&study, &data, &prepared)?;
-    Ok((study, data, prepared))
+pub fn load_study(spec_path: &Path) -> Result<Loaded> {
+    pipeline::load(spec_path, &Families::standard())
 }
 
 fn check(spec_path: &Path) -> Result<()> {
-    let (study, data, prepared) = load_study(spec_path)?;
+    let Loaded { study, data, prepared } = load_study(spec_path)?;
     let mut out = std::io::stdout().lock();
     let _ = writeln!(out, "spec {} is valid: {}", study.spec_path.display(), study.title);
     let _ = writeln!(
@@ -248,154 +244,81 @@ pub fn run_folder(study: &Study, out: Option<&Path>) -> PathBuf {
     PathBuf::from("runs").join(stem)
 }
 
-fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fresh: bool) -> Result<()> {
+/// Prints a run's progress to standard error.
+struct Progress;
+
+impl Observer for Progress {
+    fn fitted(&mut self, done: usize, total: usize, fit: &FitResult, reused: bool) {
+        let from = if reused { " (from the cache)" } else { "" };
+        eprintln!("[{done}/{total}] {}{from}", render::console::progress_line(fit));
+    }
+
+    fn stage(&mut self, stage: Stage) {
+        match stage {
+            Stage::Fitted(usage) => {
+                for why in &usage.refused {
+                    eprintln!("warning: a cached fit was refused and refitted: {why}");
+                }
+                if let Some(why) = usage.not_stored.first() {
+                    eprintln!(
+                        "warning: {} fit(s) could not be cached ({why}); the run goes on, a rerun refits them",
+                        usage.not_stored.len()
+                    );
+                }
+                eprintln!(
+                    "{} of {} fits reused from the cache, {} fitted",
+                    usage.reused,
+                    usage.reused + usage.fitted,
+                    usage.fitted
+                );
+            }
+            Stage::StandardErrors { method, fits } => {
+                eprintln!(
+                    "standard errors ({}) of the {fits} chosen fit{}",
+                    method.word(),
+                    plural(fits)
+                );
+            }
+            Stage::Screen => eprintln!("direct-effect screen of the chosen fits"),
+            Stage::ClusterCountTest { replicates } => {
+                eprintln!("bootstrap test of each chosen cluster count ({replicates} replicates)");
+            }
+        }
+    }
+}
+
+fn fit_command(spec_path: &Path, out: Option<&Path>, mode: Mode, fresh: bool) -> Result<()> {
     let t0 = Instant::now();
-    let (study, data, prepared) = load_study(spec_path)?;
-    let folder = run_folder(&study, out);
+    let loaded = load_study(spec_path)?;
+    let folder = run_folder(&loaded.study, out);
     let seconds_reading = t0.elapsed().as_secs_f64();
     eprintln!(
         "{}: {} rows used ({} excluded for missing values)",
-        study.title,
-        data.n(),
-        data.rows_excluded
+        loaded.study.title,
+        loaded.data.n(),
+        loaded.data.rows_excluded
     );
-    let t1 = Instant::now();
     // Fits are cached beside the outputs; with --fresh they are refitted (and re-stored).
-    let (fits, usage) = fit::fit_grid_cached(
-        &study,
-        &data,
-        &prepared,
-        Some(&folder),
-        !fresh,
-        |done, total, r, reused| {
-            let from = if reused { " (from the cache)" } else { "" };
-            eprintln!("[{done}/{total}] {}{from}", progress_line(r));
-        },
-    );
-    if fits.iter().all(|f| f.best.is_none()) {
-        let first = fits.first().map(|f| f.termination());
-        return Err(Error::run(
-            Diagnostic::new(format!(
-                "no fit gave a usable model: every start of all {} fits failed (first: {})",
-                fits.len(),
-                first.as_ref().and_then(|t| t.reason()).unwrap_or("no reason recorded")
-            ))
-            .help("the previous run's files were left as they were")
-            .help("look at the data for outliers or duplicated rows, fit fewer clusters, or set [search] covariance_prior = true or a variance_floor"),
-        ));
-    }
-    for why in &usage.refused {
-        eprintln!("warning: a cached fit was refused and refitted: {why}");
-    }
-    if let Some(why) = usage.not_stored.first() {
-        eprintln!(
-            "warning: {} fit(s) could not be cached ({why}); the run goes on, a rerun refits them",
-            usage.not_stored.len()
-        );
-    }
-    eprintln!(
-        "{} of {} fits reused from the cache, {} fitted",
-        usage.reused,
-        fits.len(),
-        usage.fitted
-    );
-    let seconds_fitting = t1.elapsed().as_secs_f64();
-    let t2 = Instant::now();
-    // The fits the comparison shows, and those with the lowest BIC (memberships.csv).
-    let shown: Vec<usize> = crate::compare::chosen_fits(&fits, prepared.len(), study.compare.clusters)
-        .into_iter()
-        .flatten()
-        .collect();
-    let mut compared: Vec<usize> = crate::compare::chosen_fits(&fits, prepared.len(), None)
-        .into_iter()
-        .flatten()
-        .chain(shown.iter().copied())
-        .collect();
-    compared.sort_unstable();
-    compared.dedup();
-    eprintln!(
-        "standard errors ({}) of the {} chosen fit{}",
-        study.inference.method.word(),
-        compared.len(),
-        plural(compared.len())
-    );
-    let uncertainty = crate::inference::for_fits(&study, &data, &prepared, &fits, &compared);
-    let screen = if with_comparison && study.inference.direct_effect_screen {
-        eprintln!("direct-effect screen of the chosen fits");
-        crate::inference::screen::screen(&study, &data, &prepared, &fits, &shown)
-    } else {
-        Vec::new()
+    let cache = Cache {
+        folder: Some(&folder),
+        read: !fresh,
     };
-    let cluster_tests = if with_comparison && study.inference.cluster_count_replicates > 0 {
-        eprintln!(
-            "bootstrap test of each chosen cluster count ({} replicates)",
-            study.inference.cluster_count_replicates
-        );
-        crate::inference::cluster_test::test(
-            &study,
-            &data,
-            &prepared,
-            &fits,
-            &shown,
-            study.inference.cluster_count_replicates,
-        )
-    } else {
-        Vec::new()
-    };
-    let seconds_inference = t2.elapsed().as_secs_f64();
-    let mut results = report::results(&study, &data, &prepared, &fits, &uncertainty);
-    let mut pages = Vec::new();
-    if with_comparison {
-        let inference = crate::compare::InferenceInput {
-            per: &study.inference.per,
-            by_fit: &uncertainty,
-            screen: &screen,
-            cluster_tests: &cluster_tests,
-        };
-        let comparison = crate::compare::compare(&data, &prepared, &fits, &study.compare, inference);
-        pages.push(("summary.md", report::document::markdown(&results, &comparison)));
-        pages.push(("report.html", report::document::html(&results, &comparison)));
-        results.comparison = Some(comparison);
-    }
-    let json = serde_json::to_string_pretty(&results)
-        .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode results: {e}"))))?;
+    let run = pipeline::run(&loaded, mode, cache, &mut Progress)?;
     let manifest = Manifest {
         version: env!("CARGO_PKG_VERSION"),
-        spec_sha256: crate::numerics::sha256_hex(study.spec_text.as_bytes()),
-        data_sha256: data.sha256.clone(),
-        spec_file: study.spec_path.display().to_string(),
-        data_file: study.data_path.display().to_string(),
+        spec_sha256: crate::numerics::sha256_hex(loaded.study.spec_text.as_bytes()),
+        data_sha256: loaded.data.sha256.clone(),
+        spec_file: loaded.study.spec_path.display().to_string(),
+        data_file: loaded.study.data_path.display().to_string(),
         threads: rayon::current_num_threads(),
-        fits: fits.len(),
+        fits: run.fits.len(),
         seconds_reading,
-        seconds_fitting,
-        seconds_inference,
+        seconds_fitting: run.seconds_fitting,
+        seconds_inference: run.seconds_inference,
     };
-    let manifest = serde_json::to_string_pretty(&manifest)
-        .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode manifest: {e}"))))?;
-    let mut files = RunFiles::default();
-    files.add("results.json", json + "\n");
-    files.add("models.csv", report::models_csv(&results));
-    files.add_written("memberships.csv", |out| {
-        report::write_memberships_csv(out, &data, &fits, &results.chosen)
-    });
-    files.add("manifest.json", manifest + "\n");
-    let stored = crate::fit::saved::save(&study, &data, &prepared, &fits);
-    let stored = serde_json::to_string_pretty(&stored)
-        .map_err(|e| Error::run(Diagnostic::new(format!("cannot encode the fitted models: {e}"))))?;
-    files.add(crate::fit::saved::FILE_NAME, stored + "\n");
-    for (name, text) in &pages {
-        files.add(name, text.as_bytes());
-    }
-    files.commit(&folder)?;
-    print_table(&results);
-    if let Some(c) = &results.comparison {
-        println!("What changes between placements:");
-        for sentence in &c.sentences {
-            println!("  - {}", sentence.text);
-        }
-    }
-    let names = if with_comparison {
+    crate::runfolder::write(&folder, &loaded, &run, &manifest)?;
+    print!("{}", render::console::summary(&run.results));
+    let names = if mode == Mode::Compare {
         "report.html, summary.md, results.json, models.csv, memberships.csv, fitted-models.json, manifest.json"
     } else {
         "results.json, models.csv, memberships.csv, fitted-models.json, manifest.json"
@@ -408,66 +331,6 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, with_comparison: bool, fres
     Ok(())
 }
 
-fn progress_line(r: &FitResult) -> String {
-    let t = r.termination();
-    let finished = r.finished_starts();
-    match r.loglik() {
-        Some(l) => format!(
-            "'{}', {} cluster{}: loglik {:.3}, {} of {} {}starts reached the best, {}",
-            r.placement,
-            r.clusters,
-            plural(r.clusters),
-            l,
-            r.best.as_ref().map_or(0, |b| b.reaching),
-            finished,
-            if finished < r.starts.len() { "finished " } else { "" },
-            t.word()
-        ),
-        None => format!(
-            "'{}', {} clusters: no usable start ({})",
-            r.placement,
-            r.clusters,
-            t.reason().unwrap_or("")
-        ),
-    }
-}
-
-fn print_table(results: &report::Results) {
-    let several = results.study.covariance_structures.len() > 1;
-    let structure_header = if several {
-        format!(" {:<52}", "covariance")
-    } else {
-        String::new()
-    };
-    println!("BIC = -2 loglik + parameters x ln(rows); smaller is better");
-    println!(
-        "{:<36} {:>3}{structure_header} {:>14} {:>6} {:>14} {:>9}  status",
-        "placement", "G", "loglik", "params", "BIC", "best/all"
-    );
-    for f in &results.fits {
-        let chosen = results
-            .chosen
-            .iter()
-            .any(|c| c.placement == f.placement && c.clusters == f.clusters && c.covariance == f.covariance);
-        let structure = if several {
-            format!(" {:<52}", f.covariance)
-        } else {
-            String::new()
-        };
-        println!(
-            "{:<36} {:>3}{structure} {:>14} {:>6} {:>14} {:>9}  {}{}",
-            report::svg::truncate(&f.placement, 36),
-            f.clusters,
-            f.loglik.map_or("-".into(), |v| format!("{v:.3}")),
-            f.parameters,
-            f.bic.map_or("-".into(), |v| format!("{v:.3}")),
-            format!("{}/{}", f.starts.reaching_best, f.starts.total),
-            f.status,
-            if chosen { "  <- lowest BIC" } else { "" }
-        );
-    }
-}
-
 fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<()> {
     use crate::fit::saved;
     let families = Families::standard();
@@ -478,7 +341,7 @@ fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<(
         .iter()
         .map(|p| (p.placement.as_str(), p.clusters, p.tau.as_slice()))
         .collect();
-    let text = report::memberships_table(&data.ids, &sets);
+    let text = render::csv::memberships_table(&data.ids, &sets);
     let dest = out.map_or_else(
         || {
             let name = data_path

@@ -1,5 +1,5 @@
 //! The placement comparison: criteria, clusters aligned across placements, profiles,
-//! gating effects, cross-tables and sentences.
+//! gating effects, cross-tables and findings.
 //!
 //! For each placement the chosen fit (lowest BIC, or lowest BIC at the cluster count the
 //! spec fixes) is aligned to the reference placement's chosen fit by maximising agreement:
@@ -9,12 +9,16 @@
 //!
 //! Everything here is plain data for the report; no numbers are computed in the report.
 
+mod align;
 pub mod assign;
+pub mod findings;
+mod parts;
 
-use crate::data::{Dataset, Design};
-use crate::fit::{FitResult, PreparedPlacement};
-use crate::model::family::ParamBlock;
-use crate::model::gating::Gating;
+pub use findings::{Finding, RowRef, Source, TableId};
+
+use crate::data::Dataset;
+use crate::fit::{chosen_fits, FitResult, PreparedPlacement};
+use crate::inference::FitInference;
 use crate::spec::CompareSettings;
 use serde::Serialize;
 
@@ -95,7 +99,7 @@ pub struct Profile {
 }
 
 /// A gating effect as a relative risk ratio against aligned cluster 1.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct GatingEffect {
     /// Placement.
     pub placement: String,
@@ -165,9 +169,9 @@ pub struct GatingTest {
 pub struct InferenceInput<'a> {
     /// Units per which covariate effects are shown.
     pub per: &'a std::collections::BTreeMap<String, f64>,
-    /// Per fit (indexed as the fits): its standard errors, why they are missing, or None
-    /// when they were not computed.
-    pub by_fit: &'a [Option<std::result::Result<crate::inference::Uncertainty, String>>],
+    /// Per fit (indexed as the fits): its standard errors and effects, or None when they
+    /// were not computed.
+    pub by_fit: &'a [Option<FitInference>],
     /// The direct-effect screen of the compared fits.
     pub screen: &'a [crate::inference::screen::DirectEffectTest],
     /// Bootstrap tests of the compared fits' cluster counts.
@@ -186,6 +190,16 @@ impl InferenceInput<'static> {
             cluster_tests: &[],
         }
     }
+}
+
+/// How a compared fit's standard errors were obtained, or why there are none.
+#[derive(Debug, Clone, PartialEq)]
+pub struct InferenceNote {
+    /// Placement.
+    pub placement: String,
+    /// The method and, for the bootstrap, replicates usable of those drawn; or why there
+    /// are no standard errors.
+    pub outcome: std::result::Result<(crate::spec::ErrorMethod, Option<(usize, usize)>), String>,
 }
 
 /// Most-likely clusters of two placements cross-tabulated (aligned numbers).
@@ -227,17 +241,6 @@ pub struct EffectCurve {
     pub probabilities: Vec<Vec<f64>>,
 }
 
-/// A generated sentence with the table row it comes from.
-#[derive(Debug, Clone, Serialize)]
-pub struct Sentence {
-    /// The sentence.
-    pub text: String,
-    /// Where its numbers are: table and row.
-    pub source: String,
-    /// The numbers it quotes, as printed in that table.
-    pub numbers: Vec<String>,
-}
-
 /// The whole comparison.
 #[derive(Debug, Clone, Serialize)]
 pub struct Comparison {
@@ -270,8 +273,10 @@ pub struct Comparison {
     pub cluster_count_tests: Vec<crate::inference::cluster_test::ClusterCountTest>,
     /// Component covariate effects (mean differences, odds ratios, rate ratios).
     pub component_effects: Vec<ComponentEffect>,
-    /// How standard errors were computed, and per placement why they are missing.
-    pub inference_notes: Vec<String>,
+    /// How standard errors were computed, and per placement why they are missing
+    /// (written with the findings, in words).
+    #[serde(skip)]
+    pub inference_notes: Vec<InferenceNote>,
     /// Cross-tables between each pair of placements.
     pub cross_tables: Vec<CrossTable>,
     /// Posterior certainty (largest posterior per row) histogram per placement: 10 bins on
@@ -279,35 +284,10 @@ pub struct Comparison {
     pub certainty: Vec<(String, Vec<f64>)>,
     /// Effect curves of gating covariates.
     pub effect_curves: Vec<EffectCurve>,
-    /// Generated sentences.
-    pub sentences: Vec<Sentence>,
+    /// What the comparison says, as typed findings (written in words, as `sentences`).
+    #[serde(skip)]
+    pub findings: Vec<Finding>,
 }
-
-/// Format a share as a percentage with one decimal, the way every table prints it.
-pub fn pct(x: f64) -> String {
-    format!("{:.1}%", 100.0 * x)
-}
-
-/// Format an indicator value the way every table prints it.
-pub fn val(x: f64) -> String {
-    format!("{x:.2}")
-}
-
-/// Format a p-value the way every table prints it: three decimals, or "<0.001".
-pub fn p_value(p: f64) -> String {
-    if p < 0.001 {
-        "<0.001".to_string()
-    } else {
-        format!("{p:.3}")
-    }
-}
-
-/// Format a relative risk ratio the way every table prints it.
-pub fn ratio(x: f64) -> String {
-    format!("{x:.3}")
-}
-
-use crate::numerics::most_likely;
 
 fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Vec<Criteria> {
     let mut out = Vec::new();
@@ -329,7 +309,7 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Ve
             let mut sums = vec![0.0; g];
             let mut counts = vec![0usize; g];
             for row in tau.chunks_exact(g) {
-                let k = most_likely(row);
+                let k = crate::numerics::most_likely(row);
                 sums[k] += row[k];
                 counts[k] += 1;
             }
@@ -384,7 +364,12 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Ve
     out
 }
 
-pub use crate::fit::chosen_fits;
+/// Reference first, then the other placements in spec order.
+fn placement_order(n: usize, reference: usize) -> Vec<usize> {
+    let mut order = vec![reference];
+    order.extend((0..n).filter(|p| *p != reference));
+    order
+}
 
 /// The comparison of every placement's chosen fit against the reference placement's.
 pub fn compare(
@@ -397,665 +382,55 @@ pub fn compare(
     let weights = &data.weights;
     let chosen = chosen_fits(fits, prepared.len(), settings.clusters);
     let criteria = criteria(fits, weights, &chosen);
-    let reference_fit = chosen[settings.reference];
-    let mut alignments = Vec::new();
-    let mut next_new = reference_fit.map_or(1, |i| fits[i].clusters + 1);
-    // Reference first, then the others in spec order.
-    let mut order: Vec<usize> = vec![settings.reference];
-    order.extend((0..prepared.len()).filter(|p| *p != settings.reference));
-    let mut labelled: Vec<(usize, usize, Vec<usize>)> = Vec::new(); // (placement, fit index, aligned per fitted cluster)
-    for &p in &order {
-        let Some(fi) = chosen[p] else { continue };
-        let f = &fits[fi];
-        let Some(best) = &f.best else { continue };
-        let g = f.clusters;
-        let (aligned, overlap) = match reference_fit.and_then(|r| fits[r].best.as_ref().map(|b| (r, b))) {
-            Some((r, rb)) if r != fi => {
-                let gr = fits[r].clusters;
-                let mut c = vec![vec![0.0; gr]; g];
-                for ((tr, to), w) in rb
-                    .run
-                    .tau
-                    .chunks_exact(gr)
-                    .zip(best.run.tau.chunks_exact(g))
-                    .zip(weights)
-                {
-                    for (b, cb) in c.iter_mut().enumerate() {
-                        for (a, cell) in cb.iter_mut().enumerate() {
-                            *cell += w * tr[a] * to[b];
-                        }
-                    }
-                }
-                let assignment = assign::max_weight_assignment(&c);
-                let mut aligned = Vec::with_capacity(g);
-                let mut overlap = Vec::with_capacity(g);
-                for (b, a) in assignment.iter().enumerate() {
-                    match a {
-                        Some(a) => {
-                            aligned.push(a + 1);
-                            let total: f64 = c[b].iter().sum();
-                            overlap.push(Some(if total > 0.0 { c[b][*a] / total } else { 0.0 }));
-                        }
-                        None => {
-                            aligned.push(next_new);
-                            next_new += 1;
-                            overlap.push(None);
-                        }
-                    }
-                }
-                (aligned, overlap)
-            }
-            _ => ((1..=g).collect(), vec![Some(1.0); g]),
-        };
-        alignments.push(Alignment {
-            placement: f.placement.clone(),
-            clusters: g,
-            covariance: f.covariance(),
-            aligned: aligned.clone(),
-            overlap,
-        });
-        labelled.push((p, fi, aligned));
-    }
-
-    // Profiles and gating effects, by aligned cluster.
-    let mut profiles = Vec::new();
-    let mut gating_effects = Vec::new();
-    let mut effect_curves = Vec::new();
-    let mut certainty = Vec::new();
-    let mut gating_tests = Vec::new();
-    let mut three_step = Vec::new();
-    let mut component_effects = Vec::new();
-    let mut inference_notes = Vec::new();
-    for (p, fi, aligned) in &labelled {
-        let f = &fits[*fi];
-        let uncertainty = match inference.by_fit.get(*fi).and_then(Option::as_ref) {
-            Some(Ok(u)) => {
-                let detail = match u.replicates {
-                    Some((used, drawn)) => format!(" ({used} of {drawn} replicates usable)"),
-                    None => String::new(),
-                };
-                inference_notes.push(format!(
-                    "'{}': standard errors by {}{detail}.",
-                    f.placement,
-                    u.method.word()
-                ));
-                Some(u)
-            }
-            Some(Err(reason)) => {
-                inference_notes.push(format!("'{}': no standard errors: {reason}.", f.placement));
-                None
-            }
-            None => None,
-        };
-        if let Some(u) = uncertainty {
-            gating_tests.extend(
-                crate::inference::effects::gating_wald_tests(u, prepared[*p].reported_design(f))
-                    .into_iter()
-                    .map(|test| GatingTest {
-                        placement: f.placement.clone(),
-                        test,
-                    }),
-            );
-            component_effects.extend(
-                crate::inference::effects::effects(u, inference.per)
-                    .into_iter()
-                    .filter(|e| !e.block.is_gating())
-                    .map(|effect| ComponentEffect {
-                        placement: f.placement.clone(),
-                        cluster: aligned[effect.cluster - 1],
-                        effect,
-                    }),
-            );
-        }
-        let best = f.best.as_ref().expect("labelled fits have a best start");
-        let g = f.clusters;
-        let shares = crate::fit::cluster_shares(&best.run.tau, weights, g);
-        let mut counts = vec![0usize; g];
-        let mut hist = vec![0.0; 10];
-        for (row, w) in best.run.tau.chunks_exact(g).zip(weights) {
-            let k = most_likely(row);
-            counts[k] += 1;
-            hist[((row[k] * 10.0) as usize).min(9)] += w;
-        }
-        certainty.push((f.placement.clone(), hist));
-        for k in 0..g {
-            let (at_reference, avg) = cluster_profile(data, best, k);
-            profiles.push(Profile {
-                cluster: aligned[k],
-                placement: f.placement.clone(),
-                share: shares[k],
-                count: counts[k],
-                at_reference,
-                population_averaged: avg,
-            });
-        }
-        let gating = f.reported_gating().unwrap_or_else(|| best.run.model.gating.clone());
-        let design = prepared[*p].reported_design(f);
-        if let Some(Ok(st)) = &f.step_three {
-            three_step.extend(three_step_effects(st, design, aligned, &f.placement, inference.per));
-        }
-        gating_effects.extend(effects(
-            &gating,
-            design,
-            aligned,
-            &f.placement,
-            uncertainty,
+    let order = placement_order(prepared.len(), settings.reference);
+    let (alignments, labelled) = align::align(fits, &chosen, &order, settings.reference, weights);
+    let mut parts = parts::Parts::default();
+    for l in &labelled {
+        let by_fit = inference.by_fit.get(l.fit).and_then(Option::as_ref);
+        parts.add(
+            data,
+            &prepared[l.placement],
+            &fits[l.fit],
+            &l.aligned,
+            by_fit,
             inference.per,
-        ));
-        effect_curves.extend(curves(data, &gating, design, aligned, &f.placement));
+        );
     }
-    profiles.sort_by(|a, b| {
+    let rank = |name: &str| {
+        order
+            .iter()
+            .position(|p| prepared[*p].placement.name == name)
+            .unwrap_or(usize::MAX)
+    };
+    parts.profiles.sort_by(|a, b| {
         a.cluster
             .cmp(&b.cluster)
-            .then(placement_rank(&order, prepared, &a.placement).cmp(&placement_rank(&order, prepared, &b.placement)))
+            .then(rank(&a.placement).cmp(&rank(&b.placement)))
     });
-
-    // Cross-tables of most-likely aligned clusters, reference against each other placement
-    // and then every other pair.
-    let mut cross_tables = Vec::new();
-    let maps: Vec<(String, Vec<usize>)> = labelled
-        .iter()
-        .map(|(_, fi, aligned)| {
-            let f = &fits[*fi];
-            let g = f.clusters;
-            let tau = &f.best.as_ref().expect("best").run.tau;
-            (
-                f.placement.clone(),
-                tau.chunks_exact(g).map(|row| aligned[most_likely(row)]).collect(),
-            )
-        })
-        .collect();
-    for i in 0..maps.len() {
-        for j in (i + 1)..maps.len() {
-            let (a, b) = (&maps[i], &maps[j]);
-            let mut rows: Vec<usize> = a.1.clone();
-            rows.sort_unstable();
-            rows.dedup();
-            let mut cols: Vec<usize> = b.1.clone();
-            cols.sort_unstable();
-            cols.dedup();
-            let mut counts = vec![vec![0usize; cols.len()]; rows.len()];
-            for (x, y) in a.1.iter().zip(&b.1) {
-                let r = rows.iter().position(|v| v == x).unwrap_or(0);
-                let c = cols.iter().position(|v| v == y).unwrap_or(0);
-                counts[r][c] += 1;
-            }
-            let ari = assign::adjusted_rand_index(&a.1, &b.1);
-            let agreement = rows
-                .iter()
-                .zip(&counts)
-                .map(|(r, cs)| {
-                    let total: usize = cs.iter().sum();
-                    cols.iter()
-                        .position(|c| c == r)
-                        .map(|j| cs[j] as f64 / total.max(1) as f64)
-                })
-                .collect();
-            cross_tables.push(CrossTable {
-                rows: a.0.clone(),
-                columns: b.0.clone(),
-                row_clusters: rows,
-                column_clusters: cols,
-                counts,
-                adjusted_rand_index: ari,
-                agreement,
-            });
-        }
-    }
-
-    let reference = prepared[settings.reference].placement.name.clone();
-    let columns = prepared[settings.reference].profile_columns();
-    let mut sentences = sentences(
-        &reference,
-        &columns,
-        &criteria,
-        &alignments,
-        &profiles,
-        &gating_effects,
-        &cross_tables,
-    );
-    for t in inference.screen.iter().filter(|t| t.flagged) {
-        let p = t.p_value.map_or_else(String::new, p_value);
-        let text = if t.step_three_covariate {
-            format!(
-                "Warning: under '{}', {} has a direct effect on {} (likelihood-ratio p {p}), which the three-step estimate assumes away; prefer a placement that models it.",
-                t.placement, t.covariate, t.indicator
-            )
-        } else {
-            format!(
-                "Under '{}', {} may act directly on {} (likelihood-ratio p {p}); the clusters' meaning then differs across its values unless the effect is modelled (acts_on).",
-                t.placement, t.covariate, t.indicator
-            )
-        };
-        sentences.push(Sentence {
-            text,
-            source: format!(
-                "direct-effect screen table, row '{}, {}, {}'",
-                t.placement, t.covariate, t.indicator
-            ),
-            numbers: vec![p],
-        });
-    }
-    Comparison {
-        reference,
+    let cross_tables = align::cross_tables(fits, &labelled);
+    let mut c = Comparison {
+        reference: prepared[settings.reference].placement.name.clone(),
         fixed_clusters: settings.clusters,
-        reference_values: "profiles at the reference covariate values: continuous and count covariates at their sample mean, categorical and binary ones at their reference level".into(),
-        indicators: columns,
+        reference_values: REFERENCE_VALUES.into(),
+        indicators: prepared[settings.reference].profile_columns(),
         criteria,
         alignments,
-        profiles,
-        gating_effects,
-        gating_tests,
-        three_step,
+        profiles: parts.profiles,
+        gating_effects: parts.gating_effects,
+        gating_tests: parts.gating_tests,
+        three_step: parts.three_step,
         direct_effects: inference.screen.to_vec(),
         cluster_count_tests: inference.cluster_tests.to_vec(),
-        component_effects,
-        inference_notes,
+        component_effects: parts.component_effects,
+        inference_notes: parts.inference_notes,
         cross_tables,
-        certainty,
-        effect_curves,
-        sentences,
-    }
-}
-
-/// Profile of fitted cluster k: values at the reference covariate values and averaged
-/// over the sample with posterior weights, in [`PreparedPlacement::profile_columns`]
-/// order.
-fn cluster_profile(data: &Dataset, best: &crate::fit::BestFit, k: usize) -> (Vec<f64>, Vec<f64>) {
-    let g = best.run.model.clusters();
-    let blocks = &best.run.model.components.blocks;
-    let profile_at = |row: Option<usize>, out: &mut Vec<f64>| {
-        out.clear();
-        for b in blocks {
-            b.profile(k, row, out);
-        }
+        certainty: parts.certainty,
+        effect_curves: parts.effect_curves,
+        findings: Vec::new(),
     };
-    let mut at_reference = Vec::new();
-    profile_at(None, &mut at_reference);
-    let mut avg = vec![0.0; at_reference.len()];
-    let mut row = Vec::with_capacity(avg.len());
-    let mut total = 0.0;
-    for (i, w) in data.weights.iter().enumerate() {
-        let v = w * best.run.tau[i * g + k];
-        if v == 0.0 {
-            continue;
-        }
-        total += v;
-        profile_at(Some(i), &mut row);
-        for (a, r) in avg.iter_mut().zip(&row) {
-            *a += v * r;
-        }
-    }
-    for a in avg.iter_mut() {
-        *a /= total.max(f64::MIN_POSITIVE);
-    }
-    (at_reference, avg)
+    c.findings = findings::findings(&c);
+    c
 }
 
-/// Effect curves for the first continuous gating covariate, by the levels of the first
-/// categorical one.
-fn curves(data: &Dataset, gating: &Gating, design: &Design, aligned: &[usize], placement: &str) -> Vec<EffectCurve> {
-    use crate::data::Column;
-    let Gating::Logit { g, p, gamma, .. } = gating else {
-        return Vec::new();
-    };
-    let (g, p) = (*g, *p);
-    let x_term = design.terms.iter().position(|t| {
-        t.covariate.as_ref().is_some_and(|c| matches!(data.columns.get(c), Some(Column::Numeric { kind, .. }) if *kind != crate::spec::VariableType::Binary))
-    });
-    let Some(xj) = x_term else { return Vec::new() };
-    let x_name = design.terms[xj].covariate.clone().unwrap_or_default();
-    let Some(Column::Numeric { values, .. }) = data.columns.get(&x_name) else {
-        return Vec::new();
-    };
-    let (lo, hi) = values
-        .iter()
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(*v), b.max(*v)));
-    let xs: Vec<f64> = (0..=40).map(|i| lo + (hi - lo) * i as f64 / 40.0).collect();
-    // Levels of the first categorical gating covariate (reference level = all dummies 0).
-    let by = design.terms.iter().find_map(|t| {
-        let c = t.covariate.as_ref()?;
-        match data.columns.get(c) {
-            Some(Column::Categorical { levels, reference, .. }) => Some((c.clone(), levels.clone(), *reference)),
-            _ => None,
-        }
-    });
-    let settings: Vec<Option<(String, String)>> = match &by {
-        None => vec![None],
-        Some((c, levels, _)) => levels.iter().map(|l| Some((c.clone(), l.clone()))).collect(),
-    };
-    let mut order: Vec<usize> = (0..g).collect();
-    order.sort_by_key(|k| aligned[*k]);
-    let mut out = Vec::new();
-    for level in settings {
-        let mut probs = vec![Vec::with_capacity(xs.len()); g];
-        let mut lp = vec![0.0; g];
-        for x in &xs {
-            let mut w = vec![0.0; p];
-            w[0] = 1.0;
-            let t = &design.terms[xj];
-            w[xj] = (x - t.center) / t.scale;
-            if let Some((c, l)) = &level {
-                if let Some(j) = design.terms.iter().position(|t| t.name == format!("{c}={l}")) {
-                    w[j] = 1.0;
-                }
-            }
-            crate::numerics::log_softmax_row(gamma, p, &w, &mut lp);
-            for (k, pr) in probs.iter_mut().enumerate() {
-                pr.push(lp[k].exp());
-            }
-        }
-        out.push(EffectCurve {
-            placement: placement.to_string(),
-            covariate: x_name.clone(),
-            level,
-            x: xs.clone(),
-            clusters: order.iter().map(|k| aligned[*k]).collect(),
-            probabilities: order.iter().map(|k| probs[*k].clone()).collect(),
-        });
-    }
-    out
-}
-
-fn placement_rank(order: &[usize], prepared: &[PreparedPlacement], name: &str) -> usize {
-    order
-        .iter()
-        .position(|p| prepared[*p].placement.name == name)
-        .unwrap_or(usize::MAX)
-}
-
-/// Gating effects against aligned cluster 1 (or, when the placement has no counterpart of
-/// it, against its own cluster 1), per `per` units on the original scale, with Wald
-/// intervals from the fit's uncertainty when there is one.
-fn effects(
-    gating: &Gating,
-    design: &Design,
-    aligned: &[usize],
-    placement: &str,
-    uncertainty: Option<&crate::inference::Uncertainty>,
-    per: &std::collections::BTreeMap<String, f64>,
-) -> Vec<GatingEffect> {
-    let Gating::Logit { g, p, gamma, .. } = gating else {
-        return Vec::new();
-    };
-    let (g, p) = (*g, *p);
-    // Full coefficient rows on the original scale, fitted cluster 1 = 0.
-    let rows: Vec<Vec<f64>> = (0..g)
-        .map(|k| {
-            if k == 0 {
-                vec![0.0; p]
-            } else {
-                design.to_original_scale(&gamma[(k - 1) * p..k * p])
-            }
-        })
-        .collect();
-    let base = aligned.iter().position(|a| *a == 1).unwrap_or(0);
-    let mut out = Vec::new();
-    let mut order: Vec<usize> = (0..g).filter(|k| *k != base).collect();
-    order.sort_by_key(|k| aligned[*k]);
-    for k in order {
-        for (j, term) in design.terms.iter().enumerate().skip(1) {
-            let units = crate::inference::effects::per_units(&term.name, per);
-            let coef = rows[k][j] - rows[base][j];
-            let interval = uncertainty.map(|u| {
-                let at = |c: usize| {
-                    (c > 0)
-                        .then(|| u.index(ParamBlock::GATING.name, c + 1, None, Some(&term.name)))
-                        .flatten()
-                };
-                let (_, se) = crate::inference::effects::contrast(u, at(k), at(base));
-                crate::inference::effects::Interval::new(coef * units, se * units, true)
-            });
-            out.push(GatingEffect {
-                placement: placement.to_string(),
-                cluster: aligned[k],
-                term: term.name.clone(),
-                per: units,
-                rrr: (coef * units).exp(),
-                interval: interval.map(|i| (i.lower, i.upper)),
-                p_value: interval.map(|i| i.p_value),
-            });
-        }
-    }
-    out
-}
-
-fn three_step_effects(
-    st: &crate::fit::three_step::StepThree,
-    design: &Design,
-    aligned: &[usize],
-    placement: &str,
-    per: &std::collections::BTreeMap<String, f64>,
-) -> Vec<ThreeStepEffect> {
-    use crate::inference::effects::{per_units, Interval};
-    let p = design.p();
-    let mut out = Vec::new();
-    for k in 1..aligned.len() {
-        let block = (k - 1) * p..k * p;
-        let corrected = design.to_original_scale(&st.gamma[block.clone()]);
-        let naive = design.to_original_scale(&st.naive_gamma[block]);
-        for (j, term) in design.terms.iter().enumerate().skip(1) {
-            let units = per_units(&term.name, per);
-            let i = (k - 1) * p + j;
-            // A slope maps to the original scale by 1/scale alone.
-            let se = |cov: &nalgebra::DMatrix<f64>| cov[(i, i)].max(0.0).sqrt() / term.scale * units;
-            out.push(ThreeStepEffect {
-                placement: placement.to_string(),
-                method: match st.method {
-                    crate::spec::Method::ThreeStepMl => "three-step-ml",
-                    _ => "three-step-bch",
-                },
-                misclassified: st.misclassified,
-                cluster: aligned[k],
-                versus: aligned[0],
-                term: term.name.clone(),
-                per: units,
-                corrected: Interval::new(corrected[j] * units, se(&st.covariance), true),
-                classify_analyze: Interval::new(naive[j] * units, se(&st.naive_covariance), true),
-            });
-        }
-    }
-    out
-}
-
-/// "unit of age" or "10 units of age".
-pub fn per_phrase(per: f64, term: &str) -> String {
-    if per == 1.0 {
-        format!("unit of {term}")
-    } else {
-        format!("{per} units of {term}")
-    }
-}
-
-fn sentences(
-    reference: &str,
-    indicators: &[String],
-    criteria: &[Criteria],
-    alignments: &[Alignment],
-    profiles: &[Profile],
-    effects: &[GatingEffect],
-    tables: &[CrossTable],
-) -> Vec<Sentence> {
-    let mut out = Vec::new();
-    // Model choice.
-    for c in criteria.iter().filter(|c| c.chosen) {
-        out.push(Sentence {
-            text: format!(
-                "Under '{}' the comparison uses {} clusters ({}), BIC {:.1}.",
-                c.placement,
-                c.clusters,
-                c.covariance,
-                c.bic.unwrap_or(f64::NAN)
-            ),
-            source: format!("criteria table, placement '{}', {} clusters", c.placement, c.clusters),
-            numbers: vec![format!("{:.1}", c.bic.unwrap_or(f64::NAN))],
-        });
-    }
-    // Largest change of a cluster's share against the reference, per placement.
-    let mut others: Vec<&str> = Vec::new();
-    for p in profiles.iter().filter(|p| p.placement != reference) {
-        if !others.contains(&p.placement.as_str()) {
-            others.push(&p.placement);
-        }
-    }
-    for other in others {
-        let mut best_share: Option<(f64, &Profile, &Profile)> = None;
-        for p in profiles.iter().filter(|p| p.placement == other) {
-            if let Some(r) = profiles
-                .iter()
-                .find(|r| r.placement == reference && r.cluster == p.cluster)
-            {
-                let diff = (p.share - r.share).abs();
-                if best_share.is_none_or(|(d, _, _)| diff > d) {
-                    best_share = Some((diff, r, p));
-                }
-            }
-        }
-        if let Some((_, r, p)) = best_share {
-            let verb = if p.share > r.share { "grows" } else { "shrinks" };
-            out.push(Sentence {
-                text: format!(
-                    "Against '{}', the largest change in size under '{}': cluster {} {verb} from {} of the cohort to {}.",
-                    reference,
-                    p.placement,
-                    p.cluster,
-                    pct(r.share),
-                    pct(p.share)
-                ),
-                source: format!("cluster sizes table, row 'cluster {}'", p.cluster),
-                numbers: vec![pct(r.share), pct(p.share)],
-            });
-        }
-    }
-    // Largest change of a profile value (population-averaged), in units of that
-    // indicator's spread across the reference clusters' values.
-    // Columns differ in units (a mean in % predicted, a probability, a rate), so each
-    // shift is measured against that column's range over the reference clusters.
-    let spread: Vec<f64> = (0..indicators.len())
-        .map(|j| {
-            let values = profiles
-                .iter()
-                .filter(|r| r.placement == reference)
-                .map(|r| r.population_averaged[j]);
-            let (lo, hi) = values.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(v), b.max(v)));
-            if hi > lo {
-                hi - lo
-            } else {
-                1.0
-            }
-        })
-        .collect();
-    let mut best_profile: Option<(f64, &Profile, &Profile, usize)> = None;
-    for p in profiles.iter().filter(|p| p.placement != reference) {
-        if let Some(r) = profiles
-            .iter()
-            .find(|r| r.placement == reference && r.cluster == p.cluster)
-        {
-            for j in 0..indicators.len() {
-                let diff = (p.population_averaged[j] - r.population_averaged[j]).abs() / spread[j];
-                if best_profile.is_none_or(|(d, _, _, _)| diff > d) {
-                    best_profile = Some((diff, r, p, j));
-                }
-            }
-        }
-    }
-    if let Some((_, r, p, j)) = best_profile {
-        out.push(Sentence {
-            text: format!(
-                "The largest shift in a profile: cluster {}'s average {} is {} under '{}' and {} under '{}'.",
-                p.cluster,
-                indicators[j],
-                val(r.population_averaged[j]),
-                reference,
-                val(p.population_averaged[j]),
-                p.placement
-            ),
-            source: format!(
-                "profiles table, row 'cluster {}', column '{}'",
-                p.cluster, indicators[j]
-            ),
-            numbers: vec![val(r.population_averaged[j]), val(p.population_averaged[j])],
-        });
-    }
-    // Gating effects: a change of direction between placements, counted only when both
-    // effects are at least 5% per unit away from no effect (the clearest one is reported);
-    // else the strongest effect.
-    let strength = |a: &GatingEffect, b: &GatingEffect| a.rrr.ln().abs().min(b.rrr.ln().abs());
-    let mut flip: Option<(&GatingEffect, &GatingEffect)> = None;
-    for a in effects {
-        for b in effects {
-            if a.placement < b.placement
-                && a.cluster == b.cluster
-                && a.term == b.term
-                && (a.rrr - 1.0) * (b.rrr - 1.0) < 0.0
-                && strength(a, b) >= 1.05f64.ln()
-                && flip.is_none_or(|(x, y)| strength(a, b) > strength(x, y))
-            {
-                flip = Some((a, b));
-            }
-        }
-    }
-    if let Some((a, b)) = flip {
-        out.push(Sentence {
-            text: format!(
-                "The effect of {} on belonging to cluster {} rather than cluster 1 changes direction: relative risk ratio {} per {} under '{}', {} under '{}'.",
-                a.term, a.cluster, ratio(a.rrr), per_phrase(a.per, &a.term), a.placement, ratio(b.rrr), b.placement
-            ),
-            source: format!("gating effects table, rows 'cluster {}, {}'", a.cluster, a.term),
-            numbers: vec![ratio(a.rrr), ratio(b.rrr)],
-        });
-    } else if let Some(e) = effects
-        .iter()
-        .max_by(|a, b| a.rrr.ln().abs().total_cmp(&b.rrr.ln().abs()))
-    {
-        let word = if e.rrr > 1.0 { "raises" } else { "lowers" };
-        out.push(Sentence {
-            text: format!(
-                "Under '{}', each {} {word} the relative risk of cluster {} against cluster 1 by a factor of {}.",
-                e.placement,
-                per_phrase(e.per, &e.term),
-                e.cluster,
-                ratio(e.rrr)
-            ),
-            source: format!(
-                "gating effects table, row 'cluster {}, {}', placement '{}'",
-                e.cluster, e.term, e.placement
-            ),
-            numbers: vec![ratio(e.rrr)],
-        });
-    }
-    // Clusters with no counterpart.
-    for a in alignments {
-        for (k, o) in a.overlap.iter().enumerate() {
-            if o.is_none() {
-                let share = profiles
-                    .iter()
-                    .find(|p| p.placement == a.placement && p.cluster == a.aligned[k])
-                    .map_or(0.0, |p| p.share);
-                out.push(Sentence {
-                    text: format!(
-                        "'{}' has a cluster with no counterpart under '{}': cluster {} ({}).",
-                        a.placement,
-                        reference,
-                        a.aligned[k],
-                        pct(share)
-                    ),
-                    source: format!("cluster sizes table, row 'cluster {}'", a.aligned[k]),
-                    numbers: vec![pct(share)],
-                });
-            }
-        }
-    }
-    // Agreement with the reference.
-    for t in tables.iter().filter(|t| t.rows == reference) {
-        out.push(Sentence {
-            text: format!(
-                "Most-likely clusters under '{}' and '{}' agree with an adjusted Rand index of {:.3}.",
-                t.rows, t.columns, t.adjusted_rand_index
-            ),
-            source: format!("cross-table '{}' × '{}'", t.rows, t.columns),
-            numbers: vec![format!("{:.3}", t.adjusted_rand_index)],
-        });
-    }
-    out
-}
+/// How profiles are set at reference covariate values.
+const REFERENCE_VALUES: &str = "profiles at the reference covariate values: continuous and count covariates at their sample mean, categorical and binary ones at their reference level";

@@ -339,7 +339,7 @@ pub fn for_fits(
     prepared: &[PreparedPlacement],
     fits: &[crate::fit::FitResult],
     which: &[usize],
-) -> Vec<Option<Result<Uncertainty, String>>> {
+) -> Vec<Option<FitInference>> {
     let settings = settings_for(study);
     fits.iter()
         .enumerate()
@@ -348,13 +348,50 @@ pub fn for_fits(
             let label = format!("{}|{}|{}", f.placement, f.clusters, f.covariance());
             let pp = &prepared[f.placement_index];
             let measurement = uncertainty(&best.run.model, &best.run.tau, data, pp, &settings, &label);
-            Some(match &f.step_three {
+            let uncertainty = match &f.step_three {
                 None => measurement,
                 Some(Err(reason)) => Err(format!("step 3 failed: {reason}")),
                 Some(Ok(st)) => measurement.map(|m| with_step_three(m, f, st, pp)),
-            })
+            };
+            Some(FitInference::new(
+                uncertainty,
+                &study.inference.per,
+                pp.reported_design(f),
+            ))
         })
         .collect()
+}
+
+/// A fit's standard errors and what is computed from them once: every covariate effect
+/// with its interval, and the joint Wald test of each gating covariate.
+#[derive(Debug, Clone)]
+pub struct FitInference {
+    /// The covariance of the reported parameters, or why there is none.
+    pub uncertainty: Result<Uncertainty, String>,
+    /// Every covariate effect (empty without standard errors).
+    pub effects: Vec<effects::Effect>,
+    /// Joint Wald tests of the gating covariates (empty without standard errors).
+    pub gating_tests: Vec<effects::WaldTest>,
+}
+
+impl FitInference {
+    /// The effects and tests of `uncertainty`, per `per` units, gating terms from
+    /// `design` (the design of the reported gating network).
+    pub fn new(
+        uncertainty: Result<Uncertainty, String>,
+        per: &std::collections::BTreeMap<String, f64>,
+        design: &crate::data::Design,
+    ) -> FitInference {
+        let (effects, gating_tests) = match &uncertainty {
+            Ok(u) => (effects::effects(u, per), effects::gating_wald_tests(u, design)),
+            Err(_) => (Vec::new(), Vec::new()),
+        };
+        FitInference {
+            uncertainty,
+            effects,
+            gating_tests,
+        }
+    }
 }
 
 /// A three-step fit's uncertainty: its step-3 gating coefficients (with step 3's own

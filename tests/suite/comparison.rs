@@ -3,7 +3,8 @@
 
 use super::common::root;
 use cohortmix::compare::{self, assign};
-use cohortmix::{data, fit, report, simulate, spec};
+use cohortmix::render::words;
+use cohortmix::{data, fit, render, simulate, spec};
 use serde_json::Value;
 
 fn fixture() -> Value {
@@ -105,13 +106,13 @@ fn run(s: &spec::Study) -> (data::Dataset, Vec<fit::PreparedPlacement>, Vec<fit:
 
 /// The aligned tables (not the criteria and alignment tables, which list fitted labels).
 fn aligned_tables_text(c: &compare::Comparison) -> String {
-    report::tables::tables(c)
+    render::tables::tables(c)
         .iter()
-        .filter(|t| t.name != "criteria table" && t.name != "alignment table")
+        .filter(|t| t.id != compare::TableId::Criteria && t.id != compare::TableId::Alignment)
         .map(|t| {
             format!(
                 "{}\n{}\n{}\n{}",
-                t.name,
+                t.name(),
                 t.note,
                 t.header.join("|"),
                 t.rows.iter().map(|r| r.join("|")).collect::<Vec<_>>().join("\n")
@@ -171,16 +172,17 @@ fn an_extra_cluster_is_shown_without_a_counterpart() {
         matched.iter().all(|o| *o > 0.95),
         "well-separated clusters overlap almost fully: {matched:?}"
     );
+    let sentences: Vec<words::Sentence> = c.findings.iter().map(words::sentence).collect();
     assert!(
-        c.sentences
+        sentences
             .iter()
             .any(|s| s.text.contains("no counterpart") && s.text.contains("cluster 3")),
         "{:?}",
-        c.sentences
+        sentences
     );
-    let alignment = report::tables::tables(&c)
+    let alignment = render::tables::tables(&c)
         .into_iter()
-        .find(|t| t.name == "alignment table")
+        .find(|t| t.id == compare::TableId::Alignment)
         .unwrap();
     assert!(alignment.rows.iter().any(|r| r[3] == "no counterpart: new"));
     // Per-cluster agreement: the unmerged reference cluster keeps (nearly) all its rows;
@@ -203,13 +205,15 @@ fn sentences_cite_numbers_found_in_the_tables() {
     let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [2, 3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [2, 3]\n[[placement]]\nname = \"shifted\"\ncomponents = [\"age\"]\nclusters = [2, 3]\n");
     let (d, p, fits) = run(&s);
     let c = compare::compare(&d, &p, &fits, &s.compare, compare::InferenceInput::none());
-    assert!(c.sentences.len() >= 4, "{:?}", c.sentences);
-    let tables = report::tables::tables(&c);
-    for sentence in &c.sentences {
+    assert!(c.findings.len() >= 4, "{:?}", c.findings);
+    let tables = render::tables::tables(&c);
+    for finding in &c.findings {
+        let sentence = words::sentence(finding);
         let table = tables
             .iter()
-            .find(|t| sentence.source.starts_with(&t.name))
+            .find(|t| t.id == finding.source().table)
             .unwrap_or_else(|| panic!("no table for '{}'", sentence.source));
+        assert!(sentence.source.starts_with(&table.name()), "{}", sentence.source);
         let text = format!(
             "{}\n{}",
             table.note,
@@ -226,7 +230,7 @@ fn sentences_cite_numbers_found_in_the_tables() {
                 text.contains(n.as_str()),
                 "{n} from '{}' is not in the {}",
                 sentence.text,
-                table.name
+                table.name()
             );
         }
     }

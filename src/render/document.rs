@@ -2,8 +2,9 @@
 
 use super::svg::{self, cluster_colour, esc, Series};
 use super::tables::{tables, Table};
-use super::Results;
-use crate::compare::Comparison;
+use super::words;
+use crate::compare::{Comparison, TableId};
+use crate::pipeline::output::Results;
 use std::fmt::Write as _;
 
 /// The cautions every report carries.
@@ -61,7 +62,7 @@ pub fn checklist(results: &Results, c: &Comparison) -> Vec<(String, String)> {
                 "'{}': {} clusters, smallest {}",
                 r.placement,
                 r.clusters,
-                r.smallest_share.map_or("–".into(), crate::compare::pct)
+                r.smallest_share.map_or("–".into(), super::pct)
             )
         })
         .collect();
@@ -92,7 +93,7 @@ pub fn checklist(results: &Results, c: &Comparison) -> Vec<(String, String)> {
         ("Model choice".into(), match c.fixed_clusters { Some(g) => format!("cluster count fixed at {g} by the spec; lowest BIC among structures"), None => "lowest BIC per placement; AIC, ICL and BIC weights reported".into() }),
         ("Chosen models and cluster sizes".into(), sizes.join("; ")),
         ("Classification quality (relative entropy)".into(), entropy.join("; ")),
-        ("Standard errors and intervals".into(), if c.inference_notes.is_empty() { "none computed".into() } else { format!("95% Wald intervals. {}", c.inference_notes.join(" ")) }),
+        ("Standard errors and intervals".into(), if c.inference_notes.is_empty() { "none computed".into() } else { format!("95% Wald intervals. {}", notes(c).join(" ")) }),
         ("Software".into(), format!("cohortmix {}", results.program.version)),
     ]
 }
@@ -131,12 +132,12 @@ pub fn markdown(results: &Results, c: &Comparison) -> String {
     s.push_str("> **Cautions.** ");
     s.push_str(&CAUTIONS.join(" "));
     s.push_str("\n\n## What changes between placements\n\n");
-    for sentence in &c.sentences {
+    for sentence in c.findings.iter().map(words::sentence) {
         let _ = writeln!(s, "- {} *(see {})*", sentence.text, sentence.source);
     }
     s.push('\n');
     for t in tables(c) {
-        let _ = writeln!(s, "## {}\n", capitalise(&t.name));
+        let _ = writeln!(s, "## {}\n", capitalise(&t.name()));
         md_table(&mut s, &t);
     }
     s.push_str("## Reporting checklist\n\n");
@@ -214,7 +215,7 @@ pub fn html(results: &Results, c: &Comparison) -> String {
     }
     s.push_str("</ul></div>");
     s.push_str("<h2>What changes between placements</h2><ul>");
-    for sentence in &c.sentences {
+    for sentence in c.findings.iter().map(words::sentence) {
         let _ = write!(
             s,
             "<li>{} <span class=\"note\">(see {})</span></li>",
@@ -225,21 +226,21 @@ pub fn html(results: &Results, c: &Comparison) -> String {
     s.push_str("</ul>");
 
     let all = tables(c);
-    let find = |name: &str| all.iter().find(|t| t.name == name);
+    let find = |id: TableId| all.iter().find(|t| t.id == id);
 
     s.push_str("<h2>Model choice</h2>");
     s.push_str(&criteria_chart(c));
-    if let Some(t) = find("criteria table") {
+    if let Some(t) = find(TableId::Criteria) {
         html_table(&mut s, t);
     }
 
-    if let Some(t) = find("cluster count test table") {
+    if let Some(t) = find(TableId::ClusterCountTests) {
         s.push_str("<h3>Bootstrap test of the cluster count</h3>");
         html_table(&mut s, t);
     }
 
     s.push_str("<h2>Clusters aligned across placements</h2>");
-    if let Some(t) = find("alignment table") {
+    if let Some(t) = find(TableId::Alignment) {
         html_table(&mut s, t);
     }
     s.push_str("<h2>Cluster sizes</h2>");
@@ -261,17 +262,17 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         "Cluster shares per placement (segment label: aligned cluster · share)",
         &rows,
     ));
-    if let Some(t) = find("cluster sizes table") {
+    if let Some(t) = find(TableId::ClusterSizes) {
         html_table(&mut s, t);
     }
 
     s.push_str("<h2>Profiles</h2>");
     s.push_str(&profile_grid(c));
-    if let Some(t) = find("profiles table") {
+    if let Some(t) = find(TableId::Profiles) {
         html_table(&mut s, t);
     }
 
-    if let Some(t) = find("gating effects table") {
+    if let Some(t) = find(TableId::GatingEffects) {
         s.push_str("<h2>Gating effects</h2>");
         html_table(&mut s, t);
         s.push_str("<div class=\"curves\">");
@@ -306,28 +307,24 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         }
     }
 
-    if let Some(t) = find("gating tests table") {
+    if let Some(t) = find(TableId::GatingTests) {
         s.push_str("<h3>Joint tests of gating covariates</h3>");
         html_table(&mut s, t);
     }
-    if let Some(t) = find("three-step table") {
+    if let Some(t) = find(TableId::ThreeStep) {
         s.push_str("<h3>Three-step estimates</h3>");
         html_table(&mut s, t);
     }
-    if let Some(t) = find("direct-effect screen table") {
+    if let Some(t) = find(TableId::DirectEffects) {
         s.push_str("<h2>Direct effects left out</h2>");
         html_table(&mut s, t);
     }
-    if let Some(t) = find("component effects table") {
+    if let Some(t) = find(TableId::ComponentEffects) {
         s.push_str("<h2>Covariate effects inside clusters</h2>");
         html_table(&mut s, t);
     }
     if !c.inference_notes.is_empty() {
-        let _ = write!(
-            s,
-            "<p class=\"note\">Standard errors: {}</p>",
-            esc(&c.inference_notes.join(" "))
-        );
+        let _ = write!(s, "<p class=\"note\">Standard errors: {}</p>", esc(&notes(c).join(" ")));
     }
 
     s.push_str("<h2>Agreement between placements</h2>");
@@ -341,8 +338,8 @@ pub fn html(results: &Results, c: &Comparison) -> String {
             &t.counts,
         ));
     }
-    for t in all.iter().filter(|t| t.name.starts_with("cross-table")) {
-        let _ = write!(s, "<h3>{}</h3>", esc(&t.name));
+    for t in all.iter().filter(|t| matches!(t.id, TableId::CrossTable { .. })) {
+        let _ = write!(s, "<h3>{}</h3>", esc(&t.name()));
         html_table(&mut s, t);
     }
 
@@ -445,7 +442,7 @@ fn profile_grid(c: &Comparison) -> String {
 }
 
 /// The two-stage search in words, when it is on (empty otherwise).
-fn two_stages(s: &super::StudySummary) -> String {
+fn two_stages(s: &crate::pipeline::output::StudySummary) -> String {
     if crate::spec::two_stages(s.starts, s.finish_best, s.warmup_iterations, s.max_iterations) {
         format!(
             "; two-stage search: after {} iterations only the {} best starts still running went on and the others were set aside, so \"starts at best\" counts the starts that finished",
@@ -454,4 +451,9 @@ fn two_stages(s: &super::StudySummary) -> String {
     } else {
         String::new()
     }
+}
+
+/// The notes on standard errors, in words.
+fn notes(c: &Comparison) -> Vec<String> {
+    c.inference_notes.iter().map(words::inference_note).collect()
 }

@@ -1,25 +1,15 @@
-//! The run folder: `results.json`, `models.csv`, `memberships.csv`, `manifest.json`.
-//!
-//! The JSON output is a wire format with its own serialise-only types ([`Results`] and
-//! what it holds), documented in `docs/results-schema.md`; change them only with a new
-//! `schema_version`. All files of a run are first written under temporary names in the run
-//! folder and renamed into place at the end, so a failed or interrupted run never leaves a
-//! half-written file and never touches the previous run's files before it has succeeded.
+//! The output types of a run: `results.json` as serialise-only values (a documented wire
+//! format, `docs/results-schema.md`; change them only with a new [`SCHEMA_VERSION`]),
+//! built once from the fits, their inference and the comparison. The renderers read
+//! only these.
 
-pub mod document;
-pub mod svg;
-pub mod tables;
-
-use crate::data::{Dataset, RowIds};
-use crate::error::{Diagnostic, Error, Result};
+use crate::data::Dataset;
 use crate::fit::{FitResult, PreparedPlacement};
-use crate::inference::Uncertainty;
+use crate::inference::FitInference;
 use crate::model::family::Parameter;
 use crate::model::gating::Gating;
 use crate::spec::Study;
 use serde::Serialize;
-use std::fmt::Write as _;
-use std::path::{Path, PathBuf};
 
 /// Version of the `results.json` layout.
 pub const SCHEMA_VERSION: u32 = 3;
@@ -39,8 +29,9 @@ pub struct Results {
     pub fits: Vec<FitRecord>,
     /// The lowest-BIC fit of each placement.
     pub chosen: Vec<Chosen>,
-    /// The placement comparison (written by `compare`, absent after `fit`).
-    #[serde(skip_serializing_if = "Option::is_none")]
+    /// The placement comparison (after `compare`; absent after `fit`). Written by the
+    /// JSON renderer, with its findings in words.
+    #[serde(skip)]
     pub comparison: Option<crate::compare::Comparison>,
 }
 
@@ -268,13 +259,13 @@ fn status_word(t: &crate::fit::em::Termination) -> String {
     t.word().replace(' ', "_")
 }
 
-/// Assemble `results.json`.
+/// Assemble `results.json` (without the comparison).
 pub fn results(
     study: &Study,
     data: &Dataset,
     prepared: &[PreparedPlacement],
     fits: &[FitResult],
-    uncertainty: &[Option<std::result::Result<Uncertainty, String>>],
+    inference: &[Option<FitInference>],
 ) -> Results {
     let records = fits
         .iter()
@@ -290,7 +281,8 @@ pub fn results(
                 None => (Vec::new(), "none"),
             };
             let usable = f.starts.iter().filter(|s| s.termination.usable()).count();
-            let u = uncertainty.get(fi).and_then(Option::as_ref);
+            let by_fit = inference.get(fi).and_then(Option::as_ref);
+            let u = by_fit.map(|i| &i.uncertainty);
             let ok = u.and_then(|r| r.as_ref().ok());
             let parameters_named = parameters_named
                 .into_iter()
@@ -314,12 +306,8 @@ pub fn results(
                     unavailable: Some(reason.clone()),
                 },
             });
-            let effects = ok.map_or_else(Vec::new, |u| {
-                crate::inference::effects::effects(u, &study.inference.per)
-            });
-            let gating_tests = ok.map_or_else(Vec::new, |u| {
-                crate::inference::effects::gating_wald_tests(u, pp.reported_design(f))
-            });
+            let effects = by_fit.map_or_else(Vec::new, |i| i.effects.clone());
+            let gating_tests = by_fit.map_or_else(Vec::new, |i| i.gating_tests.clone());
             FitRecord {
                 placement: f.placement.clone(),
                 gating_covariates: pp.placement.gating.iter().map(|c| c.name.clone()).collect(),
@@ -442,201 +430,4 @@ pub fn chosen(fits: &[FitResult]) -> Vec<Chosen> {
         }
     }
     out
-}
-
-/// Quote a CSV field when it needs it.
-pub fn csv_field(s: &str) -> String {
-    if s.contains([',', '"', '\n', '\r']) {
-        format!("\"{}\"", s.replace('"', "\"\""))
-    } else {
-        s.to_string()
-    }
-}
-
-/// Format a float for tables: shortest text that reads back to the same value.
-fn num(x: Option<f64>) -> String {
-    x.map_or_else(String::new, |v| format!("{v}"))
-}
-
-/// `models.csv`: one row per fit.
-pub fn models_csv(results: &Results) -> String {
-    let mut s = String::from(
-        "placement,clusters,covariance,status,loglik,parameters,rows,bic,aic,iterations,starts,usable_starts,starts_reaching_best,smallest_share,reason\n",
-    );
-    for f in &results.fits {
-        let smallest = f
-            .shares
-            .as_ref()
-            .map(|v| v.iter().copied().fold(f64::INFINITY, f64::min));
-        let _ = writeln!(
-            s,
-            "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
-            csv_field(&f.placement),
-            f.clusters,
-            csv_field(&f.covariance),
-            f.status,
-            num(f.loglik),
-            f.parameters,
-            f.rows,
-            num(f.bic),
-            num(f.aic),
-            f.iterations.map_or_else(String::new, |i| i.to_string()),
-            f.starts.total,
-            f.starts.usable,
-            f.starts.reaching_best,
-            num(smallest),
-            csv_field(f.reason.as_deref().unwrap_or("")),
-        );
-    }
-    s
-}
-
-/// `memberships.csv`: per row, for the chosen fit of each placement: most likely cluster
-/// and posterior probabilities (long format: one block of rows per placement), written to
-/// `out` as it is made: at ten million rows the text would take more memory than the fit.
-pub fn write_memberships_csv(
-    out: &mut dyn std::io::Write,
-    data: &Dataset,
-    fits: &[FitResult],
-    chosen: &[Chosen],
-) -> std::io::Result<()> {
-    let sets: Vec<(&str, usize, &[f64])> = chosen
-        .iter()
-        .filter_map(|c| {
-            let f = fits
-                .iter()
-                .find(|f| f.placement == c.placement && f.clusters == c.clusters && f.covariance() == c.covariance)?;
-            let best = f.best.as_ref()?;
-            Some((f.placement.as_str(), f.clusters, best.run.tau.as_slice()))
-        })
-        .collect();
-    write_memberships(out, &data.ids, &sets)
-}
-
-/// Memberships as CSV: per (placement, clusters, posteriors n×G) and row, the row id,
-/// its most likely cluster and every posterior (6 decimals); `memberships.csv` and
-/// `predict` write this layout.
-pub fn memberships_table(ids: &RowIds, sets: &[(&str, usize, &[f64])]) -> String {
-    let mut out = Vec::new();
-    write_memberships(&mut out, ids, sets).expect("writing to memory does not fail");
-    String::from_utf8(out).expect("the table is text")
-}
-
-/// [`memberships_table`] written to `out` row by row.
-pub fn write_memberships(
-    out: &mut dyn std::io::Write,
-    ids: &RowIds,
-    sets: &[(&str, usize, &[f64])],
-) -> std::io::Result<()> {
-    let kmax = sets.iter().map(|s| s.1).max().unwrap_or(1);
-    let mut s = String::from("placement,clusters,id,most_likely");
-    for k in 1..=kmax {
-        let _ = write!(s, ",posterior_{k}");
-    }
-    s.push('\n');
-    for (placement, g, tau) in sets {
-        let name = csv_field(placement);
-        for (id, row) in ids.iter().zip(tau.chunks_exact(*g)) {
-            let most = crate::numerics::most_likely(row);
-            let _ = write!(s, "{name},{g},{},{}", csv_field(id), most + 1);
-            for t in row {
-                let _ = write!(s, ",{t:.6}");
-            }
-            s.push_str(&",".repeat(kmax - g));
-            s.push('\n');
-            if s.len() >= 1 << 16 {
-                out.write_all(s.as_bytes())?;
-                s.clear();
-            }
-        }
-    }
-    out.write_all(s.as_bytes())
-}
-
-/// `manifest.json`: what produced the run, with timings (the only file that varies).
-#[derive(Debug, Serialize)]
-pub struct Manifest {
-    /// Program version.
-    pub version: &'static str,
-    /// SHA-256 of the spec text.
-    pub spec_sha256: String,
-    /// SHA-256 of the data file.
-    pub data_sha256: String,
-    /// Spec file.
-    pub spec_file: String,
-    /// Data file.
-    pub data_file: String,
-    /// Worker threads.
-    pub threads: usize,
-    /// Fits in the grid.
-    pub fits: usize,
-    /// Wall time of reading and checking, seconds.
-    pub seconds_reading: f64,
-    /// Wall time of fitting, seconds.
-    pub seconds_fitting: f64,
-    /// Wall time of the standard errors, seconds.
-    pub seconds_inference: f64,
-}
-
-/// A function that writes a file's contents as it makes them.
-type Writer<'a> = Box<dyn FnOnce(&mut dyn std::io::Write) -> std::io::Result<()> + 'a>;
-
-/// What a run file holds: its bytes, or the function that writes them.
-enum Contents<'a> {
-    Bytes(Vec<u8>),
-    Written(Writer<'a>),
-}
-
-/// Files to write into a run folder, written together.
-#[derive(Default)]
-pub struct RunFiles<'a> {
-    files: Vec<(String, Contents<'a>)>,
-}
-
-impl<'a> RunFiles<'a> {
-    /// Add a file by name.
-    pub fn add(&mut self, name: &str, bytes: impl Into<Vec<u8>>) {
-        self.files.push((name.to_string(), Contents::Bytes(bytes.into())));
-    }
-
-    /// Add a file whose contents `write` makes as it writes them (large files).
-    pub fn add_written(&mut self, name: &str, write: impl FnOnce(&mut dyn std::io::Write) -> std::io::Result<()> + 'a) {
-        self.files.push((name.to_string(), Contents::Written(Box::new(write))));
-    }
-
-    /// Write every file to a temporary name in `dir`, then rename them all into place.
-    /// If any write fails, the temporaries are removed and the old files are untouched.
-    pub fn commit(self, dir: &Path) -> Result<Vec<PathBuf>> {
-        let fail = |what: String, e: std::io::Error| {
-            Error::run(Diagnostic::new(format!("{what}: {e}")).help("the previous run's files were left as they were"))
-        };
-        std::fs::create_dir_all(dir).map_err(|e| fail(format!("cannot create the run folder {}", dir.display()), e))?;
-        let mut temps: Vec<(PathBuf, PathBuf)> = Vec::new();
-        for (name, contents) in self.files {
-            let tmp = dir.join(format!(".{name}.partial"));
-            let written = match contents {
-                Contents::Bytes(bytes) => std::fs::write(&tmp, bytes),
-                Contents::Written(write) => std::fs::File::create(&tmp).and_then(|f| {
-                    let mut out = std::io::BufWriter::new(f);
-                    write(&mut out)?;
-                    std::io::Write::flush(&mut out)
-                }),
-            };
-            if let Err(e) = written {
-                for (t, _) in &temps {
-                    let _ = std::fs::remove_file(t);
-                }
-                let _ = std::fs::remove_file(&tmp);
-                return Err(fail(format!("cannot write {}", tmp.display()), e));
-            }
-            temps.push((tmp, dir.join(name)));
-        }
-        let mut done = Vec::new();
-        for (tmp, dest) in temps {
-            std::fs::rename(&tmp, &dest)
-                .map_err(|e| fail(format!("cannot rename {} to {}", tmp.display(), dest.display()), e))?;
-            done.push(dest);
-        }
-        Ok(done)
-    }
 }

@@ -1,18 +1,27 @@
 //! The comparison's tables, built once and rendered to Markdown and HTML.
 
-use crate::compare::{p_value, pct, ratio, val, Comparison};
+use super::words::table_name;
+use super::{p_value, pct, ratio, val};
+use crate::compare::{Comparison, TableId};
 
-/// A table: caption, header and rows of text cells.
+/// A table: which one, its note, header and rows of text cells.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Table {
-    /// Name the sentences refer to (e.g. "cluster sizes table").
-    pub name: String,
+    /// Which table (the sentences refer to it by its name, [`Table::name`]).
+    pub id: TableId,
     /// One-line explanation shown above it.
     pub note: String,
     /// Column headers.
     pub header: Vec<String>,
     /// Rows.
     pub rows: Vec<Vec<String>>,
+}
+
+impl Table {
+    /// The name the sentences refer to it by ("cluster sizes table").
+    pub fn name(&self) -> String {
+        table_name(&self.id)
+    }
 }
 
 fn opt(x: Option<f64>, digits: usize) -> String {
@@ -45,7 +54,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
 
     let one_structure = c.criteria.iter().all(|r| r.covariance == c.criteria[0].covariance);
     let mut criteria = Table {
-        name: "criteria table".into(),
+        id: TableId::Criteria,
         note: "BIC, AIC and ICL: smaller is better. BIC weight: approximate posterior probability of the model among its placement's fits. ✓ marks the fit each placement is compared with.".into(),
         header: ["placement", "clusters", "covariance", "loglik", "parameters", "BIC", "AIC", "ICL", "BIC weight", "relative entropy", "mean top posterior by cluster", "smallest cluster", "starts at best", "status", "compared"]
             .iter()
@@ -106,7 +115,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         }
     }
     out.push(Table {
-        name: "alignment table".into(),
+        id: TableId::Alignment,
         note: format!("Each placement's clusters matched to those of '{}' by the largest total posterior agreement (Hungarian method); overlap = share of the fitted cluster's weight in its matched reference cluster.", c.reference),
         header: vec!["placement".into(), "fitted cluster".into(), "aligned as".into(), "overlap".into()],
         rows,
@@ -118,7 +127,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
     let mut header = vec!["cluster".to_string()];
     header.extend(placements.iter().cloned());
     out.push(Table {
-        name: "cluster sizes table".into(),
+        id: TableId::ClusterSizes,
         note: "Share of the (weighted) cohort by posterior, and rows whose most likely cluster it is.".into(),
         header,
         rows: clusters
@@ -144,7 +153,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         header.push(format!("{i} averaged"));
     }
     out.push(Table {
-        name: "profiles table".into(),
+        id: TableId::Profiles,
         note: format!(
             "Indicator means per aligned cluster: {}; and averaged over the sample, weighted by each row's posterior.",
             c.reference_values
@@ -179,7 +188,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         ];
         header.extend(with_gating.iter().map(|p| p.to_string()));
         out.push(Table {
-            name: "gating effects table".into(),
+            id: TableId::GatingEffects,
             note: "Relative risk ratios exp(γ) with 95% Wald confidence intervals: how the stated units of the term multiply the risk of belonging to the cluster rather than aligned cluster 1 (1 = no effect). For a level of a categorical covariate: that level against the reference level.".into(),
             header,
             rows: keys
@@ -198,7 +207,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
 
     if !c.gating_tests.is_empty() {
         out.push(Table {
-            name: "gating tests table".into(),
+            id: TableId::GatingTests,
             note: "Joint Wald test that a covariate does not change membership: all its terms across every cluster contrast at once (the same whichever cluster is the reference).".into(),
             header: ["placement", "covariate", "Wald χ²", "df", "p-value"].iter().map(|s| s.to_string()).collect(),
             rows: c
@@ -219,7 +228,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
 
     if !c.three_step.is_empty() {
         out.push(Table {
-            name: "three-step table".into(),
+            id: TableId::ThreeStep,
             note: "Gating effects estimated after the clusters were fitted without covariates: each row assigned to its most likely cluster, then a multinomial logit corrected for the assignment errors (BCH: Bolck, Croon & Hagenaars 2004; ML: Vermunt 2010). Classify-analyze, the same logit without the correction, is biased toward no effect and shown only as a contrast. Relative risk ratios with 95% intervals; the corrected intervals treat the assignment errors as known.".into(),
             header: ["placement", "method", "misclassified", "cluster", "term", "per", "corrected", "classify-analyze (biased)"].iter().map(|s| s.to_string()).collect(),
             rows: c
@@ -244,7 +253,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
 
     if !c.cluster_count_tests.is_empty() {
         out.push(Table {
-            name: "cluster count test table".into(),
+            id: TableId::ClusterCountTests,
             note: "Bootstrap likelihood-ratio test of the compared cluster count G against G − 1 (McLachlan 1987): data drawn from the fitted G − 1 model are fitted with both counts; p = (1 + replicates reaching the observed statistic) / (1 + usable replicates). A small p supports G over G − 1.".into(),
             header: ["placement", "G vs G − 1", "LR", "replicates usable", "reached", "p-value"].iter().map(|s| s.to_string()).collect(),
             rows: c
@@ -266,7 +275,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
 
     if !c.direct_effects.is_empty() {
         out.push(Table {
-            name: "direct-effect screen table".into(),
+            id: TableId::DirectEffects,
             note: "Likelihood-ratio tests of adding each covariate as a direct effect on an indicator inside every cluster, to the model with the placement's gating covariates (for a three-step placement, the one-step model its estimate assumes). Continuous indicators are tested together. ⚑ marks p below 0.05 divided by the number of tests in the placement (Bonferroni); for a three-step placement's own covariates it means the three-step assumption fails.".into(),
             header: ["placement", "covariate", "indicator", "LR χ²", "df", "p-value", "flag"].iter().map(|s| s.to_string()).collect(),
             rows: c
@@ -304,7 +313,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 )
         });
         out.push(Table {
-            name: "component effects table".into(),
+            id: TableId::ComponentEffects,
             note: "Covariate effects inside each aligned cluster, with 95% Wald confidence intervals: mean differences of continuous indicators, odds ratios of an item level against the item's first level, rate ratios of counts; per the stated units of the term.".into(),
             header: ["cluster", "indicator", "term", "per", "placement", "measure", "estimate (95% CI)", "p-value"].iter().map(|s| s.to_string()).collect(),
             rows: rows
@@ -331,7 +340,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         header.extend(t.column_clusters.iter().map(|k| format!("cluster {k}")));
         header.push("same cluster".to_string());
         out.push(Table {
-            name: format!("cross-table '{}' × '{}'", t.rows, t.columns),
+            id: TableId::CrossTable {
+                rows: t.rows.clone(),
+                columns: t.columns.clone(),
+            },
             note: format!("Rows by most likely cluster; same cluster = share of the row cluster's rows in the same aligned cluster in the column placement; adjusted Rand index {:.3} (Hubert & Arabie 1985; 1 = the same partition).", t.adjusted_rand_index),
             header,
             rows: t

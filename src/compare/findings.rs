@@ -1,0 +1,396 @@
+//! Findings: what the comparison says in words, as typed values. Each finding carries
+//! its numbers and the table row they come from ([`Source`], by a typed table id); the
+//! renderer phrases it. Which findings are made (the largest change of a size, the
+//! clearest change of direction) is decided here.
+
+use super::{Alignment, Comparison, CrossTable, GatingEffect, Profile};
+use crate::inference::screen::DirectEffectTest;
+
+/// The tables of a comparison, as findings refer to them.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum TableId {
+    /// Criteria of every fit.
+    Criteria,
+    /// How each placement's clusters map onto the aligned ones.
+    Alignment,
+    /// Aligned cluster sizes per placement.
+    ClusterSizes,
+    /// Profiles per aligned cluster and placement.
+    Profiles,
+    /// Gating relative risk ratios.
+    GatingEffects,
+    /// Joint Wald tests of gating covariates.
+    GatingTests,
+    /// Three-step estimates.
+    ThreeStep,
+    /// Bootstrap tests of the cluster count.
+    ClusterCountTests,
+    /// The direct-effect screen.
+    DirectEffects,
+    /// Component covariate effects.
+    ComponentEffects,
+    /// The cross-table of two placements' most likely clusters.
+    CrossTable {
+        /// Row placement.
+        rows: String,
+        /// Column placement.
+        columns: String,
+    },
+}
+
+/// Where a finding's numbers are.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Source {
+    /// The table.
+    pub table: TableId,
+    /// The row (and column) within it.
+    pub row: RowRef,
+}
+
+/// A row of a table.
+#[derive(Debug, Clone, PartialEq)]
+pub enum RowRef {
+    /// The whole table.
+    Whole,
+    /// The criteria row of a placement's fit at a cluster count.
+    Fit {
+        /// Placement.
+        placement: String,
+        /// Cluster count.
+        clusters: usize,
+    },
+    /// An aligned cluster's row.
+    Cluster(usize),
+    /// An aligned cluster's row, one indicator's column.
+    ClusterColumn {
+        /// Aligned cluster.
+        cluster: usize,
+        /// Profile column.
+        column: String,
+    },
+    /// The rows of one cluster and gating term (one per placement), or the row of one
+    /// placement.
+    ClusterTerm {
+        /// Aligned cluster.
+        cluster: usize,
+        /// Gating term.
+        term: String,
+        /// Placement, when the row is one placement's.
+        placement: Option<String>,
+    },
+    /// A direct-effect test's row.
+    Test {
+        /// Placement.
+        placement: String,
+        /// Covariate.
+        covariate: String,
+        /// Indicator or group.
+        indicator: String,
+    },
+}
+
+/// One thing the comparison says.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Finding {
+    /// The fit a placement is compared with.
+    ModelChoice {
+        /// Placement.
+        placement: String,
+        /// Clusters.
+        clusters: usize,
+        /// Covariance structure in words.
+        covariance: String,
+        /// Its BIC.
+        bic: f64,
+    },
+    /// The largest change of an aligned cluster's share against the reference.
+    ShareChange {
+        /// Reference placement.
+        reference: String,
+        /// Placement.
+        placement: String,
+        /// Aligned cluster.
+        cluster: usize,
+        /// Share under the reference.
+        from: f64,
+        /// Share under the placement.
+        to: f64,
+    },
+    /// The largest shift of a population-averaged profile value, measured in that
+    /// column's range over the reference clusters.
+    ProfileShift {
+        /// Aligned cluster.
+        cluster: usize,
+        /// Profile column.
+        column: String,
+        /// Reference placement.
+        reference: String,
+        /// Value under the reference.
+        from: f64,
+        /// Placement.
+        placement: String,
+        /// Value under the placement.
+        to: f64,
+    },
+    /// A gating effect whose direction differs between two placements.
+    DirectionChange {
+        /// The effect under the first placement.
+        first: GatingEffect,
+        /// The effect under the second.
+        second: GatingEffect,
+    },
+    /// The strongest gating effect (when no direction changes).
+    StrongestEffect(GatingEffect),
+    /// A placement's cluster with no counterpart in the reference.
+    NoCounterpart {
+        /// Placement.
+        placement: String,
+        /// Reference placement.
+        reference: String,
+        /// Its aligned number.
+        cluster: usize,
+        /// Its share.
+        share: f64,
+    },
+    /// Agreement of a placement's most likely clusters with the reference's.
+    Agreement {
+        /// Reference placement.
+        rows: String,
+        /// Placement.
+        columns: String,
+        /// Adjusted Rand index.
+        ari: f64,
+    },
+    /// A direct effect the screen flags.
+    DirectEffect(DirectEffectTest),
+}
+
+impl Finding {
+    /// Where its numbers are.
+    pub fn source(&self) -> Source {
+        let (table, row) = match self {
+            Finding::ModelChoice {
+                placement, clusters, ..
+            } => (
+                TableId::Criteria,
+                RowRef::Fit {
+                    placement: placement.clone(),
+                    clusters: *clusters,
+                },
+            ),
+            Finding::ShareChange { cluster, .. } | Finding::NoCounterpart { cluster, .. } => {
+                (TableId::ClusterSizes, RowRef::Cluster(*cluster))
+            }
+            Finding::ProfileShift { cluster, column, .. } => (
+                TableId::Profiles,
+                RowRef::ClusterColumn {
+                    cluster: *cluster,
+                    column: column.clone(),
+                },
+            ),
+            Finding::DirectionChange { first, .. } => (
+                TableId::GatingEffects,
+                RowRef::ClusterTerm {
+                    cluster: first.cluster,
+                    term: first.term.clone(),
+                    placement: None,
+                },
+            ),
+            Finding::StrongestEffect(e) => (
+                TableId::GatingEffects,
+                RowRef::ClusterTerm {
+                    cluster: e.cluster,
+                    term: e.term.clone(),
+                    placement: Some(e.placement.clone()),
+                },
+            ),
+            Finding::Agreement { rows, columns, .. } => (
+                TableId::CrossTable {
+                    rows: rows.clone(),
+                    columns: columns.clone(),
+                },
+                RowRef::Whole,
+            ),
+            Finding::DirectEffect(t) => (
+                TableId::DirectEffects,
+                RowRef::Test {
+                    placement: t.placement.clone(),
+                    covariate: t.covariate.clone(),
+                    indicator: t.indicator.clone(),
+                },
+            ),
+        };
+        Source { table, row }
+    }
+}
+
+/// Every finding of a comparison, in the order they are shown.
+pub fn findings(c: &Comparison) -> Vec<Finding> {
+    let mut out: Vec<Finding> = c
+        .criteria
+        .iter()
+        .filter(|r| r.chosen)
+        .map(|r| Finding::ModelChoice {
+            placement: r.placement.clone(),
+            clusters: r.clusters,
+            covariance: r.covariance.clone(),
+            bic: r.bic.unwrap_or(f64::NAN),
+        })
+        .collect();
+    out.extend(share_changes(&c.reference, &c.profiles));
+    out.extend(profile_shift(&c.reference, &c.indicators, &c.profiles));
+    out.extend(gating_finding(&c.gating_effects));
+    out.extend(no_counterparts(&c.reference, &c.alignments, &c.profiles));
+    out.extend(agreements(&c.reference, &c.cross_tables));
+    out.extend(
+        c.direct_effects
+            .iter()
+            .filter(|t| t.flagged)
+            .map(|t| Finding::DirectEffect(t.clone())),
+    );
+    out
+}
+
+/// Per placement other than the reference, the largest change of an aligned cluster's
+/// share against the reference.
+fn share_changes(reference: &str, profiles: &[Profile]) -> Vec<Finding> {
+    let mut others: Vec<&str> = Vec::new();
+    for p in profiles.iter().filter(|p| p.placement != reference) {
+        if !others.contains(&p.placement.as_str()) {
+            others.push(&p.placement);
+        }
+    }
+    let mut out = Vec::new();
+    for other in others {
+        let mut best: Option<(f64, &Profile, &Profile)> = None;
+        for p in profiles.iter().filter(|p| p.placement == other) {
+            if let Some(r) = profiles
+                .iter()
+                .find(|r| r.placement == reference && r.cluster == p.cluster)
+            {
+                let diff = (p.share - r.share).abs();
+                if best.is_none_or(|(d, _, _)| diff > d) {
+                    best = Some((diff, r, p));
+                }
+            }
+        }
+        if let Some((_, r, p)) = best {
+            out.push(Finding::ShareChange {
+                reference: reference.to_string(),
+                placement: p.placement.clone(),
+                cluster: p.cluster,
+                from: r.share,
+                to: p.share,
+            });
+        }
+    }
+    out
+}
+
+/// The largest change of a profile value (population-averaged) against the reference.
+/// Columns differ in units (a mean in % predicted, a probability, a rate), so each shift
+/// is measured against that column's range over the reference clusters.
+fn profile_shift(reference: &str, indicators: &[String], profiles: &[Profile]) -> Option<Finding> {
+    let spread: Vec<f64> = (0..indicators.len())
+        .map(|j| {
+            let values = profiles
+                .iter()
+                .filter(|r| r.placement == reference)
+                .map(|r| r.population_averaged[j]);
+            let (lo, hi) = values.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(v), b.max(v)));
+            if hi > lo {
+                hi - lo
+            } else {
+                1.0
+            }
+        })
+        .collect();
+    let mut best: Option<(f64, &Profile, &Profile, usize)> = None;
+    for p in profiles.iter().filter(|p| p.placement != reference) {
+        if let Some(r) = profiles
+            .iter()
+            .find(|r| r.placement == reference && r.cluster == p.cluster)
+        {
+            for j in 0..indicators.len() {
+                let diff = (p.population_averaged[j] - r.population_averaged[j]).abs() / spread[j];
+                if best.is_none_or(|(d, _, _, _)| diff > d) {
+                    best = Some((diff, r, p, j));
+                }
+            }
+        }
+    }
+    best.map(|(_, r, p, j)| Finding::ProfileShift {
+        cluster: p.cluster,
+        column: indicators[j].clone(),
+        reference: reference.to_string(),
+        from: r.population_averaged[j],
+        placement: p.placement.clone(),
+        to: p.population_averaged[j],
+    })
+}
+
+/// A change of direction between placements, counted only when both effects are at
+/// least 5% per unit away from no effect (the clearest one is reported); else the
+/// strongest effect.
+fn gating_finding(effects: &[GatingEffect]) -> Option<Finding> {
+    let strength = |a: &GatingEffect, b: &GatingEffect| a.rrr.ln().abs().min(b.rrr.ln().abs());
+    let mut flip: Option<(&GatingEffect, &GatingEffect)> = None;
+    for a in effects {
+        for b in effects {
+            if a.placement < b.placement
+                && a.cluster == b.cluster
+                && a.term == b.term
+                && (a.rrr - 1.0) * (b.rrr - 1.0) < 0.0
+                && strength(a, b) >= 1.05f64.ln()
+                && flip.is_none_or(|(x, y)| strength(a, b) > strength(x, y))
+            {
+                flip = Some((a, b));
+            }
+        }
+    }
+    if let Some((a, b)) = flip {
+        return Some(Finding::DirectionChange {
+            first: a.clone(),
+            second: b.clone(),
+        });
+    }
+    effects
+        .iter()
+        .max_by(|a, b| a.rrr.ln().abs().total_cmp(&b.rrr.ln().abs()))
+        .map(|e| Finding::StrongestEffect(e.clone()))
+}
+
+/// Every cluster without a counterpart in the reference.
+fn no_counterparts(reference: &str, alignments: &[Alignment], profiles: &[Profile]) -> Vec<Finding> {
+    let mut out = Vec::new();
+    for a in alignments {
+        for (k, o) in a.overlap.iter().enumerate() {
+            if o.is_none() {
+                let share = profiles
+                    .iter()
+                    .find(|p| p.placement == a.placement && p.cluster == a.aligned[k])
+                    .map_or(0.0, |p| p.share);
+                out.push(Finding::NoCounterpart {
+                    placement: a.placement.clone(),
+                    reference: reference.to_string(),
+                    cluster: a.aligned[k],
+                    share,
+                });
+            }
+        }
+    }
+    out
+}
+
+/// Agreement of each placement with the reference.
+fn agreements(reference: &str, tables: &[CrossTable]) -> Vec<Finding> {
+    tables
+        .iter()
+        .filter(|t| t.rows == reference)
+        .map(|t| Finding::Agreement {
+            rows: t.rows.clone(),
+            columns: t.columns.clone(),
+            ari: t.adjusted_rand_index,
+        })
+        .collect()
+}

@@ -1,0 +1,190 @@
+//! The comparison's findings and notes in words: each finding becomes a sentence, with
+//! the table row its numbers come from and those numbers as every table prints them.
+
+use super::{p_value, pct, per_phrase, ratio, val};
+use crate::compare::{Finding, InferenceNote, RowRef, Source, TableId};
+use serde::Serialize;
+
+/// A finding in words.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Sentence {
+    /// The sentence.
+    pub text: String,
+    /// Where its numbers are: table and row.
+    pub source: String,
+    /// The numbers it quotes, as printed in that table.
+    pub numbers: Vec<String>,
+}
+
+/// The name a table is shown and referred to by.
+pub fn table_name(t: &TableId) -> String {
+    match t {
+        TableId::Criteria => "criteria table".into(),
+        TableId::Alignment => "alignment table".into(),
+        TableId::ClusterSizes => "cluster sizes table".into(),
+        TableId::Profiles => "profiles table".into(),
+        TableId::GatingEffects => "gating effects table".into(),
+        TableId::GatingTests => "gating tests table".into(),
+        TableId::ThreeStep => "three-step table".into(),
+        TableId::ClusterCountTests => "cluster count test table".into(),
+        TableId::DirectEffects => "direct-effect screen table".into(),
+        TableId::ComponentEffects => "component effects table".into(),
+        TableId::CrossTable { rows, columns } => format!("cross-table '{rows}' × '{columns}'"),
+    }
+}
+
+/// Where a finding's numbers are, in words.
+pub fn source(s: &Source) -> String {
+    let table = table_name(&s.table);
+    match &s.row {
+        RowRef::Whole => table,
+        RowRef::Fit { placement, clusters } => format!("{table}, placement '{placement}', {clusters} clusters"),
+        RowRef::Cluster(k) => format!("{table}, row 'cluster {k}'"),
+        RowRef::ClusterColumn { cluster, column } => format!("{table}, row 'cluster {cluster}', column '{column}'"),
+        RowRef::ClusterTerm {
+            cluster,
+            term,
+            placement: None,
+        } => format!("{table}, rows 'cluster {cluster}, {term}'"),
+        RowRef::ClusterTerm {
+            cluster,
+            term,
+            placement: Some(p),
+        } => format!("{table}, row 'cluster {cluster}, {term}', placement '{p}'"),
+        RowRef::Test {
+            placement,
+            covariate,
+            indicator,
+        } => format!("{table}, row '{placement}, {covariate}, {indicator}'"),
+    }
+}
+
+/// A finding as a sentence.
+pub fn sentence(f: &Finding) -> Sentence {
+    let (text, numbers) = phrase(f);
+    Sentence {
+        text,
+        source: source(&f.source()),
+        numbers,
+    }
+}
+
+/// A finding's text and the numbers it quotes.
+fn phrase(f: &Finding) -> (String, Vec<String>) {
+    match f {
+        Finding::ModelChoice {
+            placement,
+            clusters,
+            covariance,
+            bic,
+        } => (
+            format!("Under '{placement}' the comparison uses {clusters} clusters ({covariance}), BIC {bic:.1}."),
+            vec![format!("{bic:.1}")],
+        ),
+        Finding::ShareChange {
+            reference,
+            placement,
+            cluster,
+            from,
+            to,
+        } => {
+            let verb = if to > from { "grows" } else { "shrinks" };
+            (
+                format!(
+                    "Against '{reference}', the largest change in size under '{placement}': cluster {cluster} {verb} from {} of the cohort to {}.",
+                    pct(*from),
+                    pct(*to)
+                ),
+                vec![pct(*from), pct(*to)],
+            )
+        }
+        Finding::ProfileShift {
+            cluster,
+            column,
+            reference,
+            from,
+            placement,
+            to,
+        } => (
+            format!(
+                "The largest shift in a profile: cluster {cluster}'s average {column} is {} under '{reference}' and {} under '{placement}'.",
+                val(*from),
+                val(*to)
+            ),
+            vec![val(*from), val(*to)],
+        ),
+        _ => phrase_effects(f),
+    }
+}
+
+/// The findings about effects, agreement and direct effects.
+fn phrase_effects(f: &Finding) -> (String, Vec<String>) {
+    match f {
+        Finding::DirectionChange { first: a, second: b } => (
+            format!(
+                "The effect of {} on belonging to cluster {} rather than cluster 1 changes direction: relative risk ratio {} per {} under '{}', {} under '{}'.",
+                a.term, a.cluster, ratio(a.rrr), per_phrase(a.per, &a.term), a.placement, ratio(b.rrr), b.placement
+            ),
+            vec![ratio(a.rrr), ratio(b.rrr)],
+        ),
+        Finding::StrongestEffect(e) => {
+            let word = if e.rrr > 1.0 { "raises" } else { "lowers" };
+            (
+                format!(
+                    "Under '{}', each {} {word} the relative risk of cluster {} against cluster 1 by a factor of {}.",
+                    e.placement,
+                    per_phrase(e.per, &e.term),
+                    e.cluster,
+                    ratio(e.rrr)
+                ),
+                vec![ratio(e.rrr)],
+            )
+        }
+        Finding::NoCounterpart {
+            placement,
+            reference,
+            cluster,
+            share,
+        } => (
+            format!(
+                "'{placement}' has a cluster with no counterpart under '{reference}': cluster {cluster} ({}).",
+                pct(*share)
+            ),
+            vec![pct(*share)],
+        ),
+        Finding::Agreement { rows, columns, ari } => (
+            format!("Most-likely clusters under '{rows}' and '{columns}' agree with an adjusted Rand index of {ari:.3}."),
+            vec![format!("{ari:.3}")],
+        ),
+        Finding::DirectEffect(t) => {
+            let p = t.p_value.map_or_else(String::new, p_value);
+            let text = if t.step_three_covariate {
+                format!(
+                    "Warning: under '{}', {} has a direct effect on {} (likelihood-ratio p {p}), which the three-step estimate assumes away; prefer a placement that models it.",
+                    t.placement, t.covariate, t.indicator
+                )
+            } else {
+                format!(
+                    "Under '{}', {} may act directly on {} (likelihood-ratio p {p}); the clusters' meaning then differs across its values unless the effect is modelled (acts_on).",
+                    t.placement, t.covariate, t.indicator
+                )
+            };
+            (text, vec![p])
+        }
+        Finding::ModelChoice { .. } | Finding::ShareChange { .. } | Finding::ProfileShift { .. } => phrase(f),
+    }
+}
+
+/// How a compared fit's standard errors were obtained, in words.
+pub fn inference_note(n: &InferenceNote) -> String {
+    match &n.outcome {
+        Ok((method, replicates)) => {
+            let detail = match replicates {
+                Some((used, drawn)) => format!(" ({used} of {drawn} replicates usable)"),
+                None => String::new(),
+            };
+            format!("'{}': standard errors by {}{detail}.", n.placement, method.word())
+        }
+        Err(reason) => format!("'{}': no standard errors: {reason}.", n.placement),
+    }
+}
