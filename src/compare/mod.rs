@@ -23,7 +23,7 @@ use crate::spec::CompareSettings;
 use serde::Serialize;
 
 /// One row of the criteria table.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct Criteria {
     /// Placement.
     pub placement: String,
@@ -64,7 +64,7 @@ pub struct Criteria {
 }
 
 /// How one placement's chosen clusters map onto the aligned clusters.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct Alignment {
     /// Placement.
     pub placement: String,
@@ -80,7 +80,7 @@ pub struct Alignment {
 }
 
 /// One aligned cluster under one placement.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct Profile {
     /// Aligned cluster number.
     pub cluster: usize,
@@ -99,7 +99,7 @@ pub struct Profile {
 }
 
 /// A gating effect as a relative risk ratio against aligned cluster 1.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, schemars::JsonSchema)]
 pub struct GatingEffect {
     /// Placement.
     pub placement: String,
@@ -119,7 +119,7 @@ pub struct GatingEffect {
 }
 
 /// A component covariate effect of a compared fit, by aligned cluster.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct ComponentEffect {
     /// Placement.
     pub placement: String,
@@ -132,7 +132,7 @@ pub struct ComponentEffect {
 
 /// A three-step placement's gating effect: the corrected estimate beside plain
 /// classify-analyze, which is biased toward no effect and shown only as a contrast.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct ThreeStepEffect {
     /// Placement.
     pub placement: String,
@@ -155,7 +155,7 @@ pub struct ThreeStepEffect {
 }
 
 /// A joint Wald test of a gating covariate in a compared fit.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct GatingTest {
     /// Placement.
     pub placement: String,
@@ -203,7 +203,7 @@ pub struct InferenceNote {
 }
 
 /// Most-likely clusters of two placements cross-tabulated (aligned numbers).
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct CrossTable {
     /// Row placement.
     pub rows: String,
@@ -225,7 +225,7 @@ pub struct CrossTable {
 /// Membership probabilities against one continuous gating covariate, with the other
 /// covariates at their reference values (one curve set per level of a categorical
 /// gating covariate, when there is one).
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct EffectCurve {
     /// Placement.
     pub placement: String,
@@ -242,7 +242,7 @@ pub struct EffectCurve {
 }
 
 /// The whole comparison.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct Comparison {
     /// Reference placement.
     pub reference: String,

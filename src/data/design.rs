@@ -6,7 +6,7 @@ use nalgebra::DMatrix;
 use std::sync::Arc;
 
 /// One column of a design matrix.
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize, schemars::JsonSchema)]
 pub struct Term {
     /// Shown name: `intercept`, `age`, `sex=male`.
     pub name: String,

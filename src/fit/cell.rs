@@ -14,7 +14,7 @@ use rayon::prelude::*;
 use std::sync::Mutex;
 
 /// What happened to one start.
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize, schemars::JsonSchema)]
 pub struct StartRecord {
     /// 1-based start number.
     pub start: usize,

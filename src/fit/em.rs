@@ -10,7 +10,7 @@ use crate::model::{e_step_sums, e_step_with, FitData, GatingUpdate, GaussianStat
 use serde::Serialize;
 
 /// Why a start stopped.
-#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize, schemars::JsonSchema)]
 #[serde(tag = "status", content = "reason", rename_all = "snake_case")]
 pub enum Termination {
     /// Relative objective change below the tolerance.

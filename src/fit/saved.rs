@@ -21,7 +21,7 @@ pub const FILE_NAME: &str = "fitted-models.json";
 pub const SAVED_VERSION: u32 = 2;
 
 /// Everything `predict` needs from a run.
-#[derive(Debug, Clone, Serialize, Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize, schemars::JsonSchema)]
 pub struct SavedRun {
     /// Layout version.
     pub schema_version: u32,
@@ -42,7 +42,7 @@ pub struct SavedRun {
 }
 
 /// One fitted model.
-#[derive(Debug, Clone, Serialize, Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize, schemars::JsonSchema)]
 pub struct SavedFit {
     /// Placement name.
     pub placement: String,
@@ -59,7 +59,7 @@ pub struct SavedFit {
 }
 
 /// Parameters of a model on the fitting scale.
-#[derive(Debug, Clone, Serialize, Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize, schemars::JsonSchema)]
 pub struct SavedModel {
     /// Gating network.
     pub gating: SavedGating,
@@ -69,7 +69,7 @@ pub struct SavedModel {
 
 /// One component block: its family's word and the state the family saved
 /// ([`crate::model::family::Block::state`]).
-#[derive(Debug, Clone, Serialize, Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize, schemars::JsonSchema)]
 pub struct SavedBlock {
     /// The family (`gaussian`, `items`, `counts`).
     pub family: String,
@@ -78,7 +78,7 @@ pub struct SavedBlock {
 }
 
 /// The gating network's parameters.
-#[derive(Debug, Clone, Serialize, Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize, schemars::JsonSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum SavedGating {
     /// Equal shares of g clusters.

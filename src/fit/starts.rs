@@ -10,7 +10,7 @@ use crate::rng::Stream;
 use serde::Serialize;
 
 /// Kind of starting partition.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize, schemars::JsonSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum StartKind {
     /// k-means++-type seeding on the indicators.

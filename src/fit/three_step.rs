@@ -33,7 +33,7 @@ const ML_TOLERANCE: f64 = 1e-12;
 const ML_STEP: f64 = 1e-5;
 
 /// The outcome of step 3.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct StepThree {
     /// BCH or ML.
     pub method: Method,

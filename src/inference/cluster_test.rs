@@ -17,7 +17,7 @@ use rayon::prelude::*;
 use serde::Serialize;
 
 /// The test of one placement's chosen cluster count.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct ClusterCountTest {
     /// Placement.
     pub placement: String,

@@ -25,7 +25,7 @@ pub fn chi_squared_p_value(x: f64, df: usize) -> f64 {
 
 /// An estimate on the coefficient scale with its standard error, shown on the natural
 /// scale of its measure.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, schemars::JsonSchema)]
 pub struct Interval {
     /// Point estimate on the natural scale.
     pub estimate: f64,
@@ -62,7 +62,7 @@ pub fn per_units(term: &str, per: &BTreeMap<String, f64>) -> f64 {
 }
 
 /// A covariate effect of one fit with its interval.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct Effect {
     /// Parameter block (`gating`, `mean`, `item_logit`, `count_log_rate`).
     pub block: ParamBlock,
@@ -120,7 +120,7 @@ pub fn contrast(u: &Uncertainty, a: Option<usize>, b: Option<usize>) -> (f64, f6
 
 /// A joint Wald test that a gating covariate has no effect on membership: all its terms
 /// across the G − 1 contrasts at once (the same whichever cluster is the reference).
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct WaldTest {
     /// Covariate.
     pub covariate: String,

@@ -21,7 +21,7 @@ use rayon::prelude::*;
 use serde::Serialize;
 
 /// One pair's test.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, schemars::JsonSchema)]
 pub struct DirectEffectTest {
     /// Placement.
     pub placement: String,

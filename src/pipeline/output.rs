@@ -15,7 +15,7 @@ use serde::Serialize;
 pub const SCHEMA_VERSION: u32 = 3;
 
 /// The whole `results.json`.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct Results {
     /// Layout version.
     pub schema_version: u32,
@@ -36,7 +36,7 @@ pub struct Results {
 }
 
 /// Program identity.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct Program {
     /// Always `cohortmix`.
     pub name: &'static str,
@@ -45,7 +45,7 @@ pub struct Program {
 }
 
 /// The study and its data.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct StudySummary {
     /// Title from the spec.
     pub title: String,
@@ -101,7 +101,7 @@ pub struct StudySummary {
 }
 
 /// Missing values of one column.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct MissingCount {
     /// Column.
     pub column: String,
@@ -110,7 +110,7 @@ pub struct MissingCount {
 }
 
 /// Conventions stated once.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct Conventions {
     /// How BIC is defined.
     pub bic: &'static str,
@@ -125,7 +125,7 @@ pub struct Conventions {
 }
 
 /// One fit.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct FitRecord {
     /// Placement name.
     pub placement: String,
@@ -186,7 +186,7 @@ pub struct FitRecord {
 }
 
 /// A named parameter and its standard error.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct NamedParameter {
     /// The parameter.
     #[serde(flatten)]
@@ -197,7 +197,7 @@ pub struct NamedParameter {
 }
 
 /// How a fit's standard errors were obtained.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct StandardErrors {
     /// `observed-information`, `sandwich` or `bootstrap`.
     pub method: Option<&'static str>,
@@ -213,7 +213,7 @@ pub struct StandardErrors {
 }
 
 /// How the starts went.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct StartSummary {
     /// Starts run.
     pub total: usize,
@@ -233,7 +233,7 @@ pub struct StartSummary {
 }
 
 /// The chosen fit of a placement.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct Chosen {
     /// Placement.
     pub placement: String,

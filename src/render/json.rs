@@ -7,7 +7,7 @@ use crate::pipeline::output::Results;
 use serde::Serialize;
 
 /// What `results.json` holds: the results, and the comparison with its words.
-#[derive(Serialize)]
+#[derive(Serialize, schemars::JsonSchema)]
 pub struct ResultsFile<'a> {
     /// The results.
     #[serde(flatten)]
@@ -18,7 +18,7 @@ pub struct ResultsFile<'a> {
 }
 
 /// The comparison as `results.json` writes it.
-#[derive(Serialize)]
+#[derive(Serialize, schemars::JsonSchema)]
 pub struct ComparisonFile<'a> {
     /// The comparison's tables.
     #[serde(flatten)]

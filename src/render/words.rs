@@ -6,7 +6,7 @@ use crate::compare::{Finding, InferenceNote, RowRef, Source, TableId};
 use serde::Serialize;
 
 /// A finding in words.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, schemars::JsonSchema)]
 pub struct Sentence {
     /// The sentence.
     pub text: String,

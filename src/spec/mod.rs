@@ -176,7 +176,7 @@ pub struct Placement {
 }
 
 /// How a placement estimates its gating effects.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, schemars::JsonSchema)]
 #[serde(rename_all = "kebab-case")]
 pub enum Method {
     /// Covariates in the gating network of the mixture itself (one likelihood).

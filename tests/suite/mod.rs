@@ -13,5 +13,6 @@ pub mod properties;
 pub mod recovery;
 pub mod reference;
 pub mod row_pass;
+pub mod schema;
 pub mod structures;
 pub mod two_stages;

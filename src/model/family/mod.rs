@@ -96,6 +96,16 @@ impl ParamBlock {
     }
 }
 
+impl schemars::JsonSchema for ParamBlock {
+    fn schema_name() -> std::borrow::Cow<'static, str> {
+        "ParamBlock".into()
+    }
+
+    fn json_schema(generator: &mut schemars::SchemaGenerator) -> schemars::Schema {
+        String::json_schema(generator)
+    }
+}
+
 impl serde::Serialize for ParamBlock {
     fn serialize<S: serde::Serializer>(&self, s: S) -> std::result::Result<S::Ok, S::Error> {
         s.serialize_str(self.name)
@@ -103,7 +113,7 @@ impl serde::Serialize for ParamBlock {
 }
 
 /// A named parameter value on the original scale of the data.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, schemars::JsonSchema)]
 pub struct Parameter {
     /// The block it belongs to.
     pub block: ParamBlock,
