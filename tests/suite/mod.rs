@@ -9,6 +9,7 @@ pub mod families;
 pub mod family_recovery;
 pub mod faults;
 pub mod inference;
+pub mod layers;
 pub mod properties;
 pub mod recovery;
 pub mod reference;
