@@ -19,6 +19,13 @@ pub enum TypeKind {
     Count,
 }
 
+super::words!(TypeKind {
+    Continuous => "continuous",
+    Binary => "binary",
+    Categorical => "categorical",
+    Count => "count",
+});
+
 impl TypeKind {
     /// The declared type of an indicator nobody declared (a categorical one has its
     /// levels from the data).

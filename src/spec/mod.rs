@@ -34,9 +34,47 @@ pub mod families;
 pub mod raw;
 pub mod settings;
 
+/// A closed set of spec words: one enum, each value with its word, written once (by
+/// [`words!`]). Validation turns a word into its value with [`choose`], which suggests
+/// the nearest word when it is misspelt.
+pub trait Choice: Copy + 'static {
+    /// Every value, in the order messages list them.
+    const ALL: &'static [Self];
+    /// The value's word in the spec.
+    fn spec_word(&self) -> &'static str;
+    /// Every word, in order.
+    fn words() -> Vec<&'static str> {
+        Self::ALL.iter().map(|x| x.spec_word()).collect()
+    }
+}
+
+/// Give an enum its spec words: `word()` and [`Choice`].
+macro_rules! words {
+    ($t:ty { $($v:ident => $w:literal),* $(,)? }) => {
+        impl $t {
+            /// The spec word.
+            pub fn word(&self) -> &'static str {
+                match self {
+                    $(Self::$v => $w),*
+                }
+            }
+        }
+
+        impl $crate::spec::Choice for $t {
+            const ALL: &'static [Self] = &[$(Self::$v),*];
+            fn spec_word(&self) -> &'static str {
+                self.word()
+            }
+        }
+    };
+}
+pub(crate) use words;
+
 pub use families::{FamilyInfo, FamilyKey, Layout, TypeKind};
 
-pub use settings::{CompareSettings, CovarianceStructure, ErrorMethod, Orientation, Shape, Volume};
+pub use settings::{
+    CompareSettings, CovarianceChoice, CovarianceStructure, ErrorMethod, Orientation, ProportionsChoice, Shape, Volume,
+};
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
 use raw::{RawPlacement, RawSpec, SList, SStr};
@@ -190,16 +228,13 @@ pub enum Method {
     ThreeStepMl,
 }
 
-impl Method {
-    /// The spec word.
-    pub fn word(&self) -> &'static str {
-        match self {
-            Method::OneStep => "one-step",
-            Method::ThreeStepBch => "three-step-bch",
-            Method::ThreeStepMl => "three-step-ml",
-        }
-    }
+words!(Method {
+    OneStep => "one-step",
+    ThreeStepBch => "three-step-bch",
+    ThreeStepMl => "three-step-ml",
+});
 
+impl Method {
     /// Whether the gating effects come after the clusters are fixed.
     pub fn is_three_step(&self) -> bool {
         !matches!(self, Method::OneStep)
@@ -518,6 +553,31 @@ impl Ctx<'_> {
     }
 }
 
+/// The value of a spec word `got` (written at `span`), or an input error: `message` says
+/// what is wrong, then the nearest word as "did you mean", then `help` of every word.
+fn choose<T: Choice>(
+    ctx: &Ctx,
+    span: Range<usize>,
+    got: &str,
+    message: String,
+    help: impl FnOnce(&[&str]) -> String,
+) -> Result<T> {
+    if let Some(v) = T::ALL.iter().find(|x| x.spec_word() == got) {
+        return Ok(*v);
+    }
+    let words = T::words();
+    let mut d = ctx.err(span, message);
+    if let Some(s) = did_you_mean(got, words.iter().copied()) {
+        d = d.help(format!("did you mean '{s}'?"));
+    }
+    Err(Error::input(d.help(help(&words))))
+}
+
+/// `help` for [`choose`] that lists the words after `label`.
+fn listed(label: &'static str) -> impl FnOnce(&[&str]) -> String {
+    move |words| format!("{label}{}", words.join(", "))
+}
+
 fn positive(ctx: &Ctx, v: &Spanned<i64>, key: &str, min: i64) -> Result<usize> {
     let x = *v.get_ref();
     if x < min {
@@ -586,11 +646,15 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
     let mut variables = BTreeMap::new();
     for (name, v) in &raw.variables {
         let r = v.get_ref();
-        let t = match r.kind.as_str() {
-            "continuous" => VariableType::Continuous,
-            "binary" => VariableType::Binary,
-            "count" => VariableType::Count,
-            "categorical" => {
+        let kind: TypeKind = choose(
+            &ctx,
+            v.span(),
+            &r.kind,
+            format!("unknown variable type '{}' for '{name}'", r.kind),
+            listed("types: "),
+        )?;
+        let t = match kind {
+            TypeKind::Categorical => {
                 if let (Some(reference), Some(levels)) = (&r.reference, &r.levels) {
                     if !levels.contains(reference) {
                         return Err(Error::input(
@@ -607,14 +671,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
                     levels: r.levels.clone(),
                 }
             }
-            other => {
-                let words = ["continuous", "binary", "categorical", "count"];
-                let mut d = ctx.err(v.span(), format!("unknown variable type '{other}' for '{name}'"));
-                if let Some(s) = did_you_mean(other, words) {
-                    d = d.help(format!("did you mean '{s}'?"));
-                }
-                return Err(Error::input(d.help("types: continuous, binary, categorical, count")));
-            }
+            other => other.undeclared(),
         };
         if !matches!(t, VariableType::Categorical { .. }) && (r.reference.is_some() || r.levels.is_some()) {
             return Err(Error::input(
@@ -839,27 +896,17 @@ fn inference_settings(
     placements: &[Placement],
     variables: &BTreeMap<String, (VariableType, Range<usize>)>,
 ) -> Result<Inference> {
-    use ErrorMethod;
     let mut out = Inference::default();
     let Some(raw) = raw else { return Ok(out) };
     let r = raw.get_ref();
     if let Some(m) = &r.standard_errors {
-        let methods = [
-            ErrorMethod::ObservedInformation,
-            ErrorMethod::Sandwich,
-            ErrorMethod::Bootstrap,
-        ];
-        out.method = methods.into_iter().find(|x| x.word() == m.get_ref()).ok_or_else(|| {
-            let words = methods.map(|x| x.word());
-            let mut d = ctx.err(
-                m.span(),
-                format!("[inference].standard_errors does not know '{}'", m.get_ref()),
-            );
-            if let Some(s) = did_you_mean(m.get_ref(), words.iter().copied()) {
-                d = d.help(format!("did you mean '{s}'?"));
-            }
-            Error::input(d.help(format!("use one of: {}", words.join(", "))))
-        })?;
+        out.method = choose(
+            ctx,
+            m.span(),
+            m.get_ref(),
+            format!("[inference].standard_errors does not know '{}'", m.get_ref()),
+            listed("use one of: "),
+        )?;
     }
     if let Some(b) = &r.replicates {
         out.replicates = positive(ctx, b, "[inference].replicates", 2)?;
@@ -1095,24 +1142,19 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
 fn covariance_structures(ctx: &Ctx, cov: &Spanned<toml::Value>, d: usize) -> Result<Vec<CovarianceStructure>> {
     let hint = "write covariance = \"all\", \"unconstrained\", or a list such as \
                 [{ volume = \"equal\", shape = \"varying\", orientation = \"axes\" }]";
-    let word_error = |key: &str, got: &str, options: &[&str]| {
-        let mut d = ctx.err(cov.span(), format!("unknown {key} '{got}' in [search].covariance"));
-        if let Some(w) = did_you_mean(got, options.iter().copied()) {
-            d = d.help(format!("did you mean '{w}'?"));
-        }
-        Error::input(d.help(format!("{key}: {}", options.join(", "))))
-    };
-    let mut out: Vec<CovarianceStructure> = Vec::new();
     match cov.get_ref() {
-        toml::Value::String(w) if w == "all" => {
-            out = CovarianceStructure::all()
-                .into_iter()
-                .filter(|s| d > 1 || s.fits_one_indicator())
-                .collect();
+        toml::Value::String(w) => {
+            let message = format!("unknown covariance choice '{w}' in [search].covariance");
+            Ok(match choose(ctx, cov.span(), w, message, listed("covariance choice: "))? {
+                CovarianceChoice::All => CovarianceStructure::all()
+                    .into_iter()
+                    .filter(|s| d > 1 || s.fits_one_indicator())
+                    .collect(),
+                CovarianceChoice::Unconstrained => vec![CovarianceStructure::UNCONSTRAINED],
+            })
         }
-        toml::Value::String(w) if w == "unconstrained" => out.push(CovarianceStructure::UNCONSTRAINED),
-        toml::Value::String(w) => return Err(word_error("covariance choice", w, &["all", "unconstrained"])),
         toml::Value::Array(items) => {
+            let mut out: Vec<CovarianceStructure> = Vec::new();
             for item in items {
                 let Some(t) = item.as_table() else {
                     return Err(Error::input(
@@ -1120,42 +1162,7 @@ fn covariance_structures(ctx: &Ctx, cov: &Spanned<toml::Value>, d: usize) -> Res
                             .help(hint),
                     ));
                 };
-                for k in t.keys() {
-                    if !["volume", "shape", "orientation"].contains(&k.as_str()) {
-                        return Err(word_error("key", k, &["volume", "shape", "orientation"]));
-                    }
-                }
-                let get = |k: &str| t.get(k).and_then(|v| v.as_str());
-                let volume = match get("volume") {
-                    Some("equal") => Volume::Equal,
-                    Some("varying") | None => Volume::Varying,
-                    Some(o) => return Err(word_error("volume", o, &["equal", "varying"])),
-                };
-                let shape = match get("shape") {
-                    Some("equal") => Shape::Equal,
-                    Some("varying") | None => Shape::Varying,
-                    Some("spherical") => Shape::Spherical,
-                    Some(o) => return Err(word_error("shape", o, &["equal", "varying", "spherical"])),
-                };
-                let orientation = match get("orientation") {
-                    Some("equal") => Orientation::Equal,
-                    Some("varying") | None => Orientation::Varying,
-                    Some("axes") => Orientation::Axes,
-                    Some(o) => return Err(word_error("orientation", o, &["equal", "varying", "axes"])),
-                };
-                if shape == Shape::Spherical && t.contains_key("orientation") {
-                    return Err(Error::input(
-                        ctx.err(cov.span(), "a spherical shape has no orientation")
-                            .help("leave out orientation for shape = \"spherical\""),
-                    ));
-                }
-                let s = CovarianceStructure::new(volume, shape, orientation);
-                if d == 1 && !s.fits_one_indicator() {
-                    return Err(Error::input(
-                        ctx.err(cov.span(), "with one indicator only the volume can differ between clusters")
-                            .help("use shape = \"spherical\" (with volume = \"equal\" or \"varying\"), or covariance = \"all\""),
-                    ));
-                }
+                let s = structure(ctx, cov, t, d)?;
                 if out.contains(&s) {
                     return Err(Error::input(
                         ctx.err(cov.span(), format!("the structure '{}' is listed twice", s.describe())),
@@ -1168,15 +1175,57 @@ fn covariance_structures(ctx: &Ctx, cov: &Spanned<toml::Value>, d: usize) -> Res
                     ctx.err(cov.span(), "[search].covariance lists no structure").help(hint),
                 ));
             }
+            Ok(out)
         }
-        _ => {
-            return Err(Error::input(
-                ctx.err(cov.span(), "[search].covariance has the wrong kind of value")
-                    .help(hint),
-            ))
+        _ => Err(Error::input(
+            ctx.err(cov.span(), "[search].covariance has the wrong kind of value")
+                .help(hint),
+        )),
+    }
+}
+
+/// One structure of a `[search].covariance` list: `{ volume = ..., shape = ...,
+/// orientation = ... }`, each part varying when left out.
+fn structure(ctx: &Ctx, cov: &Spanned<toml::Value>, t: &toml::Table, d: usize) -> Result<CovarianceStructure> {
+    const KEYS: [&str; 3] = ["volume", "shape", "orientation"];
+    for k in t.keys() {
+        if !KEYS.contains(&k.as_str()) {
+            let mut e = ctx.err(cov.span(), format!("unknown key '{k}' in [search].covariance"));
+            if let Some(w) = did_you_mean(k, KEYS) {
+                e = e.help(format!("did you mean '{w}'?"));
+            }
+            return Err(Error::input(e.help(format!("key: {}", KEYS.join(", ")))));
         }
     }
-    Ok(out)
+    fn part<T: Choice>(ctx: &Ctx, cov: &Spanned<toml::Value>, t: &toml::Table, key: &'static str, absent: T) -> Result<T> {
+        match t.get(key).and_then(|v| v.as_str()) {
+            None => Ok(absent),
+            Some(w) => choose(
+                ctx,
+                cov.span(),
+                w,
+                format!("unknown {key} '{w}' in [search].covariance"),
+                move |words| format!("{key}: {}", words.join(", ")),
+            ),
+        }
+    }
+    let volume = part(ctx, cov, t, "volume", Volume::Varying)?;
+    let shape = part(ctx, cov, t, "shape", Shape::Varying)?;
+    let orientation = part(ctx, cov, t, "orientation", Orientation::Varying)?;
+    if shape == Shape::Spherical && t.contains_key("orientation") {
+        return Err(Error::input(
+            ctx.err(cov.span(), "a spherical shape has no orientation")
+                .help("leave out orientation for shape = \"spherical\""),
+        ));
+    }
+    let s = CovarianceStructure::new(volume, shape, orientation);
+    if d == 1 && !s.fits_one_indicator() {
+        return Err(Error::input(
+            ctx.err(cov.span(), "with one indicator only the volume can differ between clusters")
+                .help("use shape = \"spherical\" (with volume = \"equal\" or \"varying\"), or covariance = \"all\""),
+        ));
+    }
+    Ok(s)
 }
 
 fn placement(
@@ -1220,16 +1269,14 @@ fn placement(
     let proportions = match &r.proportions {
         None => Proportions::Free,
         Some(v) => match v.get_ref() {
-            toml::Value::String(s) if s == "free" => Proportions::Free,
-            toml::Value::String(s) if s == "equal" => Proportions::Equal,
             toml::Value::String(s) => {
-                let mut d = ctx.err(v.span(), format!("unknown proportions choice '{s}'"));
-                if let Some(w) = did_you_mean(s, ["free", "equal"]) {
-                    d = d.help(format!("did you mean '{w}'?"));
+                let choice = choose(ctx, v.span(), s, format!("unknown proportions choice '{s}'"), |_| {
+                    "write \"free\", \"equal\", or a list of fixed shares such as [0.5, 0.3, 0.2]".to_string()
+                })?;
+                match choice {
+                    ProportionsChoice::Free => Proportions::Free,
+                    ProportionsChoice::Equal => Proportions::Equal,
                 }
-                return Err(Error::input(d.help(
-                    "write \"free\", \"equal\", or a list of fixed shares such as [0.5, 0.3, 0.2]",
-                )));
             }
             toml::Value::Array(a) => {
                 let shares: Option<Vec<f64>> = a
@@ -1279,15 +1326,13 @@ fn placement(
     let acts_on = acts_on(ctx, r, &components, indicators, blocks)?;
     let mut method = Method::OneStep;
     if let Some(m) = &r.method {
-        let all = [Method::OneStep, Method::ThreeStepBch, Method::ThreeStepMl];
-        method = all.into_iter().find(|x| x.word() == m.get_ref()).ok_or_else(|| {
-            let words = all.map(|x| x.word());
-            let mut d = ctx.err(m.span(), format!("unknown method '{}'", m.get_ref()));
-            if let Some(s) = did_you_mean(m.get_ref(), words.iter().copied()) {
-                d = d.help(format!("did you mean '{s}'?"));
-            }
-            Error::input(d.help(format!("use one of: {}", words.join(", "))))
-        })?;
+        method = choose(
+            ctx,
+            m.span(),
+            m.get_ref(),
+            format!("unknown method '{}'", m.get_ref()),
+            listed("use one of: "),
+        )?;
         if method.is_three_step() && gating.is_empty() {
             return Err(Error::input(
                 ctx.err(

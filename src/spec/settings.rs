@@ -149,16 +149,53 @@ pub enum ErrorMethod {
     Bootstrap,
 }
 
-impl ErrorMethod {
-    /// The spec word.
-    pub fn word(&self) -> &'static str {
-        match self {
-            ErrorMethod::ObservedInformation => "observed-information",
-            ErrorMethod::Sandwich => "sandwich",
-            ErrorMethod::Bootstrap => "bootstrap",
-        }
-    }
+crate::spec::words!(ErrorMethod {
+    ObservedInformation => "observed-information",
+    Sandwich => "sandwich",
+    Bootstrap => "bootstrap",
+});
+crate::spec::words!(Volume {
+    Equal => "equal",
+    Varying => "varying",
+});
+crate::spec::words!(Shape {
+    Equal => "equal",
+    Varying => "varying",
+    Spherical => "spherical",
+});
+crate::spec::words!(Orientation {
+    Equal => "equal",
+    Varying => "varying",
+    Axes => "axes",
+});
+
+/// `[search].covariance` as one word.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CovarianceChoice {
+    /// Every structure (those that fit one indicator, with one).
+    All,
+    /// Volume, shape and orientation all varying.
+    Unconstrained,
 }
+
+crate::spec::words!(CovarianceChoice {
+    All => "all",
+    Unconstrained => "unconstrained",
+});
+
+/// `proportions` as one word.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ProportionsChoice {
+    /// Estimated.
+    Free,
+    /// All 1/G.
+    Equal,
+}
+
+crate::spec::words!(ProportionsChoice {
+    Free => "free",
+    Equal => "equal",
+});
 
 /// What the spec's `[compare]` table says.
 #[derive(Debug, Clone, PartialEq)]

@@ -4,6 +4,7 @@ pub mod acceleration;
 pub mod bad_inputs;
 pub mod cli;
 pub mod common;
+pub mod docs;
 pub mod comparison;
 pub mod families;
 pub mod family_recovery;
