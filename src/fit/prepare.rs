@@ -204,7 +204,7 @@ pub fn initial_model(
             },
         }
     };
-    let blocks = blocks.iter().map(|b| b.block(fd, g, &options)).collect();
+    let blocks = blocks.iter().map(|b| Arc::clone(b).block(fd, g, &options)).collect();
     Model {
         gating,
         components: Components { blocks },

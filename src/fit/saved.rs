@@ -176,7 +176,7 @@ impl SavedModel {
                         p.info().word
                     ));
                 }
-                p.restore(fd, g, options, &saved.state)
+                Arc::clone(p).restore(fd, g, options, &saved.state)
             })
             .collect::<std::result::Result<Vec<_>, String>>()?;
         Ok(Components { blocks })

@@ -1145,13 +1145,15 @@ fn covariance_structures(ctx: &Ctx, cov: &Spanned<toml::Value>, d: usize) -> Res
     match cov.get_ref() {
         toml::Value::String(w) => {
             let message = format!("unknown covariance choice '{w}' in [search].covariance");
-            Ok(match choose(ctx, cov.span(), w, message, listed("covariance choice: "))? {
-                CovarianceChoice::All => CovarianceStructure::all()
-                    .into_iter()
-                    .filter(|s| d > 1 || s.fits_one_indicator())
-                    .collect(),
-                CovarianceChoice::Unconstrained => vec![CovarianceStructure::UNCONSTRAINED],
-            })
+            Ok(
+                match choose(ctx, cov.span(), w, message, listed("covariance choice: "))? {
+                    CovarianceChoice::All => CovarianceStructure::all()
+                        .into_iter()
+                        .filter(|s| d > 1 || s.fits_one_indicator())
+                        .collect(),
+                    CovarianceChoice::Unconstrained => vec![CovarianceStructure::UNCONSTRAINED],
+                },
+            )
         }
         toml::Value::Array(items) => {
             let mut out: Vec<CovarianceStructure> = Vec::new();
@@ -1197,7 +1199,13 @@ fn structure(ctx: &Ctx, cov: &Spanned<toml::Value>, t: &toml::Table, d: usize) -
             return Err(Error::input(e.help(format!("key: {}", KEYS.join(", ")))));
         }
     }
-    fn part<T: Choice>(ctx: &Ctx, cov: &Spanned<toml::Value>, t: &toml::Table, key: &'static str, absent: T) -> Result<T> {
+    fn part<T: Choice>(
+        ctx: &Ctx,
+        cov: &Spanned<toml::Value>,
+        t: &toml::Table,
+        key: &'static str,
+        absent: T,
+    ) -> Result<T> {
         match t.get(key).and_then(|v| v.as_str()) {
             None => Ok(absent),
             Some(w) => choose(
@@ -1221,8 +1229,11 @@ fn structure(ctx: &Ctx, cov: &Spanned<toml::Value>, t: &toml::Table, d: usize) -
     let s = CovarianceStructure::new(volume, shape, orientation);
     if d == 1 && !s.fits_one_indicator() {
         return Err(Error::input(
-            ctx.err(cov.span(), "with one indicator only the volume can differ between clusters")
-                .help("use shape = \"spherical\" (with volume = \"equal\" or \"varying\"), or covariance = \"all\""),
+            ctx.err(
+                cov.span(),
+                "with one indicator only the volume can differ between clusters",
+            )
+            .help("use shape = \"spherical\" (with volume = \"equal\" or \"varying\"), or covariance = \"all\""),
         ));
     }
     Ok(s)

@@ -14,7 +14,11 @@ fn allowed(text: &str) -> Vec<String> {
         .to_string();
     let line = err
         .lines()
-        .find_map(|l| l.split("keys allowed here: ").nth(1).or_else(|| l.split("help: key: ").nth(1)))
+        .find_map(|l| {
+            l.split("keys allowed here: ")
+                .nth(1)
+                .or_else(|| l.split("help: key: ").nth(1))
+        })
         .unwrap_or_else(|| panic!("no list of keys in:\n{err}"));
     line.split(", ").map(|k| k.trim().to_string()).collect()
 }
@@ -25,12 +29,21 @@ fn the_spec_reference_names_every_key() {
         ("top level", format!("zz_unknown = 1\n{BASE}")),
         ("[study]", BASE.replace("[study]\n", "[study]\nzz_unknown = 1\n")),
         ("[indicators]", format!("{BASE}zz_unknown = 1\n")),
-        ("[variables] table", format!("{BASE}[variables]\nx = {{ type = \"binary\", zz_unknown = 1 }}\n")),
+        (
+            "[variables] table",
+            format!("{BASE}[variables]\nx = {{ type = \"binary\", zz_unknown = 1 }}\n"),
+        ),
         ("[search]", format!("{BASE}[search]\nzz_unknown = 1\n")),
-        ("[[placement]]", format!("{BASE}[[placement]]\nname = \"p\"\nzz_unknown = 1\n")),
+        (
+            "[[placement]]",
+            format!("{BASE}[[placement]]\nname = \"p\"\nzz_unknown = 1\n"),
+        ),
         ("[compare]", format!("{BASE}[compare]\nzz_unknown = 1\n")),
         ("[inference]", format!("{BASE}[inference]\nzz_unknown = 1\n")),
-        ("a covariance structure", format!("{BASE}[search]\ncovariance = [{{ zz_unknown = \"equal\" }}]\n")),
+        (
+            "a covariance structure",
+            format!("{BASE}[search]\ncovariance = [{{ zz_unknown = \"equal\" }}]\n"),
+        ),
     ];
     let docs = std::fs::read_to_string(root("docs/spec.md")).unwrap();
     let mut missing = Vec::new();
@@ -48,5 +61,9 @@ fn the_spec_reference_names_every_key() {
             }
         }
     }
-    assert!(missing.is_empty(), "docs/spec.md does not name:\n{}", missing.join("\n"));
+    assert!(
+        missing.is_empty(),
+        "docs/spec.md does not name:\n{}",
+        missing.join("\n")
+    );
 }

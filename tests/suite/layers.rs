@@ -51,7 +51,12 @@ fn named(line: &str) -> Vec<String> {
         }
     }
     out.iter()
-        .map(|p| p.trim().chars().take_while(|c| c.is_alphanumeric() || *c == '_').collect())
+        .map(|p| {
+            p.trim()
+                .chars()
+                .take_while(|c| c.is_alphanumeric() || *c == '_')
+                .collect()
+        })
         .filter(|s: &String| !s.is_empty())
         .collect()
 }
@@ -77,7 +82,11 @@ fn upward_edges(src: &std::path::Path) -> Vec<String> {
         let top = rel.components().next().unwrap().as_os_str().to_string_lossy();
         let top = top.trim_end_matches(".rs").to_string();
         let Some(from) = layer(&top) else {
-            assert!(top == "lib" || top == "main", "{} is in no layer: add it to LAYERS", rel.display());
+            assert!(
+                top == "lib" || top == "main",
+                "{} is in no layer: add it to LAYERS",
+                rel.display()
+            );
             continue;
         };
         for (n, line) in std::fs::read_to_string(&file).unwrap().lines().enumerate() {

@@ -65,7 +65,7 @@ impl Family for Counts {
 
 /// The prepared block of these arrays.
 pub fn prepared(data: CountData) -> Arc<dyn Prepared> {
-    Arc::new(Arc::new(data))
+    Arc::new(data)
 }
 
 /// The count block's arrays for one placement.
@@ -140,24 +140,24 @@ impl CountData {
     }
 }
 
-impl Prepared for Arc<CountData> {
+impl Prepared for CountData {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
     }
 
-    fn block(&self, _fd: &FitData, g: usize, _options: &ModelOptions) -> Box<dyn Block> {
-        Box::new(CountComponents::new(Arc::clone(self), g))
+    fn block(self: Arc<Self>, _fd: &FitData, g: usize, _options: &ModelOptions) -> Box<dyn Block> {
+        Box::new(CountComponents::new(self, g))
     }
 
     fn restore(
-        &self,
+        self: Arc<Self>,
         _fd: &FitData,
         g: usize,
         _options: &ModelOptions,
         state: &serde_json::Value,
     ) -> std::result::Result<Box<dyn Block>, String> {
         let saved: SavedCounts = read_state(INFO.word, state)?;
-        let mut b = CountComponents::new(Arc::clone(self), g);
+        let mut b = CountComponents::new(self, g);
         b.coef = saved.coefficients;
         b.started = saved.started;
         Ok(Box::new(b))

@@ -71,7 +71,7 @@ impl Family for Items {
 
 /// The prepared block of these arrays.
 pub fn prepared(data: ItemData) -> Arc<dyn Prepared> {
-    Arc::new(Arc::new(data))
+    Arc::new(data)
 }
 
 /// The item block's arrays for one placement.
@@ -138,24 +138,24 @@ pub fn shown_levels(levels: &[String]) -> Vec<usize> {
     }
 }
 
-impl Prepared for Arc<ItemData> {
+impl Prepared for ItemData {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
     }
 
-    fn block(&self, _fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block> {
-        Box::new(ItemComponents::new(Arc::clone(self), g, options.smoothing))
+    fn block(self: Arc<Self>, _fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block> {
+        Box::new(ItemComponents::new(self, g, options.smoothing))
     }
 
     fn restore(
-        &self,
+        self: Arc<Self>,
         _fd: &FitData,
         g: usize,
         _options: &ModelOptions,
         state: &serde_json::Value,
     ) -> std::result::Result<Box<dyn Block>, String> {
         let saved: SavedItems = read_state(INFO.word, state)?;
-        let mut b = ItemComponents::new(Arc::clone(self), g, saved.smoothing);
+        let mut b = ItemComponents::new(self, g, saved.smoothing);
         b.log_prob = saved.log_probabilities;
         b.coef = saved.logit_coefficients;
         b.empty_cells = saved.empty_cells;

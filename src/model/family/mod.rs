@@ -199,12 +199,13 @@ pub trait Prepared: Debug + Send + Sync {
     /// The family.
     fn info(&self) -> &'static FamilyInfo;
 
-    /// An empty block for `g` clusters, which the first M-step fills.
-    fn block(&self, fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block>;
+    /// An empty block for `g` clusters, which the first M-step fills (it keeps these
+    /// arrays, shared).
+    fn block(self: Arc<Self>, fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block>;
 
     /// A block restored from its saved state ([`Block::state`]).
     fn restore(
-        &self,
+        self: Arc<Self>,
         fd: &FitData,
         g: usize,
         options: &ModelOptions,

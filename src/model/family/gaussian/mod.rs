@@ -70,7 +70,7 @@ impl Family for Gaussian {
 
 /// The prepared block of these arrays.
 pub fn prepared(rows: GaussianRows) -> Arc<dyn Prepared> {
-    Arc::new(Arc::new(rows))
+    Arc::new(rows)
 }
 
 /// The Gaussian block's arrays for one placement.
@@ -119,13 +119,13 @@ impl GaussianRows {
     }
 }
 
-impl Prepared for Arc<GaussianRows> {
+impl Prepared for GaussianRows {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
     }
 
-    fn block(&self, fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block> {
-        let mut block = GaussianComponents::new(Arc::clone(self), fd.weights, g, options.structure);
+    fn block(self: Arc<Self>, fd: &FitData, g: usize, options: &ModelOptions) -> Box<dyn Block> {
+        let mut block = GaussianComponents::new(self, fd.weights, g, options.structure);
         if options.covariance_prior {
             block = block.with_default_prior(fd.weights);
         }
@@ -134,7 +134,7 @@ impl Prepared for Arc<GaussianRows> {
     }
 
     fn restore(
-        &self,
+        self: Arc<Self>,
         fd: &FitData,
         g: usize,
         options: &ModelOptions,
@@ -142,7 +142,7 @@ impl Prepared for Arc<GaussianRows> {
     ) -> std::result::Result<Box<dyn Block>, String> {
         let saved: SavedGaussian = read_state(INFO.word, state)?;
         let d = self.d;
-        let mut block = GaussianComponents::new(Arc::clone(self), fd.weights, g, saved.structure);
+        let mut block = GaussianComponents::new(self, fd.weights, g, saved.structure);
         if options.covariance_prior {
             block = block.with_default_prior(fd.weights);
         }
