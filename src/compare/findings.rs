@@ -311,8 +311,8 @@ fn profile_shift(reference: &str, indicators: &[String], profiles: &[Profile]) -
             .iter()
             .find(|r| r.placement == reference && r.cluster == p.cluster)
         {
-            for j in 0..indicators.len() {
-                let diff = (p.population_averaged[j] - r.population_averaged[j]).abs() / spread[j];
+            for (j, s) in spread.iter().enumerate() {
+                let diff = (p.population_averaged[j] - r.population_averaged[j]).abs() / s;
                 if best.is_none_or(|(d, _, _, _)| diff > d) {
                     best = Some((diff, r, p, j));
                 }

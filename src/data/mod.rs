@@ -554,15 +554,13 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
     })
 }
 
+/// Rows missing each needed column, by column name.
+type Missing = Vec<(String, usize)>;
+
 /// Which rows are complete for every needed column (a missing value of an indicator
 /// whose family skips missing values does not exclude its row), and how many rows missed
 /// each column.
-fn rows_to_keep(
-    study: &Study,
-    needed: &[Needed],
-    cells: &[Cells],
-    rows_read: usize,
-) -> Result<(Vec<bool>, Vec<(String, usize)>)> {
+fn rows_to_keep(study: &Study, needed: &[Needed], cells: &[Cells], rows_read: usize) -> Result<(Vec<bool>, Missing)> {
     let skips_missing = |nd: &Needed| match nd.role {
         Role::Indicator(set, _) => study.blocks[set].family.layout == Layout::Levels,
         _ => false,

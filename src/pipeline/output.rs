@@ -271,83 +271,12 @@ pub fn results(
         .iter()
         .enumerate()
         .map(|(fi, f)| {
-            let pp = &prepared[f.placement_index];
-            let termination = f.termination();
-            let (parameters_named, gating_model) = match &f.best {
-                Some(b) => (
-                    crate::inference::named_parameters(&f.reported_model().unwrap_or_else(|| b.run.model.clone()), pp),
-                    gating_word(&b.run.model.gating),
-                ),
-                None => (Vec::new(), "none"),
-            };
-            let usable = f.starts.iter().filter(|s| s.termination.usable()).count();
-            let by_fit = inference.get(fi).and_then(Option::as_ref);
-            let u = by_fit.map(|i| &i.uncertainty);
-            let ok = u.and_then(|r| r.as_ref().ok());
-            let parameters_named = parameters_named
-                .into_iter()
-                .enumerate()
-                .map(|(i, parameter)| NamedParameter {
-                    parameter,
-                    se: ok.map(|u| u.se(i)),
-                })
-                .collect();
-            let standard_errors = u.map(|r| match r {
-                Ok(u) => StandardErrors {
-                    method: Some(u.method.word()),
-                    replicates: u.replicates.map(|r| r.1),
-                    replicates_usable: u.replicates.map(|r| r.0),
-                    unavailable: None,
-                },
-                Err(reason) => StandardErrors {
-                    method: None,
-                    replicates: None,
-                    replicates_usable: None,
-                    unavailable: Some(reason.clone()),
-                },
-            });
-            let effects = by_fit.map_or_else(Vec::new, |i| i.effects.clone());
-            let gating_tests = by_fit.map_or_else(Vec::new, |i| i.gating_tests.clone());
-            FitRecord {
-                placement: f.placement.clone(),
-                gating_covariates: pp.placement.gating.iter().map(|c| c.name.clone()).collect(),
-                component_covariates: pp.placement.components.iter().map(|c| c.name.clone()).collect(),
-                clusters: f.clusters,
-                covariance: f.covariance(),
-                gating_model,
-                status: status_word(&termination),
-                reason: termination.reason().map(str::to_string),
-                loglik: f.loglik(),
-                parameters: f.n_params,
-                rows: f.n_rows,
-                bic: f.bic(),
-                aic: f.aic(),
-                iterations: f.best.as_ref().map(|b| b.run.iterations),
-                starts: StartSummary {
-                    total: f.starts.len(),
-                    finished: f.finished_starts(),
-                    usable,
-                    reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
-                    best_start: f.best.as_ref().map(|b| b.start),
-                    best_reached_once: f.best.as_ref().is_some_and(|b| b.reaching == 1 && usable > 1),
-                    each: f.starts.clone(),
-                },
-                shares: f.shares(&data.weights),
-                variance_floor_hits: f
-                    .best
-                    .as_ref()
-                    .and_then(|b| b.run.model.components.guard("variance_floor_hits"))
-                    .unwrap_or(0),
-                item_cells_held_off_zero: f
-                    .best
-                    .as_ref()
-                    .and_then(|b| b.run.model.components.guard("item_cells_held_off_zero")),
-                parameters_named,
-                standard_errors,
-                effects,
-                gating_tests,
-                step_three: f.step_three.as_ref().and_then(|r| r.as_ref().ok()).cloned(),
-            }
+            fit_record(
+                &prepared[f.placement_index],
+                f,
+                inference.get(fi).and_then(Option::as_ref),
+                data,
+            )
         })
         .collect();
     Results {
@@ -356,45 +285,7 @@ pub fn results(
             name: "cohortmix",
             version: env!("CARGO_PKG_VERSION"),
         },
-        study: StudySummary {
-            title: study.title.clone(),
-            spec_file: study.spec_path.display().to_string(),
-            data_file: study.data_path.display().to_string(),
-            rows_read: data.rows_read,
-            rows_used: data.n(),
-            rows_excluded: data.rows_excluded,
-            missing_by_column: data
-                .missing_by_column
-                .iter()
-                .map(|(c, m)| MissingCount {
-                    column: c.clone(),
-                    missing: *m,
-                })
-                .collect(),
-            weights: study.weights.as_ref().map(|w| w.name.clone()),
-            family: study.family.word(),
-            indicators: data.indicator_names.clone(),
-            seed: study.seed,
-            starts: study.search.starts,
-            max_iterations: study.search.max_iterations,
-            tolerance: study.search.tolerance,
-            warmup_iterations: study.search.warmup_iterations,
-            accelerate: study.search.accelerate,
-            finish_best: study.search.finish_best,
-            gating_ridge: study.search.gating_ridge,
-            covariance_structures: study
-                .search
-                .structures
-                .iter()
-                .map(|s| crate::fit::covariance_label(s, study.reads(crate::spec::FamilyKey::Covariance)))
-                .collect(),
-            covariance_prior: study.search.covariance_prior,
-            variance_floor: study.search.variance_floor,
-            indicator_kinds: study.indicator_families.iter().map(|f| f.indicator_word).collect(),
-            item_values_missing: data.indicator_sets.iter().map(|s| s.missing_values()).sum(),
-            item_smoothing: study.smoothing,
-            exposure: study.exposure.as_ref().map(|e| e.name.clone()),
-        },
+        study: study_summary(study, data),
         conventions: Conventions {
             bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",
             aic: "AIC = -2 loglik + 2 * parameters; smaller is better",
@@ -406,6 +297,129 @@ pub fn results(
         fits: records,
         chosen: chosen(fits),
         comparison: None,
+    }
+}
+
+/// One fit's record: its criteria, starts, named parameters with their standard errors,
+/// effects and tests.
+fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInference>, data: &Dataset) -> FitRecord {
+    let termination = f.termination();
+    let (parameters_named, gating_model) = match &f.best {
+        Some(b) => (
+            crate::inference::named_parameters(&f.reported_model().unwrap_or_else(|| b.run.model.clone()), pp),
+            gating_word(&b.run.model.gating),
+        ),
+        None => (Vec::new(), "none"),
+    };
+    let usable = f.starts.iter().filter(|s| s.termination.usable()).count();
+    let u = by_fit.map(|i| &i.uncertainty);
+    let ok = u.and_then(|r| r.as_ref().ok());
+    let parameters_named = parameters_named
+        .into_iter()
+        .enumerate()
+        .map(|(i, parameter)| NamedParameter {
+            parameter,
+            se: ok.map(|u| u.se(i)),
+        })
+        .collect();
+    let standard_errors = u.map(|r| match r {
+        Ok(u) => StandardErrors {
+            method: Some(u.method.word()),
+            replicates: u.replicates.map(|r| r.1),
+            replicates_usable: u.replicates.map(|r| r.0),
+            unavailable: None,
+        },
+        Err(reason) => StandardErrors {
+            method: None,
+            replicates: None,
+            replicates_usable: None,
+            unavailable: Some(reason.clone()),
+        },
+    });
+    let effects = by_fit.map_or_else(Vec::new, |i| i.effects.clone());
+    let gating_tests = by_fit.map_or_else(Vec::new, |i| i.gating_tests.clone());
+    FitRecord {
+        placement: f.placement.clone(),
+        gating_covariates: pp.placement.gating.iter().map(|c| c.name.clone()).collect(),
+        component_covariates: pp.placement.components.iter().map(|c| c.name.clone()).collect(),
+        clusters: f.clusters,
+        covariance: f.covariance(),
+        gating_model,
+        status: status_word(&termination),
+        reason: termination.reason().map(str::to_string),
+        loglik: f.loglik(),
+        parameters: f.n_params,
+        rows: f.n_rows,
+        bic: f.bic(),
+        aic: f.aic(),
+        iterations: f.best.as_ref().map(|b| b.run.iterations),
+        starts: StartSummary {
+            total: f.starts.len(),
+            finished: f.finished_starts(),
+            usable,
+            reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
+            best_start: f.best.as_ref().map(|b| b.start),
+            best_reached_once: f.best.as_ref().is_some_and(|b| b.reaching == 1 && usable > 1),
+            each: f.starts.clone(),
+        },
+        shares: f.shares(&data.weights),
+        variance_floor_hits: f
+            .best
+            .as_ref()
+            .and_then(|b| b.run.model.components.guard("variance_floor_hits"))
+            .unwrap_or(0),
+        item_cells_held_off_zero: f
+            .best
+            .as_ref()
+            .and_then(|b| b.run.model.components.guard("item_cells_held_off_zero")),
+        parameters_named,
+        standard_errors,
+        effects,
+        gating_tests,
+        step_three: f.step_three.as_ref().and_then(|r| r.as_ref().ok()).cloned(),
+    }
+}
+
+/// What was analysed, and how.
+fn study_summary(study: &Study, data: &Dataset) -> StudySummary {
+    StudySummary {
+        title: study.title.clone(),
+        spec_file: study.spec_path.display().to_string(),
+        data_file: study.data_path.display().to_string(),
+        rows_read: data.rows_read,
+        rows_used: data.n(),
+        rows_excluded: data.rows_excluded,
+        missing_by_column: data
+            .missing_by_column
+            .iter()
+            .map(|(c, m)| MissingCount {
+                column: c.clone(),
+                missing: *m,
+            })
+            .collect(),
+        weights: study.weights.as_ref().map(|w| w.name.clone()),
+        family: study.family.word(),
+        indicators: data.indicator_names.clone(),
+        seed: study.seed,
+        starts: study.search.starts,
+        max_iterations: study.search.max_iterations,
+        tolerance: study.search.tolerance,
+        warmup_iterations: study.search.warmup_iterations,
+        accelerate: study.search.accelerate,
+        finish_best: study.search.finish_best,
+        gating_ridge: study.search.gating_ridge,
+        covariance_structures: study
+            .search
+            .structures
+            .iter()
+            .map(|s| crate::fit::covariance_label(s, study.reads(crate::spec::FamilyKey::Covariance)))
+            .collect(),
+        covariance_prior: study.search.covariance_prior,
+        variance_floor: study.search.variance_floor,
+        indicator_kinds: study.indicator_families.iter().map(|f| f.indicator_word).collect(),
+        item_values_missing: data.indicator_sets.iter().map(|s| s.missing_values()).sum(),
+        item_smoothing: study.smoothing,
+        exposure: study.exposure.as_ref().map(|e| e.name.clone()),
     }
 }
 

@@ -206,6 +206,21 @@ p.cap{font-weight:600;font-size:.9em;margin:1em 0 0}.curves svg.chart{max-width:
 /// `report.html`: one self-contained page (inline CSS and SVG, no scripts, nothing fetched).
 pub fn html(results: &Results, c: &Comparison) -> String {
     let mut s = String::new();
+    html_head(&mut s, results, c);
+    let all = tables(c);
+    let find = |id: TableId| all.iter().find(|t| t.id == id);
+    html_model_choice(&mut s, c, &find);
+    html_clusters(&mut s, c, &find);
+    html_effects(&mut s, c, &find);
+    html_agreement(&mut s, results, c, &all);
+    s
+}
+
+/// A table of the comparison, if it has it.
+type Find<'a> = dyn Fn(TableId) -> Option<&'a Table> + 'a;
+
+/// The page's head, title, cautions and findings.
+fn html_head(s: &mut String, results: &Results, c: &Comparison) {
     let title = esc(&results.study.title);
     let _ = write!(s, "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{title}</title><style>{CSS}</style></head><body>");
     let _ = write!(s, "<h1>{title}</h1><p>Placement comparison by cohortmix {}. Reference placement: <b>{}</b>. Data: {} ({} rows used of {}).</p>", esc(results.program.version), esc(&c.reference), esc(&results.study.data_file), results.study.rows_used, results.study.rows_read);
@@ -224,24 +239,27 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         );
     }
     s.push_str("</ul>");
+}
 
-    let all = tables(c);
-    let find = |id: TableId| all.iter().find(|t| t.id == id);
-
+/// Model choice: the BIC chart, the criteria and the bootstrap count test.
+fn html_model_choice(s: &mut String, c: &Comparison, find: &Find) {
     s.push_str("<h2>Model choice</h2>");
     s.push_str(&criteria_chart(c));
     if let Some(t) = find(TableId::Criteria) {
-        html_table(&mut s, t);
+        html_table(s, t);
     }
 
     if let Some(t) = find(TableId::ClusterCountTests) {
         s.push_str("<h3>Bootstrap test of the cluster count</h3>");
-        html_table(&mut s, t);
+        html_table(s, t);
     }
+}
 
+/// The clusters: alignment, sizes and profiles.
+fn html_clusters(s: &mut String, c: &Comparison, find: &Find) {
     s.push_str("<h2>Clusters aligned across placements</h2>");
     if let Some(t) = find(TableId::Alignment) {
-        html_table(&mut s, t);
+        html_table(s, t);
     }
     s.push_str("<h2>Cluster sizes</h2>");
     let rows: Vec<(String, Vec<(usize, f64)>)> = c
@@ -263,18 +281,22 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         &rows,
     ));
     if let Some(t) = find(TableId::ClusterSizes) {
-        html_table(&mut s, t);
+        html_table(s, t);
     }
 
     s.push_str("<h2>Profiles</h2>");
     s.push_str(&profile_grid(c));
     if let Some(t) = find(TableId::Profiles) {
-        html_table(&mut s, t);
+        html_table(s, t);
     }
+}
 
+/// Effects: gating effects with their curves and tests, three-step estimates, the screen,
+/// component effects and how standard errors were obtained.
+fn html_effects(s: &mut String, c: &Comparison, find: &Find) {
     if let Some(t) = find(TableId::GatingEffects) {
         s.push_str("<h2>Gating effects</h2>");
-        html_table(&mut s, t);
+        html_table(s, t);
         s.push_str("<div class=\"curves\">");
         for curve in &c.effect_curves {
             let series: Vec<Series> = curve
@@ -309,24 +331,27 @@ pub fn html(results: &Results, c: &Comparison) -> String {
 
     if let Some(t) = find(TableId::GatingTests) {
         s.push_str("<h3>Joint tests of gating covariates</h3>");
-        html_table(&mut s, t);
+        html_table(s, t);
     }
     if let Some(t) = find(TableId::ThreeStep) {
         s.push_str("<h3>Three-step estimates</h3>");
-        html_table(&mut s, t);
+        html_table(s, t);
     }
     if let Some(t) = find(TableId::DirectEffects) {
         s.push_str("<h2>Direct effects left out</h2>");
-        html_table(&mut s, t);
+        html_table(s, t);
     }
     if let Some(t) = find(TableId::ComponentEffects) {
         s.push_str("<h2>Covariate effects inside clusters</h2>");
-        html_table(&mut s, t);
+        html_table(s, t);
     }
     if !c.inference_notes.is_empty() {
         let _ = write!(s, "<p class=\"note\">Standard errors: {}</p>", esc(&notes(c).join(" ")));
     }
+}
 
+/// Agreement between placements, certainty, the checklist and the page's end.
+fn html_agreement(s: &mut String, results: &Results, c: &Comparison, all: &[Table]) {
     s.push_str("<h2>Agreement between placements</h2>");
     for t in &c.cross_tables {
         s.push_str(&svg::shaded_grid(
@@ -340,7 +365,7 @@ pub fn html(results: &Results, c: &Comparison) -> String {
     }
     for t in all.iter().filter(|t| matches!(t.id, TableId::CrossTable { .. })) {
         let _ = write!(s, "<h3>{}</h3>", esc(&t.name()));
-        html_table(&mut s, t);
+        html_table(s, t);
     }
 
     s.push_str("<h2>Posterior certainty</h2><p class=\"note\">Weighted count of rows by their largest posterior probability; mass near 1 means crisp membership.</p>");
@@ -358,7 +383,6 @@ pub fn html(results: &Results, c: &Comparison) -> String {
         "<p class=\"note\">Spec: {}. BIC = −2 loglik + parameters × ln(rows); smaller is better.</p></body></html>",
         esc(&results.study.spec_file)
     );
-    s
 }
 
 fn criteria_chart(c: &Comparison) -> String {

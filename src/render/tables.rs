@@ -51,7 +51,22 @@ fn val3(x: f64) -> String {
 pub fn tables(c: &Comparison) -> Vec<Table> {
     let mut out = Vec::new();
     let placements: Vec<String> = c.alignments.iter().map(|a| a.placement.clone()).collect();
+    criteria_table(c, &mut out);
+    alignment_table(c, &mut out);
+    sizes_table(c, &placements, &mut out);
+    profiles_table(c, &mut out);
+    gating_table(c, &placements, &mut out);
+    gating_tests_table(c, &mut out);
+    three_step_table(c, &mut out);
+    count_tests_table(c, &mut out);
+    screen_table(c, &mut out);
+    component_table(c, &placements, &mut out);
+    cross_tables(c, &mut out);
+    out
+}
 
+/// The criteria of every fit; the structure column goes when every fit has the same.
+fn criteria_table(c: &Comparison, out: &mut Vec<Table>) {
     let one_structure = c.criteria.iter().all(|r| r.covariance == c.criteria[0].covariance);
     let mut criteria = Table {
         id: TableId::Criteria,
@@ -99,7 +114,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         }
     }
     out.push(criteria);
+}
 
+/// How each placement's clusters are aligned.
+fn alignment_table(c: &Comparison, out: &mut Vec<Table>) {
     let mut rows = Vec::new();
     for a in &c.alignments {
         let mut order: Vec<usize> = (0..a.aligned.len()).collect();
@@ -120,7 +138,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
         header: vec!["placement".into(), "fitted cluster".into(), "aligned as".into(), "overlap".into()],
         rows,
     });
+}
 
+/// Aligned cluster sizes per placement.
+fn sizes_table(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
     let mut clusters: Vec<usize> = c.profiles.iter().map(|p| p.cluster).collect();
     clusters.sort_unstable();
     clusters.dedup();
@@ -134,7 +155,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
             .iter()
             .map(|k| {
                 let mut row = vec![format!("cluster {k}")];
-                for pl in &placements {
+                for pl in placements {
                     row.push(
                         c.profiles
                             .iter()
@@ -146,7 +167,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
             })
             .collect(),
     });
+}
 
+/// Profiles per aligned cluster and placement.
+fn profiles_table(c: &Comparison, out: &mut Vec<Table>) {
     let mut header = vec!["cluster".to_string(), "placement".to_string(), "share".to_string()];
     for i in &c.indicators {
         header.push(format!("{i} at reference"));
@@ -172,7 +196,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
             })
             .collect(),
     });
+}
 
+/// Gating relative risk ratios, a column per placement with gating effects.
+fn gating_table(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
     let with_gating: Vec<&String> = placements
         .iter()
         .filter(|p| c.gating_effects.iter().any(|e| &e.placement == *p))
@@ -204,7 +231,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 .collect(),
         });
     }
+}
 
+/// Joint Wald tests of the gating covariates.
+fn gating_tests_table(c: &Comparison, out: &mut Vec<Table>) {
     if !c.gating_tests.is_empty() {
         out.push(Table {
             id: TableId::GatingTests,
@@ -225,7 +255,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 .collect(),
         });
     }
+}
 
+/// Three-step estimates beside classify-analyze.
+fn three_step_table(c: &Comparison, out: &mut Vec<Table>) {
     if !c.three_step.is_empty() {
         out.push(Table {
             id: TableId::ThreeStep,
@@ -250,7 +283,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 .collect(),
         });
     }
+}
 
+/// Bootstrap tests of the cluster counts.
+fn count_tests_table(c: &Comparison, out: &mut Vec<Table>) {
     if !c.cluster_count_tests.is_empty() {
         out.push(Table {
             id: TableId::ClusterCountTests,
@@ -272,7 +308,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 .collect(),
         });
     }
+}
 
+/// The direct-effect screen.
+fn screen_table(c: &Comparison, out: &mut Vec<Table>) {
     if !c.direct_effects.is_empty() {
         out.push(Table {
             id: TableId::DirectEffects,
@@ -299,7 +338,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 .collect(),
         });
     }
+}
 
+/// Component covariate effects.
+fn component_table(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
     if !c.component_effects.is_empty() {
         let mut rows: Vec<&crate::compare::ComponentEffect> = c.component_effects.iter().collect();
         rows.sort_by(|a, b| {
@@ -334,7 +376,10 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 .collect(),
         });
     }
+}
 
+/// The cross-tables of most likely clusters.
+fn cross_tables(c: &Comparison, out: &mut Vec<Table>) {
     for t in &c.cross_tables {
         let mut header = vec![format!("{} \\ {}", t.rows, t.columns)];
         header.extend(t.column_clusters.iter().map(|k| format!("cluster {k}")));
@@ -360,5 +405,4 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
                 .collect(),
         });
     }
-    out
 }

@@ -390,8 +390,8 @@ fn missing_items_are_skipped_in_the_likelihood() {
     let mut by_hand = 0.0;
     for i in 0..n {
         let mut row = 0.0;
-        for k in 0..2 {
-            let mut p = log_pi[k].exp();
+        for (k, lp) in log_pi.iter().enumerate() {
+            let mut p = lp.exp();
             for j in 0..4 {
                 let c = codes[i * 4 + j];
                 if c != MISSING_ITEM {

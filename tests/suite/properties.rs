@@ -168,9 +168,9 @@ fn block_problem(seed: u64, n: usize, family: usize, g: usize, with_w: bool, wit
         .take(n * n_gauss)
         .collect();
     let mut codes = Vec::new();
-    for i in 0..n {
+    for gi in &group {
         for l in &levels {
-            let lean = (group[i] + 1) as f64 / (g + 1) as f64;
+            let lean = (gi + 1) as f64 / (g + 1) as f64;
             let u = s.uniform();
             let c = if u < 0.05 {
                 cohortmix::data::MISSING_ITEM

@@ -153,8 +153,8 @@ fn expected(case: &Case, fd: &FitData, ar: &Arrays, m: &Model) -> Expected {
                 for b in 0..=a {
                     st.zz[(k * q + a) * q + b] += v * z[a] * z[b];
                 }
-                for j in 0..d {
-                    st.zr[(k * q + a) * d + j] += v * z[a] * r[j];
+                for (j, rj) in r.iter().enumerate() {
+                    st.zr[(k * q + a) * d + j] += v * z[a] * rj;
                 }
             }
             for a in 0..d {

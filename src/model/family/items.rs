@@ -539,14 +539,14 @@ impl Block for ItemComponents {
                     continue;
                 }
                 let q = self.terms[j].len();
-                for lv in 1..l {
+                for (lv, level) in level_names.iter().enumerate().skip(1) {
                     let start = (k * (l - 1) + lv - 1) * q;
                     let beta = &self.coef[j][start..start + q];
                     for (term, value) in subset_to_original(design, &self.terms[j], beta) {
                         out.push(Parameter {
                             block: LOGIT,
                             cluster: k + 1,
-                            indicator: Some(format!("{name}={}", level_names[lv])),
+                            indicator: Some(format!("{name}={level}")),
                             term: Some(term),
                             value,
                         });
@@ -760,7 +760,7 @@ impl ItemRows {
     /// design (n×qz) and each item's design columns.
     pub fn build(codes: &[u16], levels: &[usize], z: &[f64], qz: usize, terms: &[Vec<usize>]) -> Vec<ItemRows> {
         let nj = levels.len();
-        let n = if nj == 0 { 0 } else { codes.len() / nj };
+        let n = codes.len().checked_div(nj).unwrap_or(0);
         (0..nj)
             .map(|j| {
                 let (l, cols) = (levels[j], &terms[j]);

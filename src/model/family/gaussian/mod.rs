@@ -630,13 +630,13 @@ impl Block for GaussianComponents {
         let (names, design) = (&self.rows.names, &self.rows.design);
         let mut out = Vec::new();
         for k in 0..self.g {
-            for j in 0..d {
+            for (j, name) in names.iter().enumerate() {
                 let beta: Vec<f64> = (0..q).map(|a| self.coef[(k * q + a) * d + j]).collect();
                 for (term, value) in design.terms.iter().zip(design.to_original_scale(&beta)) {
                     out.push(Parameter {
                         block: MEAN,
                         cluster: k + 1,
-                        indicator: Some(names[j].clone()),
+                        indicator: Some(name.clone()),
                         term: Some(term.name.clone()),
                         value,
                     });
