@@ -236,6 +236,82 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         Error::input(d.help("see the example at the top of docs/simulate.md"))
     })?;
     let sim = raw.simulation.get_ref();
+    let head = simulation_keys(&raw, &err)?;
+    let covariates = raw
+        .covariate
+        .iter()
+        .map(|c| covariate(c, &err))
+        .collect::<Result<Vec<_>>>()?;
+    let exposure = exposure(sim, &covariates, &err)?;
+    let terms = term_names(&covariates);
+    let check_terms = |map: &BTreeMap<String, f64>, span: Range<usize>, allow_intercept: bool| -> Result<()> {
+        for k in map.keys() {
+            let ok = (allow_intercept && k == "intercept") || terms.contains(k);
+            if !ok {
+                let mut d = err(span.clone(), format!("unknown term '{k}'"));
+                if let Some(s) = did_you_mean(k, terms.iter().map(String::as_str)) {
+                    d = d.help(format!("did you mean '{s}'?"));
+                }
+                return Err(Error::input(d.help(format!("terms: intercept, {}", terms.join(", ")))));
+            }
+        }
+        Ok(())
+    };
+    if raw.cluster.is_empty() {
+        return Err(Error::input(err(
+            raw.simulation.span(),
+            "the truth needs at least one [[cluster]]".into(),
+        )));
+    }
+    let clusters = raw
+        .cluster
+        .iter()
+        .enumerate()
+        .map(|(k, c)| cluster(k, c, &head, sim, &check_terms, &err))
+        .collect::<Result<Vec<_>>>()?;
+    let Head {
+        rows,
+        seed,
+        decimals,
+        indicators,
+        items,
+        missing_items,
+    } = head;
+    let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
+    Ok(Truth {
+        title: sim.title.clone().unwrap_or_else(|| "simulated data".into()),
+        rows: rows as usize,
+        seed,
+        output: crate::spec::resolve(&base, sim.output.get_ref()),
+        id: sim.id.clone().unwrap_or_else(|| "id".into()),
+        indicators,
+        items,
+        counts: sim.counts.clone(),
+        exposure,
+        missing_items,
+        decimals,
+        truth_column: sim.truth_column.clone(),
+        covariates,
+        clusters,
+    })
+}
+
+/// Builds a diagnostic at a span of the truth spec.
+type ErrAt<'a> = dyn Fn(Range<usize>, String) -> Diagnostic + 'a;
+
+/// `[simulation]`'s keys other than the output's.
+struct Head {
+    rows: i64,
+    seed: u64,
+    decimals: usize,
+    indicators: Vec<String>,
+    items: Vec<(String, Vec<String>)>,
+    missing_items: f64,
+}
+
+/// `[simulation]`: rows, seed, decimals, the indicators, items and their levels.
+fn simulation_keys(raw: &RawTruth, err: &ErrAt) -> Result<Head> {
+    let sim = raw.simulation.get_ref();
     let rows = *sim.rows.get_ref();
     if !(1..=100_000_000).contains(&rows) {
         return Err(Error::input(err(
@@ -303,92 +379,109 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         None => 0.0,
     };
 
-    let mut covariates = Vec::new();
-    for c in &raw.covariate {
-        let r = c.get_ref();
-        let need = |v: Option<f64>, key: &str| -> Result<f64> {
-            v.ok_or_else(|| Error::input(err(c.span(), format!("covariate '{}' needs {key}", r.name.get_ref()))))
-        };
-        let draw = match r.distribution.get_ref().as_str() {
-            "normal" => {
-                let sd = need(r.sd, "sd")?;
-                if !(sd > 0.0) {
-                    return Err(Error::input(err(c.span(), "sd must be positive".into())));
-                }
-                Draw::Normal {
-                    mean: need(r.mean, "mean")?,
-                    sd,
-                    min: r.min.unwrap_or(f64::NEG_INFINITY),
-                    max: r.max.unwrap_or(f64::INFINITY),
-                }
-            }
-            "uniform" => {
-                let (min, max) = (need(r.min, "min")?, need(r.max, "max")?);
-                if !(min < max) {
-                    return Err(Error::input(err(c.span(), "min must be below max".into())));
-                }
-                Draw::Uniform { min, max }
-            }
-            "bernoulli" => {
-                let p = need(r.probability, "probability")?;
-                if !(0.0..=1.0).contains(&p) {
-                    return Err(Error::input(err(
-                        c.span(),
-                        "probability must be between 0 and 1".into(),
-                    )));
-                }
-                Draw::Bernoulli { probability: p }
-            }
-            "categorical" => {
-                let levels = r
-                    .levels
-                    .clone()
-                    .ok_or_else(|| Error::input(err(c.span(), "a categorical covariate needs levels".into())))?;
-                let shares = r
-                    .shares
-                    .clone()
-                    .ok_or_else(|| Error::input(err(c.span(), "a categorical covariate needs shares".into())))?;
-                let total: f64 = shares.iter().sum();
-                if shares.len() != levels.len()
-                    || levels.len() < 2
-                    || (total - 1.0).abs() > 1e-9
-                    || shares.iter().any(|s| *s < 0.0)
-                {
-                    return Err(Error::input(err(
-                        c.span(),
-                        "levels and shares must have the same length (at least 2) and the shares must add up to 1"
-                            .into(),
-                    )));
-                }
-                Draw::Categorical { levels, shares }
-            }
-            other => {
-                let words = ["normal", "uniform", "bernoulli", "categorical"];
-                let mut d = err(r.distribution.span(), format!("unknown distribution '{other}'"));
-                if let Some(s) = did_you_mean(other, words) {
-                    d = d.help(format!("did you mean '{s}'?"));
-                }
-                return Err(Error::input(
-                    d.help("distributions: normal, uniform, bernoulli, categorical"),
-                ));
-            }
-        };
-        let missing = r.missing.unwrap_or(0.0);
-        if !(0.0..1.0).contains(&missing) {
-            return Err(Error::input(err(
-                c.span(),
-                "missing must be a share from 0 up to 1".into(),
-            )));
-        }
-        covariates.push(SimCovariate {
-            name: r.name.get_ref().clone(),
-            draw,
-            decimals: r.decimals.unwrap_or(2).clamp(0, 12) as usize,
-            missing,
-        });
-    }
+    Ok(Head {
+        rows,
+        seed,
+        decimals,
+        indicators,
+        items,
+        missing_items,
+    })
+}
 
-    let exposure = match &sim.exposure {
+/// How a `[[covariate]]` is drawn.
+fn distribution(c: &Spanned<RawCovariate>, err: &ErrAt) -> Result<Draw> {
+    let r = c.get_ref();
+    let need = |v: Option<f64>, key: &str| -> Result<f64> {
+        v.ok_or_else(|| Error::input(err(c.span(), format!("covariate '{}' needs {key}", r.name.get_ref()))))
+    };
+    Ok(match r.distribution.get_ref().as_str() {
+        "normal" => {
+            let sd = need(r.sd, "sd")?;
+            if !(sd > 0.0) {
+                return Err(Error::input(err(c.span(), "sd must be positive".into())));
+            }
+            Draw::Normal {
+                mean: need(r.mean, "mean")?,
+                sd,
+                min: r.min.unwrap_or(f64::NEG_INFINITY),
+                max: r.max.unwrap_or(f64::INFINITY),
+            }
+        }
+        "uniform" => {
+            let (min, max) = (need(r.min, "min")?, need(r.max, "max")?);
+            if !(min < max) {
+                return Err(Error::input(err(c.span(), "min must be below max".into())));
+            }
+            Draw::Uniform { min, max }
+        }
+        "bernoulli" => {
+            let p = need(r.probability, "probability")?;
+            if !(0.0..=1.0).contains(&p) {
+                return Err(Error::input(err(
+                    c.span(),
+                    "probability must be between 0 and 1".into(),
+                )));
+            }
+            Draw::Bernoulli { probability: p }
+        }
+        "categorical" => {
+            let levels = r
+                .levels
+                .clone()
+                .ok_or_else(|| Error::input(err(c.span(), "a categorical covariate needs levels".into())))?;
+            let shares = r
+                .shares
+                .clone()
+                .ok_or_else(|| Error::input(err(c.span(), "a categorical covariate needs shares".into())))?;
+            let total: f64 = shares.iter().sum();
+            if shares.len() != levels.len()
+                || levels.len() < 2
+                || (total - 1.0).abs() > 1e-9
+                || shares.iter().any(|s| *s < 0.0)
+            {
+                return Err(Error::input(err(
+                    c.span(),
+                    "levels and shares must have the same length (at least 2) and the shares must add up to 1".into(),
+                )));
+            }
+            Draw::Categorical { levels, shares }
+        }
+        other => {
+            let words = ["normal", "uniform", "bernoulli", "categorical"];
+            let mut d = err(r.distribution.span(), format!("unknown distribution '{other}'"));
+            if let Some(s) = did_you_mean(other, words) {
+                d = d.help(format!("did you mean '{s}'?"));
+            }
+            return Err(Error::input(
+                d.help("distributions: normal, uniform, bernoulli, categorical"),
+            ));
+        }
+    })
+}
+
+/// One `[[covariate]]`: how it is drawn, its decimals and missing share.
+fn covariate(c: &Spanned<RawCovariate>, err: &ErrAt) -> Result<SimCovariate> {
+    let r = c.get_ref();
+    let draw = distribution(c, err)?;
+    let missing = r.missing.unwrap_or(0.0);
+    if !(0.0..1.0).contains(&missing) {
+        return Err(Error::input(err(
+            c.span(),
+            "missing must be a share from 0 up to 1".into(),
+        )));
+    }
+    Ok(SimCovariate {
+        name: r.name.get_ref().clone(),
+        draw,
+        decimals: r.decimals.unwrap_or(2).clamp(0, 12) as usize,
+        missing,
+    })
+}
+
+/// `[simulation].exposure`: a covariate with positive values, with counts to scale.
+fn exposure(sim: &RawSimulation, covariates: &[SimCovariate], err: &ErrAt) -> Result<Option<String>> {
+    Ok(match &sim.exposure {
         None => None,
         Some(e) => {
             let c = covariates.iter().find(|c| c.name == *e.get_ref()).ok_or_else(|| {
@@ -413,136 +506,122 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
             }
             Some(e.get_ref().clone())
         }
-    };
-    let terms = term_names(&covariates);
-    let check_terms = |map: &BTreeMap<String, f64>, span: Range<usize>, allow_intercept: bool| -> Result<()> {
-        for k in map.keys() {
-            let ok = (allow_intercept && k == "intercept") || terms.contains(k);
-            if !ok {
-                let mut d = err(span.clone(), format!("unknown term '{k}'"));
-                if let Some(s) = did_you_mean(k, terms.iter().map(String::as_str)) {
-                    d = d.help(format!("did you mean '{s}'?"));
-                }
-                return Err(Error::input(d.help(format!("terms: intercept, {}", terms.join(", ")))));
-            }
+    })
+}
+
+/// One `[[cluster]]` (the `k`-th): its gating coefficients, means, effects, covariance,
+/// item logits and count rates.
+/// A cluster's count rates (as logs) and their effects by term.
+#[allow(clippy::type_complexity)]
+fn cluster_counts(
+    c: &Spanned<RawCluster>,
+    sim: &RawSimulation,
+    check_terms: &TermCheck,
+    err: &ErrAt,
+) -> Result<(Vec<f64>, Vec<BTreeMap<String, f64>>)> {
+    let r = c.get_ref();
+    let mut log_rate = Vec::new();
+    let mut count_effects = Vec::new();
+    for name in &sim.counts {
+        let rate = r.rate.get_ref().get(name).copied().ok_or_else(|| {
+            Error::input(err(
+                c.span(),
+                format!("cluster '{}' gives no rate for count '{name}'", r.name),
+            ))
+        })?;
+        if !(rate > 0.0) {
+            return Err(Error::input(err(r.rate.span(), "every rate must be positive".into())));
         }
-        Ok(())
-    };
-    if raw.cluster.is_empty() {
-        return Err(Error::input(err(
-            raw.simulation.span(),
-            "the truth needs at least one [[cluster]]".into(),
-        )));
+        log_rate.push(rate.ln());
+        let e = r.count_effects.get_ref().get(name).cloned().unwrap_or_default();
+        check_terms(&e, r.count_effects.span(), false)?;
+        count_effects.push(e);
     }
-    let mut clusters = Vec::new();
-    let d = indicators.len();
-    for (k, c) in raw.cluster.iter().enumerate() {
-        let r = c.get_ref();
-        let gating = match &r.gating {
-            Some(g) if k == 0 => {
-                return Err(Error::input(err(
-                    g.span(),
-                    "the first cluster is the gating reference and takes no gating coefficients".into(),
-                )));
-            }
-            Some(g) => {
-                check_terms(g.get_ref(), g.span(), true)?;
-                g.get_ref().clone()
-            }
-            None => BTreeMap::new(),
-        };
-        let per_indicator = |m: &Spanned<BTreeMap<String, f64>>, key: &str| -> Result<Vec<f64>> {
-            indicators
-                .iter()
-                .map(|i| {
-                    m.get_ref().get(i).copied().ok_or_else(|| {
-                        let at = if m.span().is_empty() { c.span() } else { m.span() };
-                        Error::input(err(at, format!("cluster '{}' gives no {key} for '{i}'", r.name)))
-                    })
-                })
-                .collect()
-        };
-        let mean = per_indicator(&r.mean, "mean")?;
-        let sd = per_indicator(&r.sd, "sd")?;
-        let (item_logits, item_effects) = cluster_items(r, &items, &check_terms, &err)?;
-        let mut log_rate = Vec::new();
-        let mut count_effects = Vec::new();
-        for name in &sim.counts {
-            let rate = r.rate.get_ref().get(name).copied().ok_or_else(|| {
-                Error::input(err(
-                    c.span(),
-                    format!("cluster '{}' gives no rate for count '{name}'", r.name),
-                ))
-            })?;
-            if !(rate > 0.0) {
-                return Err(Error::input(err(r.rate.span(), "every rate must be positive".into())));
-            }
-            log_rate.push(rate.ln());
-            let e = r.count_effects.get_ref().get(name).cloned().unwrap_or_default();
-            check_terms(&e, r.count_effects.span(), false)?;
-            count_effects.push(e);
-        }
-        for key in r.rate.get_ref().keys().chain(r.count_effects.get_ref().keys()) {
-            if !sim.counts.contains(key) {
-                return Err(Error::input(err(
-                    c.span(),
-                    format!("'{key}' is not a count of the truth"),
-                )));
-            }
-        }
-        if sd.iter().any(|s| !(*s > 0.0)) {
-            return Err(Error::input(err(r.sd.span(), "every sd must be positive".into())));
-        }
-        let mut effects = vec![BTreeMap::new(); d];
-        if let Some(e) = &r.effects {
-            for (ind, map) in e.get_ref() {
-                let j = indicators.iter().position(|i| i == ind).ok_or_else(|| {
-                    Error::input(err(
-                        e.span(),
-                        format!("effects name '{ind}', which is not an indicator"),
-                    ))
-                })?;
-                check_terms(map, e.span(), false)?;
-                effects[j] = map.clone();
-            }
-        }
-        let corr = correlation(r.correlation.as_ref(), d)
-            .map_err(|m| Error::input(err(r.correlation.as_ref().map_or(c.span(), Spanned::span), m)))?;
-        let covariance = DMatrix::from_fn(d, d, |a, b| corr[(a, b)] * sd[a] * sd[b]);
-        if d > 0 && covariance.clone().cholesky().is_none() {
+    for key in r.rate.get_ref().keys().chain(r.count_effects.get_ref().keys()) {
+        if !sim.counts.contains(key) {
             return Err(Error::input(err(
                 c.span(),
-                format!("the covariance of cluster '{}' is not positive definite", r.name),
+                format!("'{key}' is not a count of the truth"),
             )));
         }
-        clusters.push(SimCluster {
-            name: r.name.clone(),
-            gating,
-            mean,
-            effects,
-            covariance,
-            item_logits,
-            item_effects,
-            log_rate,
-            count_effects,
-        });
     }
-    let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
-    Ok(Truth {
-        title: sim.title.clone().unwrap_or_else(|| "simulated data".into()),
-        rows: rows as usize,
-        seed,
-        output: crate::spec::resolve(&base, sim.output.get_ref()),
-        id: sim.id.clone().unwrap_or_else(|| "id".into()),
-        indicators,
-        items,
-        counts: sim.counts.clone(),
-        exposure,
-        missing_items,
-        decimals,
-        truth_column: sim.truth_column.clone(),
-        covariates,
-        clusters,
+    Ok((log_rate, count_effects))
+}
+
+fn cluster(
+    k: usize,
+    c: &Spanned<RawCluster>,
+    head: &Head,
+    sim: &RawSimulation,
+    check_terms: &TermCheck,
+    err: &ErrAt,
+) -> Result<SimCluster> {
+    let (indicators, items) = (&head.indicators, &head.items);
+    let d = indicators.len();
+    let r = c.get_ref();
+    let gating = match &r.gating {
+        Some(g) if k == 0 => {
+            return Err(Error::input(err(
+                g.span(),
+                "the first cluster is the gating reference and takes no gating coefficients".into(),
+            )));
+        }
+        Some(g) => {
+            check_terms(g.get_ref(), g.span(), true)?;
+            g.get_ref().clone()
+        }
+        None => BTreeMap::new(),
+    };
+    let per_indicator = |m: &Spanned<BTreeMap<String, f64>>, key: &str| -> Result<Vec<f64>> {
+        indicators
+            .iter()
+            .map(|i| {
+                m.get_ref().get(i).copied().ok_or_else(|| {
+                    let at = if m.span().is_empty() { c.span() } else { m.span() };
+                    Error::input(err(at, format!("cluster '{}' gives no {key} for '{i}'", r.name)))
+                })
+            })
+            .collect()
+    };
+    let mean = per_indicator(&r.mean, "mean")?;
+    let sd = per_indicator(&r.sd, "sd")?;
+    let (item_logits, item_effects) = cluster_items(r, items, check_terms, err)?;
+    let (log_rate, count_effects) = cluster_counts(c, sim, check_terms, err)?;
+    if sd.iter().any(|s| !(*s > 0.0)) {
+        return Err(Error::input(err(r.sd.span(), "every sd must be positive".into())));
+    }
+    let mut effects = vec![BTreeMap::new(); d];
+    if let Some(e) = &r.effects {
+        for (ind, map) in e.get_ref() {
+            let j = indicators.iter().position(|i| i == ind).ok_or_else(|| {
+                Error::input(err(
+                    e.span(),
+                    format!("effects name '{ind}', which is not an indicator"),
+                ))
+            })?;
+            check_terms(map, e.span(), false)?;
+            effects[j] = map.clone();
+        }
+    }
+    let corr = correlation(r.correlation.as_ref(), d)
+        .map_err(|m| Error::input(err(r.correlation.as_ref().map_or(c.span(), Spanned::span), m)))?;
+    let covariance = DMatrix::from_fn(d, d, |a, b| corr[(a, b)] * sd[a] * sd[b]);
+    if d > 0 && covariance.clone().cholesky().is_none() {
+        return Err(Error::input(err(
+            c.span(),
+            format!("the covariance of cluster '{}' is not positive definite", r.name),
+        )));
+    }
+    Ok(SimCluster {
+        name: r.name.clone(),
+        gating,
+        mean,
+        effects,
+        covariance,
+        item_logits,
+        item_effects,
+        log_rate,
+        count_effects,
     })
 }
 

@@ -618,8 +618,43 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
     let ctx = Ctx { path, text };
     let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
     let study = raw.study.get_ref();
+    let (title, seed) = study_keys(&ctx, study)?;
+    let variables = variables(&ctx, &raw.variables)?;
+    let ind = indicators(&ctx, &raw.indicators, families, &variables)?;
+    let (default_clusters, default_span, search) = search(&ctx, &raw, &ind.blocks)?;
+    let placements = placements(&ctx, &raw.placement, &default_clusters, &default_span, &ind)?;
+    let id = study.id.as_ref().map(|s| column_ref(s, "[study].id"));
+    let weights = study.weights.as_ref().map(|s| column_ref(s, "[study].weights"));
+    special_columns(&ctx, &id, &weights, &ind, &placements)?;
+    let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
+    let compare = compare_settings(&ctx, raw.compare.as_ref(), &placements)?;
+    let inference = inference_settings(&ctx, raw.inference.as_ref(), &placements, &variables)?;
+    Ok(Study {
+        spec_path: path.to_path_buf(),
+        spec_text: text.to_string(),
+        title,
+        data_path: resolve(&base, study.data.get_ref()),
+        data_span: study.data.span(),
+        id,
+        weights,
+        seed,
+        output,
+        variables,
+        family: ind.family,
+        indicators: ind.indicators,
+        indicator_families: ind.indicator_families,
+        blocks: ind.blocks,
+        exposure: ind.exposure,
+        smoothing: ind.smoothing,
+        search,
+        placements,
+        compare,
+        inference,
+    })
+}
 
-    // [study]
+/// `[study]`: its title and seed (and that its data path is not empty).
+fn study_keys(ctx: &Ctx, study: &raw::RawStudy) -> Result<(String, u64)> {
     let title = study.title.get_ref().trim().to_string();
     if title.is_empty() {
         return Err(Error::input(
@@ -642,12 +677,16 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         Some(s) => *s.get_ref() as u64,
     };
 
-    // [variables]
+    Ok((title, seed))
+}
+
+/// The declared types of `[variables]`.
+fn variables(ctx: &Ctx, raw: &BTreeMap<String, Spanned<raw::RawVariable>>) -> Result<Variables> {
     let mut variables = BTreeMap::new();
-    for (name, v) in &raw.variables {
+    for (name, v) in raw {
         let r = v.get_ref();
         let kind: TypeKind = choose(
-            &ctx,
+            ctx,
             v.span(),
             &r.kind,
             format!("unknown variable type '{}' for '{name}'", r.kind),
@@ -685,9 +724,31 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         variables.insert(name.clone(), (t, v.span()));
     }
 
-    // [indicators]
-    let ind = raw.indicators.get_ref();
-    let family = family_choice(&ctx, ind.family.as_ref(), families)?;
+    Ok(variables)
+}
+
+/// Declared column types, by name, with their spans.
+type Variables = BTreeMap<String, (VariableType, Range<usize>)>;
+
+/// `[indicators]` as validated.
+struct IndicatorKeys {
+    family: FamilyChoice,
+    indicators: Vec<ColumnRef>,
+    indicator_families: Vec<&'static FamilyInfo>,
+    blocks: Vec<IndicatorBlock>,
+    exposure: Option<ColumnRef>,
+    smoothing: f64,
+}
+
+/// `[indicators]`: the family of each indicator, the blocks, exposure and smoothing.
+fn indicators(
+    ctx: &Ctx,
+    raw: &Spanned<raw::RawIndicators>,
+    families: &[&'static FamilyInfo],
+    variables: &Variables,
+) -> Result<IndicatorKeys> {
+    let ind = raw.get_ref();
+    let family = family_choice(ctx, ind.family.as_ref(), families)?;
     let indicators = column_list(&Some(ind.columns.clone()), "[indicators].columns");
     if indicators.is_empty() {
         return Err(Error::input(
@@ -695,10 +756,10 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
                 .help("list the columns that define the clusters"),
         ));
     }
-    check_unique(&ctx, &indicators)?;
+    check_unique(ctx, &indicators)?;
     let indicator_families = indicators
         .iter()
-        .map(|c| indicator_family(&ctx, family, families, c, variables.get(&c.name).map(|(t, _)| t)))
+        .map(|c| indicator_family(ctx, family, families, c, variables.get(&c.name).map(|(t, _)| t)))
         .collect::<Result<Vec<_>>>()?;
     let blocks: Vec<IndicatorBlock> = families
         .iter()
@@ -732,7 +793,21 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
             )));
         }
     }
-    let smoothing = match &ind.smoothing {
+    let smoothing = smoothing(ctx, ind.smoothing.as_ref(), reads(FamilyKey::Smoothing))?;
+    Ok(IndicatorKeys {
+        family,
+        indicators,
+        indicator_families,
+        blocks,
+        exposure,
+        smoothing,
+    })
+}
+
+/// `[indicators].smoothing`: zero or positive, and only for families that read it
+/// (`read`).
+fn smoothing(ctx: &Ctx, smoothing: Option<&Spanned<f64>>, read: bool) -> Result<f64> {
+    Ok(match smoothing {
         None => 0.0,
         Some(v) => {
             let a = *v.get_ref();
@@ -745,7 +820,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
                     .help("it is a pseudo-count per item and cluster; 1 is a mild value, 0 turns it off"),
                 ));
             }
-            if a > 0.0 && !reads(FamilyKey::Smoothing) {
+            if a > 0.0 && !read {
                 return Err(Error::input(
                     ctx.err(v.span(), "[indicators].smoothing is given, but no indicator is an item")
                         .help("smoothing keeps item probabilities off 0 and 1; remove it"),
@@ -753,9 +828,11 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
             }
             a
         }
-    };
+    })
+}
 
-    // [search]
+/// `[search]`: the default cluster counts (and where they are written) and the settings.
+fn search(ctx: &Ctx, raw: &RawSpec, blocks: &[IndicatorBlock]) -> Result<(Vec<usize>, Range<usize>, Search)> {
     let n_gaussian: usize = blocks
         .iter()
         .filter(|b| b.family.reads(FamilyKey::Covariance))
@@ -782,7 +859,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
                 variance_floor: 0.0,
             },
         ),
-        Some(s) => search_settings(&ctx, s.get_ref(), n_gaussian)?,
+        Some(s) => search_settings(ctx, s.get_ref(), n_gaussian)?,
     };
 
     // With one continuous indicator only the variance can differ between clusters: the
@@ -805,22 +882,32 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         ));
     }
 
-    // [[placement]]
+    Ok((default_clusters, default_span, search))
+}
+
+/// `[[placement]]`, or the one unadjusted placement when there is none.
+fn placements(
+    ctx: &Ctx,
+    raw: &[Spanned<RawPlacement>],
+    default_clusters: &[usize],
+    default_span: &Range<usize>,
+    ind: &IndicatorKeys,
+) -> Result<Vec<Placement>> {
     let mut placements = Vec::new();
-    if raw.placement.is_empty() {
+    if raw.is_empty() {
         placements.push(Placement {
             name: "unadjusted".to_string(),
             gating: Vec::new(),
             components: Vec::new(),
             proportions: Proportions::Free,
-            clusters: default_clusters.clone(),
+            clusters: default_clusters.to_vec(),
             clusters_span: default_span.clone(),
             acts_on: BTreeMap::new(),
             method: Method::OneStep,
         });
     }
-    for p in &raw.placement {
-        let placement = placement(&ctx, p, &default_clusters, &default_span, &indicators, &blocks)?;
+    for p in raw {
+        let placement = placement(ctx, p, default_clusters, default_span, &ind.indicators, &ind.blocks)?;
         if let Some(first) = placements.iter().find(|q: &&Placement| q.name == placement.name) {
             let _ = first;
             return Err(Error::input(
@@ -834,10 +921,20 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         placements.push(placement);
     }
 
-    let id = study.id.as_ref().map(|s| column_ref(s, "[study].id"));
-    let weights = study.weights.as_ref().map(|s| column_ref(s, "[study].weights"));
-    for special in id.iter().chain(weights.iter()).chain(exposure.iter()) {
-        for p in &placements {
+    Ok(placements)
+}
+
+/// The id, weight and exposure columns are neither covariates nor indicators, and the
+/// weights are not the ids.
+fn special_columns(
+    ctx: &Ctx,
+    id: &Option<ColumnRef>,
+    weights: &Option<ColumnRef>,
+    ind: &IndicatorKeys,
+    placements: &[Placement],
+) -> Result<()> {
+    for special in id.iter().chain(weights.iter()).chain(ind.exposure.iter()) {
+        for p in placements {
             if let Some(c) = p.gating.iter().chain(&p.components).find(|c| c.name == special.name) {
                 return Err(Error::input(
                     ctx.err(
@@ -848,14 +945,14 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
                 ));
             }
         }
-        if let Some(c) = indicators.iter().find(|c| c.name == special.name) {
+        if let Some(c) = ind.indicators.iter().find(|c| c.name == special.name) {
             return Err(Error::input(ctx.err(
                 c.span.clone(),
                 format!("'{}' is the {} column and cannot be an indicator", c.name, special.key),
             )));
         }
     }
-    if let (Some(i), Some(w)) = (&id, &weights) {
+    if let (Some(i), Some(w)) = (id, weights) {
         if i.name == w.name {
             return Err(Error::input(
                 ctx.err(w.span.clone(), "[study].weights names the id column"),
@@ -863,31 +960,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         }
     }
 
-    let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
-    let compare = compare_settings(&ctx, raw.compare.as_ref(), &placements)?;
-    let inference = inference_settings(&ctx, raw.inference.as_ref(), &placements, &variables)?;
-    Ok(Study {
-        spec_path: path.to_path_buf(),
-        spec_text: text.to_string(),
-        title,
-        data_path: resolve(&base, data),
-        data_span: study.data.span(),
-        id,
-        weights,
-        seed,
-        output,
-        variables,
-        family,
-        indicators,
-        indicator_families,
-        blocks,
-        exposure,
-        smoothing,
-        search,
-        placements,
-        compare,
-        inference,
-    })
+    Ok(())
 }
 
 fn inference_settings(
@@ -1026,20 +1099,9 @@ fn check_unique(ctx: &Ctx, cols: &[ColumnRef]) -> Result<()> {
     Ok(())
 }
 
-fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize>, Search)> {
-    let clusters = match &s.clusters {
-        None => vec![1, 2, 3],
-        Some(c) => cluster_list(ctx, c, "[search].clusters")?,
-    };
-    let starts = match &s.starts {
-        None => DEFAULT_STARTS,
-        Some(v) => positive(ctx, v, "[search].starts", 1)?,
-    };
-    let max_iterations = match &s.max_iterations {
-        None => DEFAULT_MAX_ITERATIONS,
-        Some(v) => positive(ctx, v, "[search].max_iterations", 1)?,
-    };
-    let tolerance = match &s.tolerance {
+/// `[search].tolerance`: below a few machine epsilons a relative change cannot be measured.
+fn tolerance(ctx: &Ctx, tolerance: Option<&Spanned<f64>>) -> Result<f64> {
+    Ok(match tolerance {
         None => DEFAULT_TOLERANCE,
         Some(v) => {
             let t = *v.get_ref();
@@ -1055,12 +1117,18 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
             }
             t
         }
-    };
-    let warmup_iterations = match &s.warmup_iterations {
-        None => DEFAULT_WARMUP_ITERATIONS,
-        Some(v) => positive(ctx, v, "[search].warmup_iterations", 1)?,
-    };
-    let finish_best = match &s.finish_best {
+    })
+}
+
+/// `[search].finish_best`: at most the starts, and with a warm-up shorter than the cap when it sets starts aside.
+fn finish_best(
+    ctx: &Ctx,
+    s: &raw::RawSearch,
+    starts: usize,
+    warmup_iterations: usize,
+    max_iterations: usize,
+) -> Result<usize> {
+    Ok(match &s.finish_best {
         None => starts,
         Some(v) => {
             let f = positive(ctx, v, "[search].finish_best", 1)?;
@@ -1082,7 +1150,28 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
             }
             f
         }
+    })
+}
+
+fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize>, Search)> {
+    let clusters = match &s.clusters {
+        None => vec![1, 2, 3],
+        Some(c) => cluster_list(ctx, c, "[search].clusters")?,
     };
+    let starts = match &s.starts {
+        None => DEFAULT_STARTS,
+        Some(v) => positive(ctx, v, "[search].starts", 1)?,
+    };
+    let max_iterations = match &s.max_iterations {
+        None => DEFAULT_MAX_ITERATIONS,
+        Some(v) => positive(ctx, v, "[search].max_iterations", 1)?,
+    };
+    let tolerance = tolerance(ctx, s.tolerance.as_ref())?;
+    let warmup_iterations = match &s.warmup_iterations {
+        None => DEFAULT_WARMUP_ITERATIONS,
+        Some(v) => positive(ctx, v, "[search].warmup_iterations", 1)?,
+    };
+    let finish_best = finish_best(ctx, s, starts, warmup_iterations, max_iterations)?;
     let gating_ridge = match &s.gating_ridge {
         None => 0.0,
         Some(v) => {
@@ -1239,45 +1328,10 @@ fn structure(ctx: &Ctx, cov: &Spanned<toml::Value>, t: &toml::Table, d: usize) -
     Ok(s)
 }
 
-fn placement(
-    ctx: &Ctx,
-    p: &Spanned<RawPlacement>,
-    default_clusters: &[usize],
-    default_span: &Range<usize>,
-    indicators: &[ColumnRef],
-    blocks: &[IndicatorBlock],
-) -> Result<Placement> {
-    let r = p.get_ref();
-    let name = r.name.get_ref().trim().to_string();
-    if name.is_empty() {
-        return Err(Error::input(
-            ctx.err(r.name.span(), "a placement name is empty")
-                .help("name every [[placement]]"),
-        ));
-    }
-    let gating = column_list(&r.gating, "[placement].gating");
-    let components = column_list(&r.components, "[placement].components");
-    check_unique(ctx, &gating)?;
-    check_unique(ctx, &components)?;
-    for c in gating.iter().chain(&components) {
-        if indicators.iter().any(|i| i.name == c.name) {
-            return Err(Error::input(
-                ctx.err(
-                    c.span.clone(),
-                    format!(
-                        "'{}' is an indicator and cannot also be a covariate ({})",
-                        c.name, c.key
-                    ),
-                )
-                .help("a column either defines the clusters or adjusts them, not both"),
-            ));
-        }
-    }
-    let (clusters, clusters_span) = match &r.clusters {
-        None => (default_clusters.to_vec(), default_span.clone()),
-        Some(c) => (cluster_list(ctx, c, "[placement].clusters")?, c.span()),
-    };
-    let proportions = match &r.proportions {
+/// A placement's `proportions`: "free", "equal", or fixed shares (positive, adding up to
+/// 1, one per cluster of every count the placement fits).
+fn proportions(ctx: &Ctx, proportions: Option<&Spanned<toml::Value>>, clusters: &[usize]) -> Result<Proportions> {
+    Ok(match proportions {
         None => Proportions::Free,
         Some(v) => match v.get_ref() {
             toml::Value::String(s) => {
@@ -1324,7 +1378,73 @@ fn placement(
                 ))
             }
         },
+    })
+}
+
+/// A placement's `method`; a three-step method needs gating covariates.
+fn method(ctx: &Ctx, word: Option<&SStr>, no_gating: bool) -> Result<Method> {
+    let Some(m) = word else { return Ok(Method::OneStep) };
+    let method: Method = choose(
+        ctx,
+        m.span(),
+        m.get_ref(),
+        format!("unknown method '{}'", m.get_ref()),
+        listed("use one of: "),
+    )?;
+    if method.is_three_step() && no_gating {
+        return Err(Error::input(
+            ctx.err(
+                m.span(),
+                format!(
+                    "method '{}' estimates gating effects, but this placement has no gating covariates",
+                    m.get_ref()
+                ),
+            )
+            .help("add a gating list, or remove the method key"),
+        ));
+    }
+    Ok(method)
+}
+
+fn placement(
+    ctx: &Ctx,
+    p: &Spanned<RawPlacement>,
+    default_clusters: &[usize],
+    default_span: &Range<usize>,
+    indicators: &[ColumnRef],
+    blocks: &[IndicatorBlock],
+) -> Result<Placement> {
+    let r = p.get_ref();
+    let name = r.name.get_ref().trim().to_string();
+    if name.is_empty() {
+        return Err(Error::input(
+            ctx.err(r.name.span(), "a placement name is empty")
+                .help("name every [[placement]]"),
+        ));
+    }
+    let gating = column_list(&r.gating, "[placement].gating");
+    let components = column_list(&r.components, "[placement].components");
+    check_unique(ctx, &gating)?;
+    check_unique(ctx, &components)?;
+    for c in gating.iter().chain(&components) {
+        if indicators.iter().any(|i| i.name == c.name) {
+            return Err(Error::input(
+                ctx.err(
+                    c.span.clone(),
+                    format!(
+                        "'{}' is an indicator and cannot also be a covariate ({})",
+                        c.name, c.key
+                    ),
+                )
+                .help("a column either defines the clusters or adjusts them, not both"),
+            ));
+        }
+    }
+    let (clusters, clusters_span) = match &r.clusters {
+        None => (default_clusters.to_vec(), default_span.clone()),
+        Some(c) => (cluster_list(ctx, c, "[placement].clusters")?, c.span()),
     };
+    let proportions = proportions(ctx, r.proportions.as_ref(), &clusters)?;
     if !matches!(proportions, Proportions::Free) && !gating.is_empty() {
         return Err(Error::input(
             ctx.err(
@@ -1335,28 +1455,7 @@ fn placement(
         ));
     }
     let acts_on = acts_on(ctx, r, &components, indicators, blocks)?;
-    let mut method = Method::OneStep;
-    if let Some(m) = &r.method {
-        method = choose(
-            ctx,
-            m.span(),
-            m.get_ref(),
-            format!("unknown method '{}'", m.get_ref()),
-            listed("use one of: "),
-        )?;
-        if method.is_three_step() && gating.is_empty() {
-            return Err(Error::input(
-                ctx.err(
-                    m.span(),
-                    format!(
-                        "method '{}' estimates gating effects, but this placement has no gating covariates",
-                        m.get_ref()
-                    ),
-                )
-                .help("add a gating list, or remove the method key"),
-            ));
-        }
-    }
+    let method = method(ctx, r.method.as_ref(), gating.is_empty())?;
     Ok(Placement {
         name,
         gating,
