@@ -897,9 +897,6 @@ fn parse_column<'c>(
     rows: usize,
 ) -> Result<Column> {
     let name = &nd.col.name;
-    let bad = |line: usize, msg: String, help: String| -> Error {
-        Error::input(Diagnostic::new(msg).at(raw.field_location(line, nd.index)).help(help))
-    };
     match &nd.kind {
         VariableType::Categorical { reference, levels } => {
             let (order, found) = level_order(raw, nd, levels.as_deref(), kept.clone(), &format!("'{name}'"))?;
@@ -940,44 +937,65 @@ fn parse_column<'c>(
                 codes,
             })
         }
-        kind => {
-            let mut values = Vec::with_capacity(rows);
-            for (line, v) in kept {
-                let x: f64 = v.parse().map_err(|_| {
-                    bad(line, format!("'{v}' in column '{name}' is not a number"), format!("'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing", kind.word()))
-                })?;
-                if !x.is_finite() {
-                    return Err(bad(
-                        line,
-                        format!("'{v}' in column '{name}' is not a finite number"),
-                        "write a finite number, or leave the cell empty if it is missing".into(),
-                    ));
-                }
-                match kind {
-                    VariableType::Binary if x != 0.0 && x != 1.0 => {
-                        return Err(bad(
-                            line,
-                            format!("'{v}' in binary column '{name}' is not 0 or 1"),
-                            format!("code '{name}' as 0/1, or declare it categorical"),
-                        ));
-                    }
-                    VariableType::Count if x < 0.0 || x.fract() != 0.0 => {
-                        return Err(bad(
-                            line,
-                            format!("'{v}' in count column '{name}' is not a whole number of zero or more"),
-                            "counts are 0, 1, 2, ...".into(),
-                        ));
-                    }
-                    _ => {}
-                }
-                values.push(x);
-            }
-            Ok(Column::Numeric {
-                kind: kind.clone(),
-                values,
-            })
-        }
+        kind => parse_numbers(raw, nd, kind, kept, rows),
     }
+}
+/// Parse a numeric column (continuous, binary or count) over its kept rows' (line,
+/// cell) pairs; a cell that is not a finite number of its type is an error at its line
+/// and column.
+fn parse_numbers<'c>(
+    raw: &Raw,
+    nd: &Needed,
+    kind: &VariableType,
+    kept: impl Iterator<Item = (usize, &'c str)>,
+    rows: usize,
+) -> Result<Column> {
+    let name = &nd.col.name;
+    let bad = |line: usize, msg: String, help: String| -> Error {
+        Error::input(Diagnostic::new(msg).at(raw.field_location(line, nd.index)).help(help))
+    };
+    let mut values = Vec::with_capacity(rows);
+    for (line, v) in kept {
+        let x: f64 = v.parse().map_err(|_| {
+            bad(
+                line,
+                format!("'{v}' in column '{name}' is not a number"),
+                format!(
+                    "'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing",
+                    kind.word()
+                ),
+            )
+        })?;
+        if !x.is_finite() {
+            return Err(bad(
+                line,
+                format!("'{v}' in column '{name}' is not a finite number"),
+                "write a finite number, or leave the cell empty if it is missing".into(),
+            ));
+        }
+        match kind {
+            VariableType::Binary if x != 0.0 && x != 1.0 => {
+                return Err(bad(
+                    line,
+                    format!("'{v}' in binary column '{name}' is not 0 or 1"),
+                    format!("code '{name}' as 0/1, or declare it categorical"),
+                ));
+            }
+            VariableType::Count if x < 0.0 || x.fract() != 0.0 => {
+                return Err(bad(
+                    line,
+                    format!("'{v}' in count column '{name}' is not a whole number of zero or more"),
+                    "counts are 0, 1, 2, ...".into(),
+                ));
+            }
+            _ => {}
+        }
+        values.push(x);
+    }
+    Ok(Column::Numeric {
+        kind: kind.clone(),
+        values,
+    })
 }
 
 /// Parse an item column over the rows kept: its levels and a code per kept row

@@ -71,27 +71,10 @@ fn information_covariance(h: &DMatrix<f64>) -> Result<DMatrix<f64>, String> {
 
 /// Step 2 and 3 from step-1 posteriors `tau` (n×g), case weights and the covariate design.
 pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: &Design) -> Result<StepThree, String> {
-    let (w, p) = (&design.x, design.p());
+    let (w, p) = (&design.x[..], design.p());
     let n = weights.len();
     let assigned: Vec<usize> = tau.chunks_exact(g).map(most_likely).collect();
-    let mut d = vec![vec![0.0; g]; g];
-    let mut size = vec![0.0; g];
-    for ((row, c), t) in tau.chunks_exact(g).zip(weights).zip(&assigned) {
-        for s in 0..g {
-            d[s][*t] += c * row[s];
-            size[s] += c * row[s];
-        }
-    }
-    for (row, n_s) in d.iter_mut().zip(&size) {
-        if !(*n_s > 0.0) {
-            return Err("a cluster has no posterior weight".to_string());
-        }
-        for v in row.iter_mut() {
-            *v /= n_s;
-        }
-    }
-    let total: f64 = size.iter().sum();
-    let misclassified = 1.0 - (0..g).map(|s| size[s] * d[s][s]).sum::<f64>() / total;
+    let (d, misclassified) = classification(tau, g, weights, &assigned)?;
     let zeros = vec![0.0; (g - 1) * p];
 
     // Classify-analyze.
@@ -138,32 +121,8 @@ pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: 
             (gamma.clone(), information_covariance(&h)?, converged)
         }
         _ => {
-            let (_, _, h) = logit_score_hessian(w, p, &bch, g, weights, 0.0, &bch_fit.gamma);
-            let hinv = inverse(-h, "step-3 Hessian")?;
-            let m = (g - 1) * p;
-            let mut meat = DMatrix::zeros(m, m);
-            let mut lp = vec![0.0; g];
-            let mut u = vec![0.0; m];
-            for i in 0..n {
-                let c = weights[i];
-                if c == 0.0 {
-                    continue;
-                }
-                let wr = &w[i * p..(i + 1) * p];
-                log_softmax_row(&bch_fit.gamma, p, wr, &mut lp);
-                for k in 1..g {
-                    let r = c * (bch[i * g + k] - lp[k].exp());
-                    for j in 0..p {
-                        u[(k - 1) * p + j] = r * wr[j];
-                    }
-                }
-                for a in 0..m {
-                    for b in 0..m {
-                        meat[(a, b)] += u[a] * u[b];
-                    }
-                }
-            }
-            (bch_fit.gamma.clone(), &hinv * meat * &hinv, bch_fit.outcome.converged())
+            let covariance = bch_sandwich(w, p, &bch, g, weights, &bch_fit.gamma)?;
+            (bch_fit.gamma.clone(), covariance, bch_fit.outcome.converged())
         }
     };
     Ok(StepThree {
@@ -176,6 +135,66 @@ pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: 
         naive_covariance,
         converged,
     })
+}
+
+/// The classification-error matrix D[s][t] = P(assigned t | cluster s) from the
+/// posteriors and the assignments, and the share misclassified, 1 − Σ_s N_s D[s][s] / N.
+fn classification(tau: &[f64], g: usize, weights: &[f64], assigned: &[usize]) -> Result<(Vec<Vec<f64>>, f64), String> {
+    let mut d = vec![vec![0.0; g]; g];
+    let mut size = vec![0.0; g];
+    for ((row, c), t) in tau.chunks_exact(g).zip(weights).zip(assigned) {
+        for s in 0..g {
+            d[s][*t] += c * row[s];
+            size[s] += c * row[s];
+        }
+    }
+    for (row, n_s) in d.iter_mut().zip(&size) {
+        if !(*n_s > 0.0) {
+            return Err("a cluster has no posterior weight".to_string());
+        }
+        for v in row.iter_mut() {
+            *v /= n_s;
+        }
+    }
+    let total: f64 = size.iter().sum();
+    let misclassified = 1.0 - (0..g).map(|s| size[s] * d[s][s]).sum::<f64>() / total;
+    Ok((d, misclassified))
+}
+
+/// The robust sandwich H⁻¹ (Σ_i u_i u_i′) H⁻¹ of the BCH-weighted logit at `gamma`.
+fn bch_sandwich(
+    w: &[f64],
+    p: usize,
+    bch: &[f64],
+    g: usize,
+    weights: &[f64],
+    gamma: &[f64],
+) -> Result<DMatrix<f64>, String> {
+    let (_, _, h) = logit_score_hessian(w, p, bch, g, weights, 0.0, gamma);
+    let hinv = inverse(-h, "step-3 Hessian")?;
+    let m = (g - 1) * p;
+    let mut meat = DMatrix::zeros(m, m);
+    let mut lp = vec![0.0; g];
+    let mut u = vec![0.0; m];
+    for (i, c) in weights.iter().enumerate() {
+        if *c == 0.0 {
+            continue;
+        }
+        let wr = &w[i * p..(i + 1) * p];
+        log_softmax_row(gamma, p, wr, &mut lp);
+        for k in 1..g {
+            let r = c * (bch[i * g + k] - lp[k].exp());
+            for j in 0..p {
+                u[(k - 1) * p + j] = r * wr[j];
+            }
+        }
+        for a in 0..m {
+            for b in 0..m {
+                meat[(a, b)] += u[a] * u[b];
+            }
+        }
+    }
+    Ok(&hinv * meat * &hinv)
 }
 
 /// Responsibilities of the ML step at γ (n×g) and its log-likelihood.

@@ -66,7 +66,6 @@ pub fn screen(
     fits: &[FitResult],
     which: &[usize],
 ) -> Vec<DirectEffectTest> {
-    let settings = EmSettings::for_search(&study.search);
     let covariates: Vec<String> = study.all_covariates().iter().map(|c| c.name.clone()).collect();
     let mut out = Vec::new();
     for &fi in which {
@@ -75,97 +74,145 @@ pub fn screen(
         let pp = &prepared[f.placement_index];
         let mut null = pp.placement.clone();
         null.method = Method::OneStep;
-        let options = ModelOptions::for_study(study, f.structure);
-        let refit = |placement: &crate::spec::Placement| -> Refit {
-            let prep = crate::fit::prepare_placement(study, data, placement, &pp.families)
-                .map_err(|e| e.diagnostic().message.clone())?;
-            let fd = fit_data(data, &prep);
-            let mut model = initial_model(&fd, &prep.blocks, placement, f.clusters, options);
-            model.gating.prepare_bound(fd.w, fd.weights);
-            let k = model.n_params();
-            let run = em::run(&fd, model, best.run.tau.clone(), settings);
-            if run.termination.usable() {
-                Ok((run.loglik, k))
-            } else {
-                Err(run.termination.reason().unwrap_or("the refit failed").to_string())
-            }
+        let fit = FitScreen {
+            study,
+            data,
+            pp,
+            f,
+            tau: &best.run.tau,
+            settings: EmSettings::for_search(&study.search),
+            options: ModelOptions::for_study(study, f.structure),
+            null,
         };
+        out.extend(fit.tests(&covariates));
+    }
+    out
+}
+
+/// The screen of one compared fit.
+struct FitScreen<'a> {
+    study: &'a Study,
+    data: &'a Dataset,
+    pp: &'a PreparedPlacement,
+    f: &'a FitResult,
+    /// The fit's posteriors, every refit's start.
+    tau: &'a [f64],
+    settings: EmSettings,
+    options: ModelOptions,
+    /// The placement as one step (the model a three-step estimate approximates).
+    null: crate::spec::Placement,
+}
+
+impl FitScreen<'_> {
+    /// Every pair's test, flagged by Bonferroni over the placement's tests.
+    fn tests(&self, covariates: &[String]) -> Vec<DirectEffectTest> {
+        let null = &self.null;
         let pairs: Vec<(String, String, Vec<String>)> = covariates
             .iter()
             .flat_map(|c| {
-                groups(data, &pp.families)
+                groups(self.data, &self.pp.families)
                     .into_iter()
                     .map(move |(g, members)| (c.clone(), g, members))
             })
             .filter(|(c, _, members)| !(null.components.iter().any(|x| &x.name == c) && null.acts_on(c, &members[0])))
             .collect();
         if pairs.is_empty() {
-            continue;
+            return Vec::new();
         }
-        // The null model of each covariate: the covariate also in the gating network.
-        let column = |c: &str| {
-            study
-                .all_covariates()
-                .into_iter()
-                .find(|x| x.name == c)
-                .expect("a study covariate")
-                .clone()
-        };
-        let with_gating = |c: &str| {
-            let mut p = null.clone();
-            if p.proportions == crate::spec::Proportions::Free && !p.gating.iter().any(|x| x.name == c) {
-                p.gating.push(column(c));
-            }
-            p
-        };
         let bases: Vec<(String, Refit)> = covariates
             .par_iter()
             .filter(|c| pairs.iter().any(|(x, _, _)| x == *c))
-            .map(|c| (c.clone(), refit(&with_gating(c))))
+            .map(|c| (c.clone(), self.refit(&self.with_gating(c))))
             .collect();
         let tests: Vec<DirectEffectTest> = pairs
             .par_iter()
             .map(|(c, group, members)| {
                 let base = &bases.iter().find(|(x, _)| x == c).expect("a base per covariate").1;
-                let mut alt = with_gating(c);
-                let already = alt.components.iter().any(|x| &x.name == c);
-                if already {
-                    alt.acts_on
-                        .entry(c.clone())
-                        .or_default()
-                        .extend(members.iter().cloned());
-                } else {
-                    alt.components.push(column(c));
-                    alt.acts_on.insert(c.clone(), members.clone());
-                }
-                let result = match (base, refit(&alt)) {
-                    (Ok((l0, k0)), Ok((l1, k1))) => Ok((2.0 * (l1 - l0), k1 - k0)),
-                    (Err(e), _) => Err(format!("the model without the effect failed: {e}")),
-                    (_, Err(e)) => Err(format!("the model with the effect failed: {e}")),
-                };
-                let (statistic, df, note) = match result {
-                    Ok((lr, df)) => (Some(lr.max(0.0)), df, None),
-                    Err(e) => (None, 0, Some(e)),
-                };
-                DirectEffectTest {
-                    placement: f.placement.clone(),
-                    covariate: c.clone(),
-                    indicator: group.clone(),
-                    statistic,
-                    df,
-                    p_value: statistic.map(|x| super::effects::chi_squared_p_value(x, df)),
-                    flagged: false,
-                    step_three_covariate: pp.placement.method.is_three_step()
-                        && pp.placement.gating.iter().any(|x| &x.name == c),
-                    note,
-                }
+                self.test(c, group, members, base)
             })
             .collect();
         let threshold = 0.05 / tests.len() as f64;
-        out.extend(tests.into_iter().map(|mut t| {
-            t.flagged = t.p_value.is_some_and(|p| p < threshold);
-            t
-        }));
+        tests
+            .into_iter()
+            .map(|mut t| {
+                t.flagged = t.p_value.is_some_and(|p| p < threshold);
+                t
+            })
+            .collect()
     }
-    out
+
+    /// The placement refitted by EM from the fit's posteriors: its log-likelihood and
+    /// parameter count, or why it failed.
+    fn refit(&self, placement: &crate::spec::Placement) -> Refit {
+        let (study, data) = (self.study, self.data);
+        let prep = crate::fit::prepare_placement(study, data, placement, &self.pp.families)
+            .map_err(|e| e.diagnostic().message.clone())?;
+        let fd = fit_data(data, &prep);
+        let mut model = initial_model(&fd, &prep.blocks, placement, self.f.clusters, self.options);
+        model.gating.prepare_bound(fd.w, fd.weights);
+        let k = model.n_params();
+        let run = em::run(&fd, model, self.tau.to_vec(), self.settings);
+        if run.termination.usable() {
+            Ok((run.loglik, k))
+        } else {
+            Err(run.termination.reason().unwrap_or("the refit failed").to_string())
+        }
+    }
+
+    /// A study covariate's column.
+    fn column(&self, c: &str) -> crate::spec::ColumnRef {
+        self.study
+            .all_covariates()
+            .into_iter()
+            .find(|x| x.name == c)
+            .expect("a study covariate")
+            .clone()
+    }
+
+    /// The null model of a covariate: the placement with the covariate also in the gating
+    /// network.
+    fn with_gating(&self, c: &str) -> crate::spec::Placement {
+        let mut p = self.null.clone();
+        if p.proportions == crate::spec::Proportions::Free && !p.gating.iter().any(|x| x.name == c) {
+            p.gating.push(self.column(c));
+        }
+        p
+    }
+
+    /// The test of covariate `c` acting directly on `members` (the group `group`), against
+    /// the null model's refit `base`.
+    fn test(&self, c: &str, group: &str, members: &[String], base: &Refit) -> DirectEffectTest {
+        let mut alt = self.with_gating(c);
+        let already = alt.components.iter().any(|x| x.name == c);
+        if already {
+            alt.acts_on
+                .entry(c.to_string())
+                .or_default()
+                .extend(members.iter().cloned());
+        } else {
+            alt.components.push(self.column(c));
+            alt.acts_on.insert(c.to_string(), members.to_vec());
+        }
+        let result = match (base, self.refit(&alt)) {
+            (Ok((l0, k0)), Ok((l1, k1))) => Ok((2.0 * (l1 - l0), k1 - k0)),
+            (Err(e), _) => Err(format!("the model without the effect failed: {e}")),
+            (_, Err(e)) => Err(format!("the model with the effect failed: {e}")),
+        };
+        let (statistic, df, note) = match result {
+            Ok((lr, df)) => (Some(lr.max(0.0)), df, None),
+            Err(e) => (None, 0, Some(e)),
+        };
+        let placement = &self.pp.placement;
+        DirectEffectTest {
+            placement: self.f.placement.clone(),
+            covariate: c.to_string(),
+            indicator: group.to_string(),
+            statistic,
+            df,
+            p_value: statistic.map(|x| super::effects::chi_squared_p_value(x, df)),
+            flagged: false,
+            step_three_covariate: placement.method.is_three_step() && placement.gating.iter().any(|x| x.name == c),
+            note,
+        }
+    }
 }

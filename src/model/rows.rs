@@ -922,6 +922,11 @@ fn add_log_normal_any(d: usize, l: &[f64], res: &[f64], base: f64, lp: &mut [f64
 
 /// One tile of the E-step: rows `start..start + m`, `tau` their rows of the n×G
 /// responsibilities (None: not kept).
+///
+/// A kernel, longer than the rest of the library's functions on purpose: its stages share
+/// the tile's scratch in registers and caches, and splitting it into calls the compiler
+/// may not inline changed how it vectorised (see "Row passes and speed" in
+/// DEVELOPERS.md).
 #[inline(always)]
 fn e_step_tile(pass: &Pass, start: usize, m: usize, tau: Option<&mut [f64]>, sc: &mut Scratch, part: &mut Partial) {
     let (g, r) = (pass.g, &pass.rows);

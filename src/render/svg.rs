@@ -146,9 +146,13 @@ pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], 
         y1 = y0 + 1.0;
     }
     let pad = 0.05 * (y1 - y0);
-    let (y0, y1) = (y0 - pad, y1 + pad);
-    let sx = |x: f64| l + (x - x0) / (x1 - x0) * (w - l - r);
-    let sy = |y: f64| t + (1.0 - (y - y0) / (y1 - y0)) * (h - t - b);
+    let frame = Frame {
+        w,
+        h,
+        margins: (l, r, t, b),
+        x: (x0, x1),
+        y: (y0 - pad, y1 + pad),
+    };
     let mut s = String::new();
     // The title is an HTML caption above the chart, so long titles wrap instead of being cut.
     let _ = write!(s, r#"<p class="cap">{}</p>"#, esc(title));
@@ -158,91 +162,126 @@ pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], 
         h + legend_h,
         esc(title)
     );
-
-    let _ = write!(
-        s,
-        r##"<rect x="{l}" y="{t}" width="{}" height="{}" fill="none" stroke="#999"/>"##,
-        w - l - r,
-        h - t - b
-    );
-    for v in ticks(y0, y1, 5) {
-        let y = sy(v);
-        let _ = write!(
-            s,
-            r##"<line x1="{l}" x2="{}" y1="{y:.1}" y2="{y:.1}" stroke="#ddd"/><text x="{}" y="{:.1}" class="tk" text-anchor="end">{}</text>"##,
-            w - r,
-            l - 6.0,
-            y + 4.0,
-            fmt_tick(v)
-        );
-    }
-    let xt: Vec<f64> = if integer_x {
-        (x0.round() as i64..=x1.round() as i64).map(|v| v as f64).collect()
-    } else {
-        ticks(x0, x1, 6)
-    };
-    for v in xt {
-        let x = sx(v);
-        let _ = write!(
-            s,
-            r#"<text x="{x:.1}" y="{}" class="tk" text-anchor="middle">{}</text>"#,
-            h - b + 16.0,
-            fmt_tick(v)
-        );
-    }
-    let _ = write!(
-        s,
-        r#"<text x="{}" y="{}" class="tk" text-anchor="middle">{}</text>"#,
-        (l + w - r) / 2.0,
-        h - 8.0,
-        esc(x_label)
-    );
-    let _ = write!(
-        s,
-        r#"<text x="14" y="{}" class="tk" text-anchor="middle" transform="rotate(-90 14 {})">{}</text>"#,
-        (t + h - b) / 2.0,
-        (t + h - b) / 2.0,
-        esc(y_label)
-    );
-    for se in series {
-        let path: Vec<String> = se
-            .points
-            .iter()
-            .map(|(x, y)| format!("{:.1},{:.1}", sx(*x), sy(*y)))
-            .collect();
-        let _ = write!(
-            s,
-            r#"<polyline points="{}" fill="none" stroke="{}" stroke-width="2" stroke-dasharray="{}"/>"#,
-            path.join(" "),
-            se.colour,
-            dash(se.style)
-        );
-        // Many points: a marker every fifth one keeps the line readable.
-        let every = if se.points.len() > 12 { 5 } else { 1 };
-        for (x, y) in se.points.iter().step_by(every) {
-            s.push_str(&marker(se.style, sx(*x), sy(*y), &se.colour));
-        }
-    }
-    for (i, se) in series.iter().enumerate() {
-        let y = h + 12.0 + 18.0 * i as f64;
-        let _ = write!(
-            s,
-            r#"<line x1="{l}" x2="{}" y1="{y}" y2="{y}" stroke="{}" stroke-width="2" stroke-dasharray="{}"/>"#,
-            l + 30.0,
-            se.colour,
-            dash(se.style)
-        );
-        s.push_str(&marker(se.style, l + 15.0, y, &se.colour));
-        let _ = write!(
-            s,
-            r#"<text x="{}" y="{}" class="tk">{}</text>"#,
-            l + 38.0,
-            y + 4.0,
-            esc(&se.name)
-        );
-    }
+    frame.axes(&mut s, x_label, y_label, integer_x);
+    frame.lines(&mut s, series);
     s.push_str("</svg>");
     s
+}
+
+/// The plotting area of a line chart: its size, margins (left, right, top, bottom) and
+/// the ranges of x and y it shows.
+struct Frame {
+    w: f64,
+    h: f64,
+    margins: (f64, f64, f64, f64),
+    x: (f64, f64),
+    y: (f64, f64),
+}
+
+impl Frame {
+    fn sx(&self, x: f64) -> f64 {
+        let (l, r, _, _) = self.margins;
+        l + (x - self.x.0) / (self.x.1 - self.x.0) * (self.w - l - r)
+    }
+
+    fn sy(&self, y: f64) -> f64 {
+        let (_, _, t, b) = self.margins;
+        t + (1.0 - (y - self.y.0) / (self.y.1 - self.y.0)) * (self.h - t - b)
+    }
+
+    /// The frame, grid lines, ticks and axis labels.
+    fn axes(&self, s: &mut String, x_label: &str, y_label: &str, integer_x: bool) {
+        let (w, h) = (self.w, self.h);
+        let (l, r, t, b) = self.margins;
+        let _ = write!(
+            s,
+            r##"<rect x="{l}" y="{t}" width="{}" height="{}" fill="none" stroke="#999"/>"##,
+            w - l - r,
+            h - t - b
+        );
+        for v in ticks(self.y.0, self.y.1, 5) {
+            let y = self.sy(v);
+            let _ = write!(
+                s,
+                r##"<line x1="{l}" x2="{}" y1="{y:.1}" y2="{y:.1}" stroke="#ddd"/><text x="{}" y="{:.1}" class="tk" text-anchor="end">{}</text>"##,
+                w - r,
+                l - 6.0,
+                y + 4.0,
+                fmt_tick(v)
+            );
+        }
+        let (x0, x1) = self.x;
+        let xt: Vec<f64> = if integer_x {
+            (x0.round() as i64..=x1.round() as i64).map(|v| v as f64).collect()
+        } else {
+            ticks(x0, x1, 6)
+        };
+        for v in xt {
+            let x = self.sx(v);
+            let _ = write!(
+                s,
+                r#"<text x="{x:.1}" y="{}" class="tk" text-anchor="middle">{}</text>"#,
+                h - b + 16.0,
+                fmt_tick(v)
+            );
+        }
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="{}" class="tk" text-anchor="middle">{}</text>"#,
+            (l + w - r) / 2.0,
+            h - 8.0,
+            esc(x_label)
+        );
+        let _ = write!(
+            s,
+            r#"<text x="14" y="{}" class="tk" text-anchor="middle" transform="rotate(-90 14 {})">{}</text>"#,
+            (t + h - b) / 2.0,
+            (t + h - b) / 2.0,
+            esc(y_label)
+        );
+    }
+
+    /// Each series' line and markers, then the legend below the frame.
+    fn lines(&self, s: &mut String, series: &[Series]) {
+        let (l, _, _, _) = self.margins;
+        for se in series {
+            let path: Vec<String> = se
+                .points
+                .iter()
+                .map(|(x, y)| format!("{:.1},{:.1}", self.sx(*x), self.sy(*y)))
+                .collect();
+            let _ = write!(
+                s,
+                r#"<polyline points="{}" fill="none" stroke="{}" stroke-width="2" stroke-dasharray="{}"/>"#,
+                path.join(" "),
+                se.colour,
+                dash(se.style)
+            );
+            // Many points: a marker every fifth one keeps the line readable.
+            let every = if se.points.len() > 12 { 5 } else { 1 };
+            for (x, y) in se.points.iter().step_by(every) {
+                s.push_str(&marker(se.style, self.sx(*x), self.sy(*y), &se.colour));
+            }
+        }
+        for (i, se) in series.iter().enumerate() {
+            let y = self.h + 12.0 + 18.0 * i as f64;
+            let _ = write!(
+                s,
+                r#"<line x1="{l}" x2="{}" y1="{y}" y2="{y}" stroke="{}" stroke-width="2" stroke-dasharray="{}"/>"#,
+                l + 30.0,
+                se.colour,
+                dash(se.style)
+            );
+            s.push_str(&marker(se.style, l + 15.0, y, &se.colour));
+            let _ = write!(
+                s,
+                r#"<text x="{}" y="{}" class="tk">{}</text>"#,
+                l + 38.0,
+                y + 4.0,
+                esc(&se.name)
+            );
+        }
+    }
 }
 
 /// Horizontal 100% stacked bars: one bar per row label, segments (cluster, share).

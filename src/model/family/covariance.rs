@@ -118,30 +118,7 @@ pub fn estimate(
                 .map(|(v, r)| diag_matrix(&(v * (lambda / r))))
                 .collect()
         }
-        (V::Varying, S::Equal, O::Axes) => {
-            // Σ_g = λ_g A, A diagonal: alternate A and λ_g.
-            let dg: Vec<DVector<f64>> = w.iter().map(diag).collect();
-            let mut lambda: Vec<f64> = (0..g).map(prev_volume).collect();
-            let mut a = DVector::from_element(d, 1.0);
-            let mut last = f64::INFINITY;
-            for _ in 0..MAX_INNER {
-                let c: DVector<f64> = dg
-                    .iter()
-                    .zip(&lambda)
-                    .fold(DVector::zeros(d), |acc, (v, l)| acc + v / *l);
-                a = &c / geo_mean(c.iter().copied());
-                for k in 0..g {
-                    lambda[k] = dg[k].component_div(&a).sum() / (d as f64 * n[k]);
-                }
-                let sig: Vec<DMatrix<f64>> = lambda.iter().map(|l| diag_matrix(&(&a * *l))).collect();
-                let obj = objective(w, n, &sig);
-                if (last - obj).abs() <= INNER_TOLERANCE * obj.abs() {
-                    break;
-                }
-                last = obj;
-            }
-            lambda.iter().map(|l| diag_matrix(&(&a * *l))).collect()
-        }
+        (V::Varying, S::Equal, O::Axes) => volumes_and_diagonal_shape(w, n, (0..g).map(prev_volume).collect()),
         (V::Equal, S::Equal, O::Equal) => vec![pooled / n_total; g],
         (V::Varying, S::Varying, O::Varying) => (0..g).map(|k| &w[k] / n[k]).collect(),
         (V::Equal, S::Varying, O::Varying) => {
@@ -158,63 +135,99 @@ pub fn estimate(
             let a = &omega / geo_mean(omega.iter().copied());
             eig.iter().map(|(_, l)| compose(l, &(&a * lambda))).collect()
         }
-        (V::Varying, S::Equal, O::Varying) => {
-            // D_g from W_g; alternate A ∝ Σ_g Ω_g/λ_g and λ_g = tr(Ω_g A⁻¹)/(d n_g).
-            let eig: Vec<(DVector<f64>, DMatrix<f64>)> = w.iter().map(eigen_desc).collect();
-            let mut lambda: Vec<f64> = (0..g).map(prev_volume).collect();
-            let mut a = DVector::from_element(d, 1.0);
-            let mut last = f64::INFINITY;
-            for _ in 0..MAX_INNER {
-                let c: DVector<f64> = eig
-                    .iter()
-                    .zip(&lambda)
-                    .fold(DVector::zeros(d), |acc, ((v, _), l)| acc + v / *l);
-                a = &c / geo_mean(c.iter().copied());
-                for k in 0..g {
-                    lambda[k] = eig[k].0.component_div(&a).sum() / (d as f64 * n[k]);
-                }
-                let sig: Vec<DMatrix<f64>> = eig
-                    .iter()
-                    .zip(&lambda)
-                    .map(|((_, l), lam)| compose(l, &(&a * *lam)))
-                    .collect();
-                let obj = objective(w, n, &sig);
-                if (last - obj).abs() <= INNER_TOLERANCE * obj.abs() {
-                    break;
-                }
-                last = obj;
-            }
-            eig.iter()
-                .zip(&lambda)
-                .map(|((_, l), lam)| compose(l, &(&a * *lam)))
-                .collect()
-        }
-        (V::Varying, S::Equal, O::Equal) => {
-            // Σ_g = λ_g C, |C| = 1: alternate C ∝ Σ_g W_g/λ_g and λ_g = tr(W_g C⁻¹)/(d n_g).
-            let mut lambda: Vec<f64> = (0..g).map(prev_volume).collect();
-            let mut c = DMatrix::identity(d, d);
-            let mut last = f64::INFINITY;
-            for _ in 0..MAX_INNER {
-                let s: DMatrix<f64> = w
-                    .iter()
-                    .zip(&lambda)
-                    .fold(DMatrix::zeros(d, d), |acc, (m, l)| acc + m / *l);
-                c = &s / geo_mean(eigen_desc(&s).0.iter().copied());
-                let c_inv = c.clone().try_inverse().unwrap_or_else(|| DMatrix::identity(d, d));
-                for k in 0..g {
-                    lambda[k] = (&c_inv * &w[k]).trace() / (d as f64 * n[k]);
-                }
-                let sig: Vec<DMatrix<f64>> = lambda.iter().map(|l| &c * *l).collect();
-                let obj = objective(w, n, &sig);
-                if (last - obj).abs() <= INNER_TOLERANCE * obj.abs() {
-                    break;
-                }
-                last = obj;
-            }
-            lambda.iter().map(|l| &c * *l).collect()
-        }
+        (V::Varying, S::Equal, O::Varying) => volumes_and_shape(w, n, (0..g).map(prev_volume).collect()),
+        (V::Varying, S::Equal, O::Equal) => volumes_and_shared_matrix(w, n, (0..g).map(prev_volume).collect()),
         (volume, S::Varying, O::Equal) => common_orientation(volume, w, n, orientation),
     }
+}
+
+/// Σ_g = λ_g A with A diagonal (varying volume, equal shape, axis-aligned): alternate A
+/// and λ_g from the volumes `lambda` of the previous estimate.
+fn volumes_and_diagonal_shape(w: &[DMatrix<f64>], n: &[f64], mut lambda: Vec<f64>) -> Vec<DMatrix<f64>> {
+    let (g, d) = (w.len(), w[0].nrows());
+    let diag = |m: &DMatrix<f64>| DVector::from_iterator(d, (0..d).map(|i| m[(i, i)]));
+    // Σ_g = λ_g A, A diagonal: alternate A and λ_g.
+    let dg: Vec<DVector<f64>> = w.iter().map(diag).collect();
+    let mut a = DVector::from_element(d, 1.0);
+    let mut last = f64::INFINITY;
+    for _ in 0..MAX_INNER {
+        let c: DVector<f64> = dg
+            .iter()
+            .zip(&lambda)
+            .fold(DVector::zeros(d), |acc, (v, l)| acc + v / *l);
+        a = &c / geo_mean(c.iter().copied());
+        for k in 0..g {
+            lambda[k] = dg[k].component_div(&a).sum() / (d as f64 * n[k]);
+        }
+        let sig: Vec<DMatrix<f64>> = lambda.iter().map(|l| diag_matrix(&(&a * *l))).collect();
+        let obj = objective(w, n, &sig);
+        if (last - obj).abs() <= INNER_TOLERANCE * obj.abs() {
+            break;
+        }
+        last = obj;
+    }
+    lambda.iter().map(|l| diag_matrix(&(&a * *l))).collect()
+}
+
+/// Σ_g = λ_g D_g A D_g′ (varying volume and orientation, equal shape): D_g from W_g;
+/// alternate A ∝ Σ_g Ω_g/λ_g and λ_g = tr(Ω_g A⁻¹)/(d n_g) from the volumes `lambda`.
+fn volumes_and_shape(w: &[DMatrix<f64>], n: &[f64], mut lambda: Vec<f64>) -> Vec<DMatrix<f64>> {
+    let (g, d) = (w.len(), w[0].nrows());
+    // D_g from W_g; alternate A ∝ Σ_g Ω_g/λ_g and λ_g = tr(Ω_g A⁻¹)/(d n_g).
+    let eig: Vec<(DVector<f64>, DMatrix<f64>)> = w.iter().map(eigen_desc).collect();
+    let mut a = DVector::from_element(d, 1.0);
+    let mut last = f64::INFINITY;
+    for _ in 0..MAX_INNER {
+        let c: DVector<f64> = eig
+            .iter()
+            .zip(&lambda)
+            .fold(DVector::zeros(d), |acc, ((v, _), l)| acc + v / *l);
+        a = &c / geo_mean(c.iter().copied());
+        for k in 0..g {
+            lambda[k] = eig[k].0.component_div(&a).sum() / (d as f64 * n[k]);
+        }
+        let sig: Vec<DMatrix<f64>> = eig
+            .iter()
+            .zip(&lambda)
+            .map(|((_, l), lam)| compose(l, &(&a * *lam)))
+            .collect();
+        let obj = objective(w, n, &sig);
+        if (last - obj).abs() <= INNER_TOLERANCE * obj.abs() {
+            break;
+        }
+        last = obj;
+    }
+    eig.iter()
+        .zip(&lambda)
+        .map(|((_, l), lam)| compose(l, &(&a * *lam)))
+        .collect()
+}
+
+/// Σ_g = λ_g C, |C| = 1 (varying volume, equal shape and orientation): alternate
+/// C ∝ Σ_g W_g/λ_g and λ_g = tr(W_g C⁻¹)/(d n_g) from the volumes `lambda`.
+fn volumes_and_shared_matrix(w: &[DMatrix<f64>], n: &[f64], mut lambda: Vec<f64>) -> Vec<DMatrix<f64>> {
+    let (g, d) = (w.len(), w[0].nrows());
+    // Σ_g = λ_g C, |C| = 1: alternate C ∝ Σ_g W_g/λ_g and λ_g = tr(W_g C⁻¹)/(d n_g).
+    let mut c = DMatrix::identity(d, d);
+    let mut last = f64::INFINITY;
+    for _ in 0..MAX_INNER {
+        let s: DMatrix<f64> = w
+            .iter()
+            .zip(&lambda)
+            .fold(DMatrix::zeros(d, d), |acc, (m, l)| acc + m / *l);
+        c = &s / geo_mean(eigen_desc(&s).0.iter().copied());
+        let c_inv = c.clone().try_inverse().unwrap_or_else(|| DMatrix::identity(d, d));
+        for k in 0..g {
+            lambda[k] = (&c_inv * &w[k]).trace() / (d as f64 * n[k]);
+        }
+        let sig: Vec<DMatrix<f64>> = lambda.iter().map(|l| &c * *l).collect();
+        let obj = objective(w, n, &sig);
+        if (last - obj).abs() <= INNER_TOLERANCE * obj.abs() {
+            break;
+        }
+        last = obj;
+    }
+    lambda.iter().map(|l| &c * *l).collect()
 }
 
 /// Σ_g = D Λ_g D' with a common orientation D and diagonal Λ_g: λ A_g (equal volume) or
