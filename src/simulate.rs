@@ -269,27 +269,19 @@ pub fn parse(path: &Path, text: &str) -> Result<Truth> {
         .enumerate()
         .map(|(k, c)| cluster(k, c, &head, sim, &check_terms, &err))
         .collect::<Result<Vec<_>>>()?;
-    let Head {
-        rows,
-        seed,
-        decimals,
-        indicators,
-        items,
-        missing_items,
-    } = head;
     let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
     Ok(Truth {
         title: sim.title.clone().unwrap_or_else(|| "simulated data".into()),
-        rows: rows as usize,
-        seed,
+        rows: head.rows as usize,
+        seed: head.seed,
         output: crate::spec::resolve(&base, sim.output.get_ref()),
         id: sim.id.clone().unwrap_or_else(|| "id".into()),
-        indicators,
-        items,
+        indicators: head.indicators,
+        items: head.items,
         counts: sim.counts.clone(),
         exposure,
-        missing_items,
-        decimals,
+        missing_items: head.missing_items,
+        decimals: head.decimals,
         truth_column: sim.truth_column.clone(),
         covariates,
         clusters,

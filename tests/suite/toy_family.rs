@@ -14,7 +14,6 @@ use cohortmix::model::{FitData, GaussianStats, ModelOptions};
 use cohortmix::pipeline::{self, Cache, Mode, Quiet};
 use cohortmix::rng::Stream;
 use cohortmix::spec::{FamilyInfo, Layout, TypeKind};
-use std::any::Any;
 use std::sync::Arc;
 
 static INFO: FamilyInfo = FamilyInfo {
@@ -121,15 +120,6 @@ impl Rates {
 impl Block for Rates {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
-    }
-    fn as_any(&self) -> &dyn Any {
-        self
-    }
-    fn as_any_mut(&mut self) -> &mut dyn Any {
-        self
-    }
-    fn clone_block(&self) -> Box<dyn Block> {
-        Box::new(self.clone())
     }
 
     fn add_log_density(&self, out: &mut [f64]) {

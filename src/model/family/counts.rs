@@ -18,7 +18,6 @@ use crate::model::glm::{fit_poisson, PoissonRows};
 use crate::model::{design_rows, FitData, ModelOptions};
 use crate::rng::Stream;
 use crate::spec::{FamilyInfo, FamilyKey, Layout, TypeKind};
-use std::any::Any;
 use std::sync::Arc;
 
 /// What the spec and data layers know of the family.
@@ -233,18 +232,6 @@ impl CountComponents {
 impl Block for CountComponents {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
-    }
-
-    fn as_any(&self) -> &dyn Any {
-        self
-    }
-
-    fn as_any_mut(&mut self) -> &mut dyn Any {
-        self
-    }
-
-    fn clone_block(&self) -> Box<dyn Block> {
-        Box::new(self.clone())
     }
 
     fn add_log_density(&self, out: &mut [f64]) {

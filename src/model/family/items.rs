@@ -23,7 +23,6 @@ use crate::model::{FitData, ModelOptions};
 use crate::numerics::log_sum_exp;
 use crate::rng::Stream;
 use crate::spec::{FamilyInfo, FamilyKey, Layout, TypeKind};
-use std::any::Any;
 use std::sync::Arc;
 
 /// What the spec and data layers know of the family.
@@ -309,18 +308,6 @@ impl ItemComponents {
 impl Block for ItemComponents {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
-    }
-
-    fn as_any(&self) -> &dyn Any {
-        self
-    }
-
-    fn as_any_mut(&mut self) -> &mut dyn Any {
-        self
-    }
-
-    fn clone_block(&self) -> Box<dyn Block> {
-        Box::new(self.clone())
     }
 
     fn add_log_density(&self, out: &mut [f64]) {

@@ -294,16 +294,35 @@ pub trait RowSampler {
     fn finish(self: Box<Self>) -> IndicatorValues;
 }
 
-/// One block of the component model: a family's parameters over its prepared arrays.
-pub trait Block: Debug + Send + Sync {
-    /// The family.
-    fn info(&self) -> &'static FamilyInfo;
+/// What every block has by being a `Clone + 'static` type (given to each block by a
+/// blanket implementation, so a family writes none of it).
+pub trait BlockBase {
     /// This block as `Any`, for its own family's code.
     fn as_any(&self) -> &dyn Any;
     /// This block as `Any`, mutable.
     fn as_any_mut(&mut self) -> &mut dyn Any;
     /// A copy.
     fn clone_block(&self) -> Box<dyn Block>;
+}
+
+impl<T: Block + Clone + 'static> BlockBase for T {
+    fn as_any(&self) -> &dyn Any {
+        self
+    }
+
+    fn as_any_mut(&mut self) -> &mut dyn Any {
+        self
+    }
+
+    fn clone_block(&self) -> Box<dyn Block> {
+        Box::new(self.clone())
+    }
+}
+
+/// One block of the component model: a family's parameters over its prepared arrays.
+pub trait Block: BlockBase + Debug + Send + Sync {
+    /// The family.
+    fn info(&self) -> &'static FamilyInfo;
 
     /// Add log f_k(y_i | z_i) of this block's indicators to `out` (n×G, row-major).
     fn add_log_density(&self, out: &mut [f64]);

@@ -19,7 +19,6 @@ use crate::model::{FitData, ModelOptions};
 use crate::rng::Stream;
 use crate::spec::{FamilyInfo, FamilyKey, Layout, Study, TypeKind};
 use nalgebra::DMatrix;
-use std::any::Any;
 use std::sync::Arc;
 
 /// What the spec and data layers know of the family.
@@ -479,18 +478,6 @@ impl GaussianComponents {
 impl Block for GaussianComponents {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
-    }
-
-    fn as_any(&self) -> &dyn Any {
-        self
-    }
-
-    fn as_any_mut(&mut self) -> &mut dyn Any {
-        self
-    }
-
-    fn clone_block(&self) -> Box<dyn Block> {
-        Box::new(self.clone())
     }
 
     fn add_log_density(&self, out: &mut [f64]) {
