@@ -3,17 +3,19 @@
 //! A study spec ([`spec`]) names a CSV ([`data`]), the indicators that define the
 //! clusters, and covariate placements: covariates in the gating network change who
 //! belongs to a cluster ([`model::gating`]); covariates in the component models change
-//! what is measured inside it ([`model::family`]). [`fit`] runs EM with many starts over
-//! every placement and cluster count; [`report`] writes the run folder; [`simulate`] makes
-//! data from a stated truth. [`cli`] is the command line.
+//! what is measured inside it ([`model::family`], one module per component family).
+//! [`fit`] runs EM with many starts over every placement and cluster count; [`inference`]
+//! gives standard errors and effects; [`compare`] lines the placements' clusters up and
+//! says what changes; [`pipeline`] does all of it in one call and returns output types that
+//! [`render`] formats and [`runfolder`] writes; [`simulate`] makes data from a stated truth;
+//! [`cli`] is the command line. Layers use only the layers below them (see DEVELOPERS.md).
 //!
 //! ```no_run
-//! let families = cohortmix::model::family::Families::standard();
-//! let study = cohortmix::spec::load(std::path::Path::new("configs/demo.toml"), &families.infos()).unwrap();
-//! let data = cohortmix::data::load(&study).unwrap();
-//! let prepared = cohortmix::fit::prepare(&study, &data, &families).unwrap();
-//! let fits = cohortmix::fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
-//! println!("{} fits", fits.len());
+//! use cohortmix::model::family::Families;
+//! use cohortmix::pipeline::{self, Cache, Mode, Quiet};
+//! let loaded = pipeline::load(std::path::Path::new("configs/demo.toml"), &Families::standard()).unwrap();
+//! let run = pipeline::run(&loaded, Mode::Compare, Cache::none(), &mut Quiet).unwrap();
+//! print!("{}", cohortmix::render::json::results_json(&run.results));
 //! ```
 #![deny(missing_docs)]
 // `!(x > 0.0)` is written on purpose: unlike `x <= 0.0` it is also true for NaN.
