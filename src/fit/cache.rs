@@ -45,6 +45,8 @@ struct CachedBest {
     termination: Termination,
     gating_damped: usize,
     gating_fallbacks: usize,
+    #[serde(default)]
+    gating_failed: usize,
 }
 
 /// Store a finished fit (temporary name, then rename: never half a file).
@@ -60,6 +62,7 @@ pub fn store(folder: &Path, key: &str, result: &FitResult) -> std::io::Result<()
         termination: b.run.termination.clone(),
         gating_damped: b.run.gating_damped,
         gating_fallbacks: b.run.gating_fallbacks,
+        gating_failed: b.run.gating_failed,
     });
     let entry = Entry {
         key: key.to_string(),
@@ -135,6 +138,7 @@ fn rebuild(entry: Entry, spec: &FitSpec, data: &Dataset, prepared: &PreparedPlac
                     termination: c.termination,
                     gating_damped: c.gating_damped,
                     gating_fallbacks: c.gating_fallbacks,
+                    gating_failed: c.gating_failed,
                 },
                 start: c.start,
                 reaching: c.reaching,

@@ -101,6 +101,8 @@ pub struct EmRun {
     /// Iterations redone with the safe bound step because the Newton step lowered the
     /// log-likelihood.
     pub gating_fallbacks: usize,
+    /// Gating M-steps whose Newton step failed (its line search, or a singular Hessian).
+    pub gating_failed: usize,
 }
 
 /// Growth of the longest extrapolation step after it is taken (and its shrinkage after
@@ -205,6 +207,7 @@ struct Walk<'a> {
     objective: f64,
     damped: usize,
     fallbacks: usize,
+    failed: usize,
 }
 
 impl<'a> Walk<'a> {
@@ -228,6 +231,7 @@ impl<'a> Walk<'a> {
             objective: f64::NAN,
             damped: 0,
             fallbacks: 0,
+            failed: 0,
         }
     }
 
@@ -272,6 +276,7 @@ impl<'a> Walk<'a> {
             .m_step(&self.data, &self.tau, known, known_sums, GatingUpdate::Newton)
             .map_err(degenerate)?;
         self.damped += step.damped;
+        self.failed += usize::from(step.outcome.failed());
         let mut next = self.evaluate(&model);
         // A Newton step without line search can overshoot; redo the iteration with the
         // bound step, which cannot lower the objective.
@@ -358,13 +363,13 @@ impl<'a> Walk<'a> {
         if !(there.1.is_finite() && there.1 >= here_objective) {
             return (alpha, Jump::Rejected);
         }
-        let (trace_len, fallbacks, damped) = (self.trace.len(), self.fallbacks, self.damped);
+        let (trace_len, fallbacks, damped, failed) = (self.trace.len(), self.fallbacks, self.damped, self.failed);
         self.accept(candidate, there);
         let stable = self.step(iteration).is_ok() && self.objective >= here_objective;
         if !stable {
             // Back to θ₂ with its E-step, as if the extrapolation had not been tried.
             self.trace.truncate(trace_len);
-            (self.fallbacks, self.damped) = (fallbacks, damped);
+            (self.fallbacks, self.damped, self.failed) = (fallbacks, damped, failed);
             let back = self.evaluate(&here_model);
             self.accept(here_model, back);
             return (alpha, Jump::Rejected);
@@ -388,6 +393,7 @@ impl<'a> Walk<'a> {
             termination,
             gating_damped: self.damped,
             gating_fallbacks: self.fallbacks,
+            gating_failed: self.failed,
         }
     }
 }

@@ -11,8 +11,12 @@ use crate::model::gating::Gating;
 use crate::spec::Study;
 use serde::Serialize;
 
-/// Version of the `results.json` layout.
-pub const SCHEMA_VERSION: u32 = 3;
+/// Version of the `results.json` layout (4: `newton_steps_failed` per fit).
+pub const SCHEMA_VERSION: u32 = 4;
+
+fn is_zero(n: &usize) -> bool {
+    *n == 0
+}
 
 /// The whole `results.json`.
 #[derive(Debug, Serialize, schemars::JsonSchema)]
@@ -166,6 +170,10 @@ pub struct FitRecord {
     /// posterior weight, whose probability smoothing held off 0 (absent without smoothing).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub item_cells_held_off_zero: Option<usize>,
+    /// M-steps of the best start whose inner Newton step failed (its line search, or a
+    /// singular Hessian): gating, item logits and rate regressions (absent when none did).
+    #[serde(skip_serializing_if = "is_zero")]
+    pub newton_steps_failed: usize,
     /// Every parameter, named, on the original scale, with its standard error when the
     /// fit's standard errors were computed.
     pub parameters_named: Vec<NamedParameter>,
@@ -372,6 +380,9 @@ fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInferenc
             .best
             .as_ref()
             .and_then(|b| b.run.model.components.guard("item_cells_held_off_zero")),
+        newton_steps_failed: f.best.as_ref().map_or(0, |b| {
+            b.run.gating_failed + b.run.model.components.guard("newton_steps_failed").unwrap_or(0)
+        }),
         parameters_named,
         standard_errors,
         effects,

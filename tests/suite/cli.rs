@@ -79,7 +79,7 @@ fn fit_writes_the_run_folder() {
     assert!(stdout.contains("smaller is better"), "{stdout}");
     let run = dir.path().join("run");
     let results: serde_json::Value = serde_json::from_slice(&read(&run.join("results.json"))).unwrap();
-    assert_eq!(results["schema_version"], 3);
+    assert_eq!(results["schema_version"], cohortmix::pipeline::output::SCHEMA_VERSION);
     let fits = results["fits"].as_array().unwrap();
     assert_eq!(fits.len(), 6);
     let rows = results["study"]["rows_used"].as_u64().unwrap() as usize;

@@ -10,8 +10,8 @@
 //! iteration ([`crate::model::glm`]), a generalised EM step.
 
 use super::{
-    read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family, ParamBlock,
-    Parameter, Prepared, RowSampler, RowScorer,
+    read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family, Guard,
+    ParamBlock, Parameter, Prepared, RowSampler, RowScorer,
 };
 use crate::data::{Dataset, Design, Exposure, IndicatorSet, IndicatorValues};
 use crate::model::glm::{fit_poisson, PoissonRows};
@@ -159,6 +159,7 @@ impl Prepared for CountData {
         let mut b = CountComponents::new(self, g);
         b.coef = saved.coefficients;
         b.started = saved.started;
+        b.failed_steps = saved.failed_steps;
         Ok(Box::new(b))
     }
 
@@ -182,6 +183,9 @@ struct SavedCounts {
     coefficients: Vec<Vec<f64>>,
     /// Whether an M-step has run.
     started: bool,
+    /// Rate-regression Newton steps that failed.
+    #[serde(default)]
+    failed_steps: usize,
 }
 
 /// Largest |coefficient| (fitting scale) taken as estimable: a log rate ratio of 50 is a
@@ -201,6 +205,9 @@ pub struct CountComponents {
     pub coef: Vec<Vec<f64>>,
     /// Whether an M-step has run (the first one starts each regression from scratch).
     pub started: bool,
+    /// M-steps of rate regressions whose Newton step failed (line search or singular
+    /// Hessian).
+    pub failed_steps: usize,
 }
 
 impl CountComponents {
@@ -214,6 +221,7 @@ impl CountComponents {
             terms,
             coef,
             started: false,
+            failed_steps: 0,
         }
     }
 
@@ -311,6 +319,7 @@ impl Block for CountComponents {
                     weights: &v,
                 };
                 let fit = fit_poisson(&rows, &start, 1);
+                self.failed_steps += usize::from(fit.outcome.failed());
                 if fit.beta.iter().any(|b| !(b.abs() <= SEPARATION_LOG_RATE)) {
                     return Err(Degeneracy {
                         cluster: k + 1,
@@ -402,6 +411,13 @@ impl Block for CountComponents {
         out.extend((0..self.terms.len()).map(|c| self.eta(c, k, z).exp()));
     }
 
+    fn guards(&self) -> Vec<Guard> {
+        vec![Guard {
+            name: "newton_steps_failed",
+            count: self.failed_steps,
+        }]
+    }
+
     fn sampler(&self) -> Box<dyn RowSampler + '_> {
         Box::new(CountSampler {
             block: self,
@@ -413,6 +429,7 @@ impl Block for CountComponents {
         let saved = SavedCounts {
             coefficients: self.coef.clone(),
             started: self.started,
+            failed_steps: self.failed_steps,
         };
         serde_json::to_value(saved).expect("numbers encode")
     }

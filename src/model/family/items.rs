@@ -158,6 +158,7 @@ impl Prepared for ItemData {
         b.log_prob = saved.log_probabilities;
         b.coef = saved.logit_coefficients;
         b.empty_cells = saved.empty_cells;
+        b.failed_steps = saved.failed_steps;
         Ok(Box::new(b))
     }
 
@@ -204,6 +205,9 @@ struct SavedItems {
     smoothing: f64,
     /// Cells held off 0 by smoothing at the last M-step.
     empty_cells: usize,
+    /// Item-logit Newton steps that failed.
+    #[serde(default)]
+    failed_steps: usize,
 }
 
 /// Largest |coefficient| (log odds, fitting scale) taken as estimable. A log odds of 50
@@ -232,6 +236,8 @@ pub struct ItemComponents {
     /// At the last M-step: (cluster, item, level) cells with no weight, whose probability
     /// would be exactly 0 without smoothing (with smoothing they are held off 0).
     pub empty_cells: usize,
+    /// M-steps of item logits whose Newton step failed (line search or singular Hessian).
+    pub failed_steps: usize,
 }
 
 impl ItemComponents {
@@ -270,6 +276,7 @@ impl ItemComponents {
             coef,
             smoothing,
             empty_cells: 0,
+            failed_steps: 0,
         }
     }
 
@@ -393,6 +400,7 @@ impl Block for ItemComponents {
                     ridge: 0.0,
                 };
                 let fit = fit_multinomial_logit(&rows, &start, 1);
+                self.failed_steps += usize::from(fit.outcome.failed());
                 if fit.gamma.iter().any(|b| !(b.abs() <= SEPARATION_LOGIT)) {
                     return Err(Degeneracy {
                         cluster: k + 1,
@@ -562,14 +570,17 @@ impl Block for ItemComponents {
     }
 
     fn guards(&self) -> Vec<Guard> {
+        let mut out = vec![Guard {
+            name: "newton_steps_failed",
+            count: self.failed_steps,
+        }];
         if self.smoothing > 0.0 {
-            vec![Guard {
+            out.push(Guard {
                 name: "item_cells_held_off_zero",
                 count: self.empty_cells,
-            }]
-        } else {
-            Vec::new()
+            });
         }
+        out
     }
 
     fn sampler(&self) -> Box<dyn RowSampler + '_> {
@@ -586,6 +597,7 @@ impl Block for ItemComponents {
             logit_coefficients: self.coef.clone(),
             smoothing: self.smoothing,
             empty_cells: self.empty_cells,
+            failed_steps: self.failed_steps,
         };
         serde_json::to_value(saved).expect("numbers encode")
     }

@@ -127,8 +127,9 @@ pub struct Parameter {
     pub value: f64,
 }
 
-/// A numerical guard a block applied, counted (a variance floor raised an eigenvalue, a
-/// probability was held off 0): written with each fit so a reader can see it acted.
+/// A numerical guard a block applied, or an inner step that failed, counted (a variance
+/// floor raised an eigenvalue, a probability was held off 0, a Newton step of an M-step
+/// failed): written with each fit so a reader can see it.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Guard {
     /// Its name in `results.json`.
@@ -495,13 +496,14 @@ impl Components {
         Ok(read)
     }
 
-    /// The count of a named guard over the blocks (0 when none applies it).
+    /// The count of a named guard over the blocks (None when no block applies it).
     pub fn guard(&self, name: &str) -> Option<usize> {
         self.blocks
             .iter()
             .flat_map(|b| b.guards())
-            .find(|g| g.name == name)
+            .filter(|g| g.name == name)
             .map(|g| g.count)
+            .reduce(|a, b| a + b)
     }
 
     /// The block of type `T`, for code that knows its family (tests, the family itself).
