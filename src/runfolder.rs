@@ -65,7 +65,8 @@ pub struct Manifest {
     pub seconds_reading: f64,
     /// Wall time of fitting, seconds.
     pub seconds_fitting: f64,
-    /// Wall time of the standard errors, seconds.
+    /// Wall time of what follows the fits (standard errors, the direct-effect screen,
+    /// the cluster-count tests, the comparison), seconds.
     pub seconds_inference: f64,
 }
 
@@ -106,9 +107,14 @@ impl<'a> RunFiles<'a> {
         // link someone planted); dropped on failure, they are removed.
         let mut temps: Vec<(tempfile::NamedTempFile, PathBuf)> = Vec::new();
         for (name, contents) in self.files {
-            let made = tempfile::Builder::new()
-                .prefix(&format!(".{name}."))
-                .suffix(".partial")
+            let prefix = format!(".{name}.");
+            let mut builder = tempfile::Builder::new();
+            builder.prefix(&prefix).suffix(".partial");
+            // Readable by everyone before the umask, like any file the user writes
+            // (temporary files are otherwise owner-only).
+            #[cfg(unix)]
+            builder.permissions(std::os::unix::fs::PermissionsExt::from_mode(0o666));
+            let made = builder
                 .tempfile_in(dir)
                 .map_err(|e| fail(format!("cannot create a temporary file in {}", dir.display()), e))?;
             let mut out = std::io::BufWriter::new(made);

@@ -101,7 +101,9 @@ pub struct EmRun {
     /// Iterations redone with the safe bound step because the Newton step lowered the
     /// log-likelihood.
     pub gating_fallbacks: usize,
-    /// Gating M-steps whose Newton step failed (its line search, or a singular Hessian).
+    /// Gating M-steps whose Newton step failed: its line search, or (where the step
+    /// stops on a singular Hessian rather than damping it, counted in `gating_damped`)
+    /// a singular Hessian.
     pub gating_failed: usize,
 }
 

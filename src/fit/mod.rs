@@ -4,7 +4,8 @@
 //! (errors point at the placement in the spec). [`plan`] lists the grid's fits as values
 //! ([`FitSpec`]); [`fit_cell`] runs all starts of one in parallel, each with its own
 //! random stream, and keeps the best usable start; a start that degenerates is recorded
-//! with its reason and skipped. [`fit_grid`] does every fit, through the cache.
+//! with its reason and skipped. [`fit_grid`] does every fit; [`fit_grid_cached`] looks each
+//! up in the run's cache first.
 
 pub mod cache;
 mod cell;

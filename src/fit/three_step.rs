@@ -20,6 +20,7 @@
 
 use crate::data::Design;
 use crate::model::gating::{fit_multinomial_logit, logit_score_hessian, LogitRows, MAX_NEWTON_ITERATIONS};
+use crate::numerics::newton::Outcome;
 use crate::numerics::{log_softmax_row, most_likely, softmax_in_place};
 use crate::spec::Method;
 use nalgebra::DMatrix;
@@ -122,7 +123,11 @@ pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: 
         }
         _ => {
             let covariance = bch_sandwich(w, p, &bch, g, weights, &bch_fit.gamma)?;
-            (bch_fit.gamma.clone(), covariance, bch_fit.outcome.converged())
+            // A line search that can no longer raise the objective ends the iteration
+            // and counts as converged here (the step-three flag has always meant "did
+            // not run out of iterations or meet a singular Hessian").
+            let converged = matches!(bch_fit.outcome, Outcome::Converged | Outcome::LineSearchFailed);
+            (bch_fit.gamma.clone(), covariance, converged)
         }
     };
     Ok(StepThree {

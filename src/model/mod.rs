@@ -65,22 +65,14 @@ pub struct ModelOptions {
 }
 
 impl ModelOptions {
-    /// Options of a study's search for one structure.
-    pub fn from_search(search: &crate::spec::Search, structure: crate::spec::CovarianceStructure) -> ModelOptions {
-        ModelOptions {
-            structure,
-            gating_ridge: search.gating_ridge,
-            covariance_prior: search.covariance_prior,
-            variance_floor: search.variance_floor,
-            smoothing: 0.0,
-        }
-    }
-
     /// Options of a study's fits for one structure.
     pub fn for_study(study: &crate::spec::Study, structure: crate::spec::CovarianceStructure) -> ModelOptions {
         ModelOptions {
+            structure,
+            gating_ridge: study.search.gating_ridge,
+            covariance_prior: study.search.covariance_prior,
+            variance_floor: study.search.variance_floor,
             smoothing: study.smoothing,
-            ..ModelOptions::from_search(&study.search, structure)
         }
     }
 }
@@ -221,7 +213,8 @@ pub fn e_step(model: &Model, data: &FitData, tau: &mut [f64], gating_stats: Opti
 }
 
 /// [`e_step`] that also fills the fused block's M-step sums, when asked and the model
-/// has a fused block. The blocks that are not fused add their log-densities first (in
+/// has a fused block (the first block that offers a fused pass; any later one adds its
+/// log-density like the others). The other blocks add their log-densities first (in
 /// block order); the tiled row pass of [`rows`] adds the fused block's and the gating
 /// network's.
 pub fn e_step_with(
@@ -232,9 +225,10 @@ pub fn e_step_with(
     sums: Option<&mut GaussianStats>,
 ) -> f64 {
     let blocks = &model.components.blocks;
-    let fused = blocks.iter().find_map(|b| b.fused());
+    let at = model.components.fused_at();
+    let fused = at.and_then(|i| blocks[i].fused());
     let mut base = Base::Empty;
-    for b in blocks.iter().filter(|b| b.fused().is_none()) {
+    for (_, b) in blocks.iter().enumerate().filter(|(i, _)| Some(*i) != at) {
         if base == Base::Empty {
             tau.fill(0.0);
             base = Base::Written;
@@ -267,11 +261,6 @@ pub fn e_step_sums(model: &Model, data: &FitData, gating_stats: &mut GatingStats
         .fused()
         .expect("a model stepping from sums has a fused block");
     fused.pass(data, &model.gating, Base::Empty, None, Some(gating_stats), Some(sums))
-}
-
-/// Log-likelihood alone (no responsibilities kept); uses `scratch` of length n×G.
-pub fn log_likelihood(model: &Model, data: &FitData, scratch: &mut [f64]) -> f64 {
-    e_step(model, data, scratch, None)
 }
 
 /// Rows of a row-major design `z` (n×qz) restricted to the columns `cols`, row-major.

@@ -25,7 +25,7 @@ pub trait Concave {
 pub enum WhenSingular {
     /// Stop where the iteration stands.
     Stop,
-    /// Add μI to the negative Hessian, μ growing tenfold from 1e-8 × its mean diagonal
+    /// Add μI to the negative Hessian, μ growing tenfold from 1e-8·(1 + |its mean diagonal|)
     /// until it can be solved (Levenberg's damping); counted in [`NewtonFit::damped`].
     Damp,
 }

@@ -18,7 +18,8 @@ fn is_zero(n: &usize) -> bool {
     *n == 0
 }
 
-/// The whole `results.json`.
+/// What `results.json` holds, but for the comparison's sentences and notes, which
+/// `render::json` adds.
 #[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct Results {
     /// Layout version.
@@ -374,14 +375,21 @@ fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInferenc
         variance_floor_hits: f
             .best
             .as_ref()
-            .and_then(|b| b.run.model.components.guard("variance_floor_hits"))
+            .and_then(|b| b.run.model.components.guard(crate::model::family::VARIANCE_FLOOR_HITS))
             .unwrap_or(0),
-        item_cells_held_off_zero: f
-            .best
-            .as_ref()
-            .and_then(|b| b.run.model.components.guard("item_cells_held_off_zero")),
+        item_cells_held_off_zero: f.best.as_ref().and_then(|b| {
+            b.run
+                .model
+                .components
+                .guard(crate::model::family::ITEM_CELLS_HELD_OFF_ZERO)
+        }),
         newton_steps_failed: f.best.as_ref().map_or(0, |b| {
-            b.run.gating_failed + b.run.model.components.guard("newton_steps_failed").unwrap_or(0)
+            b.run.gating_failed
+                + b.run
+                    .model
+                    .components
+                    .guard(crate::model::family::NEWTON_STEPS_FAILED)
+                    .unwrap_or(0)
         }),
         parameters_named,
         standard_errors,

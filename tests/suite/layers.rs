@@ -24,31 +24,37 @@ fn layer(module: &str) -> Option<usize> {
     LAYERS.iter().position(|l| l.contains(&module))
 }
 
-/// The top-level modules a line's `crate::` paths name (`crate::a::b`, `crate::{a, b::c}`).
-fn named(line: &str) -> Vec<String> {
+/// The top-level modules the `crate::` paths of `text` name (`crate::a::b`,
+/// `crate::{a, b::c}`, a group may run over several lines).
+fn named(text: &str) -> Vec<String> {
+    text.match_indices("crate::")
+        .flat_map(|(at, _)| first_named(&text[at..]))
+        .collect()
+}
+
+/// The top-level modules the `crate::` path at the start of `text` names.
+fn first_named(text: &str) -> Vec<String> {
+    let rest = &text["crate::".len()..];
     let mut out = Vec::new();
-    for (at, _) in line.match_indices("crate::") {
-        let rest = &line[at + "crate::".len()..];
-        if let Some(group) = rest.strip_prefix('{') {
-            let mut depth = 0;
-            let mut item = String::new();
-            for c in group.chars() {
-                match c {
-                    '{' => depth += 1,
-                    '}' if depth == 0 => break,
-                    '}' => depth -= 1,
-                    ',' if depth == 0 => {
-                        out.push(std::mem::take(&mut item));
-                        continue;
-                    }
-                    _ => {}
+    if let Some(group) = rest.strip_prefix('{') {
+        let mut depth = 0;
+        let mut item = String::new();
+        for c in group.chars() {
+            match c {
+                '{' => depth += 1,
+                '}' if depth == 0 => break,
+                '}' => depth -= 1,
+                ',' if depth == 0 => {
+                    out.push(std::mem::take(&mut item));
+                    continue;
                 }
-                item.push(c);
+                _ => {}
             }
-            out.push(item);
-        } else {
-            out.push(rest.to_string());
+            item.push(c);
         }
+        out.push(item);
+    } else {
+        out.push(rest.to_string());
     }
     out.iter()
         .map(|p| {
@@ -59,6 +65,17 @@ fn named(line: &str) -> Vec<String> {
         })
         .filter(|s: &String| !s.is_empty())
         .collect()
+}
+
+/// The text with every `//` comment blanked out (lines kept, so line numbers hold).
+fn without_comments(text: &str) -> String {
+    text.lines()
+        .map(|l| match l.find("//") {
+            Some(at) => &l[..at],
+            None => l,
+        })
+        .collect::<Vec<_>>()
+        .join("\n")
 }
 
 fn rust_files(dir: &std::path::Path, out: &mut Vec<std::path::PathBuf>) {
@@ -89,14 +106,14 @@ fn upward_edges(src: &std::path::Path) -> Vec<String> {
             );
             continue;
         };
-        for (n, line) in std::fs::read_to_string(&file).unwrap().lines().enumerate() {
-            if line.trim_start().starts_with("//") {
-                continue;
-            }
-            for to in named(line) {
+        let text = without_comments(&std::fs::read_to_string(&file).unwrap());
+        for (at, _) in text.match_indices("crate::") {
+            // The paths from here on, across lines (rustfmt breaks long groups).
+            for to in first_named(&text[at..]) {
                 let Some(layer_to) = layer(&to) else { continue };
                 if to != top && layer_to >= from {
-                    bad.push(format!("{}:{}: {top} uses {to}", rel.display(), n + 1));
+                    let line = text[..at].matches('\n').count() + 1;
+                    bad.push(format!("{}:{line}: {top} uses {to}", rel.display()));
                 }
             }
         }
@@ -110,8 +127,27 @@ fn modules_use_only_lower_layers() {
     assert!(bad.is_empty(), "upward or sideways uses:\n{}", bad.join("\n"));
 }
 
+/// What `lib.rs` re-exports comes from the lowest layer, so that a path such as
+/// `crate::Error` (which the check above does not follow) cannot hide an upward edge.
+#[test]
+fn the_crate_root_re_exports_only_from_the_lowest_layer() {
+    let lib = std::fs::read_to_string(root("src/lib.rs")).unwrap();
+    for line in lib.lines().filter(|l| l.trim_start().starts_with("pub use")) {
+        let module = line.trim_start().trim_start_matches("pub use").trim_start();
+        let module: String = module
+            .chars()
+            .take_while(|c| c.is_alphanumeric() || *c == '_')
+            .collect();
+        assert_eq!(layer(&module), Some(0), "lib.rs re-exports from {module}: {line}");
+    }
+}
+
 #[test]
 fn the_layer_check_sees_grouped_paths() {
+    assert_eq!(
+        named("use crate::{\n    data::Dataset,\n    fit::{self, x},\n};"),
+        ["data", "fit"]
+    );
     assert_eq!(named("use crate::{data, fit::{self, x}};"), ["data", "fit"]);
     assert_eq!(named("let s = crate::spec::load(p, f);"), ["spec"]);
     assert_eq!(named("crate::numerics::hex(a) + crate::rng::x"), ["numerics", "rng"]);

@@ -61,3 +61,54 @@ fn fitted_models_layout_is_pinned_to_its_version() {
         schemars::schema_for!(cohortmix::fit::saved::SavedRun),
     );
 }
+
+/// A block's `state` in `fitted-models.json` is written by its family, outside the schema
+/// above; the keys of each standard family's state are pinned here instead, so that a
+/// changed state needs a new `SAVED_VERSION` too. The symptom study holds all three.
+#[test]
+fn every_block_state_keeps_its_keys() {
+    use cohortmix::fit::saved::SAVED_VERSION;
+    let families = super::common::families();
+    let loaded = cohortmix::pipeline::load(&root("configs/symptoms.toml"), &families).unwrap();
+    let placement = &loaded.prepared[0];
+    let fd = cohortmix::fit::fit_data(&loaded.data, placement);
+    let options = cohortmix::model::ModelOptions::for_study(&loaded.study, loaded.study.search.structures[0]);
+    let model = cohortmix::fit::initial_model(&fd, &placement.blocks, &placement.placement, 2, options);
+    let keys: Vec<(String, Vec<String>)> = model
+        .components
+        .blocks
+        .iter()
+        .map(|b| {
+            let state = b.state();
+            let mut keys: Vec<String> = state.as_object().unwrap().keys().cloned().collect();
+            keys.sort();
+            (b.info().word.to_string(), keys)
+        })
+        .collect();
+    let pinned: &[(&str, &[&str])] = &[
+        (
+            "gaussian",
+            &["coefficients", "covariances", "floor_hits", "orientation", "structure"],
+        ),
+        (
+            "items",
+            &[
+                "empty_cells",
+                "failed_steps",
+                "log_probabilities",
+                "logit_coefficients",
+                "smoothing",
+            ],
+        ),
+        ("counts", &["coefficients", "failed_steps", "started"]),
+    ];
+    let pinned: Vec<(String, Vec<String>)> = pinned
+        .iter()
+        .map(|(f, k)| (f.to_string(), k.iter().map(|s| s.to_string()).collect()))
+        .collect();
+    assert_eq!(
+        keys, pinned,
+        "a family's saved state changed: raise SAVED_VERSION (now {SAVED_VERSION}), describe the \
+         change in docs/results-schema.md, and pin the new keys here"
+    );
+}

@@ -18,7 +18,7 @@ use crate::model::glm::{fit_poisson, PoissonRows};
 use crate::model::{design_rows, FitData, ModelOptions};
 use crate::rng::Stream;
 use crate::spec::{FamilyInfo, FamilyKey, Layout, TypeKind};
-use std::sync::Arc;
+use std::sync::{Arc, Mutex, Weak};
 
 /// What the spec and data layers know of the family.
 pub static INFO: FamilyInfo = FamilyInfo {
@@ -62,6 +62,29 @@ impl Family for Counts {
     }
 }
 
+/// log(y!) of every count in `y`, made once per count array: every placement prepares
+/// its block from the same array, and each copy would be as large as the data. Entries
+/// whose array has been dropped are forgotten.
+fn ln_factorials(y: &Arc<Vec<f64>>) -> Arc<Vec<f64>> {
+    type Made = Vec<(Weak<Vec<f64>>, Arc<Vec<f64>>)>;
+    static MADE: Mutex<Made> = Mutex::new(Vec::new());
+    let mut made = MADE.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
+    made.retain(|(of, _)| of.strong_count() > 0);
+    if let Some((_, lf)) = made
+        .iter()
+        .find(|(of, _)| of.upgrade().is_some_and(|of| Arc::ptr_eq(&of, y)))
+    {
+        return Arc::clone(lf);
+    }
+    let lf: Arc<Vec<f64>> = Arc::new(
+        y.iter()
+            .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
+            .collect(),
+    );
+    made.push((Arc::downgrade(y), Arc::clone(&lf)));
+    lf
+}
+
 /// The prepared block of these arrays.
 pub fn prepared(data: CountData) -> Arc<dyn Prepared> {
     Arc::new(data)
@@ -74,8 +97,8 @@ pub struct CountData {
     pub names: Vec<String>,
     /// Counts, column by column: count c of row i at `y[c * n + i]`.
     pub y: Arc<Vec<f64>>,
-    /// log(y!) of every count, laid out as `y`.
-    pub ln_factorial: Vec<f64>,
+    /// log(y!) of every count, laid out as `y` (shared by every placement's block).
+    pub ln_factorial: Arc<Vec<f64>>,
     /// The placement's whole component design, n×qz (intercept first).
     pub design: Design,
     /// Per count, the design columns its regression uses (intercept first).
@@ -97,10 +120,7 @@ impl CountData {
         terms: Vec<Vec<usize>>,
         exposure: Option<Arc<Exposure>>,
     ) -> CountData {
-        let ln_factorial = y
-            .iter()
-            .map(|v| statrs::function::factorial::ln_factorial(*v as u64))
-            .collect();
+        let ln_factorial = ln_factorials(&y);
         let x = terms
             .iter()
             .map(|cols| {
@@ -413,7 +433,7 @@ impl Block for CountComponents {
 
     fn guards(&self) -> Vec<Guard> {
         vec![Guard {
-            name: "newton_steps_failed",
+            name: super::NEWTON_STEPS_FAILED,
             count: self.failed_steps,
         }]
     }

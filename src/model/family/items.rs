@@ -236,7 +236,8 @@ pub struct ItemComponents {
     /// At the last M-step: (cluster, item, level) cells with no weight, whose probability
     /// would be exactly 0 without smoothing (with smoothing they are held off 0).
     pub empty_cells: usize,
-    /// M-steps of item logits whose Newton step failed (line search or singular Hessian).
+    /// Newton steps of (item, cluster) logits that failed, over the fit (line search, or a
+    /// Hessian singular even when damped).
     pub failed_steps: usize,
 }
 
@@ -571,12 +572,12 @@ impl Block for ItemComponents {
 
     fn guards(&self) -> Vec<Guard> {
         let mut out = vec![Guard {
-            name: "newton_steps_failed",
+            name: super::NEWTON_STEPS_FAILED,
             count: self.failed_steps,
         }];
         if self.smoothing > 0.0 {
             out.push(Guard {
-                name: "item_cells_held_off_zero",
+                name: super::ITEM_CELLS_HELD_OFF_ZERO,
                 count: self.empty_cells,
             });
         }

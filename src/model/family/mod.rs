@@ -132,11 +132,19 @@ pub struct Parameter {
 /// failed): written with each fit so a reader can see it.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Guard {
-    /// Its name in `results.json`.
+    /// Its name in `results.json` (one of the constants below for the guards results.json
+    /// reports by name).
     pub name: &'static str,
     /// Times it acted in the fit.
     pub count: usize,
 }
+
+/// Guard: times the variance floor raised a covariance eigenvalue.
+pub const VARIANCE_FLOOR_HITS: &str = "variance_floor_hits";
+/// Guard: item cells with no posterior weight that smoothing held off 0.
+pub const ITEM_CELLS_HELD_OFF_ZERO: &str = "item_cells_held_off_zero";
+/// Guard: inner Newton steps of a block's M-step that failed.
+pub const NEWTON_STEPS_FAILED: &str = "newton_steps_failed";
 
 /// A component family: the static part, one value per family.
 pub trait Family: Send + Sync {
@@ -451,11 +459,17 @@ impl Components {
         tau: &[f64],
         sums: Option<&GaussianStats>,
     ) -> std::result::Result<(), Degeneracy> {
-        for b in &mut self.blocks {
-            let own = if b.fused().is_some() { sums } else { None };
+        let at = self.fused_at();
+        for (i, b) in self.blocks.iter_mut().enumerate() {
+            let own = if Some(i) == at { sums } else { None };
             b.m_step(fd, tau, own)?;
         }
         Ok(())
+    }
+
+    /// The block whose fused pass the E-step runs: the first that offers one.
+    pub fn fused_at(&self) -> Option<usize> {
+        self.blocks.iter().position(|b| b.fused().is_some())
     }
 
     /// Free parameters.

@@ -666,7 +666,7 @@ impl Block for GaussianComponents {
 
     fn guards(&self) -> Vec<Guard> {
         vec![Guard {
-            name: "variance_floor_hits",
+            name: super::VARIANCE_FLOOR_HITS,
             count: self.floor_hits,
         }]
     }
@@ -757,10 +757,10 @@ impl RowSampler for GaussianSampler<'_> {
 fn check_scales(study: &Study, set: &IndicatorSet) -> Result<()> {
     let y = set.numbers();
     let d = set.names.len();
-    let n = y.len() / d;
-    if d == 0 || n == 0 {
+    if d == 0 || y.is_empty() {
         return Ok(());
     }
+    let n = y.len() / d;
     let column = |name: &str| {
         study
             .indicators
