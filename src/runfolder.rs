@@ -28,7 +28,7 @@ pub fn write(folder: &Path, loaded: &Loaded, run: &RunResults, manifest: &Manife
     let mut files = RunFiles::default();
     files.add("results.json", render::json::results_json(results));
     files.add("models.csv", render::csv::models_csv(results));
-    let sets = render::csv::chosen_memberships(&run.fits, &results.chosen);
+    let sets = render::csv::reported_memberships(&run.fits, &run.reported, &run.numbering.numbers);
     let ids = &loaded.data.ids;
     files.add_written("memberships.csv", move |out| {
         render::csv::write_memberships(out, ids, &sets)

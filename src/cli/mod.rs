@@ -337,9 +337,13 @@ fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<(
     let stored = saved::load_run(run)?;
     let (study, data) = saved::load_new_data(&stored, data_path, &families)?;
     let predicted = saved::predict(&stored, &study, &data, &families)?;
-    let sets: Vec<(&str, usize, &[f64])> = predicted
+    let sets: Vec<render::csv::MembershipSet> = predicted
         .iter()
-        .map(|p| (p.placement.as_str(), p.clusters, p.tau.as_slice()))
+        .map(|p| render::csv::MembershipSet {
+            placement: &p.placement,
+            numbers: &p.numbers,
+            tau: &p.tau,
+        })
         .collect();
     let text = render::csv::memberships_table(&data.ids, &sets);
     let dest = out.map_or_else(

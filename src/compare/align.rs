@@ -1,11 +1,13 @@
 //! Aligning each placement's chosen clusters with the reference's (the Hungarian method
-//! on summed posterior agreement), and the cross-tables of most likely aligned clusters.
+//! on summed posterior agreement), the cluster numbers every file of a run uses, and the
+//! cross-tables of most likely aligned clusters.
 
 use super::{assign, Alignment, CrossTable};
 use crate::fit::FitResult;
 use crate::numerics::most_likely;
 
 /// A placement's chosen fit with its aligned cluster numbers.
+#[derive(Debug, Clone)]
 pub struct Labelled {
     /// Placement index.
     pub placement: usize,
@@ -13,6 +15,78 @@ pub struct Labelled {
     pub fit: usize,
     /// For each fitted cluster, its aligned number.
     pub aligned: Vec<usize>,
+}
+
+/// The number each fitted cluster carries in every file of a run (the report, summary,
+/// results, memberships, saved models and `predict`'s output).
+///
+/// In a comparison, a cluster's number is that of the reference placement's chosen
+/// cluster it agrees with most ([`align`]); clusters without a counterpart get numbers
+/// after the reference's. Every other fit of the grid is numbered against the reference's
+/// chosen fit in the same way, its unmatched clusters numbered after every number the
+/// compared fits use. Without a comparison (`fit`) clusters keep their fitted numbers,
+/// largest first.
+#[derive(Debug, Clone, Default)]
+pub struct Numbering {
+    /// Per fit, in grid order: the number of each fitted cluster (fitted cluster k, 1-based,
+    /// is `numbers[fit][k - 1]`).
+    pub numbers: Vec<Vec<usize>>,
+    /// The compared fits' alignments, the reference first.
+    pub alignments: Vec<Alignment>,
+    /// The compared fits with their numbers, the reference first.
+    pub labelled: Vec<Labelled>,
+}
+
+impl Numbering {
+    /// Every cluster keeps its fitted number.
+    pub fn as_fitted(fits: &[FitResult]) -> Numbering {
+        Numbering {
+            numbers: fits.iter().map(|f| (1..=f.clusters).collect()).collect(),
+            ..Numbering::default()
+        }
+    }
+
+    /// Number every fit's clusters against the reference placement's chosen fit
+    /// (`chosen` per placement, `order` the reference first).
+    pub fn aligned(
+        fits: &[FitResult],
+        chosen: &[Option<usize>],
+        order: &[usize],
+        reference: usize,
+        weights: &[f64],
+    ) -> Numbering {
+        let (alignments, labelled) = align(fits, chosen, order, reference, weights);
+        let mut numbers: Vec<Vec<usize>> = fits.iter().map(|f| (1..=f.clusters).collect()).collect();
+        for l in &labelled {
+            numbers[l.fit] = l.aligned.clone();
+        }
+        let reference_fit = chosen[reference].filter(|r| fits[*r].best.is_some());
+        if let Some(r) = reference_fit {
+            let first_free = labelled
+                .iter()
+                .flat_map(|l| l.aligned.iter().copied())
+                .max()
+                .unwrap_or(0)
+                + 1;
+            for (i, f) in fits.iter().enumerate() {
+                if f.best.is_none() || i == r || labelled.iter().any(|l| l.fit == i) {
+                    continue;
+                }
+                let mut next = first_free;
+                numbers[i] = matched(&fits[r], f, weights, &mut next).0;
+            }
+        }
+        Numbering {
+            numbers,
+            alignments,
+            labelled,
+        }
+    }
+
+    /// The numbers of fit `fit`'s clusters, in fitted order.
+    pub fn of(&self, fit: usize) -> &[usize] {
+        &self.numbers[fit]
+    }
 }
 
 /// Align every placement's chosen fit (in `order`, the reference first) with the

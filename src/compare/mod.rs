@@ -14,6 +14,7 @@ pub mod assign;
 pub mod findings;
 mod parts;
 
+pub use align::Numbering;
 pub use findings::{Finding, RowRef, Source, TableId};
 
 use crate::data::Dataset;
@@ -49,8 +50,9 @@ pub struct Criteria {
     pub bic_weight: Option<f64>,
     /// Relative entropy 1 − EN/(n ln G): 1 = crisp classification (not defined for G = 1).
     pub relative_entropy: Option<f64>,
-    /// Mean of the largest posterior among the rows assigned to each cluster.
-    pub average_posterior: Vec<f64>,
+    /// Mean of the largest posterior among the rows assigned to each cluster, by cluster
+    /// number.
+    pub average_posterior: Vec<ClusterValue>,
     /// Smallest cluster share (weighted posterior).
     pub smallest_share: Option<f64>,
     /// Rows assigned (most likely) to the smallest cluster.
@@ -61,6 +63,15 @@ pub struct Criteria {
     pub starts: usize,
     /// Whether this fit is the one the comparison uses for its placement.
     pub chosen: bool,
+}
+
+/// A value of one cluster, by its number.
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
+pub struct ClusterValue {
+    /// The cluster's number (as in every file of the run).
+    pub cluster: usize,
+    /// The value.
+    pub value: f64,
 }
 
 /// How one placement's chosen clusters map onto the aligned clusters.
@@ -289,7 +300,7 @@ pub struct Comparison {
     pub findings: Vec<Finding>,
 }
 
-fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Vec<Criteria> {
+fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>], numbering: &Numbering) -> Vec<Criteria> {
     let mut out = Vec::new();
     for (i, f) in fits.iter().enumerate() {
         let g = f.clusters;
@@ -316,8 +327,13 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>]) -> Ve
             avg = sums
                 .iter()
                 .zip(&counts)
-                .map(|(s, c)| if *c > 0 { s / *c as f64 } else { 0.0 })
+                .zip(numbering.of(i))
+                .map(|((s, c), number)| ClusterValue {
+                    cluster: *number,
+                    value: if *c > 0 { s / *c as f64 } else { 0.0 },
+                })
                 .collect();
+            avg.sort_by_key(|v| v.cluster);
             let shares = crate::fit::cluster_shares(tau, weights, g);
             let k_min = (0..g).min_by(|a, b| shares[*a].total_cmp(&shares[*b])).unwrap_or(0);
             smallest = Some(shares[k_min]);
@@ -371,21 +387,30 @@ fn placement_order(n: usize, reference: usize) -> Vec<usize> {
     order
 }
 
-/// The comparison of every placement's chosen fit against the reference placement's.
+/// The cluster numbers of every fit in a comparison run ([`Numbering`]).
+pub fn number_clusters(data: &Dataset, placements: usize, fits: &[FitResult], settings: &CompareSettings) -> Numbering {
+    let chosen = chosen_fits(fits, placements, settings.clusters);
+    let order = placement_order(placements, settings.reference);
+    Numbering::aligned(fits, &chosen, &order, settings.reference, &data.weights)
+}
+
+/// The comparison of every placement's chosen fit against the reference placement's,
+/// with clusters numbered as [`number_clusters`] numbered them.
 pub fn compare(
     data: &Dataset,
     prepared: &[PreparedPlacement],
     fits: &[FitResult],
+    numbering: &Numbering,
     settings: &CompareSettings,
     inference: InferenceInput,
 ) -> Comparison {
     let weights = &data.weights;
     let chosen = chosen_fits(fits, prepared.len(), settings.clusters);
-    let criteria = criteria(fits, weights, &chosen);
+    let criteria = criteria(fits, weights, &chosen, numbering);
     let order = placement_order(prepared.len(), settings.reference);
-    let (alignments, labelled) = align::align(fits, &chosen, &order, settings.reference, weights);
+    let (alignments, labelled) = (numbering.alignments.clone(), &numbering.labelled);
     let mut parts = parts::Parts::default();
-    for l in &labelled {
+    for l in labelled {
         let by_fit = inference.by_fit.get(l.fit).and_then(Option::as_ref);
         parts.add(
             data,
@@ -407,7 +432,7 @@ pub fn compare(
             .cmp(&b.cluster)
             .then(rank(&a.placement).cmp(&rank(&b.placement)))
     });
-    let cross_tables = align::cross_tables(fits, &labelled);
+    let cross_tables = align::cross_tables(fits, labelled);
     let mut c = Comparison {
         reference: prepared[settings.reference].placement.name.clone(),
         fixed_clusters: settings.clusters,

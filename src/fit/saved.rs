@@ -1,5 +1,5 @@
-//! The fitted models a run folder keeps (`fitted-models.json`): each placement's
-//! lowest-BIC fit with its parameters on the fitting scale, the design terms (with the
+//! The fitted models a run folder keeps (`fitted-models.json`): the fit a run reports for
+//! each placement, with its clusters' numbers in the run's files, its parameters on the fitting scale, the design terms (with the
 //! centres and scales of standardisation) and the levels seen, so that `predict` can give
 //! memberships for new rows with exactly the arithmetic of the fit.
 
@@ -17,8 +17,9 @@ use std::sync::Arc;
 /// File name inside a run folder.
 pub const FILE_NAME: &str = "fitted-models.json";
 
-/// Version of the file's layout (2: each block saved by its family, under its word).
-pub const SAVED_VERSION: u32 = 2;
+/// Version of the file's layout (2: each block saved by its family, under its word;
+/// 3: each fit's cluster numbers).
+pub const SAVED_VERSION: u32 = 3;
 
 /// Everything `predict` needs from a run.
 #[derive(Debug, Clone, Serialize, Deserialize, schemars::JsonSchema)]
@@ -48,6 +49,9 @@ pub struct SavedFit {
     pub placement: String,
     /// Clusters.
     pub clusters: usize,
+    /// The number each fitted cluster carries in the run's files (fitted cluster k,
+    /// 1-based, is `cluster_numbers[k - 1]`); `predict` writes these.
+    pub cluster_numbers: Vec<usize>,
     /// Covariance structure in words.
     pub covariance: String,
     /// Gating design terms.
@@ -197,13 +201,15 @@ impl SavedModel {
     }
 }
 
-/// The saved run of a study's fits: each placement's lowest-BIC fit (the fits
-/// `memberships.csv` lists).
+/// The saved run of a study's fits: the `reported` fits (the fits `memberships.csv` lists),
+/// with `numbers[fit]`, the number of each fitted cluster in the run's files.
 pub fn save(
     study: &crate::spec::Study,
     data: &Dataset,
     prepared: &[PreparedPlacement],
     fits: &[FitResult],
+    reported: &[usize],
+    numbers: &[Vec<usize>],
 ) -> SavedRun {
     let mut covariate_levels = BTreeMap::new();
     for (name, col) in &data.columns {
@@ -217,16 +223,16 @@ pub fn save(
             item_levels.extend(set.names.iter().cloned().zip(levels.iter().cloned()));
         }
     }
-    let saved = crate::fit::chosen_fits(fits, prepared.len(), None)
-        .into_iter()
-        .flatten()
-        .filter_map(|i| {
+    let saved = reported
+        .iter()
+        .filter_map(|&i| {
             let f = &fits[i];
             let best = f.best.as_ref()?;
             let pp = &prepared[f.placement_index];
             Some(SavedFit {
                 placement: f.placement.clone(),
                 clusters: f.clusters,
+                cluster_numbers: numbers[i].clone(),
                 covariance: f.covariance(),
                 gating_terms: pp.gating.terms.clone(),
                 component_terms: pp.components.terms.clone(),
@@ -253,7 +259,9 @@ pub struct Predicted {
     pub placement: String,
     /// Clusters.
     pub clusters: usize,
-    /// Posterior membership probabilities, n×G row-major.
+    /// The number of each fitted cluster in the run's files.
+    pub numbers: Vec<usize>,
+    /// Posterior membership probabilities, n×G row-major, in fitted order.
     pub tau: Vec<f64>,
 }
 
@@ -411,6 +419,7 @@ pub fn predict(
             Ok(Predicted {
                 placement: f.placement.clone(),
                 clusters: f.clusters,
+                numbers: f.cluster_numbers.clone(),
                 tau,
             })
         })

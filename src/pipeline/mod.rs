@@ -14,7 +14,7 @@
 
 pub mod output;
 
-use crate::compare::{compare, InferenceInput};
+use crate::compare::{compare, number_clusters, InferenceInput, Numbering};
 use crate::data::Dataset;
 use crate::error::{Diagnostic, Error, Result};
 use crate::fit::chosen_fits;
@@ -123,7 +123,13 @@ pub struct RunResults {
     pub inference: Vec<Option<FitInference>>,
     /// How the cache served the fits.
     pub cache: CacheUse,
-    /// The models `predict` reads (each placement's lowest-BIC fit).
+    /// The number of every fit's clusters in every file ([`Numbering`]).
+    pub numbering: Numbering,
+    /// The fits the run reports, one per placement (in placement order): the compared fits
+    /// after [`Mode::Compare`], each placement's lowest-BIC fit after [`Mode::Fit`]. Their
+    /// memberships are written, and their models saved.
+    pub reported: Vec<usize>,
+    /// The models `predict` reads (the reported fits).
     pub saved: SavedRun,
     /// Wall time of fitting, seconds.
     pub seconds_fitting: f64,
@@ -166,7 +172,17 @@ pub fn run(loaded: &Loaded, mode: Mode, cache: Cache, observer: &mut dyn Observe
         fits: compared.len(),
     });
     let inference = inference::for_fits(study, data, prepared, &fits, &compared);
-    let mut results = output::results(study, data, prepared, &fits, &inference);
+    let (numbering, reported) = match mode {
+        Mode::Compare => (
+            number_clusters(data, prepared.len(), &fits, &study.compare),
+            shown.clone(),
+        ),
+        Mode::Fit => (
+            Numbering::as_fitted(&fits),
+            chosen_fits(&fits, prepared.len(), None).into_iter().flatten().collect(),
+        ),
+    };
+    let mut results = output::results(study, data, prepared, &fits, &inference, &numbering);
     if mode == Mode::Compare {
         let (screen, cluster_tests) = screen_and_count_tests(loaded, &fits, &shown, observer);
         let input = InferenceInput {
@@ -175,14 +191,16 @@ pub fn run(loaded: &Loaded, mode: Mode, cache: Cache, observer: &mut dyn Observe
             screen: &screen,
             cluster_tests: &cluster_tests,
         };
-        results.comparison = Some(compare(data, prepared, &fits, &study.compare, input));
+        results.comparison = Some(compare(data, prepared, &fits, &numbering, &study.compare, input));
     }
-    let saved = fit::saved::save(study, data, prepared, &fits);
+    let saved = fit::saved::save(study, data, prepared, &fits, &reported, &numbering.numbers);
     Ok(RunResults {
         results,
         fits,
         inference,
         cache: usage,
+        numbering,
+        reported,
         saved,
         seconds_fitting,
         seconds_inference: clock.elapsed().as_secs_f64(),

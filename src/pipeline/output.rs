@@ -3,6 +3,7 @@
 //! built once from the fits, their inference and the comparison. The renderers read
 //! only these.
 
+use crate::compare::Numbering;
 use crate::data::Dataset;
 use crate::fit::{FitResult, PreparedPlacement};
 use crate::inference::FitInference;
@@ -11,8 +12,9 @@ use crate::model::gating::Gating;
 use crate::spec::Study;
 use serde::Serialize;
 
-/// Version of the `results.json` layout (4: `newton_steps_failed` per fit).
-pub const SCHEMA_VERSION: u32 = 4;
+/// Version of the `results.json` layout (4: `newton_steps_failed` per fit; 5: every
+/// cluster by its number in the run's files, with its place in the fit beside it).
+pub const SCHEMA_VERSION: u32 = 5;
 
 fn is_zero(n: &usize) -> bool {
     *n == 0
@@ -74,6 +76,8 @@ pub struct StudySummary {
     pub indicators: Vec<String>,
     /// Master seed.
     pub seed: u64,
+    /// Whether the spec says the data are simulated.
+    pub simulated: bool,
     /// Starts per fit (one-cluster fits need one).
     pub starts: usize,
     /// Iteration cap.
@@ -162,8 +166,15 @@ pub struct FitRecord {
     pub iterations: Option<usize>,
     /// Start summary.
     pub starts: StartSummary,
-    /// Cluster shares of the best fit, cluster 1 first.
-    pub shares: Option<Vec<f64>>,
+    /// The number each fitted cluster carries in every file of the run (fitted cluster k,
+    /// 1-based, largest first, is `cluster_numbers[k - 1]`); empty when the fit failed.
+    pub cluster_numbers: Vec<usize>,
+    /// With a logit gating network: the number of its reference cluster (the fitted
+    /// cluster 1), against which the gating coefficients are log relative risk ratios.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub reference_cluster: Option<usize>,
+    /// Cluster shares of the best fit, by cluster number.
+    pub shares: Option<Vec<ClusterShare>>,
     /// Times the variance floor raised a covariance eigenvalue in the best start (0 when
     /// the floor is off or never acted).
     pub variance_floor_hits: usize,
@@ -184,22 +195,80 @@ pub struct FitRecord {
     pub standard_errors: Option<StandardErrors>,
     /// Covariate effects with 95% confidence intervals, when standard errors exist.
     #[serde(skip_serializing_if = "Vec::is_empty")]
-    pub effects: Vec<crate::inference::effects::Effect>,
+    pub effects: Vec<NumberedEffect>,
     /// Joint Wald tests of each gating covariate, when standard errors exist.
     #[serde(skip_serializing_if = "Vec::is_empty")]
     pub gating_tests: Vec<crate::inference::effects::WaldTest>,
     /// Three-step placements: the method, the classification-error matrix and the share
     /// misclassified (the gating parameters above are the step-3 estimates).
     #[serde(skip_serializing_if = "Option::is_none")]
-    pub step_three: Option<crate::fit::three_step::StepThree>,
+    pub step_three: Option<StepThreeRecord>,
+}
+
+/// One cluster's share.
+#[derive(Debug, Serialize, schemars::JsonSchema)]
+pub struct ClusterShare {
+    /// The cluster's number in the run's files.
+    pub cluster: usize,
+    /// Its place in the fit (1 = largest).
+    pub fitted_cluster: usize,
+    /// Its weighted share of the rows.
+    pub share: f64,
+}
+
+/// An effect, with its cluster by number (`cluster`) and as fitted.
+#[derive(Debug, Serialize, schemars::JsonSchema)]
+pub struct NumberedEffect {
+    /// The effect; its `cluster` is the cluster's number in the run's files.
+    #[serde(flatten)]
+    pub effect: crate::inference::effects::Effect,
+    /// The cluster's place in the fit (1 = largest).
+    pub fitted_cluster: usize,
+}
+
+/// Step 3 of a three-step placement, with its clusters by number.
+#[derive(Debug, Serialize, schemars::JsonSchema)]
+pub struct StepThreeRecord {
+    /// BCH or ML.
+    pub method: crate::spec::Method,
+    /// The cluster numbers of the classification matrix's rows and columns, in order.
+    pub clusters: Vec<usize>,
+    /// `classification[s][t]` = P(assigned to cluster `clusters[t]` | in cluster
+    /// `clusters[s]`).
+    pub classification: Vec<Vec<f64>>,
+    /// Weighted share of rows whose assignment differs from their cluster, as the
+    /// posteriors estimate it.
+    pub misclassified: f64,
+    /// Whether the step-3 optimiser met its tolerance.
+    pub converged: bool,
+}
+
+impl StepThreeRecord {
+    /// Step 3's record with its rows and columns in the order of the cluster numbers.
+    fn numbered(st: &crate::fit::three_step::StepThree, numbers: &[usize]) -> StepThreeRecord {
+        let mut order: Vec<usize> = (0..numbers.len()).collect();
+        order.sort_by_key(|k| numbers[*k]);
+        StepThreeRecord {
+            method: st.method,
+            clusters: order.iter().map(|k| numbers[*k]).collect(),
+            classification: order
+                .iter()
+                .map(|s| order.iter().map(|t| st.classification[*s][*t]).collect())
+                .collect(),
+            misclassified: st.misclassified,
+            converged: st.converged,
+        }
+    }
 }
 
 /// A named parameter and its standard error.
 #[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct NamedParameter {
-    /// The parameter.
+    /// The parameter; its `cluster` is the cluster's number in the run's files.
     #[serde(flatten)]
     pub parameter: Parameter,
+    /// The cluster's place in the fit (1 = largest).
+    pub fitted_cluster: usize,
     /// Standard error (on the parameter's scale), when computed.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub se: Option<f64>,
@@ -275,6 +344,7 @@ pub fn results(
     prepared: &[PreparedPlacement],
     fits: &[FitResult],
     inference: &[Option<FitInference>],
+    numbering: &Numbering,
 ) -> Results {
     let records = fits
         .iter()
@@ -285,6 +355,7 @@ pub fn results(
                 f,
                 inference.get(fi).and_then(Option::as_ref),
                 data,
+                numbering.of(fi),
             )
         })
         .collect();
@@ -298,9 +369,9 @@ pub fn results(
         conventions: Conventions {
             bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",
             aic: "AIC = -2 loglik + 2 * parameters; smaller is better",
-            reference_cluster: "gating coefficients are log relative risk ratios against cluster 1",
-            cluster_order:
-                "clusters are numbered by decreasing share in each fit (fixed proportions keep the spec's order)",
+            reference_cluster:
+                "gating coefficients are log relative risk ratios against each fit's reference_cluster (its largest cluster)",
+            cluster_order: CLUSTER_ORDER,
             coefficient_scale: "coefficients are per unit of each covariate on its original scale",
         },
         fits: records,
@@ -309,9 +380,19 @@ pub fn results(
     }
 }
 
+/// How clusters are numbered, as `results.json` states it.
+pub const CLUSTER_ORDER: &str = "every file of a run numbers clusters alike: in a comparison, each cluster takes the number of the reference placement's compared cluster it agrees with most (clusters without a counterpart are numbered after them); after `fit`, clusters are numbered by decreasing share (fixed proportions keep the spec's order). fitted_cluster gives a cluster's place in its own fit";
+
 /// One fit's record: its criteria, starts, named parameters with their standard errors,
-/// effects and tests.
-fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInference>, data: &Dataset) -> FitRecord {
+/// effects and tests, with clusters by their `numbers`.
+fn fit_record(
+    pp: &PreparedPlacement,
+    f: &FitResult,
+    by_fit: Option<&FitInference>,
+    data: &Dataset,
+    numbers: &[usize],
+) -> FitRecord {
+    let number = |k: usize| numbers.get(k - 1).copied().unwrap_or(k);
     let termination = f.termination();
     let (parameters_named, gating_model) = match &f.best {
         Some(b) => (
@@ -327,7 +408,11 @@ fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInferenc
         .into_iter()
         .enumerate()
         .map(|(i, parameter)| NamedParameter {
-            parameter,
+            fitted_cluster: parameter.cluster,
+            parameter: Parameter {
+                cluster: number(parameter.cluster),
+                ..parameter
+            },
             se: ok.map(|u| u.se(i)),
         })
         .collect();
@@ -345,7 +430,35 @@ fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInferenc
             unavailable: Some(reason.clone()),
         },
     });
-    let effects = by_fit.map_or_else(Vec::new, |i| i.effects.clone());
+    let effects = by_fit.map_or_else(Vec::new, |i| {
+        i.effects
+            .iter()
+            .map(|e| NumberedEffect {
+                fitted_cluster: e.cluster,
+                effect: crate::inference::effects::Effect {
+                    cluster: number(e.cluster),
+                    ..e.clone()
+                },
+            })
+            .collect()
+    });
+    let shares = f.shares(&data.weights).map(|shares| {
+        let mut shares: Vec<ClusterShare> = shares
+            .into_iter()
+            .enumerate()
+            .map(|(k, share)| ClusterShare {
+                cluster: number(k + 1),
+                fitted_cluster: k + 1,
+                share,
+            })
+            .collect();
+        shares.sort_by_key(|s| s.cluster);
+        shares
+    });
+    let logit = f
+        .best
+        .as_ref()
+        .is_some_and(|b| matches!(b.run.model.gating, Gating::Logit { .. }));
     let gating_tests = by_fit.map_or_else(Vec::new, |i| i.gating_tests.clone());
     FitRecord {
         placement: f.placement.clone(),
@@ -371,7 +484,9 @@ fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInferenc
             best_reached_once: f.best.as_ref().is_some_and(|b| b.reaching == 1 && usable > 1),
             each: f.starts.clone(),
         },
-        shares: f.shares(&data.weights),
+        cluster_numbers: if f.best.is_some() { numbers.to_vec() } else { Vec::new() },
+        reference_cluster: logit.then(|| number(1)),
+        shares,
         variance_floor_hits: f
             .best
             .as_ref()
@@ -395,7 +510,11 @@ fn fit_record(pp: &PreparedPlacement, f: &FitResult, by_fit: Option<&FitInferenc
         standard_errors,
         effects,
         gating_tests,
-        step_three: f.step_three.as_ref().and_then(|r| r.as_ref().ok()).cloned(),
+        step_three: f
+            .step_three
+            .as_ref()
+            .and_then(|r| r.as_ref().ok())
+            .map(|st| StepThreeRecord::numbered(st, numbers)),
     }
 }
 
@@ -420,6 +539,7 @@ fn study_summary(study: &Study, data: &Dataset) -> StudySummary {
         family: study.family.word(),
         indicators: data.indicator_names.clone(),
         seed: study.seed,
+        simulated: study.simulated,
         starts: study.search.starts,
         max_iterations: study.search.max_iterations,
         tolerance: study.search.tolerance,

@@ -4,7 +4,7 @@
 
 use crate::data::RowIds;
 use crate::fit::FitResult;
-use crate::pipeline::output::{Chosen, Results};
+use crate::pipeline::output::Results;
 use std::fmt::Write as _;
 use std::io::Write;
 
@@ -21,6 +21,19 @@ fn io(e: ::csv::Error) -> std::io::Error {
     match e.into_kind() {
         ::csv::ErrorKind::Io(e) => e,
         other => std::io::Error::other(format!("{other:?}")),
+    }
+}
+
+/// A text cell from the spec or the data, made safe to open in a spreadsheet: a cell that
+/// starts with `=`, `+`, `-`, `@`, a tab or a carriage return would be read as a formula,
+/// so it gets a leading `'` (the common spreadsheet-safety advice for CSV exports). A cell
+/// that reads as a number (`-1.5`, `+3`) is left alone, so numeric ids stay numbers.
+pub fn safe_text(s: &str) -> std::borrow::Cow<'_, str> {
+    let risky = s.starts_with(['=', '+', '-', '@', '\t', '\r']);
+    if risky && s.trim().parse::<f64>().is_err() {
+        std::borrow::Cow::Owned(format!("'{s}"))
+    } else {
+        std::borrow::Cow::Borrowed(s)
     }
 }
 
@@ -49,9 +62,9 @@ pub fn models_csv(results: &Results) -> String {
         let smallest = f
             .shares
             .as_ref()
-            .map(|v| v.iter().copied().fold(f64::INFINITY, f64::min));
+            .map(|v| v.iter().map(|s| s.share).fold(f64::INFINITY, f64::min));
         let row = [
-            f.placement.clone(),
+            safe_text(&f.placement).into_owned(),
             f.clusters.to_string(),
             f.covariance.clone(),
             f.status.clone(),
@@ -65,57 +78,86 @@ pub fn models_csv(results: &Results) -> String {
             f.starts.usable.to_string(),
             f.starts.reaching_best.to_string(),
             num(smallest),
-            f.reason.clone().unwrap_or_default(),
+            safe_text(f.reason.as_deref().unwrap_or_default()).into_owned(),
         ];
         w.write_record(&row).expect("writing to memory does not fail");
     }
     String::from_utf8(w.into_inner().expect("a flushed buffer")).expect("the table is text")
 }
 
-/// One placement's memberships: its name, cluster count and posteriors (n×G).
-pub type MembershipSet<'a> = (&'a str, usize, &'a [f64]);
+/// One placement's memberships: its name, the number of each fitted cluster in the run's
+/// files, and the posteriors (n×G, in fitted order).
+#[derive(Debug, Clone, Copy)]
+pub struct MembershipSet<'a> {
+    /// Placement.
+    pub placement: &'a str,
+    /// The number of fitted cluster k (1-based) at `numbers[k - 1]`.
+    pub numbers: &'a [usize],
+    /// Posteriors, n×G row-major, in fitted order.
+    pub tau: &'a [f64],
+}
 
-/// The memberships of each placement's chosen fit (the fits `chosen` lists).
-pub fn chosen_memberships<'a>(fits: &'a [FitResult], chosen: &[Chosen]) -> Vec<MembershipSet<'a>> {
-    chosen
+/// The memberships of the fits `reported` (indices into `fits`), numbered by `numbers`.
+pub fn reported_memberships<'a>(
+    fits: &'a [FitResult],
+    reported: &[usize],
+    numbers: &'a [Vec<usize>],
+) -> Vec<MembershipSet<'a>> {
+    reported
         .iter()
-        .filter_map(|c| {
-            let f = fits
-                .iter()
-                .find(|f| f.placement == c.placement && f.clusters == c.clusters && f.covariance() == c.covariance)?;
+        .filter_map(|&i| {
+            let f = &fits[i];
             let best = f.best.as_ref()?;
-            Some((f.placement.as_str(), f.clusters, best.run.tau.as_slice()))
+            Some(MembershipSet {
+                placement: f.placement.as_str(),
+                numbers: &numbers[i],
+                tau: best.run.tau.as_slice(),
+            })
         })
         .collect()
 }
 
 /// Memberships as CSV, written to `out` row by row (at ten million rows the text would
-/// take more memory than the fit): per set and row, the row id, its most likely cluster
-/// and every posterior (6 decimals), one block of rows per placement.
+/// take more memory than the fit): per set and row, the row id, its most likely cluster by
+/// number (`most_likely`) and as fitted (`most_likely_as_fitted`), and the posterior of
+/// every cluster number any set uses (`posterior_<number>`, 6 decimals; empty where the
+/// set has no cluster of that number), one block of rows per placement.
 pub fn write_memberships(out: &mut dyn Write, ids: &RowIds, sets: &[MembershipSet]) -> std::io::Result<()> {
-    let kmax = sets.iter().map(|s| s.1).max().unwrap_or(1);
+    let mut columns: Vec<usize> = sets.iter().flat_map(|s| s.numbers.iter().copied()).collect();
+    columns.sort_unstable();
+    columns.dedup();
     let mut w = writer(std::io::BufWriter::with_capacity(1 << 16, out));
-    let mut header: Vec<String> = ["placement", "clusters", "id", "most_likely"]
+    let mut header: Vec<String> = ["placement", "clusters", "id", "most_likely", "most_likely_as_fitted"]
         .map(String::from)
         .to_vec();
-    header.extend((1..=kmax).map(|k| format!("posterior_{k}")));
+    header.extend(columns.iter().map(|k| format!("posterior_{k}")));
     w.write_record(&header).map_err(io)?;
     let mut field = String::new();
-    for (placement, g, tau) in sets {
+    let mut cells = vec![String::new(); columns.len()];
+    for set in sets {
+        let g = set.numbers.len();
         let g_text = g.to_string();
-        for (id, row) in ids.iter().zip(tau.chunks_exact(*g)) {
+        // Column of each fitted cluster.
+        let at: Vec<usize> = set
+            .numbers
+            .iter()
+            .map(|n| columns.binary_search(n).expect("every number has a column"))
+            .collect();
+        for (id, row) in ids.iter().zip(set.tau.chunks_exact(g)) {
             let most = crate::numerics::most_likely(row);
-            w.write_field(placement).map_err(io)?;
+            w.write_field(safe_text(set.placement).as_ref()).map_err(io)?;
             w.write_field(&g_text).map_err(io)?;
-            w.write_field(id).map_err(io)?;
+            w.write_field(safe_text(id).as_ref()).map_err(io)?;
+            w.write_field(set.numbers[most].to_string()).map_err(io)?;
             w.write_field((most + 1).to_string()).map_err(io)?;
-            for t in row {
+            cells.iter_mut().for_each(String::clear);
+            for (t, c) in row.iter().zip(&at) {
                 field.clear();
                 let _ = write!(field, "{t:.6}");
-                w.write_field(&field).map_err(io)?;
+                cells[*c].push_str(&field);
             }
-            for _ in *g..kmax {
-                w.write_field("").map_err(io)?;
+            for c in &cells {
+                w.write_field(c).map_err(io)?;
             }
             w.write_record(None::<&[u8]>).map_err(io)?;
         }

@@ -8,13 +8,25 @@ use crate::pipeline::output::Results;
 use std::fmt::Write as _;
 
 /// The cautions every report carries.
-pub const CAUTIONS: [&str; 5] = [
+pub const CAUTIONS: [&str; 4] = [
     "Clusters are model-based summaries of the data, not diagnoses.",
     "They can be driven by the modelling assumptions: the indicators chosen, the covariance structure, where covariates are placed.",
     "Small clusters need replication in other data before they are taken seriously.",
     "Nothing here is clinical advice; use and interpretation defer to local practice and ethics review.",
-    "The demo data are simulated and describe no real people.",
 ];
+
+/// The caution of a study whose spec says its data are simulated (`[study] simulated`).
+pub const SIMULATED: &str = "The data are simulated and describe no real people.";
+
+/// The cautions of this run's report: every report's, and the simulated-data one where
+/// the spec says so.
+pub fn cautions(results: &Results) -> Vec<&'static str> {
+    let mut out = CAUTIONS.to_vec();
+    if results.study.simulated {
+        out.push(SIMULATED);
+    }
+    out
+}
 
 /// The reporting checklist, filled from the run (items follow the spirit of the GRoLTS
 /// checklist of van de Schoot et al. 2017, in our own words).
@@ -130,7 +142,7 @@ pub fn markdown(results: &Results, c: &Comparison) -> String {
         results.program.version, c.reference
     );
     s.push_str("> **Cautions.** ");
-    s.push_str(&CAUTIONS.join(" "));
+    s.push_str(&cautions(results).join(" "));
     s.push_str("\n\n## What changes between placements\n\n");
     for sentence in c.findings.iter().map(words::sentence) {
         let _ = writeln!(s, "- {} *(see {})*", sentence.text, sentence.source);
@@ -225,7 +237,7 @@ fn html_head(s: &mut String, results: &Results, c: &Comparison) {
     let _ = write!(s, "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{title}</title><style>{CSS}</style></head><body>");
     let _ = write!(s, "<h1>{title}</h1><p>Placement comparison by cohortmix {}. Reference placement: <b>{}</b>. Data: {} ({} rows used of {}).</p>", esc(results.program.version), esc(&c.reference), esc(&results.study.data_file), results.study.rows_used, results.study.rows_read);
     s.push_str("<div class=\"caution\"><b>Cautions.</b><ul>");
-    for caution in CAUTIONS {
+    for caution in cautions(results) {
         let _ = write!(s, "<li>{}</li>", esc(caution));
     }
     s.push_str("</ul></div>");

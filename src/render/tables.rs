@@ -90,7 +90,11 @@ fn criteria_table(c: &Comparison, out: &mut Vec<Table>) {
                     opt(r.icl, 1),
                     opt(r.bic_weight, 3),
                     opt(r.relative_entropy, 3),
-                    r.average_posterior.iter().map(|v| format!("{v:.2}")).collect::<Vec<_>>().join(" / "),
+                    r.average_posterior
+                        .iter()
+                        .map(|v| format!("{}: {:.2}", v.cluster, v.value))
+                        .collect::<Vec<_>>()
+                        .join(" · "),
                     match (r.smallest_share, r.smallest_count) {
                         (Some(s), Some(n)) => format!("{} ({n} rows)", pct(s)),
                         _ => "–".into(),

@@ -317,6 +317,9 @@ pub struct Study {
     pub seed: u64,
     /// Run folder from the spec, resolved against the spec's folder.
     pub output: Option<PathBuf>,
+    /// Whether the data are simulated (`[study] simulated`): the reports then say that
+    /// they describe no real people.
+    pub simulated: bool,
     /// Declared column types, by name, with their spans.
     pub variables: BTreeMap<String, (VariableType, Range<usize>)>,
     /// Family of the indicators, as the spec chose it.
@@ -639,6 +642,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         weights,
         seed,
         output,
+        simulated: study.simulated.unwrap_or(false),
         variables,
         family: ind.family,
         indicators: ind.indicators,

@@ -84,6 +84,8 @@ pub struct RawStudy {
     pub seed: Option<Spanned<i64>>,
     /// Run folder, relative to the spec file.
     pub output: Option<SStr>,
+    /// Whether the data are simulated (the report then says so).
+    pub simulated: Option<bool>,
 }
 
 /// One entry of `[variables]`: either a bare type word or a table.

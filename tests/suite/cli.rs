@@ -106,7 +106,9 @@ fn fit_writes_the_run_folder() {
     assert_eq!(models.lines().count(), 7);
     let memberships = String::from_utf8(read(&run.join("memberships.csv"))).unwrap();
     assert_eq!(memberships.lines().count(), 1 + 2 * rows);
-    assert!(memberships.starts_with("placement,clusters,id,most_likely,posterior_1,posterior_2\n"));
+    assert!(
+        memberships.starts_with("placement,clusters,id,most_likely,most_likely_as_fitted,posterior_1,posterior_2\n")
+    );
     let manifest: serde_json::Value = serde_json::from_slice(&read(&run.join("manifest.json"))).unwrap();
     assert_eq!(manifest["data_sha256"].as_str().unwrap().len(), 64);
     // No temporary files are left behind.
@@ -555,4 +557,30 @@ fn an_unwritable_run_folder_is_an_error_that_touches_nothing() {
     );
     assert!(stderr.contains("left as they were"), "{stderr}");
     assert_eq!(read(&dir.path().join("taken")), b"not a folder");
+}
+
+/// The "simulated" caution stands only on the report of a study whose spec says its data
+/// are simulated.
+#[test]
+fn the_simulated_data_caution_appears_only_where_the_spec_says_so() {
+    let dir = small_study();
+    let out = cohortmix(dir.path(), &["compare", "study.toml", "--out", "real"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let caution = cohortmix::render::document::SIMULATED;
+    for file in ["report.html", "summary.md"] {
+        let text = String::from_utf8(read(&dir.path().join("real").join(file))).unwrap();
+        assert!(
+            !text.contains(caution),
+            "{file} of a real study says its data are simulated"
+        );
+        assert!(text.contains("not diagnoses"), "{file} lost its cautions");
+    }
+    let spec = STUDY.replace("seed = 5\n", "seed = 5\nsimulated = true\n");
+    std::fs::write(dir.path().join("simulated.toml"), spec).unwrap();
+    let out = cohortmix(dir.path(), &["compare", "simulated.toml", "--out", "sim"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    for file in ["report.html", "summary.md"] {
+        let text = String::from_utf8(read(&dir.path().join("sim").join(file))).unwrap();
+        assert!(text.contains(caution), "{file} of a simulated study lacks the caution");
+    }
 }

@@ -131,6 +131,7 @@ fn permuting_fitted_labels_leaves_the_aligned_tables_unchanged() {
         &d,
         &p,
         &fits,
+        &compare::number_clusters(&d, p.len(), &fits, &s.compare),
         &s.compare,
         compare::InferenceInput::none(),
     ));
@@ -149,6 +150,7 @@ fn permuting_fitted_labels_leaves_the_aligned_tables_unchanged() {
             &d,
             &p,
             &fits,
+            &compare::number_clusters(&d, p.len(), &fits, &s.compare),
             &s.compare,
             compare::InferenceInput::none(),
         ));
@@ -163,7 +165,14 @@ fn an_extra_cluster_is_shown_without_a_counterpart() {
     let (_dir, s) =
         study("[[placement]]\nname = \"two\"\nclusters = [2]\n[[placement]]\nname = \"three\"\nclusters = [3]\n");
     let (d, p, fits) = run(&s);
-    let c = compare::compare(&d, &p, &fits, &s.compare, compare::InferenceInput::none());
+    let c = compare::compare(
+        &d,
+        &p,
+        &fits,
+        &compare::number_clusters(&d, p.len(), &fits, &s.compare),
+        &s.compare,
+        compare::InferenceInput::none(),
+    );
     let three = c.alignments.iter().find(|a| a.placement == "three").unwrap();
     assert_eq!(three.overlap.iter().filter(|o| o.is_none()).count(), 1, "{three:?}");
     assert!(three.aligned.contains(&3));
@@ -204,7 +213,14 @@ fn an_extra_cluster_is_shown_without_a_counterpart() {
 fn sentences_cite_numbers_found_in_the_tables() {
     let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [2, 3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [2, 3]\n[[placement]]\nname = \"shifted\"\ncomponents = [\"age\"]\nclusters = [2, 3]\n");
     let (d, p, fits) = run(&s);
-    let c = compare::compare(&d, &p, &fits, &s.compare, compare::InferenceInput::none());
+    let c = compare::compare(
+        &d,
+        &p,
+        &fits,
+        &compare::number_clusters(&d, p.len(), &fits, &s.compare),
+        &s.compare,
+        compare::InferenceInput::none(),
+    );
     assert!(c.findings.len() >= 4, "{:?}", c.findings);
     let tables = render::tables::tables(&c);
     for finding in &c.findings {

@@ -422,7 +422,12 @@ fn predict_reproduces_the_fitted_posteriors_exactly() {
     let data = data::load(&study).unwrap();
     let prepared = fit::prepare(&study, &data, &super::common::families()).unwrap();
     let fits = fit::fit_grid(&study, &data, &prepared, |_, _, _| {});
-    let json = serde_json::to_string(&saved::save(&study, &data, &prepared, &fits)).unwrap();
+    let reported: Vec<usize> = fit::chosen_fits(&fits, prepared.len(), None)
+        .into_iter()
+        .flatten()
+        .collect();
+    let numbers = cohortmix::compare::Numbering::as_fitted(&fits).numbers;
+    let json = serde_json::to_string(&saved::save(&study, &data, &prepared, &fits, &reported, &numbers)).unwrap();
     let stored: saved::SavedRun = serde_json::from_str(&json).unwrap();
     assert_eq!(stored.fits.len(), 4);
     let dir = tempfile::tempdir().unwrap();

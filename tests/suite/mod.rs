@@ -11,6 +11,7 @@ pub mod family_recovery;
 pub mod faults;
 pub mod inference;
 pub mod layers;
+pub mod numbering;
 pub mod properties;
 pub mod recovery;
 pub mod reference;

@@ -408,7 +408,11 @@ fn a_family_defined_outside_the_library_runs_through_every_generic_path() {
     let predicted = cohortmix::fit::saved::predict(&stored, &study, &new, &families).unwrap();
     let sets: Vec<_> = predicted
         .iter()
-        .map(|p| (p.placement.as_str(), p.clusters, p.tau.as_slice()))
+        .map(|p| cohortmix::render::csv::MembershipSet {
+            placement: &p.placement,
+            numbers: &p.numbers,
+            tau: &p.tau,
+        })
         .collect();
     assert_eq!(cohortmix::render::csv::memberships_table(&new.ids, &sets), memberships);
 
