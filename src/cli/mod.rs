@@ -7,7 +7,7 @@ use crate::fit::{self, FitResult};
 use crate::model::family::Families;
 use crate::pipeline::{self, Cache, Loaded, Mode, Observer, Stage};
 use crate::render;
-use crate::runfolder::{Manifest, RunFiles};
+use crate::runfolder::{write_file, Manifest, OpenOptions, RunFolder};
 use crate::spec::Study;
 use clap::{Parser, Subcommand};
 use std::io::Write;
@@ -61,6 +61,13 @@ Default folder: [study].output in the spec, else runs/<spec name> here.")]
         /// Refit everything, ignoring the fits cached in the run folder.
         #[arg(long)]
         fresh: bool,
+        /// If another run is writing the run folder, wait for it (default: refuse).
+        #[arg(long)]
+        wait: bool,
+        /// Use an existing folder that holds other files; they are moved aside to
+        /// <folder>.replaced-<time>, never deleted.
+        #[arg(long)]
+        force: bool,
     },
     /// Fit what the spec lists, then compare the placements: aligned clusters, profiles,
     /// effects, agreement; writes report.html and summary.md beside the fit outputs.
@@ -76,6 +83,13 @@ with a \"comparison\" section, besides models.csv, memberships.csv and manifest.
         /// Refit everything, ignoring the fits cached in the run folder.
         #[arg(long)]
         fresh: bool,
+        /// If another run is writing the run folder, wait for it (default: refuse).
+        #[arg(long)]
+        wait: bool,
+        /// Use an existing folder that holds other files; they are moved aside to
+        /// <folder>.replaced-<time>, never deleted.
+        #[arg(long)]
+        force: bool,
     },
     /// Posterior memberships of new rows under the models a run folder saved (each
     /// placement's lowest-BIC fit).
@@ -93,6 +107,9 @@ left out and counted. Output: the layout of memberships.csv."
         /// Output CSV (default: RUN/predictions/<data file name>).
         #[arg(long, value_name = "FILE")]
         out: Option<PathBuf>,
+        /// If a run is writing the run folder, wait for it (default: refuse).
+        #[arg(long)]
+        wait: bool,
     },
     /// Write a CSV of data drawn from the truth a truth spec states (seeded).
     #[command(after_help = "Example:\n  cohortmix simulate demo-data/respiratory-truth.toml\n\n\
@@ -137,10 +154,22 @@ pub fn run(cli: Cli) -> Result<()> {
     }
     match cli.command {
         Command::Check { spec } => check(&spec),
-        Command::Fit { spec, out, fresh } => fit_command(&spec, out.as_deref(), Mode::Fit, fresh),
-        Command::Compare { spec, out, fresh } => fit_command(&spec, out.as_deref(), Mode::Compare, fresh),
+        Command::Fit {
+            spec,
+            out,
+            fresh,
+            wait,
+            force,
+        } => fit_command(&spec, out.as_deref(), Mode::Fit, fresh, OpenOptions { wait, force }),
+        Command::Compare {
+            spec,
+            out,
+            fresh,
+            wait,
+            force,
+        } => fit_command(&spec, out.as_deref(), Mode::Compare, fresh, OpenOptions { wait, force }),
         Command::Simulate { spec, out } => simulate_command(&spec, out.as_deref()),
-        Command::Predict { run, data, out } => predict_command(&run, &data, out.as_deref()),
+        Command::Predict { run, data, out, wait } => predict_command(&run, &data, out.as_deref(), wait),
     }
 }
 
@@ -287,53 +316,78 @@ impl Observer for Progress {
     }
 }
 
-fn fit_command(spec_path: &Path, out: Option<&Path>, mode: Mode, fresh: bool) -> Result<()> {
+fn waiting_notice(folder: &Path) {
+    eprintln!(
+        "another cohortmix run is writing {}; waiting for it to finish (--wait)",
+        folder.display()
+    );
+}
+
+fn fit_command(spec_path: &Path, out: Option<&Path>, mode: Mode, fresh: bool, options: OpenOptions) -> Result<()> {
     let t0 = Instant::now();
     let loaded = load_study(spec_path)?;
-    let folder = run_folder(&loaded.study, out);
+    let study = &loaded.study;
+    let (folder, opened) = RunFolder::open(
+        &run_folder(study, out),
+        &[&study.spec_path, &study.data_path],
+        options,
+        &mut waiting_notice,
+    )?;
+    for what in &opened.recovered {
+        eprintln!("note: {what}");
+    }
     let seconds_reading = t0.elapsed().as_secs_f64();
     eprintln!(
         "{}: {} rows used ({} excluded for missing values)",
-        loaded.study.title,
+        study.title,
         loaded.data.n(),
         loaded.data.rows_excluded
     );
     // Fits are cached beside the outputs; with --fresh they are refitted (and re-stored).
     let cache = Cache {
-        folder: Some(&folder),
+        folder: Some(folder.path()),
         read: !fresh,
     };
     let run = pipeline::run(&loaded, mode, cache, &mut Progress)?;
     let manifest = Manifest {
+        program: "cohortmix",
         version: env!("CARGO_PKG_VERSION"),
-        spec_sha256: crate::numerics::sha256_hex(loaded.study.spec_text.as_bytes()),
+        command: if mode == Mode::Compare { "compare" } else { "fit" },
+        spec_sha256: crate::numerics::sha256_hex(study.spec_text.as_bytes()),
         data_sha256: loaded.data.sha256.clone(),
-        spec_file: loaded.study.spec_path.display().to_string(),
-        data_file: loaded.study.data_path.display().to_string(),
+        spec_file: study.spec_path.display().to_string(),
+        data_file: study.data_path.display().to_string(),
         threads: rayon::current_num_threads(),
         fits: run.fits.len(),
         seconds_reading,
         seconds_fitting: run.seconds_fitting,
         seconds_inference: run.seconds_inference,
+        files: Vec::new(),
     };
-    crate::runfolder::write(&folder, &loaded, &run, &manifest)?;
+    let shown = run_folder(study, out);
+    let committed = folder.commit(crate::runfolder::outputs(&loaded, &run)?, manifest)?;
     print!("{}", render::console::summary(&run.results));
-    let names = if mode == Mode::Compare {
-        "report.html, summary.md, results.json, models.csv, memberships.csv, fitted-models.json, manifest.json"
-    } else {
-        "results.json, models.csv, memberships.csv, fitted-models.json, manifest.json"
-    };
+    if let Some(aside) = &committed.set_aside {
+        println!(
+            "the folder's earlier contents (a previous run with other files, or files put there) were moved to {}",
+            aside.display()
+        );
+    }
     println!(
-        "wrote {} ({names}) in {:.1} s",
-        folder.display(),
+        "wrote {} ({}) in {:.1} s",
+        shown.display(),
+        committed.files.join(", "),
         t0.elapsed().as_secs_f64()
     );
     Ok(())
 }
 
-fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<()> {
+fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>, wait: bool) -> Result<()> {
     use crate::fit::saved;
     let families = Families::standard();
+    // Held while the models are read and the output written: a run swapping the folder
+    // in between would put predictions of the old models beside the new ones.
+    let _lock = crate::runfolder::lock_existing(run, wait, &mut waiting_notice)?;
     let stored = saved::load_run(run)?;
     let (study, data) = saved::load_new_data(&stored, data_path, &families)?;
     let predicted = saved::predict(&stored, &study, &data, &families)?;
@@ -355,6 +409,7 @@ fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<(
         },
         Path::to_path_buf,
     );
+    crate::runfolder::check_output_file(&dest, &[data_path, &run.join(saved::FILE_NAME)])?;
     write_file(&dest, text)?;
     println!(
         "{} rows of {} predicted ({} left out for a missing value) under {} fitted model{}",
@@ -371,25 +426,11 @@ fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>) -> Result<(
     Ok(())
 }
 
-/// Write one file atomically (temporary name, then rename) at `dest`.
-fn write_file(dest: &Path, contents: impl Into<Vec<u8>>) -> Result<()> {
-    let dir = dest
-        .parent()
-        .filter(|p| !p.as_os_str().is_empty())
-        .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
-    let name = dest
-        .file_name()
-        .map_or_else(|| "output.csv".into(), |n| n.to_string_lossy().to_string());
-    let mut files = RunFiles::default();
-    files.add(&name, contents);
-    files.commit(&dir)?;
-    Ok(())
-}
-
 fn simulate_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
     let truth = crate::simulate::load(spec_path)?;
-    let sim = crate::simulate::generate(&truth);
     let dest = out.map_or_else(|| truth.output.clone(), Path::to_path_buf);
+    crate::runfolder::check_output_file(&dest, &[spec_path])?;
+    let sim = crate::simulate::generate(&truth);
     write_file(&dest, sim.csv)?;
     let mut counts = vec![0usize; truth.clusters.len()];
     for k in &sim.clusters {

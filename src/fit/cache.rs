@@ -74,9 +74,17 @@ pub fn store(folder: &Path, key: &str, result: &FitResult) -> std::io::Result<()
     let payload = serde_json::to_string(&entry).map_err(std::io::Error::other)?;
     let dir = folder.join(CACHE_DIR);
     std::fs::create_dir_all(&dir)?;
-    let tmp = dir.join(format!("{key}.json.partial"));
-    std::fs::write(&tmp, format!("{}\n{payload}", sha256_hex(payload.as_bytes())))?;
-    std::fs::rename(&tmp, dir.join(format!("{key}.json")))
+    // A fresh temporary name, created exclusively (never through a planted link).
+    let mut tmp = tempfile::Builder::new()
+        .prefix(&format!(".{key}."))
+        .suffix(".partial")
+        .tempfile_in(&dir)?;
+    std::io::Write::write_all(
+        &mut tmp,
+        format!("{}\n{payload}", sha256_hex(payload.as_bytes())).as_bytes(),
+    )?;
+    tmp.persist(dir.join(format!("{key}.json"))).map_err(|e| e.error)?;
+    Ok(())
 }
 
 /// What looking up a fit found.

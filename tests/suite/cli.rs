@@ -541,21 +541,17 @@ fn stable_bytes_of(run: &Path, files: &[&str]) -> Vec<Vec<u8>> {
     files.iter().map(|f| read(&run.join(f))).collect()
 }
 
-/// A run folder that cannot be written (here: a file stands where the folder should be,
-/// which fails even for a privileged user, unlike a read-only folder) is a clear error
-/// and leaves what is there alone.
+/// A run folder that cannot be a folder (here: a file stands where the folder should be,
+/// which fails even for a privileged user, unlike a read-only folder) is refused before
+/// anything is fitted, and the file is left alone.
 #[test]
-fn an_unwritable_run_folder_is_an_error_that_touches_nothing() {
+fn a_file_where_the_run_folder_should_be_is_refused_and_left_alone() {
     let dir = small_study();
     std::fs::write(dir.path().join("taken"), b"not a folder").unwrap();
     let out = cohortmix(dir.path(), &["fit", "study.toml", "--out", "taken"]);
     let stderr = String::from_utf8_lossy(&out.stderr);
-    assert_eq!(out.status.code(), Some(1), "{stderr}");
-    assert!(
-        stderr.contains("could not be cached") || stderr.contains("cannot create the run folder"),
-        "{stderr}"
-    );
-    assert!(stderr.contains("left as they were"), "{stderr}");
+    assert_eq!(out.status.code(), Some(2), "{stderr}");
+    assert!(stderr.contains("the run folder taken is a file"), "{stderr}");
     assert_eq!(read(&dir.path().join("taken")), b"not a folder");
 }
 

@@ -16,6 +16,7 @@ pub mod properties;
 pub mod recovery;
 pub mod reference;
 pub mod row_pass;
+pub mod run_folder;
 pub mod schema;
 pub mod structures;
 pub mod toy_family;

@@ -389,7 +389,7 @@ fn a_family_defined_outside_the_library_runs_through_every_generic_path() {
         .all(|t| t.usable == 9 && t.p_value <= 0.1));
 
     // Saved: the run folder holds the family's block under its word.
-    cohortmix::runfolder::write(&folder, &loaded, &run, &manifest(&loaded)).unwrap();
+    cohortmix::runfolder::write(&folder, &loaded, &run, manifest(&loaded)).unwrap();
     let saved_text = std::fs::read_to_string(folder.join("fitted-models.json")).unwrap();
     assert!(saved_text.contains("\"family\": \"waiting-times\""));
     let memberships = std::fs::read_to_string(folder.join("memberships.csv")).unwrap();
@@ -432,7 +432,9 @@ fn a_family_defined_outside_the_library_runs_through_every_generic_path() {
 
 fn manifest(loaded: &pipeline::Loaded) -> cohortmix::runfolder::Manifest {
     cohortmix::runfolder::Manifest {
+        program: "cohortmix",
         version: "test",
+        command: "compare",
         spec_sha256: String::new(),
         data_sha256: loaded.data.sha256.clone(),
         spec_file: String::new(),
@@ -442,5 +444,6 @@ fn manifest(loaded: &pipeline::Loaded) -> cohortmix::runfolder::Manifest {
         seconds_reading: 0.0,
         seconds_fitting: 0.0,
         seconds_inference: 0.0,
+        files: Vec::new(),
     }
 }
