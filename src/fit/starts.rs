@@ -26,7 +26,7 @@ impl StartKind {
     pub fn for_start(index: usize, g: usize) -> StartKind {
         if g == 1 {
             StartKind::Single
-        } else if index % 2 == 0 {
+        } else if index.is_multiple_of(2) {
             StartKind::SeededCentres
         } else {
             StartKind::RandomPartition
