@@ -147,7 +147,9 @@ pub fn main() -> i32 {
 pub fn run(cli: Cli) -> Result<()> {
     if let Some(n) = cli.threads {
         if n == 0 {
-            return Err(Error::input(Diagnostic::new("--threads must be at least 1")));
+            return Err(Error::input(
+                Diagnostic::new("--threads must be at least 1").help("leave --threads out to use every core"),
+            ));
         }
         // Fails only if a pool exists already (a second call in one process); harmless.
         let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
@@ -182,6 +184,9 @@ fn check(spec_path: &Path) -> Result<()> {
     let Loaded { study, data, prepared } = load_study(spec_path)?;
     let mut out = std::io::stdout().lock();
     let _ = writeln!(out, "spec {} is valid: {}", study.spec_path.display(), study.title);
+    for w in &data.warnings {
+        let _ = writeln!(out, "warning: {w}");
+    }
     let _ = writeln!(
         out,
         "data {}: {} rows read, {} used, {} excluded for missing values",
@@ -335,6 +340,9 @@ fn fit_command(spec_path: &Path, out: Option<&Path>, mode: Mode, fresh: bool, op
     )?;
     for what in &opened.recovered {
         eprintln!("note: {what}");
+    }
+    for w in &loaded.data.warnings {
+        eprintln!("warning: {w}");
     }
     let seconds_reading = t0.elapsed().as_secs_f64();
     eprintln!(

@@ -176,8 +176,12 @@ fn matched(
     (aligned, overlap)
 }
 
+/// Placements up to which every pair is cross-tabulated; with more, only the pairs with
+/// the reference are (their number then grows with the placements, not their square).
+pub const ALL_PAIRS_UP_TO: usize = 4;
+
 /// Cross-tables of most-likely aligned clusters: the reference against each other
-/// placement, then every other pair.
+/// placement, then every other pair when there are at most [`ALL_PAIRS_UP_TO`] placements.
 pub fn cross_tables(fits: &[FitResult], labelled: &[Labelled]) -> Vec<CrossTable> {
     let maps: Vec<(String, Vec<usize>)> = labelled
         .iter()
@@ -192,7 +196,8 @@ pub fn cross_tables(fits: &[FitResult], labelled: &[Labelled]) -> Vec<CrossTable
         })
         .collect();
     let mut out = Vec::new();
-    for i in 0..maps.len() {
+    let firsts = if maps.len() <= ALL_PAIRS_UP_TO { maps.len() } else { 1 };
+    for i in 0..firsts {
         for j in (i + 1)..maps.len() {
             out.push(cross_table(&maps[i], &maps[j]));
         }

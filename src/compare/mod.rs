@@ -14,7 +14,7 @@ pub mod assign;
 pub mod findings;
 mod parts;
 
-pub use align::Numbering;
+pub use align::{Numbering, ALL_PAIRS_UP_TO};
 pub use findings::{Finding, RowRef, Source, TableId};
 
 use crate::data::Dataset;

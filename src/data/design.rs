@@ -120,11 +120,13 @@ impl Design {
                 }
                 Column::Categorical { levels, codes, .. } => {
                     if let Some(known) = known_levels.get(c) {
-                        if let Some(new) = codes.iter().map(|k| &levels[*k as usize]).find(|l| !known.contains(l)) {
+                        if let Some(i) = codes.iter().position(|k| !known.contains(&levels[*k as usize])) {
                             return Err(DesignError {
                                 covariate: Some(c.clone()),
                                 message: format!(
-                                    "covariate '{c}' has the level '{new}', which the fitted model never saw (its levels: {})",
+                                    "covariate '{c}' has the level '{}' in row '{}', which the fitted model never saw (its levels: {})",
+                                    crate::spec::limits::quoted(&levels[codes[i] as usize]),
+                                    crate::spec::limits::quoted(&data.ids[i]),
                                     known.join(", ")
                                 ),
                             });

@@ -14,6 +14,7 @@ pub use design::{Design, DesignError, Term};
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
 use crate::numerics::{hex, sha256_hex};
+use crate::spec::limits::{self, quoted};
 use crate::spec::{read_text, ColumnRef, FamilyInfo, Layout, Study, VariableType};
 use sha2::{Digest, Sha256};
 use std::collections::BTreeMap;
@@ -69,6 +70,9 @@ pub struct Dataset {
     pub exposure: Option<Arc<Exposure>>,
     /// Covariate columns by name.
     pub columns: BTreeMap<String, Column>,
+    /// What the reader noticed and the user should hear of (levels that differ only in
+    /// case); the run goes on.
+    pub warnings: Vec<String>,
 }
 
 /// The indicators of one family, stored as the family's [`Layout`] says.
@@ -306,8 +310,25 @@ struct Needed {
     kind: VariableType,
 }
 
+/// What rows are read for, which decides the checks made of the data as a whole.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Purpose {
+    /// Fitting: a categorical covariate needs two levels and its reference level, an
+    /// item two values, in the rows used.
+    Fit,
+    /// Scoring rows under saved models (`predict`): each row is checked on its own
+    /// (known columns, numbers where numbers are due), never against the others, so one
+    /// row, an all-male batch or an outlier is scored as it would be among others.
+    Score,
+}
+
 /// Read the CSV a study names and keep the rows every fit can use.
 pub fn load(study: &Study) -> Result<Dataset> {
+    load_for(study, Purpose::Fit)
+}
+
+/// [`load`] for a purpose ([`Purpose`]).
+pub fn load_for(study: &Study, purpose: Purpose) -> Result<Dataset> {
     let path = study.data_path.as_path();
     if !path.exists() {
         return Err(Error::input(
@@ -319,19 +340,63 @@ pub fn load(study: &Study) -> Result<Dataset> {
                 .help("paths in a spec are relative to the spec file"),
         ));
     }
-    // Read as a stream, so that the file's text is never held whole. Any failure while
-    // reading falls back to reading the text whole, which reports it with the line shown.
+    let meta = std::fs::metadata(path).map_err(|e| {
+        Error::input(
+            study
+                .error_at(
+                    study.data_span.clone(),
+                    format!("cannot read the data file {}: {e}", path.display()),
+                )
+                .help("check the path; paths in a spec are relative to the spec file"),
+        )
+    })?;
+    if !meta.is_file() {
+        return Err(Error::input(
+            study
+                .error_at(
+                    study.data_span.clone(),
+                    format!(
+                        "the data path {} is {}, not a file",
+                        path.display(),
+                        if meta.is_dir() {
+                            "a folder"
+                        } else {
+                            "a device, a pipe or a socket"
+                        }
+                    ),
+                )
+                .help("give the path of a CSV file"),
+        ));
+    }
+    // Read as a stream, so that the file's text is never held whole. A failure while
+    // reading falls back to reading the text whole (for a file of up to 256 MiB), which
+    // reports it with the line shown.
+    let mut streamed_error = None;
     if let Ok(file) = std::fs::File::open(path) {
         if let Ok(mut input) = Hashing::new(file) {
             let raw = Raw::streamed(path);
-            let read = read_cells(study, &raw, &mut input);
-            if let Ok(cells) = read {
-                return assemble(study, &raw, input.sha256_hex(), cells);
+            let read = read_cells(study, &raw, &mut input, purpose);
+            if let Some(line) = input.too_long {
+                return Err(Error::input(
+                    Diagnostic::new(format!(
+                        "line {line} of {} is longer than {} MiB",
+                        path.display(),
+                        crate::spec::limits::MAX_LINE_BYTES >> 20
+                    ))
+                    .help("a line of the data file holds one row of comma-separated values; is this the data file?"),
+                ));
+            }
+            match read {
+                Ok(cells) => return assemble(study, &raw, input.sha256_hex(), cells, purpose),
+                Err(e) => streamed_error = Some(e),
             }
         }
     }
+    if let Some(e) = streamed_error.filter(|_| meta.len() > 256 << 20) {
+        return Err(e);
+    }
     let text = read_text(path, "data")?;
-    from_text(study, &text)
+    from_text_for(study, &text, purpose)
 }
 
 /// A reader of the data file that skips a leading byte-order mark and hashes every byte
@@ -339,6 +404,12 @@ pub fn load(study: &Study) -> Result<Dataset> {
 struct Hashing {
     inner: std::io::BufReader<std::fs::File>,
     hasher: Sha256,
+    /// Line being read (1-based) and its bytes so far.
+    line: usize,
+    line_bytes: usize,
+    /// The first line longer than [`crate::spec::limits::MAX_LINE_BYTES`]: reading stops
+    /// there.
+    too_long: Option<usize>,
 }
 
 impl Hashing {
@@ -351,6 +422,9 @@ impl Hashing {
         Ok(Hashing {
             inner,
             hasher: Sha256::new(),
+            line: 1,
+            line_bytes: 0,
+            too_long: None,
         })
     }
 
@@ -363,6 +437,18 @@ impl std::io::Read for Hashing {
     fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
         let n = self.inner.read(buf)?;
         self.hasher.update(&buf[..n]);
+        for b in &buf[..n] {
+            if *b == b'\n' {
+                self.line += 1;
+                self.line_bytes = 0;
+            } else {
+                self.line_bytes += 1;
+            }
+        }
+        if self.line_bytes > crate::spec::limits::MAX_LINE_BYTES {
+            self.too_long = Some(self.line);
+            return Err(std::io::Error::other("a line is too long"));
+        }
         Ok(n)
     }
 }
@@ -408,11 +494,16 @@ impl Cells {
 /// [`load`] on the text of a data file already read (`study.data_path` names it in
 /// messages).
 pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
+    from_text_for(study, text, Purpose::Fit)
+}
+
+/// [`from_text`] for a purpose.
+fn from_text_for(study: &Study, text: &str, purpose: Purpose) -> Result<Dataset> {
     let path = study.data_path.as_path();
     let text = text.strip_prefix('\u{feff}').unwrap_or(text);
     let raw = Raw::with_text(path, text);
-    let cells = read_cells(study, &raw, text.as_bytes())?;
-    assemble(study, &raw, sha256_hex(text.as_bytes()), cells)
+    let cells = read_cells(study, &raw, text.as_bytes(), purpose)?;
+    assemble(study, &raw, sha256_hex(text.as_bytes()), cells, purpose)
 }
 
 /// What reading the CSV keeps: the needed columns, each one's cells, and each data row's
@@ -424,7 +515,7 @@ struct ReadCells {
 }
 
 /// Read the header and every record, keeping the cells of the columns the spec needs.
-fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read) -> Result<ReadCells> {
+fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read, purpose: Purpose) -> Result<ReadCells> {
     let path = study.data_path.as_path();
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(true)
@@ -434,7 +525,7 @@ fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read) -> Result<Rea
         .headers()
         .map_err(|e| csv_error(raw, &e))?
         .iter()
-        .map(str::to_string)
+        .map(|h| crate::spec::nfc(h).into_owned())
         .collect();
     if header.iter().all(String::is_empty) {
         return Err(Error::input(
@@ -452,7 +543,7 @@ fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read) -> Result<Rea
         }
     }
 
-    let needed = needed_columns(study, &header)?;
+    let needed = needed_columns(study, &header, purpose)?;
     let mut cells: Vec<Cells> = (0..needed.len()).map(|_| Cells::default()).collect();
     let mut lines: Vec<usize> = Vec::new();
     let mut record = csv::StringRecord::new();
@@ -468,7 +559,10 @@ fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read) -> Result<Rea
         }
         lines.push(line);
         for (k, nd) in needed.iter().enumerate() {
-            let v = record.get(nd.index).unwrap_or("");
+            // Text in Unicode normal form C, as the spec's names are: a precomposed and a
+            // decomposed accent are one level.
+            let v = crate::spec::nfc(record.get(nd.index).unwrap_or(""));
+            let v = v.as_ref();
             if !cells[k].push((!is_missing(v)).then_some(v)) {
                 return Err(Error::input(
                     Diagnostic::new(format!(
@@ -484,7 +578,7 @@ fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read) -> Result<Rea
 }
 
 /// Keep the rows every fit can use and parse their cells by the spec's types.
-fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result<Dataset> {
+fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: Purpose) -> Result<Dataset> {
     let path = study.data_path.as_path();
     let ReadCells {
         needed,
@@ -525,12 +619,12 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
         match nd.role {
             Role::Id => continue,
             Role::Indicator(set, j) if study.blocks[set].family.layout == Layout::Levels => {
-                let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep)?;
+                let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep, purpose)?;
                 sets[set].put_levels(j, levels, &codes);
             }
             role => {
                 let kept = kept_cells(&lines, &cells[k], &keep).map(|(l, c)| (l, c.unwrap_or("")));
-                let column = parse_column(raw, study, nd, kept.clone(), rows_used)?;
+                let column = parse_column(raw, study, nd, kept.clone(), rows_used, purpose)?;
                 match role {
                     Role::Indicator(set, j) => sets[set].put_numbers(j, column),
                     other => parsed.put(raw, study, nd, other, kept, column)?,
@@ -538,6 +632,17 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
             }
         }
         cells[k] = Cells::default(); // parsed: free its text
+    }
+    let mut warnings = Vec::new();
+    for (name, column) in &parsed.columns {
+        if let Column::Categorical { levels, .. } = column {
+            warnings.extend(case_twins(&format!("covariate '{name}'"), levels));
+        }
+    }
+    for (block, set) in study.blocks.iter().zip(&sets) {
+        for (column, levels) in block.columns.iter().zip(&set.levels) {
+            warnings.extend(case_twins(&format!("item '{}'", column.name), levels));
+        }
     }
     Ok(Dataset {
         path: path.to_path_buf(),
@@ -551,7 +656,27 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells) -> Result
         indicator_sets: study.blocks.iter().zip(sets).map(|(b, s)| s.finish(b)).collect(),
         exposure: parsed.exposure.map(Arc::new),
         columns: parsed.columns,
+        warnings,
     })
+}
+
+/// A warning for each pair of `levels` of `what` that differ only in case ("Male" and
+/// "male"): they are kept as two levels, which is seldom what the data mean.
+fn case_twins(what: &str, levels: &[String]) -> Vec<String> {
+    let mut out = Vec::new();
+    for (i, a) in levels.iter().enumerate() {
+        for b in &levels[i + 1..] {
+            if a != b && a.to_lowercase() == b.to_lowercase() {
+                out.push(format!(
+                    "the levels '{}' and '{}' of {what} differ only in case and are kept as two levels; \
+                     if they are one, write them alike in the data",
+                    quoted(a),
+                    quoted(b)
+                ));
+            }
+        }
+    }
+    out
 }
 
 /// Rows missing each needed column, by column name.
@@ -619,8 +744,31 @@ fn row_ids(raw: &Raw, needed: &[Needed], cells: &mut [Cells], lines: &[usize], k
         if !keep[i] {
             continue;
         }
-        match id_k.and_then(|k| cells[k].get(i)) {
-            Some(v) => ids.push(v),
+        match id_k.map(|k| (k, cells[k].get(i))) {
+            Some((k, Some(v))) => {
+                if let Some(c) = crate::spec::control_character(v) {
+                    return Err(Error::input(
+                        Diagnostic::new(format!(
+                            "the id '{}' holds the control character U+{:04X}",
+                            quoted(&v.escape_debug().to_string()),
+                            u32::from(c)
+                        ))
+                        .at(raw.field_location(*line, needed[k].index))
+                        .help("ids are plain text: remove tabs, line breaks and escapes"),
+                    ));
+                }
+                ids.push(v);
+            }
+            Some((k, None)) => {
+                return Err(Error::input(
+                    Diagnostic::new(format!(
+                        "the row at line {line} has no id: its '{}' is empty or {MISSING_WORD}",
+                        needed[k].col.name
+                    ))
+                    .at(raw.field_location(*line, needed[k].index))
+                    .help("give every row its own id (rows are matched to their memberships by it)"),
+                ))
+            }
             None => ids.push(&(i + 1).to_string()),
         }
         id_lines.push(*line);
@@ -632,7 +780,8 @@ fn row_ids(raw: &Raw, needed: &[Needed], cells: &mut [Cells], lines: &[usize], k
         let (id, line) = (&ids[again], id_lines[again]);
         return Err(Error::input(
             Diagnostic::new(format!(
-                "id '{id}' appears twice (lines {} and {line})",
+                "id '{}' appears twice (lines {} and {line})",
+                quoted(id),
                 id_lines[first]
             ))
             .at(raw.field_location(line, needed[id_k.unwrap_or(0)].index))
@@ -803,10 +952,20 @@ fn describe_missing(m: &[(String, usize)]) -> String {
     format!("missing values by column: {}", parts.join(", "))
 }
 
-fn needed_columns(study: &Study, header: &[String]) -> Result<Vec<Needed>> {
+fn needed_columns(study: &Study, header: &[String], purpose: Purpose) -> Result<Vec<Needed>> {
     let mut out: Vec<Needed> = Vec::new();
     let find = |c: &ColumnRef| -> Result<usize> {
         header.iter().position(|h| *h == c.name).ok_or_else(|| {
+            if purpose == Purpose::Score {
+                // The spec is the saved one: the new file lacks what the models need.
+                let d = Diagnostic::new(format!(
+                    "{} has no column '{}', which the fitted models need",
+                    study.data_path.display(),
+                    c.name
+                ))
+                .at(Location::at(&study.data_path, 1, 1, Some(header.join(","))));
+                return Error::input(d.help(format!("its columns: {}", list_preview(header))));
+            }
             let mut d = study.error_at(c.span.clone(), format!("unknown column '{}' in {}", c.name, c.key));
             if let Some(s) = did_you_mean(&c.name, header.iter().map(String::as_str)) {
                 d = d.help(format!("did you mean '{s}'?"));
@@ -895,13 +1054,28 @@ fn parse_column<'c>(
     nd: &Needed,
     kept: impl Iterator<Item = (usize, &'c str)> + Clone,
     rows: usize,
+    purpose: Purpose,
 ) -> Result<Column> {
     let name = &nd.col.name;
     match &nd.kind {
         VariableType::Categorical { reference, levels } => {
             let (order, found) = level_order(raw, nd, levels.as_deref(), kept.clone(), &format!("'{name}'"))?;
+            if order.len() > limits::MAX_COVARIATE_LEVELS {
+                return Err(Error::input(
+                    study
+                        .error_at(
+                            nd.col.span.clone(),
+                            format!(
+                                "categorical covariate '{name}' has {} levels; at most {} are supported",
+                                order.len(),
+                                limits::MAX_COVARIATE_LEVELS
+                            ),
+                        )
+                        .help("group its levels into fewer categories, or use a numeric summary of it"),
+                ));
+            }
             let used: Vec<&String> = order.iter().filter(|l| found.contains(l)).collect();
-            if used.len() < 2 {
+            if used.len() < 2 && purpose == Purpose::Fit {
                 return Err(Error::input(
                     study
                         .error_at(
@@ -916,6 +1090,8 @@ fn parse_column<'c>(
             }
             let reference = match reference {
                 None => 0,
+                // Scoring builds designs from the saved terms: the reference is theirs.
+                Some(_) if purpose == Purpose::Score => 0,
                 Some(r) => order.iter().position(|l| l == r).ok_or_else(|| {
                     let (_, span) = &study.variables[name];
                     Error::input(
@@ -959,7 +1135,7 @@ fn parse_numbers<'c>(
         let x: f64 = v.parse().map_err(|_| {
             bad(
                 line,
-                format!("'{v}' in column '{name}' is not a number"),
+                format!("'{}' in column '{name}' is not a number", quoted(v)),
                 format!(
                     "'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing",
                     kind.word()
@@ -969,7 +1145,7 @@ fn parse_numbers<'c>(
         if !x.is_finite() {
             return Err(bad(
                 line,
-                format!("'{v}' in column '{name}' is not a finite number"),
+                format!("'{}' in column '{name}' is not a finite number", quoted(v)),
                 "write a finite number, or leave the cell empty if it is missing".into(),
             ));
         }
@@ -977,14 +1153,17 @@ fn parse_numbers<'c>(
             VariableType::Binary if x != 0.0 && x != 1.0 => {
                 return Err(bad(
                     line,
-                    format!("'{v}' in binary column '{name}' is not 0 or 1"),
+                    format!("'{}' in binary column '{name}' is not 0 or 1", quoted(v)),
                     format!("code '{name}' as 0/1, or declare it categorical"),
                 ));
             }
             VariableType::Count if x < 0.0 || x.fract() != 0.0 => {
                 return Err(bad(
                     line,
-                    format!("'{v}' in count column '{name}' is not a whole number of zero or more"),
+                    format!(
+                        "'{}' in count column '{name}' is not a whole number of zero or more",
+                        quoted(v)
+                    ),
                     "counts are 0, 1, 2, ...".into(),
                 ));
             }
@@ -1008,6 +1187,7 @@ fn parse_item(
     lines: &[usize],
     cells: &Cells,
     keep: &[bool],
+    purpose: Purpose,
 ) -> Result<(Vec<String>, Vec<u16>)> {
     let name = &nd.col.name;
     let present = kept_cells(lines, cells, keep).filter_map(|(l, c)| c.map(|v| (l, v)));
@@ -1017,7 +1197,7 @@ fn parse_item(
                 let ok = v.parse::<f64>().is_ok_and(|x| x == 0.0 || x == 1.0);
                 if !ok {
                     return Err(Error::input(
-                        Diagnostic::new(format!("'{v}' in binary item '{name}' is not 0 or 1"))
+                        Diagnostic::new(format!("'{}' in binary item '{name}' is not 0 or 1", quoted(v)))
                             .at(raw.field_location(line, nd.index))
                             .help(format!("code '{name}' as 0/1, or declare it categorical")),
                     ));
@@ -1038,18 +1218,22 @@ fn parse_item(
         }
         other => unreachable!("an item is binary or categorical, not {}", other.word()),
     };
-    if levels.len() > usize::from(MISSING_ITEM) {
-        return Err(Error::input(study.error_at(
-            nd.col.span.clone(),
-            format!(
-                "item '{name}' has {} levels; at most {} are supported",
-                levels.len(),
-                MISSING_ITEM
-            ),
-        )));
+    if levels.len() > limits::MAX_ITEM_LEVELS {
+        return Err(Error::input(
+            study
+                .error_at(
+                    nd.col.span.clone(),
+                    format!(
+                        "item '{name}' has {} levels; at most {} are supported",
+                        levels.len(),
+                        limits::MAX_ITEM_LEVELS
+                    ),
+                )
+                .help("group its levels into fewer categories"),
+        ));
     }
     let seen: std::collections::BTreeSet<&str> = present.map(|(_, v)| v).collect();
-    if seen.len() < 2 {
+    if seen.len() < 2 && purpose == Purpose::Fit {
         return Err(Error::input(
             study
                 .error_at(
@@ -1085,10 +1269,27 @@ fn level_order<'c>(
     kept: impl Iterator<Item = (usize, &'c str)> + Clone,
     what: &str,
 ) -> Result<(Vec<String>, Vec<String>)> {
+    // Levels in order of appearance; past the largest number any column may have, the
+    // caller refuses the column, so reading stops there.
     let mut found: Vec<String> = Vec::new();
-    for (_, v) in kept.clone() {
-        if !found.iter().any(|f| f == v) {
+    let mut seen = std::collections::HashSet::new();
+    for (line, v) in kept.clone() {
+        if seen.insert(v) {
+            if let Some(c) = crate::spec::control_character(v) {
+                return Err(Error::input(
+                    Diagnostic::new(format!(
+                        "the value '{}' of {what} holds the control character U+{:04X}",
+                        quoted(&v.escape_debug().to_string()),
+                        u32::from(c)
+                    ))
+                    .at(raw.field_location(line, nd.index))
+                    .help("levels are plain text: remove tabs, line breaks and escapes"),
+                ));
+            }
             found.push(v.to_string());
+            if found.len() > limits::MAX_COVARIATE_LEVELS.max(limits::MAX_ITEM_LEVELS) {
+                break;
+            }
         }
     }
     let order = match levels {
@@ -1099,7 +1300,7 @@ fn level_order<'c>(
                     h = format!("did you mean '{s}'? {h}");
                 }
                 return Err(Error::input(
-                    Diagnostic::new(format!("'{v}' is not a level of {what}"))
+                    Diagnostic::new(format!("'{}' is not a level of {what}", quoted(v)))
                         .at(raw.field_location(l, nd.index))
                         .help(h),
                 ));

@@ -122,7 +122,52 @@ pub fn load(folder: &Path, key: &str, spec: &FitSpec, data: &Dataset, prepared: 
     }
 }
 
+/// Check what an entry says of its starts against the fit it is filed under: an entry is
+/// untrusted input (it may have been edited and its checksum recomputed).
+fn check_entry(entry: &Entry, spec: &FitSpec, data: &Dataset) -> Result<(), String> {
+    let starts = spec.search.starts_for(spec.clusters);
+    if entry.starts.len() != starts {
+        return Err(format!(
+            "it records {} starts where the fit has {starts}",
+            entry.starts.len()
+        ));
+    }
+    if entry.n_rows != data.n() {
+        return Err(format!(
+            "it was fitted to {} rows, the data have {}",
+            entry.n_rows,
+            data.n()
+        ));
+    }
+    if let Some(c) = &entry.best {
+        if c.start == 0 || c.start > starts || c.reaching == 0 || c.reaching > starts {
+            return Err(format!(
+                "its best start ({}) or the starts reaching it ({}) are not among its {starts} starts",
+                c.start, c.reaching
+            ));
+        }
+        if !c.loglik.is_finite() || !c.objective.is_finite() || c.trace.iter().any(|v| !v.is_finite()) {
+            return Err("its log-likelihood is not a finite number".into());
+        }
+        if c.iterations > spec.search.em.max_iterations || c.trace.len() > c.iterations + 1 {
+            return Err(format!(
+                "it records {} iterations and {} trace values, above the cap of {}",
+                c.iterations,
+                c.trace.len(),
+                spec.search.em.max_iterations
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// The log-likelihood an entry records must be the one its parameters give (to rounding).
+fn same_loglik(stored: f64, recomputed: f64) -> bool {
+    (stored - recomputed).abs() <= 1e-8 * (1.0 + stored.abs())
+}
+
 fn rebuild(entry: Entry, spec: &FitSpec, data: &Dataset, prepared: &PreparedPlacement) -> Result<FitResult, String> {
+    check_entry(&entry, spec, data)?;
     let (g, structure) = (spec.clusters, spec.structure());
     let fd = fit_data(data, prepared);
     let best = match entry.best {
@@ -133,8 +178,21 @@ fn rebuild(entry: Entry, spec: &FitSpec, data: &Dataset, prepared: &PreparedPlac
             model.gating.prepare_bound(fd.w, fd.weights);
             c.model.gating.apply_to(&mut model.gating)?;
             model.components = c.model.components(&fd, &prepared.blocks, g, &options)?;
+            if model.n_params() != entry.n_params {
+                return Err(format!(
+                    "it records {} parameters, its model has {}",
+                    entry.n_params,
+                    model.n_params()
+                ));
+            }
             let mut tau = vec![0.0; data.n() * g];
-            crate::model::e_step(&model, &fd, &mut tau, None);
+            let loglik = crate::model::e_step(&model, &fd, &mut tau, None);
+            if !same_loglik(c.loglik, loglik) {
+                return Err(format!(
+                    "its parameters give the log-likelihood {loglik}, not the {} it records",
+                    c.loglik
+                ));
+            }
             Some(BestFit {
                 run: EmRun {
                     model,

@@ -113,7 +113,11 @@ pub fn prepare_placement(
                 .find(|c| Some(&c.name) == e.covariate.as_ref())
                 .or(cols.first());
             let span = at.map_or(0..0, |c| c.span.clone());
-            Error::input(study.error_at(span, format!("in placement '{}': {}", p.name, e.message)))
+            Error::input(
+                study
+                    .error_at(span, format!("in placement '{}': {}", p.name, e.message))
+                    .help("take the covariate out of the placement (or out of its acts_on), or recode it"),
+            )
         })
     };
     let components = design(&p.components.iter().collect::<Vec<_>>())?;

@@ -6,7 +6,7 @@
 use crate::data::{Column, Dataset, Design, IndicatorValues, Term, MISSING_ITEM};
 use crate::error::{Diagnostic, Error, Result};
 use crate::fit::{fit_data, FitResult, PreparedPlacement};
-use crate::model::family::{Components, Families, Prepared};
+use crate::model::family::{check_values, Components, Families, Prepared};
 use crate::model::gating::Gating;
 use crate::model::{e_step, FitData, Model, ModelOptions};
 use serde::{Deserialize, Serialize};
@@ -40,6 +40,9 @@ pub struct SavedRun {
     pub item_levels: BTreeMap<String, Vec<String>>,
     /// The fits.
     pub fits: Vec<SavedFit>,
+    /// The file it was read from (for messages; not written).
+    #[serde(skip)]
+    pub path: std::path::PathBuf,
 }
 
 /// One fitted model.
@@ -106,9 +109,46 @@ impl SavedGating {
         }
     }
 
+    /// Check the parameters for a network of `g` clusters over `p` design columns: the
+    /// right kind of sizes, finite values, and shares that sum to 1.
+    pub fn check(&self, g: usize, p: usize) -> std::result::Result<(), String> {
+        let shares = |what: &str, log_pi: &[f64]| {
+            check_values(what, log_pi, g)?;
+            let total: f64 = log_pi.iter().map(|l| l.exp()).sum();
+            if (total - 1.0).abs() > 1e-6 {
+                return Err(format!("its cluster shares sum to {total}, not 1"));
+            }
+            Ok(())
+        };
+        match self {
+            SavedGating::Equal(k) if *k == g => Ok(()),
+            SavedGating::Fixed(l) => shares("fixed shares", l),
+            SavedGating::Free(l) => shares("shares", l),
+            SavedGating::Logit(k, q, gamma) if *k == g && *q == p => {
+                check_values("gating coefficients", gamma, (g - 1) * p)?;
+                // On the standardised scale a fit never comes near this (a log relative
+                // risk of 1e8 per standard deviation); a value beyond it was written by hand.
+                if gamma.iter().any(|c| c.abs() > 1e8) {
+                    return Err("its gating coefficients are beyond any fit (above 1e8 in size)".into());
+                }
+                Ok(())
+            }
+            SavedGating::Logit(k, q, _) => Err(format!(
+                "its gating network has {k} clusters over {q} design columns, where the fit has {g} over {p}"
+            )),
+            SavedGating::Equal(k) => Err(format!("its gating network has {k} clusters, the fit {g}")),
+        }
+    }
+
     /// Set the parameters of `gating`, a network of the same kind and size (its ridge and
     /// prepared bound stay as they are).
     pub fn apply_to(&self, gating: &mut Gating) -> std::result::Result<(), String> {
+        let (g, p) = match gating {
+            Gating::Equal { g } => (*g, 0),
+            Gating::Fixed { log_pi } | Gating::Free { log_pi } => (log_pi.len(), 0),
+            Gating::Logit { g, p, .. } => (*g, *p),
+        };
+        self.check(g, p)?;
         match (gating, self) {
             (Gating::Logit { gamma, .. }, SavedGating::Logit(_, _, s)) if gamma.len() == s.len() => *gamma = s.clone(),
             (Gating::Free { log_pi }, SavedGating::Free(s)) if log_pi.len() == s.len() => *log_pi = s.clone(),
@@ -194,6 +234,7 @@ impl SavedModel {
         g: usize,
         options: &ModelOptions,
     ) -> std::result::Result<Model, String> {
+        self.gating.check(g, fd.p)?;
         Ok(Model {
             gating: self.gating.gating(),
             components: self.components(fd, prepared, g, options)?,
@@ -249,6 +290,7 @@ pub fn save(
         covariate_levels,
         item_levels,
         fits: saved,
+        path: std::path::PathBuf::from(FILE_NAME),
     }
 }
 
@@ -265,9 +307,84 @@ pub struct Predicted {
     pub tau: Vec<f64>,
 }
 
-/// Read a run folder's saved models.
+/// The largest saved-model file read (a run's is a few hundred kilobytes; a larger one is
+/// not one cohortmix wrote).
+pub const MAX_SAVED_BYTES: u64 = 256 << 20;
+
+impl SavedRun {
+    /// Check what the file says beyond its layout: cluster counts and numbers, design
+    /// terms and levels. (Each fit's parameters are checked when its model is built.)
+    pub fn check(&self) -> std::result::Result<(), String> {
+        let mut seen = std::collections::BTreeSet::new();
+        for f in &self.fits {
+            let at = format!("the fit of '{}' with {} clusters", f.placement, f.clusters);
+            if f.clusters == 0 || f.clusters > crate::spec::MAX_CLUSTERS {
+                return Err(format!(
+                    "{at}: a cluster count must be 1 to {}",
+                    crate::spec::MAX_CLUSTERS
+                ));
+            }
+            if !seen.insert(&f.placement) {
+                return Err(format!("the placement '{}' has two fits", f.placement));
+            }
+            let mut numbers = f.cluster_numbers.clone();
+            numbers.sort_unstable();
+            numbers.dedup();
+            if f.cluster_numbers.len() != f.clusters
+                || numbers.len() != f.clusters
+                || numbers
+                    .iter()
+                    .any(|n| *n == 0 || *n > 2 * crate::spec::MAX_CLUSTERS * crate::spec::MAX_PLACEMENTS)
+            {
+                return Err(format!(
+                    "{at}: its cluster numbers {:?} are not one distinct number per cluster",
+                    f.cluster_numbers
+                ));
+            }
+            for t in f.gating_terms.iter().chain(&f.component_terms) {
+                if !t.center.is_finite() || !t.scale.is_finite() || t.scale == 0.0 {
+                    return Err(format!(
+                        "{at}: the term '{}' has a centre or scale that is not a usable number",
+                        t.name
+                    ));
+                }
+            }
+            if f.gating_terms.first().is_none_or(|t| t.covariate.is_some())
+                || f.component_terms.first().is_none_or(|t| t.covariate.is_some())
+            {
+                return Err(format!("{at}: its designs do not start with the intercept"));
+            }
+        }
+        for (name, levels) in self.covariate_levels.iter().chain(&self.item_levels) {
+            let distinct: std::collections::BTreeSet<&String> = levels.iter().collect();
+            if levels.is_empty() || distinct.len() != levels.len() || levels.len() > usize::from(MISSING_ITEM) {
+                return Err(format!("the levels of '{name}' are empty, repeated or too many"));
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Read a run folder's saved models, checking them as untrusted input.
 pub fn load_run(run: &Path) -> Result<SavedRun> {
     let path = run.join(FILE_NAME);
+    let damaged = |e: String| {
+        Error::input(Diagnostic::new(format!("{} is damaged: {e}", path.display())).help(
+            "it was changed or cut short since cohortmix wrote it; refit the study (cohortmix fit) to write it again",
+        ))
+    };
+    if let Ok(meta) = std::fs::metadata(&path) {
+        if !meta.is_file() {
+            return Err(damaged("it is not a regular file".into()));
+        }
+        if meta.len() > MAX_SAVED_BYTES {
+            return Err(damaged(format!(
+                "it holds {} bytes, more than the {} MiB a saved-model file can hold",
+                meta.len(),
+                MAX_SAVED_BYTES >> 20
+            )));
+        }
+    }
     let text = std::fs::read_to_string(&path).map_err(|e| {
         Error::input(
             Diagnostic::new(format!("cannot read {}: {e}", path.display())).help(format!(
@@ -297,7 +414,9 @@ pub fn load_run(run: &Path) -> Result<SavedRun> {
         ));
     }
     let saved: SavedRun = serde_json::from_value(value).map_err(|e| unreadable(e.to_string()))?;
-    Ok(saved)
+    let path = path.clone();
+    saved.check().map_err(damaged)?;
+    Ok(SavedRun { path, ..saved })
 }
 
 /// Load new data with the saved spec's column checks (case weights are not needed and
@@ -312,7 +431,7 @@ pub fn load_new_data(saved: &SavedRun, data_path: &Path, families: &Families) ->
     }
     study.data_path = data_path.to_path_buf();
     study.weights = None;
-    let mut data = crate::data::load(&study).map_err(|e| {
+    let mut data = crate::data::load_for(&study, crate::data::Purpose::Score).map_err(|e| {
         e.with_help(format!(
             "the new rows in {} are checked against the spec the models were fitted with ({})",
             data_path.display(),
@@ -381,15 +500,20 @@ pub fn predict(
     data: &Dataset,
     families: &Families,
 ) -> Result<Vec<Predicted>> {
+    let saved_path = &saved.path;
     saved
         .fits
         .iter()
         .map(|f| {
             let placement = study.placements.iter().find(|p| p.name == f.placement).ok_or_else(|| {
-                Error::run(Diagnostic::new(format!(
-                    "the saved spec has no placement '{}'",
-                    f.placement
-                )))
+                Error::input(
+                    Diagnostic::new(format!(
+                        "{} is damaged: it holds a model of the placement '{}', which its spec does not list",
+                        saved_path.display(),
+                        f.placement
+                    ))
+                    .help("it was changed since cohortmix wrote it; refit the study (cohortmix fit) to write it again"),
+                )
             })?;
             let design = |terms: &[Term]| {
                 Design::from_terms(data, terms, &saved.covariate_levels).map_err(|e| {
@@ -407,15 +531,38 @@ pub fn predict(
                 families,
             );
             let fd = fit_data(data, &pp);
-            let options = ModelOptions::for_study(study, study.search.structures[0]);
+            // Scoring needs no prior (it is used in fitting only) and no structure (the
+            // saved block names its own).
+            let options = ModelOptions {
+                covariance_prior: false,
+                ..ModelOptions::for_study(study, study.search.structures[0])
+            };
             let model = f.model.to_model(&fd, &pp.blocks, f.clusters, &options).map_err(|e| {
-                Error::run(Diagnostic::new(format!(
-                    "the saved model of '{}' is not usable: {e}",
-                    f.placement
-                )))
+                Error::input(
+                    Diagnostic::new(format!(
+                        "the saved model of '{}' in {} is damaged: {e}",
+                        f.placement,
+                        saved_path.display()
+                    ))
+                    .help("it was changed since cohortmix wrote it; refit the study (cohortmix fit) to write it again"),
+                )
             })?;
             let mut tau = vec![0.0; data.n() * f.clusters];
             e_step(&model, &fd, &mut tau, None);
+            if let Some(i) = tau
+                .chunks_exact(f.clusters)
+                .position(|row| row.iter().any(|t| !t.is_finite()))
+            {
+                return Err(Error::input(
+                    Diagnostic::new(format!(
+                        "{}: row '{}' gets no finite membership probabilities under the model of '{}'",
+                        data.path.display(),
+                        &data.ids[i],
+                        f.placement
+                    ))
+                    .help("its values lie too far from the fitted data's to be scored; check them and their units"),
+                ));
+            }
             Ok(Predicted {
                 placement: f.placement.clone(),
                 clusters: f.clusters,

@@ -78,6 +78,9 @@ pub struct StudySummary {
     pub seed: u64,
     /// Whether the spec says the data are simulated.
     pub simulated: bool,
+    /// What reading the data noticed (levels that differ only in case).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub data_warnings: Vec<String>,
     /// Starts per fit (one-cluster fits need one).
     pub starts: usize,
     /// Iteration cap.
@@ -540,6 +543,7 @@ fn study_summary(study: &Study, data: &Dataset) -> StudySummary {
         indicators: data.indicator_names.clone(),
         seed: study.seed,
         simulated: study.simulated,
+        data_warnings: data.warnings.clone(),
         starts: study.search.starts,
         max_iterations: study.search.max_iterations,
         tolerance: study.search.tolerance,

@@ -111,7 +111,7 @@ pub fn checklist(results: &Results, c: &Comparison) -> Vec<(String, String)> {
 }
 
 fn md_table(out: &mut String, t: &Table) {
-    let _ = writeln!(out, "*{}*\n", t.note);
+    let _ = writeln!(out, "*{}*\n", md_text(&t.note));
     let _ = writeln!(
         out,
         "| {} |",
@@ -129,32 +129,56 @@ fn md_table(out: &mut String, t: &Table) {
 }
 
 fn md_cell(s: &str) -> String {
-    s.replace('|', "\\|").replace('\n', " ")
+    md_text(s)
+}
+
+/// Text for `summary.md`: names, levels and titles come from the spec and the data, so
+/// every character Markdown or HTML would read as markup (`\ ` * _ [ ] < > & | ~ #`) is
+/// escaped with a backslash, and a line break becomes a space. A viewer shows the text as
+/// written; no tag, link or heading can come from it.
+pub fn md_text(s: &str) -> String {
+    let mut out = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            '\\' | '`' | '*' | '_' | '[' | ']' | '<' | '>' | '&' | '|' | '~' | '#' => {
+                out.push('\\');
+                out.push(c);
+            }
+            '\n' | '\r' => out.push(' '),
+            c if c.is_control() => {}
+            c => out.push(c),
+        }
+    }
+    out
 }
 
 /// `summary.md`.
 pub fn markdown(results: &Results, c: &Comparison) -> String {
     let mut s = String::new();
-    let _ = writeln!(s, "# {}\n", results.study.title);
+    let _ = writeln!(s, "# {}\n", md_text(&results.study.title));
     let _ = writeln!(
         s,
         "Placement comparison by cohortmix {}. Reference placement: '{}'.\n",
-        results.program.version, c.reference
+        results.program.version,
+        md_text(&c.reference)
     );
     s.push_str("> **Cautions.** ");
-    s.push_str(&cautions(results).join(" "));
+    s.push_str(&md_text(&cautions(results).join(" ")));
+    for w in &results.study.data_warnings {
+        let _ = write!(s, "\n>\n> **Data.** {}", md_text(w));
+    }
     s.push_str("\n\n## What changes between placements\n\n");
     for sentence in c.findings.iter().map(words::sentence) {
-        let _ = writeln!(s, "- {} *(see {})*", sentence.text, sentence.source);
+        let _ = writeln!(s, "- {} *(see {})*", md_text(&sentence.text), md_text(&sentence.source));
     }
     s.push('\n');
     for t in tables(c) {
-        let _ = writeln!(s, "## {}\n", capitalise(&t.name()));
+        let _ = writeln!(s, "## {}\n", md_text(&capitalise(&t.name())));
         md_table(&mut s, &t);
     }
     s.push_str("## Reporting checklist\n\n");
     for (k, v) in checklist(results, c) {
-        let _ = writeln!(s, "- **{}**: {}", k, v);
+        let _ = writeln!(s, "- **{}**: {}", md_text(&k), md_text(&v));
     }
     s
 }
@@ -239,6 +263,9 @@ fn html_head(s: &mut String, results: &Results, c: &Comparison) {
     s.push_str("<div class=\"caution\"><b>Cautions.</b><ul>");
     for caution in cautions(results) {
         let _ = write!(s, "<li>{}</li>", esc(caution));
+    }
+    for w in &results.study.data_warnings {
+        let _ = write!(s, "<li><b>Data:</b> {}</li>", esc(w));
     }
     s.push_str("</ul></div>");
     s.push_str("<h2>What changes between placements</h2><ul>");
@@ -365,6 +392,13 @@ fn html_effects(s: &mut String, c: &Comparison, find: &Find) {
 /// Agreement between placements, certainty, the checklist and the page's end.
 fn html_agreement(s: &mut String, results: &Results, c: &Comparison, all: &[Table]) {
     s.push_str("<h2>Agreement between placements</h2>");
+    if c.alignments.len() > crate::compare::ALL_PAIRS_UP_TO {
+        let _ = write!(
+            s,
+            "<p class=\"note\">With more than {} placements, each is cross-tabulated against the reference only.</p>",
+            crate::compare::ALL_PAIRS_UP_TO
+        );
+    }
     for t in &c.cross_tables {
         s.push_str(&svg::shaded_grid(
             &format!("'{}' × '{}'", t.rows, t.columns),

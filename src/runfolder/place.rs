@@ -110,14 +110,13 @@ pub fn check(folder: &Path, shown: &Path, inputs: &[&Path]) -> Result<()> {
             ));
         }
     }
-    for input in inputs {
-        let input = resolved(input)?;
-        if input.starts_with(folder) {
+    for given in inputs {
+        if resolved(given)?.starts_with(folder) {
             return Err(Error::input(
                 Diagnostic::new(format!(
                     "the run folder {} holds {}, an input of the run",
                     shown.display(),
-                    input.display()
+                    given.display()
                 ))
                 .help("a run replaces its folder as a whole: give a folder of its own, such as runs/<study>"),
             ));

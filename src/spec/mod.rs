@@ -31,6 +31,7 @@
 //! module checks column names against the CSV header, pointing back at the spec.
 
 pub mod families;
+pub mod limits;
 pub mod raw;
 pub mod settings;
 
@@ -71,6 +72,7 @@ macro_rules! words {
 pub(crate) use words;
 
 pub use families::{FamilyInfo, FamilyKey, Layout, TypeKind};
+pub use limits::{MAX_CLUSTERS, MAX_PLACEMENTS};
 
 pub use settings::{
     CompareSettings, CovarianceChoice, CovarianceStructure, ErrorMethod, Orientation, ProportionsChoice, Shape, Volume,
@@ -431,6 +433,19 @@ impl Study {
 /// Read and validate a spec file against the component families the program offers
 /// (in their order).
 pub fn load(path: &Path, families: &[&'static FamilyInfo]) -> Result<Study> {
+    if let Ok(meta) = std::fs::metadata(path) {
+        if meta.is_file() && meta.len() > limits::MAX_SPEC_BYTES {
+            return Err(Error::input(
+                Diagnostic::new(format!(
+                    "the spec file {} holds {} bytes; a spec is at most {} KiB",
+                    path.display(),
+                    meta.len(),
+                    limits::MAX_SPEC_BYTES >> 10
+                ))
+                .help("is this the spec? a study spec is a short TOML file (see docs/spec.md)"),
+            ));
+        }
+    }
     let text = read_text(path, "spec")?;
     parse(path, &text, families)
 }
@@ -450,6 +465,9 @@ pub fn resolve(base: &Path, rel: &str) -> PathBuf {
             other => out.push(other),
         }
     }
+    if out.is_empty() {
+        return PathBuf::from(".");
+    }
     out.iter().collect()
 }
 
@@ -459,6 +477,15 @@ pub fn read_text(path: &Path, what: &str) -> Result<String> {
         return Err(Error::input(
             Diagnostic::new(format!("the {what} path {} is a folder, not a file", path.display()))
                 .help(format!("give the path of the {what} file inside it")),
+        ));
+    }
+    if std::fs::metadata(path).is_ok_and(|m| !m.is_file()) {
+        return Err(Error::input(
+            Diagnostic::new(format!(
+                "the {what} path {} is a device, a pipe or a socket, not a file",
+                path.display()
+            ))
+            .help(format!("give the path of the {what} file")),
         ));
     }
     let bytes = std::fs::read(path).map_err(|e| {
@@ -493,9 +520,70 @@ pub fn io_words(e: &std::io::Error) -> String {
 }
 
 /// Parse and validate spec text that was read from `path` (see [`load`]).
+///
+/// The text is read in Unicode normal form C, so that names typed with a precomposed or
+/// a decomposed accent are the same name; a key or string holding a control character
+/// (a line break, a tab, a terminal escape) is refused where it stands.
 pub fn parse(path: &Path, text: &str, families: &[&'static FamilyInfo]) -> Result<Study> {
-    let raw: RawSpec = toml::from_str(text).map_err(|e| toml_error(path, text, &e))?;
-    validate(path, text, raw, families)
+    let text = nfc(text);
+    let raw: RawSpec = toml::from_str(&text).map_err(|e| toml_error(path, &text, &e))?;
+    plain_text(path, &text)?;
+    validate(path, &text, raw, families)
+}
+
+/// `s` in Unicode normal form C (the text itself when it is already, as ASCII always is).
+pub fn nfc(s: &str) -> std::borrow::Cow<'_, str> {
+    use unicode_normalization::{is_nfc_quick, IsNormalized, UnicodeNormalization};
+    if s.is_ascii() || is_nfc_quick(s.chars()) == IsNormalized::Yes {
+        std::borrow::Cow::Borrowed(s)
+    } else {
+        std::borrow::Cow::Owned(s.nfc().collect())
+    }
+}
+
+/// The first control character of `s`, if any.
+pub fn control_character(s: &str) -> Option<char> {
+    s.chars().find(|c| c.is_control())
+}
+
+/// Every key and string of the spec is plain text: no control character.
+fn plain_text(path: &Path, text: &str) -> Result<()> {
+    use toml::de::{DeTable, DeValue};
+    use toml::Spanned;
+    fn value(v: &Spanned<DeValue>) -> Option<Range<usize>> {
+        match v.get_ref() {
+            DeValue::String(s) => control_character(s).map(|_| v.span()),
+            DeValue::Array(items) => items.iter().find_map(value),
+            DeValue::Table(t) => table(t),
+            _ => None,
+        }
+    }
+    fn table(t: &DeTable) -> Option<Range<usize>> {
+        t.iter().find_map(|(k, v)| {
+            if control_character(k.get_ref()).is_some() {
+                Some(k.span())
+            } else {
+                value(v)
+            }
+        })
+    }
+    let Ok(doc) = DeTable::parse(text) else {
+        return Ok(());
+    };
+    match table(doc.get_ref()) {
+        None => Ok(()),
+        Some(span) => {
+            let found = control_character(&text[span.clone()]).map_or_else(
+                || "an escaped control character".to_string(),
+                |c| format!("the control character U+{:04X}", u32::from(c)),
+            );
+            Err(Error::input(
+                Diagnostic::new(format!("this name or text holds {found}"))
+                    .at(Location::from_span(path, text, span))
+                    .help("titles, names and levels are plain text on one line: remove line breaks, tabs and escapes such as \\n or \\u001b"),
+            ))
+        }
+    }
 }
 
 fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
@@ -585,10 +673,23 @@ fn positive(ctx: &Ctx, v: &Spanned<i64>, key: &str, min: i64) -> Result<usize> {
     let x = *v.get_ref();
     if x < min {
         return Err(Error::input(
-            ctx.err(v.span(), format!("{key} must be at least {min}, not {x}")),
+            ctx.err(v.span(), format!("{key} must be at least {min}, not {x}"))
+                .help(format!("write a whole number of {min} or more")),
         ));
     }
     usize::try_from(x).map_err(|_| Error::input(ctx.err(v.span(), format!("{key} is too large"))))
+}
+
+/// [`positive`], and at most `max` (a limit of [`limits`]).
+fn bounded(ctx: &Ctx, v: &Spanned<i64>, key: &str, min: i64, max: usize) -> Result<usize> {
+    let x = positive(ctx, v, key, min)?;
+    if x > max {
+        return Err(Error::input(
+            ctx.err(v.span(), format!("{key} is {x}; at most {max} are supported"))
+                .help("the limits and their reasons are listed in docs/spec.md"),
+        ));
+    }
+    Ok(x)
 }
 
 fn cluster_list(ctx: &Ctx, v: &Spanned<Vec<Spanned<i64>>>, key: &str) -> Result<Vec<usize>> {
@@ -601,11 +702,14 @@ fn cluster_list(ctx: &Ctx, v: &Spanned<Vec<Spanned<i64>>>, key: &str) -> Result<
     let mut out = Vec::new();
     for c in v.get_ref() {
         let g = positive(ctx, c, key, 1)?;
-        if g > 50 {
-            return Err(Error::input(ctx.err(
-                c.span(),
-                format!("{key} asks for {g} clusters; at most 50 are supported"),
-            )));
+        if g > MAX_CLUSTERS {
+            return Err(Error::input(
+                ctx.err(
+                    c.span(),
+                    format!("{key} asks for {g} clusters; at most {MAX_CLUSTERS} are supported"),
+                )
+                .help("list fewer clusters; the limits are listed in docs/spec.md"),
+            ));
         }
         if out.contains(&g) {
             return Err(Error::input(ctx.err(c.span(), format!("{key} lists {g} twice"))));
@@ -630,6 +734,8 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
     let weights = study.weights.as_ref().map(|s| column_ref(s, "[study].weights"));
     special_columns(&ctx, &id, &weights, &ind, &placements)?;
     let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
+    let search_span = raw.search.as_ref().map_or(0..0, |s| s.span());
+    grid_size(&ctx, search_span, &placements, &search)?;
     let compare = compare_settings(&ctx, raw.compare.as_ref(), &placements)?;
     let inference = inference_settings(&ctx, raw.inference.as_ref(), &placements, &variables)?;
     Ok(Study {
@@ -889,6 +995,25 @@ fn search(ctx: &Ctx, raw: &RawSpec, blocks: &[IndicatorBlock]) -> Result<(Vec<us
     Ok((default_clusters, default_span, search))
 }
 
+/// The grid (placements × cluster counts × covariance structures) within
+/// [`limits::MAX_FITS`].
+fn grid_size(ctx: &Ctx, span: Range<usize>, placements: &[Placement], search: &Search) -> Result<()> {
+    let fits: usize = placements.iter().map(|p| p.clusters.len()).sum::<usize>() * search.structures.len();
+    if fits > limits::MAX_FITS {
+        return Err(Error::input(
+            ctx.err(
+                span,
+                format!(
+                    "the spec asks for {fits} fits (placements × cluster counts × covariance structures); at most {} are supported",
+                    limits::MAX_FITS
+                ),
+            )
+            .help("fit fewer cluster counts or structures, or split the study into several specs"),
+        ));
+    }
+    Ok(())
+}
+
 /// `[[placement]]`, or the one unadjusted placement when there is none.
 fn placements(
     ctx: &Ctx,
@@ -898,6 +1023,18 @@ fn placements(
     ind: &IndicatorKeys,
 ) -> Result<Vec<Placement>> {
     let mut placements = Vec::new();
+    if let Some(extra) = raw.get(MAX_PLACEMENTS) {
+        return Err(Error::input(
+            ctx.err(
+                extra.span(),
+                format!(
+                    "the spec lists {} placements; at most {MAX_PLACEMENTS} are supported",
+                    raw.len()
+                ),
+            )
+            .help("split the study into several specs, each with its own run folder"),
+        ));
+    }
     if raw.is_empty() {
         placements.push(Placement {
             name: "unadjusted".to_string(),
@@ -986,13 +1123,19 @@ fn inference_settings(
         )?;
     }
     if let Some(b) = &r.replicates {
-        out.replicates = positive(ctx, b, "[inference].replicates", 2)?;
+        out.replicates = bounded(ctx, b, "[inference].replicates", 2, limits::MAX_REPLICATES)?;
     }
     if let Some(b) = &r.direct_effect_screen {
         out.direct_effect_screen = *b.get_ref();
     }
     if let Some(b) = &r.cluster_count_replicates {
-        out.cluster_count_replicates = positive(ctx, b, "[inference].cluster_count_replicates", 0)?;
+        out.cluster_count_replicates = bounded(
+            ctx,
+            b,
+            "[inference].cluster_count_replicates",
+            0,
+            limits::MAX_COUNT_REPLICATES,
+        )?;
     }
     if let Some(per) = &r.per {
         for (name, units) in per.get_ref() {
@@ -1164,16 +1307,16 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
     };
     let starts = match &s.starts {
         None => DEFAULT_STARTS,
-        Some(v) => positive(ctx, v, "[search].starts", 1)?,
+        Some(v) => bounded(ctx, v, "[search].starts", 1, limits::MAX_STARTS)?,
     };
     let max_iterations = match &s.max_iterations {
         None => DEFAULT_MAX_ITERATIONS,
-        Some(v) => positive(ctx, v, "[search].max_iterations", 1)?,
+        Some(v) => bounded(ctx, v, "[search].max_iterations", 1, limits::MAX_ITERATIONS)?,
     };
     let tolerance = tolerance(ctx, s.tolerance.as_ref())?;
     let warmup_iterations = match &s.warmup_iterations {
         None => DEFAULT_WARMUP_ITERATIONS,
-        Some(v) => positive(ctx, v, "[search].warmup_iterations", 1)?,
+        Some(v) => bounded(ctx, v, "[search].warmup_iterations", 1, limits::MAX_ITERATIONS)?,
     };
     let finish_best = finish_best(ctx, s, starts, warmup_iterations, max_iterations)?;
     let gating_ridge = match &s.gating_ridge {

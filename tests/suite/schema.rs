@@ -88,7 +88,14 @@ fn every_block_state_keeps_its_keys() {
     let pinned: &[(&str, &[&str])] = &[
         (
             "gaussian",
-            &["coefficients", "covariances", "floor_hits", "orientation", "structure"],
+            &[
+                "coefficients",
+                "covariances",
+                "floor_hits",
+                "orientation",
+                "structure",
+                "variances",
+            ],
         ),
         (
             "items",

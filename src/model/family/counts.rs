@@ -10,8 +10,8 @@
 //! iteration ([`crate::model::glm`]), a generalised EM step.
 
 use super::{
-    read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family, Guard,
-    ParamBlock, Parameter, Prepared, RowSampler, RowScorer,
+    check_values, read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family,
+    Guard, ParamBlock, Parameter, Prepared, RowSampler, RowScorer,
 };
 use crate::data::{Dataset, Design, Exposure, IndicatorSet, IndicatorValues};
 use crate::model::glm::{fit_poisson, PoissonRows};
@@ -177,6 +177,16 @@ impl Prepared for CountData {
     ) -> std::result::Result<Box<dyn Block>, String> {
         let saved: SavedCounts = read_state(INFO.word, state)?;
         let mut b = CountComponents::new(self, g);
+        if saved.coefficients.len() != b.coef.len() {
+            return Err(format!(
+                "it has coefficients for {} counts where the study has {}",
+                saved.coefficients.len(),
+                b.coef.len()
+            ));
+        }
+        for ((name, saved), fresh) in b.rows.names.iter().zip(&saved.coefficients).zip(&b.coef) {
+            check_values(&format!("coefficients of count '{name}'"), saved, fresh.len())?;
+        }
         b.coef = saved.coefficients;
         b.started = saved.started;
         b.failed_steps = saved.failed_steps;

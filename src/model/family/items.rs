@@ -14,8 +14,8 @@
 //! A missing item value is skipped in that row's likelihood (missing at random).
 
 use super::{
-    read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family, Guard,
-    ParamBlock, Parameter, Prepared, RowSampler, RowScorer,
+    check_values, read_state, reference_row, subset_to_original, Block, BlockChart, BlockDesigns, Degeneracy, Family,
+    Guard, ParamBlock, Parameter, Prepared, RowSampler, RowScorer,
 };
 use crate::data::{Dataset, Design, IndicatorSet, IndicatorValues, MISSING_ITEM};
 use crate::model::gating::{fit_multinomial_logit, LogitRows};
@@ -154,7 +154,11 @@ impl Prepared for ItemData {
         state: &serde_json::Value,
     ) -> std::result::Result<Box<dyn Block>, String> {
         let saved: SavedItems = read_state(INFO.word, state)?;
+        if !saved.smoothing.is_finite() || saved.smoothing < 0.0 {
+            return Err("its smoothing is not a number of zero or more".into());
+        }
         let mut b = ItemComponents::new(self, g, saved.smoothing);
+        check_item_state(&b, &saved)?;
         b.log_prob = saved.log_probabilities;
         b.coef = saved.logit_coefficients;
         b.empty_cells = saved.empty_cells;
@@ -194,10 +198,74 @@ impl Prepared for ItemData {
     }
 }
 
+/// Check saved item parameters against the shapes of `fresh` (the block they are for):
+/// every value finite, and each cluster's probabilities of an item's levels in [0, 1]
+/// and summing to 1.
+fn check_item_state(fresh: &ItemComponents, saved: &SavedItems) -> std::result::Result<(), String> {
+    let same_count = |what: &str, a: usize, b: usize| {
+        if a == b {
+            Ok(())
+        } else {
+            Err(format!("it has {what} for {a} items where the study has {b}"))
+        }
+    };
+    same_count("probabilities", saved.log_probabilities.len(), fresh.log_prob.len())?;
+    same_count("logit coefficients", saved.logit_coefficients.len(), fresh.coef.len())?;
+    for (j, name) in fresh.rows.names.iter().enumerate() {
+        let (lp, want) = (&saved.log_probabilities[j], fresh.log_prob[j].len());
+        // A probability may be exactly 0 (log −∞), never NaN or above 1.
+        let finite: Vec<f64> = lp
+            .iter()
+            .map(|l| if *l == f64::NEG_INFINITY { 0.0 } else { *l })
+            .collect();
+        check_values(&format!("probabilities of item '{name}'"), &finite, want)?;
+        let levels = fresh.levels[j];
+        for (k, cluster) in lp.chunks_exact(levels.max(1)).enumerate() {
+            let total: f64 = cluster.iter().map(|l| l.exp()).sum();
+            if cluster.iter().any(|l| *l > 1e-12) || (total - 1.0).abs() > 1e-6 {
+                return Err(format!(
+                    "its probabilities of item '{name}' in cluster {} are not probabilities summing to 1",
+                    k + 1
+                ));
+            }
+        }
+        let want = fresh.coef[j].len();
+        check_values(
+            &format!("logit coefficients of item '{name}'"),
+            &saved.logit_coefficients[j],
+            want,
+        )?;
+    }
+    Ok(())
+}
+
+/// Log probabilities as JSON numbers, with log 0 = −∞ as null (JSON has no infinity).
+mod log_probabilities {
+    use serde::{Deserialize, Deserializer, Serialize, Serializer};
+
+    pub fn serialize<S: Serializer>(v: &[Vec<f64>], s: S) -> Result<S::Ok, S::Error> {
+        let as_options: Vec<Vec<Option<f64>>> = v
+            .iter()
+            .map(|item| item.iter().map(|l| l.is_finite().then_some(*l)).collect())
+            .collect();
+        as_options.serialize(s)
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<Vec<Vec<f64>>, D::Error> {
+        let as_options: Vec<Vec<Option<f64>>> = Vec::deserialize(d)?;
+        Ok(as_options
+            .into_iter()
+            .map(|item| item.into_iter().map(|l| l.unwrap_or(f64::NEG_INFINITY)).collect())
+            .collect())
+    }
+}
+
 /// The saved state of an item block.
 #[derive(Debug, serde::Serialize, serde::Deserialize)]
 struct SavedItems {
-    /// Per item without covariates: log probabilities `[k L + l]` (else empty).
+    /// Per item without covariates: log probabilities `[k L + l]` (else empty); a
+    /// probability of exactly 0 (log −∞) is written as null.
+    #[serde(with = "log_probabilities")]
     log_probabilities: Vec<Vec<f64>>,
     /// Per item with covariates: logit coefficients `[(k (L − 1) + l − 1) q + a]` (else empty).
     logit_coefficients: Vec<Vec<f64>>,

@@ -551,6 +551,23 @@ pub fn subset_to_original(design: &Design, columns: &[usize], beta: &[f64]) -> V
         .collect()
 }
 
+/// Check a saved array: `expected` values, every one finite; the error names it as `what`.
+pub fn check_values(what: &str, values: &[f64], expected: usize) -> std::result::Result<(), String> {
+    if values.len() != expected {
+        return Err(format!(
+            "its {what} hold {} values where {expected} are due",
+            values.len()
+        ));
+    }
+    if let Some(i) = values.iter().position(|v| !v.is_finite()) {
+        return Err(format!(
+            "its {what} hold a value that is not a finite number (at {})",
+            i + 1
+        ));
+    }
+    Ok(())
+}
+
 /// A block's saved state read back into its typed form, with a message that names the
 /// family when it does not fit.
 pub fn read_state<T: serde::de::DeserializeOwned>(

@@ -8,8 +8,8 @@ mod chart;
 
 use super::covariance::{self, CovarianceStructure};
 use super::{
-    read_state, reference_row, Block, BlockChart, BlockDesigns, Degeneracy, Family, FusedPass, Guard, ParamBlock,
-    Parameter, Prepared, RowSampler,
+    check_values, read_state, reference_row, Block, BlockChart, BlockDesigns, Degeneracy, Family, FusedPass, Guard,
+    ParamBlock, Parameter, Prepared, RowSampler,
 };
 use crate::data::{Dataset, Design, IndicatorSet, IndicatorValues};
 use crate::error::{Error, Result};
@@ -140,8 +140,33 @@ impl Prepared for GaussianRows {
         state: &serde_json::Value,
     ) -> std::result::Result<Box<dyn Block>, String> {
         let saved: SavedGaussian = read_state(INFO.word, state)?;
-        let d = self.d;
+        let (d, q) = (self.d, self.q());
+        check_values("coefficients", &saved.coefficients, g * q * d)?;
+        check_values("variances", &saved.variances, d)?;
+        if saved.variances.iter().any(|v| *v <= 0.0) {
+            return Err("its indicator variances are not all positive".into());
+        }
+        if saved.covariances.len() != g {
+            return Err(format!(
+                "it has {} covariance matrices for {g} clusters",
+                saved.covariances.len()
+            ));
+        }
+        for (k, c) in saved.covariances.iter().enumerate() {
+            check_values(&format!("covariance of cluster {}", k + 1), c, d * d)?;
+            let s = DMatrix::from_row_slice(d, d, c);
+            let scale = s.amax().max(f64::MIN_POSITIVE);
+            if (&s - s.transpose()).amax() > 1e-9 * scale {
+                return Err(format!("the covariance of cluster {} is not symmetric", k + 1));
+            }
+        }
+        if let Some(o) = &saved.orientation {
+            check_values("orientation", o, d * d)?;
+        }
         let mut block = GaussianComponents::new(self, fd.weights, g, saved.structure);
+        // The scale that judges a covariance singular is the fitted data's, saved with
+        // the model: new rows (one row, an outlier) must not change it.
+        block.y_var = saved.variances;
         if options.covariance_prior {
             block = block.with_default_prior(fd.weights);
         }
@@ -185,6 +210,9 @@ struct SavedGaussian {
     orientation: Option<Vec<f64>>,
     /// Times the variance floor acted.
     floor_hits: usize,
+    /// The (weighted) variance of each indicator in the fitted data: the scale against
+    /// which a covariance counts as singular.
+    variances: Vec<f64>,
 }
 
 /// ln(2π).
@@ -692,6 +720,7 @@ impl Block for GaussianComponents {
             covariances: self.cov.iter().map(|s| s.transpose().as_slice().to_vec()).collect(),
             orientation: self.orientation.as_ref().map(|o| o.transpose().as_slice().to_vec()),
             floor_hits: self.floor_hits,
+            variances: self.y_var.clone(),
         };
         serde_json::to_value(saved).expect("numbers and words encode")
     }
