@@ -3,6 +3,7 @@
 //! an error; never a panic. Designs are built from what is read, as `check` does.
 #![no_main]
 
+use cohortmix::model::family::Families;
 use libfuzzer_sys::fuzz_target;
 use std::path::Path;
 use std::sync::OnceLock;
@@ -33,14 +34,14 @@ components = ["smoker"]
 
 fn study() -> &'static cohortmix::spec::Study {
     static STUDY: OnceLock<cohortmix::spec::Study> = OnceLock::new();
-    STUDY.get_or_init(|| cohortmix::spec::parse(Path::new("fuzz.toml"), SPEC).expect("the fuzz spec is valid"))
+    STUDY.get_or_init(|| cohortmix::spec::parse(Path::new("fuzz.toml"), SPEC, &Families::standard().infos()).expect("the fuzz spec is valid"))
 }
 
 fuzz_target!(|data: &[u8]| {
     let Ok(text) = std::str::from_utf8(data) else { return };
     match cohortmix::data::from_text(study(), text) {
         Ok(d) => {
-            let _ = cohortmix::fit::prepare(study(), &d).map_err(|e| e.to_string());
+            let _ = cohortmix::fit::prepare(study(), &d, &Families::standard()).map_err(|e| e.to_string());
         }
         Err(e) => {
             let _ = e.to_string();

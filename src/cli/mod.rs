@@ -91,8 +91,8 @@ with a \"comparison\" section, besides models.csv, memberships.csv and manifest.
         #[arg(long)]
         force: bool,
     },
-    /// Posterior memberships of new rows under the models a run folder saved (each
-    /// placement's lowest-BIC fit).
+    /// Posterior memberships of new rows under the models a run folder saved (the fits its
+    /// report compares; after `fit`, each placement's lowest-BIC fit).
     #[command(
         after_help = "Example:\n  cohortmix predict runs/demo new-workers.csv --out new-memberships.csv\n\n\
 The new data need the columns the study uses (indicators, covariates, id), coded as the\n\

@@ -498,7 +498,7 @@ pub fn from_text(study: &Study, text: &str) -> Result<Dataset> {
 }
 
 /// [`from_text`] for a purpose.
-fn from_text_for(study: &Study, text: &str, purpose: Purpose) -> Result<Dataset> {
+pub fn from_text_for(study: &Study, text: &str, purpose: Purpose) -> Result<Dataset> {
     let path = study.data_path.as_path();
     let text = text.strip_prefix('\u{feff}').unwrap_or(text);
     let raw = Raw::with_text(path, text);
@@ -596,7 +596,7 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
             .help("add at least one row of data below the header"),
         ));
     }
-    let (keep, missing_by_column) = rows_to_keep(study, &needed, &cells, rows_read)?;
+    let (keep, missing_by_column) = rows_to_keep(study, &needed, &cells, rows_read, purpose)?;
     let rows_used = keep.iter().filter(|k| **k).count();
     if rows_used == 0 {
         return Err(Error::input(
@@ -684,8 +684,15 @@ type Missing = Vec<(String, usize)>;
 
 /// Which rows are complete for every needed column (a missing value of an indicator
 /// whose family skips missing values does not exclude its row), and how many rows missed
-/// each column.
-fn rows_to_keep(study: &Study, needed: &[Needed], cells: &[Cells], rows_read: usize) -> Result<(Vec<bool>, Missing)> {
+/// each column. A column with no value at all is an error when fitting; when scoring, its
+/// rows are left out like any row that misses a needed value.
+fn rows_to_keep(
+    study: &Study,
+    needed: &[Needed],
+    cells: &[Cells],
+    rows_read: usize,
+    purpose: Purpose,
+) -> Result<(Vec<bool>, Missing)> {
     let skips_missing = |nd: &Needed| match nd.role {
         Role::Indicator(set, _) => study.blocks[set].family.layout == Layout::Levels,
         _ => false,
@@ -694,7 +701,7 @@ fn rows_to_keep(study: &Study, needed: &[Needed], cells: &[Cells], rows_read: us
     let mut missing_by_column = Vec::new();
     for (k, nd) in needed.iter().enumerate() {
         let missing = cells[k].iter().filter(Option::is_none).count();
-        if missing == rows_read && nd.role != Role::Id {
+        if missing == rows_read && nd.role != Role::Id && purpose == Purpose::Fit {
             return Err(Error::input(
                 study
                     .error_at(

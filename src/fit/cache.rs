@@ -103,6 +103,18 @@ pub fn load(folder: &Path, key: &str, spec: &FitSpec, data: &Dataset, prepared: 
     let Ok(text) = std::fs::read_to_string(&path) else {
         return Lookup::Missing;
     };
+    read(&path, &text, key, spec, data, prepared)
+}
+
+/// [`load`] from the text of an entry (`path` names it in messages).
+pub fn read(
+    path: &Path,
+    text: &str,
+    key: &str,
+    spec: &FitSpec,
+    data: &Dataset,
+    prepared: &PreparedPlacement,
+) -> Lookup {
     let Some((sum, payload)) = text.split_once('\n') else {
         return Lookup::Corrupt(format!("{} has no checksum line", path.display()));
     };

@@ -392,6 +392,17 @@ pub fn load_run(run: &Path) -> Result<SavedRun> {
             )),
         )
     })?;
+    read_saved(&path, &text)
+}
+
+/// Read the text of a saved-model file (`path` names it in messages), checking it as
+/// untrusted input.
+pub fn read_saved(path: &Path, text: &str) -> Result<SavedRun> {
+    let damaged = |e: String| {
+        Error::input(Diagnostic::new(format!("{} is damaged: {e}", path.display())).help(
+            "it was changed or cut short since cohortmix wrote it; refit the study (cohortmix fit) to write it again",
+        ))
+    };
     let unreadable = |e: String| {
         Error::input(
             Diagnostic::new(format!(
@@ -401,7 +412,7 @@ pub fn load_run(run: &Path) -> Result<SavedRun> {
             .help("refit the study with this version of cohortmix"),
         )
     };
-    let value: serde_json::Value = serde_json::from_str(&text).map_err(|e| unreadable(e.to_string()))?;
+    let value: serde_json::Value = serde_json::from_str(text).map_err(|e| unreadable(e.to_string()))?;
     let version = value.get("schema_version").and_then(serde_json::Value::as_u64);
     if version != Some(u64::from(SAVED_VERSION)) {
         return Err(Error::input(
@@ -414,24 +425,49 @@ pub fn load_run(run: &Path) -> Result<SavedRun> {
         ));
     }
     let saved: SavedRun = serde_json::from_value(value).map_err(|e| unreadable(e.to_string()))?;
-    let path = path.clone();
     saved.check().map_err(damaged)?;
-    Ok(SavedRun { path, ..saved })
+    Ok(SavedRun {
+        path: path.to_path_buf(),
+        ..saved
+    })
 }
 
 /// Load new data with the saved spec's column checks (case weights are not needed and
 /// not read) and map its item levels onto the fitted ones.
 pub fn load_new_data(saved: &SavedRun, data_path: &Path, families: &Families) -> Result<(crate::spec::Study, Dataset)> {
-    let mut study = crate::spec::parse(Path::new(&saved.spec_file), &saved.spec_text, &families.infos())?;
     if !data_path.exists() {
         return Err(Error::input(
             Diagnostic::new(format!("the data file {} does not exist", data_path.display()))
                 .help("give the path of a CSV with the columns the study uses"),
         ));
     }
+    new_data_with(saved, data_path, families, |study| {
+        crate::data::load_for(study, crate::data::Purpose::Score)
+    })
+}
+
+/// [`load_new_data`] from the text of the new data (`data_path` names it in messages).
+pub fn new_data_from_text(
+    saved: &SavedRun,
+    data_path: &Path,
+    text: &str,
+    families: &Families,
+) -> Result<(crate::spec::Study, Dataset)> {
+    new_data_with(saved, data_path, families, |study| {
+        crate::data::from_text_for(study, text, crate::data::Purpose::Score)
+    })
+}
+
+fn new_data_with(
+    saved: &SavedRun,
+    data_path: &Path,
+    families: &Families,
+    read: impl FnOnce(&crate::spec::Study) -> Result<Dataset>,
+) -> Result<(crate::spec::Study, Dataset)> {
+    let mut study = crate::spec::parse(Path::new(&saved.spec_file), &saved.spec_text, &families.infos())?;
     study.data_path = data_path.to_path_buf();
     study.weights = None;
-    let mut data = crate::data::load_for(&study, crate::data::Purpose::Score).map_err(|e| {
+    let mut data = read(&study).map_err(|e| {
         e.with_help(format!(
             "the new rows in {} are checked against the spec the models were fitted with ({})",
             data_path.display(),

@@ -21,3 +21,4 @@ pub mod schema;
 pub mod structures;
 pub mod toy_family;
 pub mod two_stages;
+pub mod untrusted;
