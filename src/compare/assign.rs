@@ -3,17 +3,29 @@
 /// Maximum-weight assignment of rows to columns of a (rows × cols) weight matrix, by the
 /// Hungarian method (Kuhn 1955; shortest-augmenting-path form, O(n³)). Returns for each row
 /// the column it gets, or `None` when there are more rows than columns and the row is left
-/// out. Ties are broken towards lower indices, so the result is deterministic.
+/// out. Ties are broken towards lower indices, so the result is deterministic. A weight
+/// that is not a finite number (which a damaged input could bring) counts as less than
+/// every finite one, so the method always ends.
 pub fn max_weight_assignment(weights: &[Vec<f64>]) -> Vec<Option<usize>> {
     let rows = weights.len();
     let cols = weights.first().map_or(0, Vec::len);
     if rows == 0 || cols == 0 {
         return vec![None; rows];
     }
+    let finite = || weights.iter().flatten().copied().filter(|w| w.is_finite());
+    let top = finite().fold(0.0_f64, f64::max);
+    let bottom = finite().fold(0.0_f64, f64::min);
+    let weight = |r: usize, c: usize| {
+        let w = weights[r].get(c).copied().unwrap_or(f64::NAN);
+        if w.is_finite() {
+            w
+        } else {
+            bottom - 1.0
+        }
+    };
     // Square cost matrix: minimise (max − w), padding with the max cost.
     let n = rows.max(cols);
-    let top = weights.iter().flatten().copied().fold(f64::NEG_INFINITY, f64::max);
-    let cost = |r: usize, c: usize| if r < rows && c < cols { top - weights[r][c] } else { 0.0 };
+    let cost = |r: usize, c: usize| if r < rows && c < cols { top - weight(r, c) } else { 0.0 };
     // u, v potentials; p[j] = row matched to column j (1-based, 0 = none).
     let mut u = vec![0.0; n + 1];
     let mut v = vec![0.0; n + 1];
@@ -120,6 +132,18 @@ mod tests {
             best
         }
         go(w, 0, &mut vec![false; w[0].len()])
+    }
+
+    #[test]
+    fn weights_that_are_not_numbers_end_and_count_least() {
+        let nan = f64::NAN;
+        let w = vec![vec![nan, 0.9], vec![0.8, f64::INFINITY], vec![nan, nan]];
+        assert_eq!(max_weight_assignment(&w), vec![Some(1), Some(0), None]);
+        let all = vec![vec![nan; 3]; 3];
+        let got = max_weight_assignment(&all);
+        let mut cols: Vec<usize> = got.iter().map(|c| c.unwrap()).collect();
+        cols.sort_unstable();
+        assert_eq!(cols, vec![0, 1, 2]);
     }
 
     #[test]
