@@ -14,6 +14,7 @@ title = "fuzz"
 data = "fuzz.csv"
 id = "pid"
 weights = "w"
+weight_type = "sampling"
 [variables]
 age = "continuous"
 sex = { type = "categorical", reference = "f" }

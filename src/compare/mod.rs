@@ -42,21 +42,26 @@ pub struct Criteria {
     pub bic: Option<f64>,
     /// AIC (smaller is better).
     pub aic: Option<f64>,
-    /// ICL = BIC + 2 × classification entropy (smaller is better; Biernacki, Celeux &
-    /// Govaert 2000).
+    /// Sample-size-adjusted BIC (smaller is better; Sclove 1987).
+    pub sabic: Option<f64>,
+    /// ICL = BIC − 2 Σ_i w_i ln τ_i,MAP, the log of each row's largest posterior (smaller
+    /// is better; Biernacki, Celeux & Govaert 2000).
     pub icl: Option<f64>,
+    /// BIC + 2 × the classification entropy EN (the soft form of ICL; smaller is better).
+    pub bic_entropy: Option<f64>,
     /// Approximate posterior probability of this model among the placement's fits,
     /// exp(−ΔBIC/2) normalised.
     pub bic_weight: Option<f64>,
     /// Relative entropy 1 − EN/(n ln G): 1 = crisp classification (not defined for G = 1).
     pub relative_entropy: Option<f64>,
-    /// Mean of the largest posterior among the rows assigned to each cluster, by cluster
-    /// number.
+    /// Weighted mean of the largest posterior among the rows assigned to each cluster, by
+    /// cluster number.
     pub average_posterior: Vec<ClusterValue>,
     /// Smallest cluster share (weighted posterior).
     pub smallest_share: Option<f64>,
-    /// Rows assigned (most likely) to the smallest cluster.
-    pub smallest_count: Option<usize>,
+    /// Weighted count of the rows assigned (most likely) to the smallest cluster: people
+    /// under frequency weights, rows without weights.
+    pub smallest_count: Option<f64>,
     /// Starts within 1e-6 of the best.
     pub starts_reaching_best: usize,
     /// Starts run to their end (see [`crate::fit::FitResult::finished_starts`]).
@@ -304,7 +309,8 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>], numbe
     let mut out = Vec::new();
     for (i, f) in fits.iter().enumerate() {
         let g = f.clusters;
-        let (mut icl, mut rel, mut avg, mut smallest, mut smallest_n) = (None, None, Vec::new(), None, None);
+        let (mut icl, mut bic_entropy, mut rel, mut avg, mut smallest, mut smallest_n) =
+            (None, None, None, Vec::new(), None, None);
         if let Some(b) = &f.best {
             let tau = &b.run.tau;
             let en: f64 = tau
@@ -312,17 +318,24 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>], numbe
                 .zip(weights)
                 .map(|(row, c)| -c * row.iter().filter(|t| **t > 0.0).map(|t| t * t.ln()).sum::<f64>())
                 .sum();
-            icl = f.bic().map(|bic| bic + 2.0 * en);
+            bic_entropy = f.bic().map(|bic| bic + 2.0 * en);
+            // The classification likelihood of the most likely labels: Σ w_i ln τ_i,MAP.
+            let map_loglik: f64 = tau
+                .chunks_exact(g)
+                .zip(weights)
+                .map(|(row, c)| c * row[crate::numerics::most_likely(row)].max(f64::MIN_POSITIVE).ln())
+                .sum();
+            icl = f.bic().map(|bic| bic - 2.0 * map_loglik);
             if g > 1 {
                 let total: f64 = weights.iter().sum();
                 rel = Some(1.0 - en / (total * (g as f64).ln()));
             }
             let mut sums = vec![0.0; g];
-            let mut counts = vec![0usize; g];
-            for row in tau.chunks_exact(g) {
+            let mut counts = vec![0.0; g];
+            for (row, c) in tau.chunks_exact(g).zip(weights) {
                 let k = crate::numerics::most_likely(row);
-                sums[k] += row[k];
-                counts[k] += 1;
+                sums[k] += c * row[k];
+                counts[k] += c;
             }
             avg = sums
                 .iter()
@@ -330,7 +343,7 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>], numbe
                 .zip(numbering.of(i))
                 .map(|((s, c), number)| ClusterValue {
                     cluster: *number,
-                    value: if *c > 0 { s / *c as f64 } else { 0.0 },
+                    value: if *c > 0.0 { s / c } else { 0.0 },
                 })
                 .collect();
             avg.sort_by_key(|v| v.cluster);
@@ -348,7 +361,9 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>], numbe
             parameters: f.n_params,
             bic: f.bic(),
             aic: f.aic(),
+            sabic: f.sabic(),
             icl,
+            bic_entropy,
             bic_weight: None,
             relative_entropy: rel,
             average_posterior: avg,

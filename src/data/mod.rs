@@ -60,8 +60,11 @@ pub struct Dataset {
     pub missing_by_column: Vec<(String, usize)>,
     /// Row identifiers of the rows kept (the id column, or the 1-based data row number).
     pub ids: RowIds,
-    /// Case weights of the rows kept (1 without a weight column).
+    /// Case weights of the rows kept (1 without a weight column). Sampling weights are
+    /// rescaled to mean 1 over the rows kept.
     pub weights: Vec<f64>,
+    /// The n of BIC and of every count: the sum of frequency weights, else the rows kept.
+    pub sample_size: f64,
     /// Every indicator name, in spec order.
     pub indicator_names: Vec<String>,
     /// The indicators by family: one set per block of the spec, in the same order.
@@ -644,6 +647,7 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
             warnings.extend(case_twins(&format!("item '{}'", column.name), levels));
         }
     }
+    let (weights, sample_size) = weigh(study.weight_type, parsed.weights);
     Ok(Dataset {
         path: path.to_path_buf(),
         sha256,
@@ -651,13 +655,33 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
         rows_excluded: rows_read - rows_used,
         missing_by_column,
         ids,
-        weights: parsed.weights,
+        weights,
+        sample_size,
         indicator_names: study.indicators.iter().map(|c| c.name.clone()).collect(),
         indicator_sets: study.blocks.iter().zip(sets).map(|(b, s)| s.finish(b)).collect(),
         exposure: parsed.exposure.map(Arc::new),
         columns: parsed.columns,
         warnings,
     })
+}
+
+/// The weights as the likelihood uses them and the sample size, by what the weights mean:
+/// frequency weights are used as given and add up to the sample size; sampling weights are
+/// rescaled to mean 1 (their scale carries no information, so multiplying them all by a
+/// constant changes nothing), and the sample size is the number of rows.
+pub fn weigh(kind: Option<crate::spec::WeightType>, weights: Vec<f64>) -> (Vec<f64>, f64) {
+    let rows = weights.len() as f64;
+    match kind {
+        Some(crate::spec::WeightType::Frequency) => {
+            let total = crate::numerics::sum(&weights);
+            (weights, total)
+        }
+        Some(crate::spec::WeightType::Sampling) => {
+            let scale = rows / crate::numerics::sum(&weights);
+            (weights.iter().map(|w| w * scale).collect(), rows)
+        }
+        None => (weights, rows),
+    }
 }
 
 /// A warning for each pair of `levels` of `what` that differ only in case ("Male" and

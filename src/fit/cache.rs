@@ -234,6 +234,7 @@ fn rebuild(entry: Entry, spec: &FitSpec, data: &Dataset, prepared: &PreparedPlac
         uses_structure: prepared.uses_structure(),
         n_params: entry.n_params,
         n_rows: entry.n_rows,
+        sample_size: data.sample_size,
         starts: entry.starts,
         best,
     })

@@ -83,6 +83,7 @@ pub fn fit_cell(spec: &FitSpec, data: &Dataset, prepared: &PreparedPlacement) ->
         uses_structure: prepared.uses_structure(),
         n_params: template.n_params(),
         n_rows: fd.n,
+        sample_size: data.sample_size,
         starts: records.into_iter().map(|(r, _)| r).collect(),
         best,
     }

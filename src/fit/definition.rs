@@ -111,6 +111,8 @@ pub struct FitSpec {
     pub family: &'static str,
     /// Case-weight column.
     pub weights: Option<String>,
+    /// What the weights mean.
+    pub weight_type: Option<crate::spec::WeightType>,
     /// Exposure column.
     pub exposure: Option<String>,
     /// The placement.
@@ -206,6 +208,7 @@ pub fn fit_spec(
             .collect(),
         family: study.family.word(),
         weights: study.weights.as_ref().map(|c| c.name.clone()),
+        weight_type: study.weight_type,
         exposure: study.exposure.as_ref().map(|c| c.name.clone()),
         placement: PlacementSpec {
             name: p.name.clone(),

@@ -48,8 +48,10 @@ pub struct FitResult {
     pub uses_structure: bool,
     /// Free parameters.
     pub n_params: usize,
-    /// Rows used (the n in BIC).
+    /// Rows used.
     pub n_rows: usize,
+    /// The n of BIC: the sum of frequency weights, else the rows used.
+    pub sample_size: f64,
     /// Every start.
     pub starts: Vec<StartRecord>,
     /// The best usable start, if any.
@@ -105,10 +107,16 @@ impl FitResult {
         self.best.as_ref().map(|b| b.run.loglik)
     }
 
-    /// BIC = −2 loglik + k ln n (smaller is better).
+    /// BIC = −2 loglik + k ln n (smaller is better; Schwarz 1978), n the sample size.
     pub fn bic(&self) -> Option<f64> {
         self.loglik()
-            .map(|l| -2.0 * l + self.n_params as f64 * (self.n_rows as f64).ln())
+            .map(|l| -2.0 * l + self.n_params as f64 * self.sample_size.ln())
+    }
+
+    /// Sample-size-adjusted BIC = −2 loglik + k ln((n + 2) / 24) (Sclove 1987).
+    pub fn sabic(&self) -> Option<f64> {
+        self.loglik()
+            .map(|l| -2.0 * l + self.n_params as f64 * ((self.sample_size + 2.0) / 24.0).ln())
     }
 
     /// AIC = −2 loglik + 2k (smaller is better).

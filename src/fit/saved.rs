@@ -19,7 +19,7 @@ pub const FILE_NAME: &str = "fitted-models.json";
 
 /// Version of the file's layout (2: each block saved by its family, under its word;
 /// 3: each fit's cluster numbers).
-pub const SAVED_VERSION: u32 = 3;
+pub const SAVED_VERSION: u32 = 4;
 
 /// Everything `predict` needs from a run.
 #[derive(Debug, Clone, Serialize, Deserialize, schemars::JsonSchema)]
@@ -467,6 +467,7 @@ fn new_data_with(
     let mut study = crate::spec::parse(Path::new(&saved.spec_file), &saved.spec_text, &families.infos())?;
     study.data_path = data_path.to_path_buf();
     study.weights = None;
+    study.weight_type = None;
     let mut data = read(&study).map_err(|e| {
         e.with_help(format!(
             "the new rows in {} are checked against the spec the models were fitted with ({})",

@@ -28,6 +28,7 @@ use crate::model::gating::Gating;
 use crate::model::{FitData, Model};
 use crate::rng::Stream;
 pub use crate::spec::ErrorMethod;
+use crate::spec::WeightType;
 use chart::Chart;
 use nalgebra::DMatrix;
 use rayon::prelude::*;
@@ -48,6 +49,8 @@ pub struct InferenceSettings {
     pub seed: u64,
     /// EM settings of the bootstrap refits.
     pub em: EmSettings,
+    /// What the case weights mean (None: no weights).
+    pub weight_type: Option<WeightType>,
 }
 
 /// The covariance of a fit's reported parameters.
@@ -145,24 +148,48 @@ pub fn observed_information(chart: &Chart, fd: &FitData) -> Result<DMatrix<f64>,
     Ok(0.5 * (&info + info.transpose()))
 }
 
-/// Σ_i s_i s_i' at the fit: the middle of the sandwich.
-pub fn score_outer_product(chart: &Chart, fd: &FitData) -> Result<DMatrix<f64>, String> {
+/// The middle of the sandwich: the variance of the total score, estimated from the row
+/// scores s_i = c_i ∂ℓ_i/∂θ (which add up to 0 at the fit).
+///
+/// Rows are the sampling units, drawn with replacement (the linearisation estimator of
+/// Binder 1983 with one stratum): m/(m − 1) Σ_i s_i s_i′ over the m rows of positive weight.
+/// Under frequency weights a row is c_i people with the same score, so the sum is over
+/// people: N/(N − 1) Σ_i c_i (s_i/c_i)(s_i/c_i)′ with N = Σ c_i, which is what the same
+/// rows written out one per person give.
+pub fn score_outer_product(
+    chart: &Chart,
+    fd: &FitData,
+    weight_type: Option<WeightType>,
+) -> Result<DMatrix<f64>, String> {
     let p = chart.len();
+    let frequency = weight_type == Some(WeightType::Frequency);
     let mut meat = DMatrix::zeros(p, p);
     chart
-        .scores(&vec![0.0; p], fd, |_, s| {
+        .scores(&vec![0.0; p], fd, |i, s| {
+            let c = fd.weights[i];
+            if c <= 0.0 {
+                return;
+            }
+            let scale = if frequency { 1.0 / c } else { 1.0 };
             for a in 0..p {
                 if s[a] == 0.0 {
                     continue;
                 }
                 for b in 0..=a {
-                    meat[(a, b)] += s[a] * s[b];
+                    meat[(a, b)] += scale * s[a] * s[b];
                 }
             }
         })
         .map_err(|e| e.reason)?;
+    let units = if frequency {
+        crate::numerics::sum(fd.weights)
+    } else {
+        fd.weights.iter().filter(|c| **c > 0.0).count() as f64
+    };
+    let correction = if units > 1.0 { units / (units - 1.0) } else { 1.0 };
     for a in 0..p {
-        for b in 0..a {
+        for b in 0..=a {
+            meat[(a, b)] *= correction;
             meat[(b, a)] = meat[(a, b)];
         }
     }
@@ -180,12 +207,17 @@ fn spd_inverse(m: &DMatrix<f64>) -> Result<DMatrix<f64>, String> {
 }
 
 /// The covariance of the free parameters θ by the observed information or the sandwich.
-pub fn parameter_covariance(chart: &Chart, fd: &FitData, method: ErrorMethod) -> Result<DMatrix<f64>, String> {
+pub fn parameter_covariance(
+    chart: &Chart,
+    fd: &FitData,
+    method: ErrorMethod,
+    weight_type: Option<WeightType>,
+) -> Result<DMatrix<f64>, String> {
     let info = observed_information(chart, fd)?;
     let inv = spd_inverse(&info)?;
     match method {
         ErrorMethod::Sandwich => {
-            let meat = score_outer_product(chart, fd)?;
+            let meat = score_outer_product(chart, fd, weight_type)?;
             Ok(&inv * meat * &inv)
         }
         _ => Ok(inv),
@@ -251,7 +283,7 @@ pub fn uncertainty_of(
         });
     }
     let chart = Chart::new(model)?;
-    let v = parameter_covariance(&chart, fd, settings.method)?;
+    let v = parameter_covariance(&chart, fd, settings.method, settings.weight_type)?;
     let jac = reported_jacobian(&chart, reported, parameters.len())?;
     Ok(Uncertainty {
         method: settings.method,
@@ -262,8 +294,9 @@ pub fn uncertainty_of(
 }
 
 /// Nonparametric bootstrap: each replicate draws n rows with replacement (as multiplicities
-/// on the case weights), refits from the fitted responsibilities, and records the reported
-/// parameters. Replicates run in parallel, each on its own random stream, so the result
+/// on the case weights; under frequency weights it draws N = Σ c people, a row with the
+/// probability c_i/N, and their multiplicities are the weights), refits from the fitted
+/// responsibilities, and records the reported parameters. Replicates run in parallel, each on its own random stream, so the result
 /// does not depend on the thread count.
 fn bootstrap(
     model: &Model,
@@ -274,15 +307,31 @@ fn bootstrap(
     label: &str,
 ) -> Result<(DMatrix<f64>, usize), String> {
     let n = fd.n;
+    // Under frequency weights, the cumulative weights to draw people from.
+    let people = (settings.weight_type == Some(WeightType::Frequency)).then(|| {
+        let mut total = 0.0;
+        fd.weights
+            .iter()
+            .map(|c| {
+                total += c;
+                total
+            })
+            .collect::<Vec<f64>>()
+    });
     let draws: Vec<Option<Vec<f64>>> = (0..settings.replicates)
         .into_par_iter()
         .map(|b| {
             let mut rng = Stream::new(settings.seed, &format!("bootstrap|{label}|{}", b + 1));
-            let mut times = vec![0.0; n];
-            for _ in 0..n {
-                times[rng.index(n)] += 1.0;
-            }
-            let weights: Vec<f64> = fd.weights.iter().zip(&times).map(|(c, t)| c * t).collect();
+            let weights = match &people {
+                Some(cumulative) => draw_people(cumulative, &mut rng),
+                None => {
+                    let mut times = vec![0.0; n];
+                    for _ in 0..n {
+                        times[rng.index(n)] += 1.0;
+                    }
+                    fd.weights.iter().zip(&times).map(|(c, t)| c * t).collect()
+                }
+            };
             let resampled = FitData {
                 weights: &weights,
                 ..*fd
@@ -321,6 +370,19 @@ fn bootstrap(
     Ok((cov, ok.len()))
 }
 
+/// Multiplicities of the rows when round(N) people are drawn with replacement, a row with
+/// probability proportional to its weight (`cumulative`: the running sums of the weights).
+fn draw_people(cumulative: &[f64], rng: &mut Stream) -> Vec<f64> {
+    let total = cumulative.last().copied().unwrap_or(0.0);
+    let mut times = vec![0.0; cumulative.len()];
+    for _ in 0..total.round() as u64 {
+        let u = rng.uniform() * total;
+        let i = cumulative.partition_point(|c| *c <= u).min(cumulative.len() - 1);
+        times[i] += 1.0;
+    }
+    times
+}
+
 /// The inference settings of a study.
 pub fn settings_for(study: &crate::spec::Study) -> InferenceSettings {
     InferenceSettings {
@@ -328,6 +390,7 @@ pub fn settings_for(study: &crate::spec::Study) -> InferenceSettings {
         replicates: study.inference.replicates,
         seed: study.seed,
         em: EmSettings::for_search(&study.search),
+        weight_type: study.weight_type,
     }
 }
 

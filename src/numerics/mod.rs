@@ -76,6 +76,18 @@ pub fn solve_spd(a: &DMatrix<f64>, b: &DVector<f64>) -> Option<DVector<f64>> {
     x.iter().all(|v| v.is_finite()).then_some(x)
 }
 
+/// Sum with compensation (Neumaier's variant of Kahan summation): accurate to about one unit
+/// in the last place whatever the order of magnitudes, in a fixed order.
+pub fn sum(xs: &[f64]) -> f64 {
+    let (mut s, mut c) = (0.0_f64, 0.0_f64);
+    for &x in xs {
+        let t = s + x;
+        c += if s.abs() >= x.abs() { (s - t) + x } else { (x - t) + s };
+        s = t;
+    }
+    s + c
+}
+
 /// SHA-256 of bytes, as lower-case hexadecimal.
 pub fn sha256_hex(bytes: &[u8]) -> String {
     hex(&Sha256::digest(bytes))
@@ -89,6 +101,12 @@ pub fn hex(bytes: &[u8]) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn compensated_sum_keeps_small_terms() {
+        assert_eq!(sum(&[1e16, 1.0, -1e16]), 1.0);
+        assert_eq!(sum(&[0.1; 10]), 1.0);
+    }
 
     #[test]
     fn log_softmax_is_stable_for_large_scores() {

@@ -14,7 +14,7 @@ use serde::Serialize;
 
 /// Version of the `results.json` layout (4: `newton_steps_failed` per fit; 5: every
 /// cluster by its number in the run's files, with its place in the fit beside it).
-pub const SCHEMA_VERSION: u32 = 5;
+pub const SCHEMA_VERSION: u32 = 6;
 
 fn is_zero(n: &usize) -> bool {
     *n == 0
@@ -70,6 +70,11 @@ pub struct StudySummary {
     pub missing_by_column: Vec<MissingCount>,
     /// Weight column, if any.
     pub weights: Option<String>,
+    /// What the weights mean: `frequency` or `sampling` (null without weights).
+    pub weight_type: Option<&'static str>,
+    /// The n of BIC, ICL and sample-size-adjusted BIC: the sum of frequency weights, else
+    /// the rows used.
+    pub sample_size: f64,
     /// Component family.
     pub family: &'static str,
     /// Indicator columns.
@@ -128,6 +133,10 @@ pub struct Conventions {
     pub bic: &'static str,
     /// How AIC is defined.
     pub aic: &'static str,
+    /// How the sample-size-adjusted BIC is defined.
+    pub sabic: &'static str,
+    /// How ICL is defined.
+    pub icl: &'static str,
     /// Which cluster is the gating reference.
     pub reference_cluster: &'static str,
     /// How clusters are numbered.
@@ -165,6 +174,8 @@ pub struct FitRecord {
     pub bic: Option<f64>,
     /// AIC (smaller is better).
     pub aic: Option<f64>,
+    /// Sample-size-adjusted BIC (smaller is better; Sclove 1987).
+    pub sabic: Option<f64>,
     /// EM iterations of the best start.
     pub iterations: Option<usize>,
     /// Start summary.
@@ -370,8 +381,10 @@ pub fn results(
         },
         study: study_summary(study, data),
         conventions: Conventions {
-            bic: "BIC = -2 loglik + parameters * ln(rows); smaller is better",
+            bic: "BIC = -2 loglik + parameters * ln(n), n = study.sample_size (the sum of frequency weights, else the rows used); smaller is better",
             aic: "AIC = -2 loglik + 2 * parameters; smaller is better",
+            sabic: "SABIC = -2 loglik + parameters * ln((n + 2) / 24) (Sclove 1987); smaller is better",
+            icl: "ICL = BIC - 2 * sum over rows of weight * ln(largest posterior) (Biernacki, Celeux & Govaert 2000); bic_entropy = BIC + 2 * classification entropy; smaller is better",
             reference_cluster:
                 "gating coefficients are log relative risk ratios against each fit's reference_cluster (its largest cluster)",
             cluster_order: CLUSTER_ORDER,
@@ -477,6 +490,7 @@ fn fit_record(
         rows: f.n_rows,
         bic: f.bic(),
         aic: f.aic(),
+        sabic: f.sabic(),
         iterations: f.best.as_ref().map(|b| b.run.iterations),
         starts: StartSummary {
             total: f.starts.len(),
@@ -539,6 +553,8 @@ fn study_summary(study: &Study, data: &Dataset) -> StudySummary {
             })
             .collect(),
         weights: study.weights.as_ref().map(|w| w.name.clone()),
+        weight_type: study.weight_type.map(|t| t.word()),
+        sample_size: data.sample_size,
         family: study.family.word(),
         indicators: data.indicator_names.clone(),
         seed: study.seed,

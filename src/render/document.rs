@@ -96,7 +96,7 @@ pub fn checklist(results: &Results, c: &Comparison) -> Vec<(String, String)> {
         ("Missing data".into(), if missing.is_empty() { "none in the columns used".into() } else { format!("rows missing any used value were excluded ({})", missing.join(", ")) }),
         ("Missing item values".into(), if s.indicator_kinds.contains(&"item") { format!("{} item values missing in the rows used, each skipped in its row's likelihood (missing at random assumed)", s.item_values_missing) } else { "no items".into() }),
         ("Counts".into(), if s.indicator_kinds.contains(&"count") { format!("Poisson regressions; exposure {}", s.exposure.as_deref().map_or("none (counts per row)".to_string(), |e| format!("'{e}' (log exposure as offset; rates per unit of it)"))) } else { "no counts".into() }),
-        ("Case weights".into(), s.weights.clone().unwrap_or_else(|| "none".into())),
+        ("Case weights".into(), weights_line(s)),
         ("Covariates and their placement".into(), placements.join("; ")),
         ("Cluster counts fitted (including 1)".into(), counts.iter().map(usize::to_string).collect::<Vec<_>>().join(", ")),
         ("Covariance structures".into(), s.covariance_structures.join("; ")),
@@ -150,6 +150,24 @@ pub fn md_text(s: &str) -> String {
         }
     }
     out
+}
+
+/// What the case weights are and what follows from them, in words.
+fn weights_line(s: &crate::pipeline::output::StudySummary) -> String {
+    let Some(column) = &s.weights else {
+        return "none".into();
+    };
+    match s.weight_type {
+        Some("frequency") => format!(
+            "'{column}', frequency weights (a row stands for that many people): n = {:.0} in BIC, ICL and the counts",
+            s.sample_size
+        ),
+        _ => format!(
+            "'{column}', sampling weights, rescaled to mean 1 over the rows used (their scale changes nothing); \
+             standard errors are design-based, each row a sampling unit (Binder 1983); BIC, ICL and the \
+             likelihood-ratio tests treat the rescaled weights as counts, so they are approximate"
+        ),
+    }
 }
 
 /// `summary.md`.

@@ -70,7 +70,7 @@ fn criteria_table(c: &Comparison, out: &mut Vec<Table>) {
     let one_structure = c.criteria.iter().all(|r| r.covariance == c.criteria[0].covariance);
     let mut criteria = Table {
         id: TableId::Criteria,
-        note: "BIC, AIC and ICL: smaller is better. BIC weight: approximate posterior probability of the model among its placement's fits. ✓ marks the fit each placement is compared with.".into(),
+        note: "BIC, AIC and ICL: smaller is better. ICL adds to BIC twice the (weighted) sum of −ln of each row's top posterior (Biernacki, Celeux & Govaert 2000), so it favours clearly separated clusters. BIC weight: approximate posterior probability of the model among its placement's fits. ✓ marks the fit each placement is compared with.".into(),
         header: ["placement", "clusters", "covariance", "loglik", "parameters", "BIC", "AIC", "ICL", "BIC weight", "relative entropy", "mean top posterior by cluster", "smallest cluster", "starts at best", "status", "compared"]
             .iter()
             .map(|s| s.to_string())
@@ -96,7 +96,7 @@ fn criteria_table(c: &Comparison, out: &mut Vec<Table>) {
                         .collect::<Vec<_>>()
                         .join(" · "),
                     match (r.smallest_share, r.smallest_count) {
-                        (Some(s), Some(n)) => format!("{} ({n} rows)", pct(s)),
+                        (Some(s), Some(n)) => format!("{} (n = {n:.0})", pct(s)),
                         _ => "–".into(),
                     },
                     format!("{}/{}", r.starts_reaching_best, r.starts),

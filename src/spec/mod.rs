@@ -76,6 +76,7 @@ pub use limits::{MAX_CLUSTERS, MAX_PLACEMENTS};
 
 pub use settings::{
     CompareSettings, CovarianceChoice, CovarianceStructure, ErrorMethod, Orientation, ProportionsChoice, Shape, Volume,
+    WeightType,
 };
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
@@ -315,6 +316,8 @@ pub struct Study {
     pub id: Option<ColumnRef>,
     /// Weight column.
     pub weights: Option<ColumnRef>,
+    /// What the weights mean (set exactly when `weights` is).
+    pub weight_type: Option<WeightType>,
     /// Master seed.
     pub seed: u64,
     /// Run folder from the spec, resolved against the spec's folder.
@@ -733,11 +736,12 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
     let id = study.id.as_ref().map(|s| column_ref(s, "[study].id"));
     let weights = study.weights.as_ref().map(|s| column_ref(s, "[study].weights"));
     special_columns(&ctx, &id, &weights, &ind, &placements)?;
+    let weight_type = weight_type(&ctx, study)?;
     let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
     let search_span = raw.search.as_ref().map_or(0..0, |s| s.span());
     grid_size(&ctx, search_span, &placements, &search)?;
     let compare = compare_settings(&ctx, raw.compare.as_ref(), &placements)?;
-    let inference = inference_settings(&ctx, raw.inference.as_ref(), &placements, &variables)?;
+    let inference = inference_settings(&ctx, raw.inference.as_ref(), &placements, &variables, weight_type)?;
     Ok(Study {
         spec_path: path.to_path_buf(),
         spec_text: text.to_string(),
@@ -746,6 +750,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         data_span: study.data.span(),
         id,
         weights,
+        weight_type,
         seed,
         output,
         simulated: study.simulated.unwrap_or(false),
@@ -1104,13 +1109,48 @@ fn special_columns(
     Ok(())
 }
 
+/// `[study] weight_type`: required with `weights`, refused without.
+fn weight_type(ctx: &Ctx, study: &raw::RawStudy) -> Result<Option<WeightType>> {
+    match (&study.weights, &study.weight_type) {
+        (None, None) => Ok(None),
+        (Some(w), None) => Err(Error::input(
+            ctx.err(
+                w.span(),
+                "[study].weights is given without saying what the weights mean",
+            )
+            .help(
+                "add weight_type = \"frequency\" (a row stands for that many identical people) or \
+                     weight_type = \"sampling\" (inverse selection probabilities of a survey sample) to [study]",
+            ),
+        )),
+        (None, Some(t)) => Err(Error::input(
+            ctx.err(t.span(), "[study].weight_type is given without [study].weights")
+                .help("name the column of case weights with weights = \"column\", or remove weight_type"),
+        )),
+        (Some(_), Some(t)) => choose(
+            ctx,
+            t.span(),
+            t.get_ref(),
+            format!("[study].weight_type does not know '{}'", t.get_ref()),
+            listed("use one of: "),
+        )
+        .map(Some),
+    }
+}
+
 fn inference_settings(
     ctx: &Ctx,
     raw: Option<&Spanned<raw::RawInference>>,
     placements: &[Placement],
     variables: &BTreeMap<String, (VariableType, Range<usize>)>,
+    weight_type: Option<WeightType>,
 ) -> Result<Inference> {
     let mut out = Inference::default();
+    if weight_type == Some(WeightType::Sampling) {
+        // Design-based errors: the sandwich (linearisation) is the default under sampling
+        // weights; the observed information would treat the weights as counts of people.
+        out.method = ErrorMethod::Sandwich;
+    }
     let Some(raw) = raw else { return Ok(out) };
     let r = raw.get_ref();
     if let Some(m) = &r.standard_errors {
@@ -1121,6 +1161,15 @@ fn inference_settings(
             format!("[inference].standard_errors does not know '{}'", m.get_ref()),
             listed("use one of: "),
         )?;
+        if weight_type == Some(WeightType::Sampling) && out.method == ErrorMethod::ObservedInformation {
+            return Err(Error::input(
+                ctx.err(
+                    m.span(),
+                    "[inference].standard_errors = \"observed-information\" treats sampling weights as counts of people, which makes the errors too small or too large",
+                )
+                .help("use \"sandwich\" (design-based, by linearisation; the default with sampling weights) or \"bootstrap\""),
+            ));
+        }
     }
     if let Some(b) = &r.replicates {
         out.replicates = bounded(ctx, b, "[inference].replicates", 2, limits::MAX_REPLICATES)?;

@@ -80,6 +80,8 @@ pub struct RawStudy {
     pub id: Option<SStr>,
     /// Column of case weights (non-negative).
     pub weights: Option<SStr>,
+    /// What the weights mean: `frequency` or `sampling`.
+    pub weight_type: Option<SStr>,
     /// Master random seed.
     pub seed: Option<Spanned<i64>>,
     /// Run folder, relative to the spec file.

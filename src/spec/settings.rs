@@ -137,6 +137,23 @@ impl CovarianceStructure {
     }
 }
 
+/// What case weights mean (`[study] weight_type`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum WeightType {
+    /// A row stands for w identical people: the sample size is the sum of the weights.
+    Frequency,
+    /// Inverse selection probabilities: rescaled to mean 1 over the rows used, so that the
+    /// likelihood and the criteria do not depend on their scale; the sample size is the
+    /// number of rows, and standard errors are design-based.
+    Sampling,
+}
+
+crate::spec::words!(WeightType {
+    Frequency => "frequency",
+    Sampling => "sampling",
+});
+
 /// How standard errors are computed.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "kebab-case")]

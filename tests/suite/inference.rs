@@ -29,6 +29,7 @@ fn settings(method: ErrorMethod) -> InferenceSettings {
             tolerance: 1e-14,
             accelerate: true,
         },
+        weight_type: None,
     }
 }
 

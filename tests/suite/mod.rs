@@ -22,3 +22,4 @@ pub mod structures;
 pub mod toy_family;
 pub mod two_stages;
 pub mod untrusted;
+pub mod weights;
