@@ -115,8 +115,14 @@ impl Starts<'_> {
         em::run(self.fd, self.template.clone(), tau, settings)
     }
 
-    /// Record a finished start, keeping its run when it is the best so far.
-    fn keep(&self, s: usize, run: EmRun) -> Outcome {
+    /// Record a finished start, keeping its run when it is the best so far. A usable
+    /// start that ended at a spurious solution is recorded as such and never kept.
+    fn keep(&self, s: usize, mut run: EmRun) -> Outcome {
+        if self.spec.search.spurious_guard && run.termination.usable() {
+            if let Some(why) = spurious(&run, self.fd) {
+                run.termination = Termination::Spurious(why);
+            }
+        }
         let usable = run.termination.usable();
         let record = StartRecord {
             start: s + 1,
@@ -197,6 +203,19 @@ impl Starts<'_> {
         };
         (record, None)
     }
+}
+
+/// Why a run's model looks spurious (a block's [`crate::model::family::Block::spurious`]),
+/// or None.
+fn spurious(run: &EmRun, fd: &FitData) -> Option<String> {
+    let g = run.model.clusters();
+    let mut sizes = vec![0.0; g];
+    for (row, c) in run.tau.chunks_exact(g).zip(fd.weights) {
+        for (s, t) in sizes.iter_mut().zip(row) {
+            *s += c * t;
+        }
+    }
+    run.model.components.blocks.iter().find_map(|b| b.spurious(fd, &sizes))
 }
 
 /// Relabel clusters by decreasing weighted size (cluster 1, the gating reference, is

@@ -62,6 +62,8 @@ pub struct StartSettings {
     /// The two-stage search, when the spec asks for one (absent otherwise, so that its
     /// settings, which then change nothing, do not change the key).
     pub two_stages: Option<TwoStages>,
+    /// Whether spurious starts are set apart (see [`crate::spec::Search::spurious_guard`]).
+    pub spurious_guard: bool,
 }
 
 /// A two-stage search: every start runs a warm-up, the best few run on.
@@ -228,6 +230,7 @@ pub fn fit_spec(
                 warmup_iterations: search.warmup_iterations,
                 finish_best: search.finish_best,
             }),
+            spurious_guard: search.spurious_guard,
         },
         seed: study.seed,
         streams: "start".to_string(),

@@ -24,6 +24,9 @@ pub enum Termination {
     /// Still running after the warm-up but not among the best starts then, so not run
     /// further (see [`crate::spec::Search::finish_best`]).
     SetAside,
+    /// Ended at a spurious solution: a cluster that fits a few rows too closely (see
+    /// [`crate::spec::Search::spurious_guard`]); the reason names it. Never chosen.
+    Spurious(String),
 }
 
 impl Termination {
@@ -40,13 +43,14 @@ impl Termination {
             Termination::Degenerate(_) => "degenerate",
             Termination::NumericalFault(_) => "numerical fault",
             Termination::SetAside => "set aside",
+            Termination::Spurious(_) => "spurious",
         }
     }
 
     /// The reason, for degenerate and faulty starts.
     pub fn reason(&self) -> Option<&str> {
         match self {
-            Termination::Degenerate(r) | Termination::NumericalFault(r) => Some(r),
+            Termination::Degenerate(r) | Termination::NumericalFault(r) | Termination::Spurious(r) => Some(r),
             _ => None,
         }
     }

@@ -9,8 +9,9 @@
 //! about an effect beyond the one on membership. Both models are refitted by EM from the
 //! compared fit's posteriors, so they sit at neighbouring optima.
 //! Continuous indicators share one regression design, so a covariate is tested on all
-//! of them at once. A pair is flagged when its p-value is below 0.05 divided by the
-//! number of pairs tested in the placement (Bonferroni).
+//! of them at once. Pairs are flagged by Holm's step-down procedure over the pairs tested
+//! in the placement (Holm 1979), which holds the family-wise error rate at 0.05 like
+//! Bonferroni's correction and flags at least as many.
 
 use crate::data::Dataset;
 use crate::fit::em::{self, EmSettings};
@@ -36,7 +37,7 @@ pub struct DirectEffectTest {
     pub df: usize,
     /// Chi-squared p-value.
     pub p_value: Option<f64>,
-    /// Below the Bonferroni threshold of the placement.
+    /// Flagged by Holm's procedure over the placement's tests (family-wise 0.05).
     pub flagged: bool,
     /// For a three-step placement, whether the covariate is one of its step-3 covariates
     /// (a flagged pair then breaks the three-step assumption).
@@ -44,6 +45,27 @@ pub struct DirectEffectTest {
     /// Why there is no statistic, when there is none.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub note: Option<String>,
+}
+
+/// The family-wise error rate of the screen.
+pub const FAMILY_WISE_LEVEL: f64 = 0.05;
+
+/// Holm's step-down procedure (Holm 1979): with the m p-values sorted ascending, reject
+/// while p_(j) < alpha / (m − j + 1) (j from 1), and stop at the first that is not. A test
+/// without a p-value counts among the m (it was attempted) but is never rejected.
+pub fn holm(p_values: &[Option<f64>], alpha: f64) -> Vec<bool> {
+    let m = p_values.len();
+    let mut order: Vec<usize> = (0..m).filter(|i| p_values[*i].is_some()).collect();
+    order.sort_by(|a, b| p_values[*a].unwrap().total_cmp(&p_values[*b].unwrap()).then(a.cmp(b)));
+    let mut flagged = vec![false; m];
+    for (j, i) in order.into_iter().enumerate() {
+        if p_values[i].unwrap() < alpha / (m - j) as f64 {
+            flagged[i] = true;
+        } else {
+            break;
+        }
+    }
+    flagged
 }
 
 /// A refit's log-likelihood and parameter count, or why it failed.
@@ -104,7 +126,7 @@ struct FitScreen<'a> {
 }
 
 impl FitScreen<'_> {
-    /// Every pair's test, flagged by Bonferroni over the placement's tests.
+    /// Every pair's test, flagged by Holm's procedure over the placement's tests.
     fn tests(&self, covariates: &[String]) -> Vec<DirectEffectTest> {
         let null = &self.null;
         let pairs: Vec<(String, String, Vec<String>)> = covariates
@@ -131,11 +153,12 @@ impl FitScreen<'_> {
                 self.test(c, group, members, base)
             })
             .collect();
-        let threshold = 0.05 / tests.len() as f64;
+        let flags = holm(&tests.iter().map(|t| t.p_value).collect::<Vec<_>>(), FAMILY_WISE_LEVEL);
         tests
             .into_iter()
-            .map(|mut t| {
-                t.flagged = t.p_value.is_some_and(|p| p < threshold);
+            .zip(flags)
+            .map(|(mut t, flagged)| {
+                t.flagged = flagged;
                 t
             })
             .collect()
@@ -214,5 +237,25 @@ impl FitScreen<'_> {
             step_three_covariate: placement.method.is_three_step() && placement.gating.iter().any(|x| x.name == c),
             note,
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::holm;
+
+    #[test]
+    fn holm_steps_down_and_flags_at_least_what_bonferroni_does() {
+        // m = 4: thresholds 0.0125, 0.0167, 0.025, 0.05 in order. Bonferroni (0.0125)
+        // flags only 0.01; Holm flags all four.
+        let p = [Some(0.04), Some(0.01), Some(0.015), Some(0.02)];
+        assert_eq!(holm(&p, 0.05), vec![true, true, true, true]);
+        // A step that fails stops the procedure, even if a later p-value would pass its own.
+        let p = [Some(0.01), Some(0.03), Some(0.02), Some(0.049)];
+        assert_eq!(holm(&p, 0.05), vec![true, false, false, false]);
+        // A missing p-value counts among the tests (0.03 ≥ 0.05/2) but is never flagged.
+        let p = [Some(0.03), None];
+        assert_eq!(holm(&p, 0.05), vec![false, false]);
+        assert_eq!(holm(&[Some(0.03)], 0.05), vec![true]);
     }
 }

@@ -312,8 +312,11 @@ pub struct StartSummary {
     /// Starts run to their end (all but those the two-stage search set aside after the
     /// warm-up).
     pub finished: usize,
-    /// Starts that converged or hit the cap (not degenerate, not set aside).
+    /// Starts that converged or hit the cap (not degenerate, not spurious, not set aside).
     pub usable: usize,
+    /// Starts that ended at a spurious solution (a cluster fitting a few rows too
+    /// closely), set apart and never chosen.
+    pub spurious: usize,
     /// Starts within 1e-6 (relative) of the best log-likelihood.
     pub reaching_best: usize,
     /// The best start (1-based).
@@ -496,6 +499,11 @@ fn fit_record(
             total: f.starts.len(),
             finished: f.finished_starts(),
             usable,
+            spurious: f
+                .starts
+                .iter()
+                .filter(|s| matches!(s.termination, crate::fit::em::Termination::Spurious(_)))
+                .count(),
             reaching_best: f.best.as_ref().map_or(0, |b| b.reaching),
             best_start: f.best.as_ref().map(|b| b.start),
             best_reached_once: f.best.as_ref().is_some_and(|b| b.reaching == 1 && usable > 1),

@@ -18,9 +18,15 @@ fn plural(n: usize) -> &'static str {
 pub fn progress_line(r: &FitResult) -> String {
     let t = r.termination();
     let finished = r.finished_starts();
+    let spurious = r.starts.iter().filter(|s| s.termination.word() == "spurious").count();
+    let set_apart = if spurious > 0 {
+        format!(" ({spurious} spurious, set apart)")
+    } else {
+        String::new()
+    };
     match r.loglik() {
         Some(l) => format!(
-            "'{}', {} cluster{}: loglik {:.3}, {} of {} {}starts reached the best, {}",
+            "'{}', {} cluster{}: loglik {:.3}, {} of {} {}starts reached the best{set_apart}, {}",
             r.placement,
             r.clusters,
             plural(r.clusters),

@@ -319,7 +319,7 @@ fn screen_table(c: &Comparison, out: &mut Vec<Table>) {
     if !c.direct_effects.is_empty() {
         out.push(Table {
             id: TableId::DirectEffects,
-            note: "Likelihood-ratio tests of adding each covariate as a direct effect on an indicator inside every cluster, to the model with the placement's gating covariates (for a three-step placement, the one-step model its estimate assumes). Continuous indicators are tested together. ⚑ marks p below 0.05 divided by the number of tests in the placement (Bonferroni); for a three-step placement's own covariates it means the three-step assumption fails.".into(),
+            note: "Likelihood-ratio tests of adding each covariate as a direct effect on an indicator inside every cluster, to the model with the placement's gating covariates (for a three-step placement, the one-step model its estimate assumes). Continuous indicators are tested together. ⚑ marks a test flagged by Holm's step-down procedure over the placement's tests (family-wise error 0.05; Holm 1979); for a three-step placement's own covariates it means the three-step assumption fails.".into(),
             header: ["placement", "covariate", "indicator", "LR χ²", "df", "p-value", "flag"].iter().map(|s| s.to_string()).collect(),
             rows: c
                 .direct_effects

@@ -271,6 +271,10 @@ pub struct Search {
     /// Whether every two EM steps are extrapolated (squared extrapolation, Varadhan &
     /// Roland 2008; see [`crate::fit::em::run`]). On by default.
     pub accelerate: bool,
+    /// Whether a start whose Gaussian cluster fits a few rows too closely (see
+    /// [`crate::model::family::SPURIOUS_EIGENVALUE_RATIO`]) is set apart as spurious and never
+    /// chosen. On by default.
+    pub spurious_guard: bool,
     /// Ridge penalty on the gating slopes (not the intercepts); 0 = none.
     pub gating_ridge: f64,
     /// Covariance structures to fit (gaussian), in the order listed.
@@ -968,6 +972,7 @@ fn search(ctx: &Ctx, raw: &RawSpec, blocks: &[IndicatorBlock]) -> Result<(Vec<us
                 warmup_iterations: DEFAULT_WARMUP_ITERATIONS,
                 finish_best: DEFAULT_STARTS,
                 accelerate: true,
+                spurious_guard: true,
                 gating_ridge: 0.0,
                 structures: vec![CovarianceStructure::UNCONSTRAINED],
                 covariance_prior: false,
@@ -1386,6 +1391,7 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
     };
     let covariance_prior = s.covariance_prior.as_ref().is_some_and(|v| *v.get_ref());
     let accelerate = s.accelerate.as_ref().is_none_or(|v| *v.get_ref());
+    let spurious_guard = s.spurious_guard.as_ref().is_none_or(|v| *v.get_ref());
     let variance_floor = match &s.variance_floor {
         None => 0.0,
         Some(v) => {
@@ -1411,6 +1417,7 @@ fn search_settings(ctx: &Ctx, s: &raw::RawSearch, d: usize) -> Result<(Vec<usize
             warmup_iterations,
             finish_best,
             accelerate,
+            spurious_guard,
             gating_ridge,
             structures,
             covariance_prior,

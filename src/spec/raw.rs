@@ -176,6 +176,8 @@ pub struct RawSearch {
     pub finish_best: Option<Spanned<i64>>,
     /// Whether EM steps are extrapolated.
     pub accelerate: Option<Spanned<bool>>,
+    /// Whether starts that end in a spurious solution are set apart.
+    pub spurious_guard: Option<Spanned<bool>>,
     /// Ridge penalty on the gating slopes.
     pub gating_ridge: Option<Spanned<f64>>,
     /// Covariance structures (gaussian only).

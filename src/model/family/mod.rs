@@ -377,6 +377,13 @@ pub trait Block: BlockBase + Debug + Send + Sync {
         Vec::new()
     }
 
+    /// Why the fit looks spurious — a cluster that fits a few rows too closely rather than
+    /// a group in the data — or None. `sizes[k]` is cluster k's weighted size and `fd` the
+    /// data it was fitted to. A family without such a risk keeps the default.
+    fn spurious(&self, _fd: &FitData, _sizes: &[f64]) -> Option<String> {
+        None
+    }
+
     /// A sampler of its indicators.
     fn sampler(&self) -> Box<dyn RowSampler + '_>;
 

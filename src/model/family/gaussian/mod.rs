@@ -222,6 +222,42 @@ const LN_2PI: f64 = 1.837_877_066_409_345_5;
 /// variance, below which the cluster counts as collapsed.
 pub const COLLAPSE_RATIO: f64 = 1e-8;
 
+/// The smallest eigenvalue of the weighted covariance of the rows `y` (n × d), or None
+/// when it is not a positive number.
+fn pooled_smallest_eigenvalue(y: &[f64], d: usize, weights: &[f64]) -> Option<f64> {
+    let total: f64 = weights.iter().sum();
+    let mut mean = vec![0.0; d];
+    for (row, c) in y.chunks_exact(d).zip(weights) {
+        for (m, v) in mean.iter_mut().zip(row) {
+            *m += c * v / total;
+        }
+    }
+    let mut cov = DMatrix::<f64>::zeros(d, d);
+    for (row, c) in y.chunks_exact(d).zip(weights) {
+        for a in 0..d {
+            for b in 0..=a {
+                cov[(a, b)] += c * (row[a] - mean[a]) * (row[b] - mean[b]) / total;
+            }
+        }
+    }
+    for a in 0..d {
+        for b in 0..a {
+            cov[(b, a)] = cov[(a, b)];
+        }
+    }
+    let smallest = cov.symmetric_eigenvalues().min();
+    (smallest.is_finite() && smallest > 0.0).then_some(smallest)
+}
+
+/// A Gaussian cluster is spurious when the smallest eigenvalue of its covariance is below
+/// this share of the smallest eigenvalue of the data's pooled (one-cluster) covariance, or
+/// when it holds less weight than d + 1 rows, the fewest that give a full-rank covariance.
+/// The likelihood of a Gaussian mixture is unbounded, and such clusters are its spikes
+/// (Hathaway 1985 and Ingrassia 2004 bound the eigenvalues for the same reason; the
+/// bound's value here is our choice: a cluster more than about 30 times narrower, in
+/// standard deviation, than the data's narrowest direction).
+pub const SPURIOUS_EIGENVALUE_RATIO: f64 = 1e-3;
+
 /// A conjugate (inverse-Wishart) prior on each cluster covariance: the M-step then gives
 /// the posterior mode (Fraley & Raftery 2007), which keeps covariances away from
 /// singularity. Defaults there: `dof` = d + 2 and `scale` = the data covariance / G^(2/d).
@@ -506,6 +542,32 @@ impl GaussianComponents {
 impl Block for GaussianComponents {
     fn info(&self) -> &'static FamilyInfo {
         &INFO
+    }
+
+    fn spurious(&self, fd: &FitData, sizes: &[f64]) -> Option<String> {
+        let d = self.d;
+        if let Some(k) = sizes.iter().position(|s| *s < (d + 1) as f64) {
+            return Some(format!(
+                "cluster {} holds the weight of {:.1} rows, fewer than the {} a full covariance of {d} indicators needs",
+                k + 1,
+                sizes[k],
+                d + 1
+            ));
+        }
+        let pooled = pooled_smallest_eigenvalue(&self.rows.y, d, fd.weights)?;
+        let (k, smallest) = self
+            .cov
+            .iter()
+            .map(|c| c.clone().symmetric_eigenvalues().min())
+            .enumerate()
+            .min_by(|a, b| a.1.total_cmp(&b.1))?;
+        (smallest < SPURIOUS_EIGENVALUE_RATIO * pooled).then(|| {
+            format!(
+                "cluster {} is {:.1e} times as narrow (smallest covariance eigenvalue) as the data's narrowest direction",
+                k + 1,
+                smallest / pooled
+            )
+        })
     }
 
     fn add_log_density(&self, out: &mut [f64]) {
