@@ -141,6 +141,8 @@ pub enum Finding {
     },
     /// The strongest gating effect (when no direction changes).
     StrongestEffect(GatingEffect),
+    /// A gating term that separates two clusters: no effect size can be estimated.
+    Separation(GatingEffect),
     /// A placement's cluster with no counterpart in the reference.
     NoCounterpart {
         /// Placement.
@@ -196,7 +198,7 @@ impl Finding {
                     placement: None,
                 },
             ),
-            Finding::StrongestEffect(e) => (
+            Finding::StrongestEffect(e) | Finding::Separation(e) => (
                 TableId::GatingEffects,
                 RowRef::ClusterTerm {
                     cluster: e.cluster,
@@ -240,6 +242,12 @@ pub fn findings(c: &Comparison) -> Vec<Finding> {
     out.extend(share_changes(&c.reference, &c.profiles));
     out.extend(profile_shift(&c.reference, &c.indicators, &c.profiles));
     out.extend(gating_finding(&c.gating_effects));
+    out.extend(
+        c.gating_effects
+            .iter()
+            .filter(|e| e.separation)
+            .map(|e| Finding::Separation(e.clone())),
+    );
     out.extend(no_counterparts(&c.reference, &c.alignments, &c.profiles));
     out.extend(agreements(&c.reference, &c.cross_tables));
     out.extend(
@@ -333,6 +341,8 @@ fn profile_shift(reference: &str, indicators: &[String], profiles: &[Profile]) -
 /// least 5% per unit away from no effect (the clearest one is reported); else the
 /// strongest effect.
 fn gating_finding(effects: &[GatingEffect]) -> Option<Finding> {
+    let effects: Vec<GatingEffect> = effects.iter().filter(|e| !e.separation).cloned().collect();
+    let effects = &effects[..];
     let strength = |a: &GatingEffect, b: &GatingEffect| a.rrr.ln().abs().min(b.rrr.ln().abs());
     let mut flip: Option<(&GatingEffect, &GatingEffect)> = None;
     for a in effects {

@@ -132,6 +132,34 @@ pub struct GatingEffect {
     pub interval: Option<(f64, f64)>,
     /// Wald p-value against a ratio of 1, when standard errors are available.
     pub p_value: Option<f64>,
+    /// The term separates the two clusters (quasi-complete separation): the ratio runs off
+    /// towards 0 or infinity and is not an estimate of an effect (see
+    /// [`GatingEffect::separates`]). The ratio, interval and p-value are then not shown.
+    pub separation: bool,
+}
+
+/// |ln RRR| above which a gating ratio is taken as separation rather than an effect:
+/// a factor of e^15 ≈ 3 million (per the stated units) is not an effect a cohort can
+/// estimate but a coefficient running away.
+pub const SEPARATION_LOG_RATIO: f64 = 15.0;
+
+/// With a standard error of ln RRR above this (a 95% interval spanning a factor of more
+/// than e^(2 × 1.96 × 5) ≈ 3 × 10^8), a ratio beyond e^5 ≈ 150 (or below its inverse) is
+/// taken as separation too: a coefficient on its way out, stopped by the tolerance.
+pub const SEPARATION_LOG_SE: f64 = 5.0;
+
+impl GatingEffect {
+    /// Whether an estimate ln RRR with standard error `se` (log scale; None without
+    /// standard errors) shows separation: a runaway coefficient, or a large one whose
+    /// interval is not finite or too wide to mean anything. A term whose estimate is near
+    /// 1 but whose interval is wide (because another term separates) is not flagged: it
+    /// does not separate, its interval says how little is known.
+    pub fn separates(log_ratio: f64, se: Option<f64>) -> bool {
+        let wide = se.is_some_and(|s| !s.is_finite() || s > SEPARATION_LOG_SE);
+        !log_ratio.is_finite()
+            || log_ratio.abs() > SEPARATION_LOG_RATIO
+            || (wide && log_ratio.abs() > SEPARATION_LOG_SE)
+    }
 }
 
 /// A component covariate effect of a compared fit, by aligned cluster.

@@ -255,6 +255,7 @@ fn effects(
                 rrr: (coef * units).exp(),
                 interval: interval.map(|i| (i.lower, i.upper)),
                 p_value: interval.map(|i| i.p_value),
+                separation: GatingEffect::separates(coef * units, interval.map(|i| i.se)),
             });
         }
     }

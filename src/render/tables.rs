@@ -202,6 +202,9 @@ fn profiles_table(c: &Comparison, out: &mut Vec<Table>) {
     });
 }
 
+/// A gating ratio that is separation, not an effect.
+pub const SEPARATION_CELL: &str = "separation: not estimable";
+
 /// Gating relative risk ratios, a column per placement with gating effects.
 fn gating_table(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
     let with_gating: Vec<&String> = placements
@@ -220,7 +223,7 @@ fn gating_table(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
         header.extend(with_gating.iter().map(|p| p.to_string()));
         out.push(Table {
             id: TableId::GatingEffects,
-            note: "Relative risk ratios exp(γ) with 95% Wald confidence intervals: how the stated units of the term multiply the risk of belonging to the cluster rather than aligned cluster 1 (1 = no effect). For a level of a categorical covariate: that level against the reference level.".into(),
+            note: "Relative risk ratios exp(γ) with 95% Wald confidence intervals: how the stated units of the term multiply the risk of belonging to the cluster rather than aligned cluster 1 (1 = no effect). For a level of a categorical covariate: that level against the reference level. \"separation\": the term (nearly) perfectly separates the two clusters, so its ratio runs off towards 0 or infinity and no effect can be estimated.".into(),
             header,
             rows: keys
                 .iter()
@@ -228,7 +231,7 @@ fn gating_table(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
                     let per = c.gating_effects.iter().find(|e| &e.term == term).map_or(1.0, |e| e.per);
                     let mut row = vec![format!("cluster {k}"), term.clone(), units(per)];
                     for pl in &with_gating {
-                        row.push(c.gating_effects.iter().find(|e| e.cluster == *k && &e.term == term && &e.placement == *pl).map_or_else(|| "–".into(), |e| with_interval(ratio(e.rrr), e.interval.map(|(a, b)| (ratio(a), ratio(b))))));
+                        row.push(c.gating_effects.iter().find(|e| e.cluster == *k && &e.term == term && &e.placement == *pl).map_or_else(|| "–".into(), |e| if e.separation { SEPARATION_CELL.into() } else { with_interval(ratio(e.rrr), e.interval.map(|(a, b)| (ratio(a), ratio(b)))) }));
                     }
                     row
                 })

@@ -140,6 +140,16 @@ fn phrase_effects(f: &Finding) -> (String, Vec<String>) {
                 vec![ratio(e.rrr)],
             )
         }
+        Finding::Separation(e) => (
+            format!(
+                "Under '{}', {} (nearly) perfectly separates cluster {} from cluster 1: its relative risk ratio runs off towards {} and cannot be estimated. This is separation, not an effect size; a gating ridge ([search] gating_ridge), merging rare levels, or fewer clusters gives estimable effects.",
+                e.placement,
+                e.term,
+                e.cluster,
+                if e.rrr > 1.0 { "infinity" } else { "0" }
+            ),
+            vec![crate::render::tables::SEPARATION_CELL.to_string()],
+        ),
         Finding::NoCounterpart {
             placement,
             reference,

@@ -323,3 +323,55 @@ fn names_from_the_data_are_escaped_in_the_report() {
     );
     assert!(!html.contains("https://"));
 }
+
+/// A gating covariate that perfectly predicts membership is reported as separation, with
+/// its remedy, not as an effect of size 0 or infinity; and it is never "the strongest
+/// effect".
+#[test]
+fn a_covariate_that_separates_clusters_is_reported_as_separation() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut rng = cohortmix::rng::Stream::new(11, "separation test");
+    let mut csv = String::from("id,x,age,y\n");
+    for i in 0..200 {
+        let x = i % 2;
+        let age = 30.0 + 20.0 * rng.uniform();
+        let y = 8.0 * x as f64 + rng.normal();
+        csv.push_str(&format!("r{i},{x},{age:.1},{y:.4}\n"));
+    }
+    std::fs::write(dir.path().join("data.csv"), csv).unwrap();
+    std::fs::write(
+        dir.path().join("study.toml"),
+        "[study]\ntitle = \"separation\"\ndata = \"data.csv\"\nid = \"id\"\noutput = \"run\"\n\
+         [variables]\nx = \"binary\"\nage = \"continuous\"\n\
+         [indicators]\ncolumns = [\"y\"]\n[search]\nstarts = 5\n\
+         [[placement]]\nname = \"x drives membership\"\nclusters = [2]\ngating = [\"x\", \"age\"]\n",
+    )
+    .unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_cohortmix"))
+        .args(["compare", "study.toml"])
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let results: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(dir.path().join("run/results.json")).unwrap()).unwrap();
+    let effects = results["comparison"]["gating_effects"].as_array().unwrap();
+    let by_term = |t: &str| effects.iter().find(|e| e["term"] == t).unwrap();
+    assert_eq!(by_term("x")["separation"], true, "{effects:?}");
+    assert_eq!(by_term("age")["separation"], false, "{effects:?}");
+    let sentences: Vec<&str> = results["comparison"]["sentences"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s["text"].as_str().unwrap())
+        .collect();
+    assert!(
+        sentences
+            .iter()
+            .any(|s| s.contains("x (nearly) perfectly separates") && s.contains("gating ridge")),
+        "{sentences:?}"
+    );
+    assert!(!sentences.iter().any(|s| s.contains("each unit of x")), "{sentences:?}");
+    let report = std::fs::read_to_string(dir.path().join("run/report.html")).unwrap();
+    assert!(report.contains("separation: not estimable"));
+}
