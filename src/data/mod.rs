@@ -9,8 +9,10 @@
 //! coefficients back to the original scale.
 
 mod design;
+pub mod survey;
 
 pub use design::{Design, DesignError, Term};
+pub use survey::SurveyDesign;
 
 use crate::error::{did_you_mean, Diagnostic, Error, Location, Result};
 use crate::numerics::{hex, sha256_hex};
@@ -65,6 +67,8 @@ pub struct Dataset {
     pub weights: Vec<f64>,
     /// The n of BIC and of every count: the sum of frequency weights, else the rows kept.
     pub sample_size: f64,
+    /// Strata and sampling units, when the spec names them.
+    pub survey: Option<Arc<SurveyDesign>>,
     /// Every indicator name, in spec order.
     pub indicator_names: Vec<String>,
     /// The indicators by family: one set per block of the spec, in the same order.
@@ -304,6 +308,10 @@ enum Role {
     Weight,
     Exposure,
     Id,
+    /// `[study] strata`.
+    Stratum,
+    /// `[study] psu`.
+    Unit,
 }
 
 struct Needed {
@@ -618,9 +626,19 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
         exposure: None,
         columns: BTreeMap::new(),
     };
+    let (mut strata, mut units) = (None, None);
     for (k, nd) in needed.iter().enumerate() {
         match nd.role {
             Role::Id => continue,
+            Role::Stratum | Role::Unit => {
+                let labels = kept_cells(&lines, &cells[k], &keep).map(|(_, c)| c.unwrap_or(""));
+                let coded = Some(survey::codes(labels));
+                if nd.role == Role::Stratum {
+                    strata = coded;
+                } else {
+                    units = coded;
+                }
+            }
             Role::Indicator(set, j) if study.blocks[set].family.layout == Layout::Levels => {
                 let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep, purpose)?;
                 sets[set].put_levels(j, levels, &codes);
@@ -648,6 +666,7 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
         }
     }
     let (weights, sample_size) = weigh(study.weight_type, parsed.weights);
+    let survey = survey_design(raw, study, &needed, &lines, &keep, strata, units, &weights)?;
     Ok(Dataset {
         path: path.to_path_buf(),
         sha256,
@@ -657,12 +676,50 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
         ids,
         weights,
         sample_size,
+        survey,
         indicator_names: study.indicators.iter().map(|c| c.name.clone()).collect(),
         indicator_sets: study.blocks.iter().zip(sets).map(|(b, s)| s.finish(b)).collect(),
         exposure: parsed.exposure.map(Arc::new),
         columns: parsed.columns,
         warnings,
     })
+}
+
+/// The survey design of the kept rows, when the spec names strata or sampling units; a
+/// stratum without two units of positive weight is an error at one of its rows.
+#[allow(clippy::too_many_arguments)] // the reader's state, passed through once
+fn survey_design(
+    raw: &Raw,
+    study: &Study,
+    needed: &[Needed],
+    lines: &[usize],
+    keep: &[bool],
+    strata: Option<survey::Coded>,
+    units: Option<survey::Coded>,
+    weights: &[f64],
+) -> Result<Option<Arc<SurveyDesign>>> {
+    if strata.is_none() && units.is_none() {
+        return Ok(None);
+    }
+    SurveyDesign::new(weights.len(), strata, units, weights)
+        .map(|d| Some(Arc::new(d)))
+        .map_err(|lonely| {
+            let line = lines.iter().zip(keep).filter(|(_, k)| **k).nth(lonely.row).map_or(2, |(l, _)| *l);
+            let (what, role) = match &study.strata {
+                Some(_) => (format!("stratum '{}'", quoted(&lonely.stratum)), Role::Stratum),
+                None => ("the sample".to_string(), Role::Unit),
+            };
+            let index = needed.iter().find(|n| n.role == role).map_or(0, |n| n.index);
+            Error::input(
+                Diagnostic::new(format!(
+                    "{what} has {} sampling unit{} of positive weight among the rows used; a variance needs at least two",
+                    lonely.units,
+                    if lonely.units == 1 { "" } else { "s" }
+                ))
+                .at(raw.field_location(line, index))
+                .help("merge it with a similar stratum (the usual remedy for a stratum with one unit), or check the strata and psu columns"),
+            )
+        })
 }
 
 /// The weights as the likelihood uses them and the sample size, by what the weights mean:
@@ -954,7 +1011,9 @@ impl Parsed {
             Role::Covariate => {
                 self.columns.insert(nd.col.name.clone(), column);
             }
-            Role::Id | Role::Indicator(..) => unreachable!("ids and indicators are kept elsewhere"),
+            Role::Id | Role::Indicator(..) | Role::Stratum | Role::Unit => {
+                unreachable!("ids, indicators and the survey design are kept elsewhere")
+            }
         }
         Ok(())
     }
@@ -1012,6 +1071,7 @@ fn needed_columns(study: &Study, header: &[String], purpose: Purpose) -> Result<
         let kind = match role {
             Role::Id => VariableType::Categorical { reference: None, levels: None },
             Role::Weight | Role::Exposure => VariableType::Continuous,
+            Role::Stratum | Role::Unit => VariableType::Categorical { reference: None, levels: None },
             _ => study.variable_type(&c.name).ok_or_else(|| {
                 Error::input(
                     study
@@ -1036,6 +1096,12 @@ fn needed_columns(study: &Study, header: &[String], purpose: Purpose) -> Result<
     }
     if let Some(w) = &study.weights {
         add(w, Role::Weight)?;
+    }
+    if let Some(s) = &study.strata {
+        add(s, Role::Stratum)?;
+    }
+    if let Some(u) = &study.psu {
+        add(u, Role::Unit)?;
     }
     for c in &study.indicators {
         let (set, j) = study

@@ -468,6 +468,8 @@ fn new_data_with(
     study.data_path = data_path.to_path_buf();
     study.weights = None;
     study.weight_type = None;
+    study.strata = None;
+    study.psu = None;
     let mut data = read(&study).map_err(|e| {
         e.with_help(format!(
             "the new rows in {} are checked against the spec the models were fitted with ({})",

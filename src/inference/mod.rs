@@ -20,7 +20,7 @@ pub mod cluster_test;
 pub mod effects;
 pub mod screen;
 
-use crate::data::Dataset;
+use crate::data::{Dataset, SurveyDesign};
 use crate::fit::em::{self, EmSettings};
 use crate::fit::{fit_data, PreparedPlacement};
 use crate::model::family::{ParamBlock, Parameter};
@@ -51,6 +51,8 @@ pub struct InferenceSettings {
     pub em: EmSettings,
     /// What the case weights mean (None: no weights).
     pub weight_type: Option<WeightType>,
+    /// Strata and sampling units (design-based sandwich), when the data have them.
+    pub survey: Option<std::sync::Arc<SurveyDesign>>,
 }
 
 /// The covariance of a fit's reported parameters.
@@ -151,17 +153,28 @@ pub fn observed_information(chart: &Chart, fd: &FitData) -> Result<DMatrix<f64>,
 /// The middle of the sandwich: the variance of the total score, estimated from the row
 /// scores s_i = c_i ∂ℓ_i/∂θ (which add up to 0 at the fit).
 ///
-/// Rows are the sampling units, drawn with replacement (the linearisation estimator of
-/// Binder 1983 with one stratum): m/(m − 1) Σ_i s_i s_i′ over the m rows of positive weight.
-/// Under frequency weights a row is c_i people with the same score, so the sum is over
-/// people: N/(N − 1) Σ_i c_i (s_i/c_i)(s_i/c_i)′ with N = Σ c_i, which is what the same
-/// rows written out one per person give.
+/// With a survey design, the linearisation estimator of Binder (1983) over its sampling
+/// units within strata ([`SurveyDesign::score_variance`]). Otherwise rows are the sampling
+/// units, drawn with replacement from one stratum: m/(m − 1) Σ_i s_i s_i′ over the m rows
+/// of positive weight. Under frequency weights a row is c_i people with the same score, so
+/// the sum is over people: N/(N − 1) Σ_i c_i (s_i/c_i)(s_i/c_i)′ with N = Σ c_i, which is
+/// what the same rows written out one per person give.
 pub fn score_outer_product(
     chart: &Chart,
     fd: &FitData,
     weight_type: Option<WeightType>,
+    survey: Option<&SurveyDesign>,
 ) -> Result<DMatrix<f64>, String> {
     let p = chart.len();
+    if let Some(design) = survey {
+        let zero = vec![0.0; p];
+        return design.score_variance(p, fd.weights, |f| {
+            chart
+                .scores(&zero, fd, |i, s| f(i, s))
+                .map(|_| ())
+                .map_err(|e| e.reason)
+        });
+    }
     let frequency = weight_type == Some(WeightType::Frequency);
     let mut meat = DMatrix::zeros(p, p);
     chart
@@ -212,12 +225,13 @@ pub fn parameter_covariance(
     fd: &FitData,
     method: ErrorMethod,
     weight_type: Option<WeightType>,
+    survey: Option<&SurveyDesign>,
 ) -> Result<DMatrix<f64>, String> {
     let info = observed_information(chart, fd)?;
     let inv = spd_inverse(&info)?;
     match method {
         ErrorMethod::Sandwich => {
-            let meat = score_outer_product(chart, fd, weight_type)?;
+            let meat = score_outer_product(chart, fd, weight_type, survey)?;
             Ok(&inv * meat * &inv)
         }
         _ => Ok(inv),
@@ -283,7 +297,13 @@ pub fn uncertainty_of(
         });
     }
     let chart = Chart::new(model)?;
-    let v = parameter_covariance(&chart, fd, settings.method, settings.weight_type)?;
+    let v = parameter_covariance(
+        &chart,
+        fd,
+        settings.method,
+        settings.weight_type,
+        settings.survey.as_deref(),
+    )?;
     let jac = reported_jacobian(&chart, reported, parameters.len())?;
     Ok(Uncertainty {
         method: settings.method,
@@ -391,6 +411,7 @@ pub fn settings_for(study: &crate::spec::Study) -> InferenceSettings {
         seed: study.seed,
         em: EmSettings::for_search(&study.search),
         weight_type: study.weight_type,
+        survey: None,
     }
 }
 
@@ -403,7 +424,10 @@ pub fn for_fits(
     fits: &[crate::fit::FitResult],
     which: &[usize],
 ) -> Vec<Option<FitInference>> {
-    let settings = settings_for(study);
+    let settings = InferenceSettings {
+        survey: data.survey.clone(),
+        ..settings_for(study)
+    };
     fits.iter()
         .enumerate()
         .map(|(i, f)| {

@@ -75,6 +75,8 @@ pub struct StudySummary {
     /// The n of BIC, ICL and sample-size-adjusted BIC: the sum of frequency weights, else
     /// the rows used.
     pub sample_size: f64,
+    /// Strata and sampling units of a survey sample (null without them).
+    pub survey_design: Option<SurveyRecord>,
     /// Component family.
     pub family: &'static str,
     /// Indicator columns.
@@ -115,6 +117,19 @@ pub struct StudySummary {
     pub item_smoothing: f64,
     /// Exposure (person-time) column of the counts, whose log is their offset.
     pub exposure: Option<String>,
+}
+
+/// The survey design standard errors were computed by.
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
+pub struct SurveyRecord {
+    /// Strata column (null: one stratum).
+    pub strata: Option<String>,
+    /// Strata in the rows used.
+    pub strata_count: usize,
+    /// Primary sampling unit column (null: every row is a unit).
+    pub psu: Option<String>,
+    /// Sampling units of positive weight in the rows used.
+    pub units: usize,
 }
 
 /// Missing values of one column.
@@ -563,6 +578,12 @@ fn study_summary(study: &Study, data: &Dataset) -> StudySummary {
         weights: study.weights.as_ref().map(|w| w.name.clone()),
         weight_type: study.weight_type.map(|t| t.word()),
         sample_size: data.sample_size,
+        survey_design: data.survey.as_ref().map(|d| SurveyRecord {
+            strata: study.strata.as_ref().map(|c| c.name.clone()),
+            strata_count: d.strata.len(),
+            psu: study.psu.as_ref().map(|c| c.name.clone()),
+            units: d.units(),
+        }),
         family: study.family.word(),
         indicators: data.indicator_names.clone(),
         seed: study.seed,

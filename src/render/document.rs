@@ -154,8 +154,24 @@ pub fn md_text(s: &str) -> String {
 
 /// What the case weights are and what follows from them, in words.
 fn weights_line(s: &crate::pipeline::output::StudySummary) -> String {
+    let design = s.survey_design.as_ref().map(|d| {
+        let strata = match &d.strata {
+            Some(c) => format!("{} strata ('{c}')", d.strata_count),
+            None => "one stratum".to_string(),
+        };
+        let units = match &d.psu {
+            Some(c) => format!("{} primary sampling units ('{c}')", d.units),
+            None => format!("{} rows as sampling units", d.units),
+        };
+        format!("{units} in {strata}")
+    });
     let Some(column) = &s.weights else {
-        return "none".into();
+        return match design {
+            None => "none".into(),
+            Some(d) => format!(
+                "none (equal selection probabilities); standard errors are design-based over {d}, by linearisation (Binder 1983)"
+            ),
+        };
     };
     match s.weight_type {
         Some("frequency") => format!(
@@ -164,8 +180,12 @@ fn weights_line(s: &crate::pipeline::output::StudySummary) -> String {
         ),
         _ => format!(
             "'{column}', sampling weights, rescaled to mean 1 over the rows used (their scale changes nothing); \
-             standard errors are design-based, each row a sampling unit (Binder 1983); BIC, ICL and the \
-             likelihood-ratio tests treat the rescaled weights as counts, so they are approximate"
+             standard errors are design-based, {} (Binder 1983); BIC, ICL and the \
+             likelihood-ratio tests treat the rescaled weights as counts, so they are approximate",
+            match design {
+                Some(d) => format!("by linearisation over {d}"),
+                None => "each row a sampling unit".to_string(),
+            }
         ),
     }
 }

@@ -322,6 +322,10 @@ pub struct Study {
     pub weights: Option<ColumnRef>,
     /// What the weights mean (set exactly when `weights` is).
     pub weight_type: Option<WeightType>,
+    /// Sampling strata column (`[study] strata`): design-based standard errors.
+    pub strata: Option<ColumnRef>,
+    /// Primary sampling unit column (`[study] psu`), read within strata.
+    pub psu: Option<ColumnRef>,
     /// Master seed.
     pub seed: u64,
     /// Run folder from the spec, resolved against the spec's folder.
@@ -739,13 +743,25 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
     let placements = placements(&ctx, &raw.placement, &default_clusters, &default_span, &ind)?;
     let id = study.id.as_ref().map(|s| column_ref(s, "[study].id"));
     let weights = study.weights.as_ref().map(|s| column_ref(s, "[study].weights"));
-    special_columns(&ctx, &id, &weights, &ind, &placements)?;
+    let strata = study.strata.as_ref().map(|s| column_ref(s, "[study].strata"));
+    let psu = study.psu.as_ref().map(|s| column_ref(s, "[study].psu"));
+    let specials = [&id, &weights, &strata, &psu];
+    special_columns(&ctx, &specials, &ind, &placements)?;
     let weight_type = weight_type(&ctx, study)?;
+    survey_design(&ctx, study, weight_type, &placements)?;
+    let survey = strata.is_some() || psu.is_some();
     let output = study.output.as_ref().map(|o| resolve(&base, o.get_ref()));
     let search_span = raw.search.as_ref().map_or(0..0, |s| s.span());
     grid_size(&ctx, search_span, &placements, &search)?;
     let compare = compare_settings(&ctx, raw.compare.as_ref(), &placements)?;
-    let inference = inference_settings(&ctx, raw.inference.as_ref(), &placements, &variables, weight_type)?;
+    let inference = inference_settings(
+        &ctx,
+        raw.inference.as_ref(),
+        &placements,
+        &variables,
+        weight_type,
+        survey,
+    )?;
     Ok(Study {
         spec_path: path.to_path_buf(),
         spec_text: text.to_string(),
@@ -755,6 +771,8 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         id,
         weights,
         weight_type,
+        strata,
+        psu,
         seed,
         output,
         simulated: study.simulated.unwrap_or(false),
@@ -1075,16 +1093,16 @@ fn placements(
     Ok(placements)
 }
 
-/// The id, weight and exposure columns are neither covariates nor indicators, and the
-/// weights are not the ids.
+/// The id, weight, strata, sampling-unit and exposure columns are neither covariates nor
+/// indicators, and no two of the study's special columns are one column.
 fn special_columns(
     ctx: &Ctx,
-    id: &Option<ColumnRef>,
-    weights: &Option<ColumnRef>,
+    specials: &[&Option<ColumnRef>],
     ind: &IndicatorKeys,
     placements: &[Placement],
 ) -> Result<()> {
-    for special in id.iter().chain(weights.iter()).chain(ind.exposure.iter()) {
+    let named: Vec<&ColumnRef> = specials.iter().filter_map(|s| s.as_ref()).collect();
+    for special in named.iter().copied().chain(ind.exposure.iter()) {
         for p in placements {
             if let Some(c) = p.gating.iter().chain(&p.components).find(|c| c.name == special.name) {
                 return Err(Error::input(
@@ -1103,14 +1121,55 @@ fn special_columns(
             )));
         }
     }
-    if let (Some(i), Some(w)) = (id, weights) {
-        if i.name == w.name {
+    for (k, later) in named.iter().enumerate() {
+        if let Some(earlier) = named[..k].iter().find(|e| e.name == later.name) {
             return Err(Error::input(
-                ctx.err(w.span.clone(), "[study].weights names the id column"),
+                ctx.err(
+                    later.span.clone(),
+                    format!("{} names the same column as {}", later.key, earlier.key),
+                )
+                .help("each of id, weights, strata and psu needs a column of its own"),
             ));
         }
     }
 
+    Ok(())
+}
+
+/// `[study] strata` and `psu`: a survey design, for design-based standard errors. It
+/// goes with sampling weights (or none: equal selection probabilities), not with frequency
+/// weights, and not yet with three-step placements, whose step-3 errors treat rows as
+/// the sampling units.
+fn survey_design(
+    ctx: &Ctx,
+    study: &raw::RawStudy,
+    weight_type: Option<WeightType>,
+    placements: &[Placement],
+) -> Result<()> {
+    let Some(first) = study.strata.as_ref().or(study.psu.as_ref()) else {
+        return Ok(());
+    };
+    if weight_type == Some(WeightType::Frequency) {
+        return Err(Error::input(
+            ctx.err(
+                first.span(),
+                "strata and sampling units describe a survey sample, but the weights are declared as frequency weights",
+            )
+            .help("use weight_type = \"sampling\" for a survey's inverse selection probabilities, or remove strata and psu"),
+        ));
+    }
+    if let Some(p) = placements.iter().find(|p| p.method.is_three_step()) {
+        return Err(Error::input(
+            ctx.err(
+                first.span(),
+                format!(
+                    "placement '{}' is estimated in three steps, whose step-3 standard errors do not yet take strata or sampling units",
+                    p.name
+                ),
+            )
+            .help("fit that placement in one step (remove its method key), or remove strata and psu from [study]"),
+        ));
+    }
     Ok(())
 }
 
@@ -1149,11 +1208,14 @@ fn inference_settings(
     placements: &[Placement],
     variables: &BTreeMap<String, (VariableType, Range<usize>)>,
     weight_type: Option<WeightType>,
+    survey: bool,
 ) -> Result<Inference> {
     let mut out = Inference::default();
-    if weight_type == Some(WeightType::Sampling) {
+    let design_based = weight_type == Some(WeightType::Sampling) || survey;
+    if design_based {
         // Design-based errors: the sandwich (linearisation) is the default under sampling
-        // weights; the observed information would treat the weights as counts of people.
+        // weights or a survey design; the observed information would treat the weights as
+        // counts of people and the rows as independent.
         out.method = ErrorMethod::Sandwich;
     }
     let Some(raw) = raw else { return Ok(out) };
@@ -1166,6 +1228,18 @@ fn inference_settings(
             format!("[inference].standard_errors does not know '{}'", m.get_ref()),
             listed("use one of: "),
         )?;
+        if survey && out.method != ErrorMethod::Sandwich {
+            return Err(Error::input(
+                ctx.err(
+                    m.span(),
+                    format!(
+                        "[inference].standard_errors = \"{}\" treats rows as independent, but [study] names strata or sampling units",
+                        m.get_ref()
+                    ),
+                )
+                .help("use \"sandwich\" (design-based, by linearisation over the sampling units within strata; the default with a survey design)"),
+            ));
+        }
         if weight_type == Some(WeightType::Sampling) && out.method == ErrorMethod::ObservedInformation {
             return Err(Error::input(
                 ctx.err(

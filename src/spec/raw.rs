@@ -82,6 +82,10 @@ pub struct RawStudy {
     pub weights: Option<SStr>,
     /// What the weights mean: `frequency` or `sampling`.
     pub weight_type: Option<SStr>,
+    /// Column of sampling strata (design-based standard errors).
+    pub strata: Option<SStr>,
+    /// Column of primary sampling units, read within strata.
+    pub psu: Option<SStr>,
     /// Master random seed.
     pub seed: Option<Spanned<i64>>,
     /// Run folder, relative to the spec file.

@@ -30,6 +30,7 @@ fn settings(method: ErrorMethod) -> InferenceSettings {
             accelerate: true,
         },
         weight_type: None,
+        survey: None,
     }
 }
 

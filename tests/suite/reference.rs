@@ -358,3 +358,143 @@ fn icl_on_iris_matches_an_independent_computation_from_the_most_likely_labels() 
         assert!((row["icl"].as_f64().unwrap() - row["bic_entropy"].as_f64().unwrap()).abs() > 1e-3);
     }
 }
+
+/// The spec of the survey reference: a mixture of y whose seven clusters are the seven
+/// parties of anes96, their membership a logit of five regressors, with sampling weights
+/// and, when `design`, strata and primary sampling units.
+fn survey_spec(dir: &Path, design: bool, weights: &str) -> PathBuf {
+    let data = std::fs::read_to_string(root("tests/reference/survey_anes96.csv")).unwrap();
+    let mut lines = data.lines();
+    let mut text = format!("{}\n", lines.next().unwrap());
+    let scale: f64 = weights.parse().unwrap();
+    for line in lines {
+        let mut cells: Vec<String> = line.split(',').map(str::to_string).collect();
+        let w: f64 = cells[7].parse().unwrap();
+        cells[7] = format!("{:?}", w * scale);
+        text.push_str(&cells.join(","));
+        text.push('\n');
+    }
+    std::fs::write(dir.join("data.csv"), text).unwrap();
+    let survey = if design {
+        "strata = \"stratum\"\npsu = \"unit\"\n"
+    } else {
+        ""
+    };
+    let spec = format!(
+        "[study]\ntitle = \"survey reference\"\ndata = \"data.csv\"\nweights = \"w\"\nweight_type = \"sampling\"\n{survey}\
+         seed = 3\noutput = \"run\"\n\n[indicators]\ncolumns = [\"y\"]\n\n\
+         [variables]\nlogpopul = \"continuous\"\nselfLR = \"continuous\"\nage = \"continuous\"\neduc = \"continuous\"\nincome = \"continuous\"\n\n\
+         [search]\nclusters = [7]\nstarts = 10\ntolerance = 1e-13\nmax_iterations = 5000\n\n\
+         [[placement]]\nname = \"parties\"\ngating = [\"logpopul\", \"selfLR\", \"age\", \"educ\", \"income\"]\n"
+    );
+    let path = dir.join("study.toml");
+    std::fs::write(&path, spec).unwrap();
+    path
+}
+
+/// The gating coefficients and standard errors of the survey reference's fit, keyed by
+/// (party, term), and the party of the reference cluster.
+/// Gating parameters keyed by (party, term): (estimate, standard error).
+type PartyTerms = Vec<((usize, String), (f64, f64))>;
+
+fn survey_gating(dir: &Path, design: bool, weights: &str) -> (usize, PartyTerms) {
+    let path = survey_spec(dir, design, weights);
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_cohortmix"))
+        .args(["fit", path.to_str().unwrap()])
+        .current_dir(dir)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let results: Value = serde_json::from_slice(&std::fs::read(dir.join("run/results.json")).unwrap()).unwrap();
+    let fit = &results["fits"][0];
+    assert_eq!(fit["standard_errors"]["method"], "sandwich");
+    // Clusters 100 standard deviations apart are groups, not spikes: the spurious-solution
+    // guard compares a cluster with the pooled within-cluster spread, not the data's.
+    assert_eq!(fit["starts"]["spurious"], 0, "{}", fit["starts"]);
+    let named = fit["parameters_named"].as_array().unwrap();
+    // Each cluster's party from its mean (y = 100 party + a jitter of at most 3.2).
+    let party = |cluster: &Value| {
+        let mean = named
+            .iter()
+            .find(|p| p["block"] == "mean" && p["cluster"] == *cluster)
+            .unwrap()["value"]
+            .as_f64()
+            .unwrap();
+        (mean / 100.0).round() as usize
+    };
+    let reference = party(&fit["reference_cluster"]);
+    let mut gating: Vec<_> = named
+        .iter()
+        .filter(|p| p["block"] == "gating")
+        .map(|p| {
+            let key = (party(&p["cluster"]), p["term"].as_str().unwrap().to_string());
+            (key, (p["value"].as_f64().unwrap(), p["se"].as_f64().unwrap()))
+        })
+        .collect();
+    gating.sort_by(|a, b| a.0.cmp(&b.0));
+    (reference, gating)
+}
+
+/// Design-based (linearised) standard errors with strata and primary sampling units.
+/// Source: tests/reference/make_survey_anes96.py, the textbook formula of Binder (1983) in
+/// numpy (itself checked there against statsmodels' cluster-robust covariance of MNLogit),
+/// on statsmodels' anes96 example with a simulated design of 5 strata and 60 units. The
+/// mixture's clusters are the parties exactly, so its gating is that logit.
+#[test]
+fn design_based_errors_with_strata_and_units_match_the_textbook_formula() {
+    let reference = fixture("survey_anes96.json");
+    let terms: Vec<String> = reference["terms"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_str().unwrap().to_string())
+        .collect();
+    let dir = tempfile::tempdir().unwrap();
+    let (base, ours) = survey_gating(dir.path(), true, "1");
+    let case = &reference["by_reference_level"][base];
+    let levels: Vec<usize> = case["levels"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| l.as_u64().unwrap() as usize)
+        .collect();
+    assert_eq!(ours.len(), levels.len() * terms.len());
+    let (mut worst_coef, mut worst_se) = (0.0f64, 0.0f64);
+    for ((party, term), (value, se)) in &ours {
+        let r = levels.iter().position(|l| l == party).unwrap();
+        let t = terms.iter().position(|x| x == term).unwrap();
+        let want_value = case["coefficients"][r][t].as_f64().unwrap();
+        let want_se = case["standard_errors"][r][t].as_f64().unwrap();
+        worst_coef = worst_coef.max((value - want_value).abs() / want_se);
+        worst_se = worst_se.max((se / want_se - 1.0).abs());
+    }
+    println!(
+        "design-based errors: coefficients within {worst_coef:.1e} SE, standard errors within {worst_se:.1e} relative"
+    );
+    assert!(
+        worst_coef < 1e-6,
+        "coefficients differ by {worst_coef:e} standard errors"
+    );
+    assert!(worst_se < 1e-6, "standard errors differ by {worst_se:e} relative");
+
+    // Rows as the units (no design) give other errors: the design matters here.
+    let naive_dir = tempfile::tempdir().unwrap();
+    let (_, naive) = survey_gating(naive_dir.path(), false, "1");
+    let largest = ours
+        .iter()
+        .zip(&naive)
+        .map(|((_, (_, a)), (_, (_, b)))| (a / b - 1.0).abs())
+        .fold(0.0, f64::max);
+    assert!(
+        largest > 0.05,
+        "the design changed no standard error by over 5% ({largest})"
+    );
+
+    // Sampling weights times 50: the same numbers.
+    let scaled_dir = tempfile::tempdir().unwrap();
+    let (_, scaled) = survey_gating(scaled_dir.path(), true, "50");
+    for ((key, (v, s)), (_, (v50, s50))) in ours.iter().zip(&scaled) {
+        assert!((v - v50).abs() <= 1e-9 * v.abs().max(1.0), "{key:?}: {v} against {v50}");
+        assert!((s - s50).abs() <= 1e-9 * s, "{key:?}: {s} against {s50}");
+    }
+}

@@ -222,40 +222,28 @@ const LN_2PI: f64 = 1.837_877_066_409_345_5;
 /// variance, below which the cluster counts as collapsed.
 pub const COLLAPSE_RATIO: f64 = 1e-8;
 
-/// The smallest eigenvalue of the weighted covariance of the rows `y` (n × d), or None
-/// when it is not a positive number.
-fn pooled_smallest_eigenvalue(y: &[f64], d: usize, weights: &[f64]) -> Option<f64> {
-    let total: f64 = weights.iter().sum();
-    let mut mean = vec![0.0; d];
-    for (row, c) in y.chunks_exact(d).zip(weights) {
-        for (m, v) in mean.iter_mut().zip(row) {
-            *m += c * v / total;
-        }
+/// The smallest eigenvalue of the pooled within-cluster covariance Σ_k n_k Σ_k / Σ_k n_k
+/// (cluster sizes `sizes`), or None when it is not a positive number.
+fn pooled_smallest_eigenvalue(cov: &[DMatrix<f64>], sizes: &[f64]) -> Option<f64> {
+    let total: f64 = sizes.iter().sum();
+    let d = cov.first()?.nrows();
+    let mut pooled = DMatrix::<f64>::zeros(d, d);
+    for (c, n) in cov.iter().zip(sizes) {
+        pooled += c * (n / total);
     }
-    let mut cov = DMatrix::<f64>::zeros(d, d);
-    for (row, c) in y.chunks_exact(d).zip(weights) {
-        for a in 0..d {
-            for b in 0..=a {
-                cov[(a, b)] += c * (row[a] - mean[a]) * (row[b] - mean[b]) / total;
-            }
-        }
-    }
-    for a in 0..d {
-        for b in 0..a {
-            cov[(b, a)] = cov[(a, b)];
-        }
-    }
-    let smallest = cov.symmetric_eigenvalues().min();
+    let smallest = pooled.symmetric_eigenvalues().min();
     (smallest.is_finite() && smallest > 0.0).then_some(smallest)
 }
 
 /// A Gaussian cluster is spurious when the smallest eigenvalue of its covariance is below
-/// this share of the smallest eigenvalue of the data's pooled (one-cluster) covariance, or
-/// when it holds less weight than d + 1 rows, the fewest that give a full-rank covariance.
-/// The likelihood of a Gaussian mixture is unbounded, and such clusters are its spikes
-/// (Hathaway 1985 and Ingrassia 2004 bound the eigenvalues for the same reason; the
-/// bound's value here is our choice: a cluster more than about 30 times narrower, in
-/// standard deviation, than the data's narrowest direction).
+/// this share of the smallest eigenvalue of the pooled within-cluster covariance (the
+/// clusters' covariances averaged by their sizes), or when it holds less weight than d + 1
+/// rows, the fewest that give a full-rank covariance. The likelihood of a Gaussian mixture
+/// is unbounded, and such clusters are its spikes (Hathaway 1985 and Ingrassia 2004 bound
+/// the ratio of the clusters' eigenvalues for the same reason; the bound's value here is
+/// our choice: a cluster more than about 30 times narrower, in standard deviation, than
+/// the typical cluster in its narrowest direction). Within-cluster, not the data's overall
+/// covariance, so that clusters far apart are not taken for spikes.
 pub const SPURIOUS_EIGENVALUE_RATIO: f64 = 1e-3;
 
 /// A conjugate (inverse-Wishart) prior on each cluster covariance: the M-step then gives
@@ -544,7 +532,7 @@ impl Block for GaussianComponents {
         &INFO
     }
 
-    fn spurious(&self, fd: &FitData, sizes: &[f64]) -> Option<String> {
+    fn spurious(&self, _fd: &FitData, sizes: &[f64]) -> Option<String> {
         let d = self.d;
         if let Some(k) = sizes.iter().position(|s| *s < (d + 1) as f64) {
             return Some(format!(
@@ -554,7 +542,7 @@ impl Block for GaussianComponents {
                 d + 1
             ));
         }
-        let pooled = pooled_smallest_eigenvalue(&self.rows.y, d, fd.weights)?;
+        let pooled = pooled_smallest_eigenvalue(&self.cov, sizes)?;
         let (k, smallest) = self
             .cov
             .iter()
