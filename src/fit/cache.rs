@@ -223,7 +223,7 @@ fn rebuild(entry: Entry, spec: &FitSpec, data: &Dataset, prepared: &PreparedPlac
             })
         }
     };
-    let step_three = super::step_three_of(prepared, best.as_ref(), g, &data.weights);
+    let step_three = super::step_three_of(prepared, best.as_ref(), g, &data.weights, spec.weight_type);
     Ok(FitResult {
         spec: spec.clone(),
         step_three,

@@ -4,7 +4,7 @@
 use super::em::{self, EmRun, EmSettings, Termination};
 use super::starts::{self, StartKind};
 use super::{
-    cluster_shares, fit_data, initial_model, step_three_of, FitResult, FitSpec, PreparedPlacement, SAME_OPTIMUM,
+    cluster_shares, fit_data, initial_model, same_optimum, step_three_of, FitResult, FitSpec, PreparedPlacement,
 };
 use crate::data::Dataset;
 use crate::model::{FitData, Model};
@@ -35,7 +35,8 @@ pub struct BestFit {
     pub run: EmRun,
     /// 1-based start that produced it.
     pub start: usize,
-    /// Starts whose log-likelihood is within [`SAME_OPTIMUM`] (relative) of the best.
+    /// Starts that ended on the best start's optimum ([`super::same_optimum`]), compared
+    /// where the search tolerance stopped them.
     pub reaching: usize,
 }
 
@@ -55,24 +56,21 @@ pub fn fit_cell(spec: &FitSpec, data: &Dataset, prepared: &PreparedPlacement) ->
         best: Mutex::new(None),
     };
     let records = starts.run();
-    let best = starts
-        .best
-        .into_inner()
-        .expect("no start panicked")
-        .map(|(i, mut run)| {
-            let reaching = records
-                .iter()
-                .filter_map(|(_, o)| *o)
-                .filter(|o| (o - run.objective).abs() <= SAME_OPTIMUM * run.objective.abs())
-                .count();
-            order_largest_first(&mut run, &fd, &prepared.placement.proportions);
-            BestFit {
-                run,
-                start: i + 1,
-                reaching,
-            }
-        });
-    let step_three = step_three_of(prepared, best.as_ref(), g, &data.weights);
+    let best = starts.best.lock().expect("no start panicked").take().map(|(i, run)| {
+        let reaching = records
+            .iter()
+            .filter_map(|(_, o)| *o)
+            .filter(|o| same_optimum(*o, run.objective))
+            .count();
+        let mut run = starts.polish(run);
+        order_largest_first(&mut run, &fd, &prepared.placement.proportions);
+        BestFit {
+            run,
+            start: i + 1,
+            reaching,
+        }
+    });
+    let step_three = step_three_of(prepared, best.as_ref(), g, &data.weights, spec.weight_type);
     FitResult {
         spec: spec.clone(),
         step_three,
@@ -106,6 +104,32 @@ struct Starts<'a> {
 }
 
 impl Starts<'_> {
+    /// The best start run on to the polish tolerance (its iterations and trace continued).
+    /// A polish that ends unusable or spurious, or lower, leaves the run as it was.
+    fn polish(&self, run: EmRun) -> EmRun {
+        let search = &self.spec.search;
+        if !(search.polish_tolerance < search.em.tolerance) || run.termination != Termination::Converged {
+            return run;
+        }
+        let settings = EmSettings {
+            tolerance: search.polish_tolerance,
+            ..search.em
+        };
+        let mut polished = em::run(self.fd, run.model.clone(), run.tau.clone(), settings);
+        let spurious = search.spurious_guard && spurious(&polished, self.fd).is_some();
+        if !polished.termination.usable() || spurious || polished.objective < run.objective {
+            return run;
+        }
+        polished.iterations += run.iterations;
+        polished.gating_damped += run.gating_damped;
+        polished.gating_fallbacks += run.gating_fallbacks;
+        polished.gating_failed += run.gating_failed;
+        let mut trace = run.trace;
+        trace.extend(polished.trace);
+        polished.trace = trace;
+        polished
+    }
+
     /// Start `s` (0-based) from its partition with `settings`.
     fn run_start(&self, s: usize, settings: EmSettings) -> EmRun {
         let g = self.spec.clusters;

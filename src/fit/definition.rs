@@ -64,6 +64,8 @@ pub struct StartSettings {
     pub two_stages: Option<TwoStages>,
     /// Whether spurious starts are set apart (see [`crate::spec::Search::spurious_guard`]).
     pub spurious_guard: bool,
+    /// Tolerance the best start is polished to ([`super::POLISH_TOLERANCE`]).
+    pub polish_tolerance: f64,
 }
 
 /// A two-stage search: every start runs a warm-up, the best few run on.
@@ -231,6 +233,7 @@ pub fn fit_spec(
                 finish_best: search.finish_best,
             }),
             spurious_guard: search.spurious_guard,
+            polish_tolerance: super::POLISH_TOLERANCE,
         },
         seed: study.seed,
         streams: "start".to_string(),

@@ -28,8 +28,22 @@ use crate::model::Model;
 pub use crate::model::ModelOptions;
 use em::Termination;
 
-/// Two log-likelihoods within this relative distance count as the same optimum.
-pub const SAME_OPTIMUM: f64 = 1e-6;
+/// Two starts' log-likelihoods within this absolute distance count as the same optimum
+/// (or within [`SAME_OPTIMUM`] of their size, for very many rows). At the default search
+/// tolerance (1e-10 relative) starts on one optimum of the demo study end within 2e-4 of
+/// each other, and distinct optima can lie 0.1 apart.
+pub const SAME_OPTIMUM_ABSOLUTE: f64 = 0.01;
+/// Relative counterpart of [`SAME_OPTIMUM_ABSOLUTE`].
+pub const SAME_OPTIMUM: f64 = 1e-9;
+/// The best start of every fit is run on until the relative change of its objective is at
+/// most this: the fit that criteria, standard errors, step 3, the screen and the
+/// cluster-count test use is at its optimum, not where the search tolerance stopped it.
+pub const POLISH_TOLERANCE: f64 = 1e-12;
+
+/// Whether two starts' objectives are one optimum (see [`SAME_OPTIMUM_ABSOLUTE`]).
+pub fn same_optimum(a: f64, b: f64) -> bool {
+    (a - b).abs() <= SAME_OPTIMUM_ABSOLUTE.max(SAME_OPTIMUM * a.abs().max(b.abs()))
+}
 
 /// One cell of the grid: a placement at one cluster count.
 #[derive(Debug, Clone)]
@@ -187,6 +201,7 @@ pub fn step_three_of(
     best: Option<&BestFit>,
     g: usize,
     weights: &[f64],
+    weight_type: Option<crate::spec::WeightType>,
 ) -> Option<std::result::Result<three_step::StepThree, String>> {
     match (&prepared.step_three, best) {
         (Some(design), Some(b)) if g > 1 => Some(three_step::estimate(
@@ -194,6 +209,7 @@ pub fn step_three_of(
             &b.run.tau,
             g,
             weights,
+            weight_type,
             design,
         )),
         _ => None,

@@ -13,16 +13,18 @@
 //!   cluster densities D[s][W_i] are known; EM with a full logit M-step. Standard errors:
 //!   the inverse observed information of that likelihood.
 //!
-//! Both treat D as known, so their standard errors leave out the step-1 uncertainty
-//! (Bakk, Oberski & Vermunt 2014 show the difference is small unless the clusters are
-//! poorly separated). Plain classify-analyze (a logit of the assignments) is kept as a
+//! Both treat D as known, so the covariance computed here leaves out the step-1
+//! uncertainty and is too small (in our simulations its 95% intervals covered 92–93%);
+//! the inference step adds step 1's part (`inference::step_three`, after Bakk, Oberski &
+//! Vermunt 2014). Under sampling weights the ML step's covariance is a sandwich too.
+//! Plain classify-analyze (a logit of the assignments) is kept as a
 //! labelled contrast: it attenuates the effects when classification is imperfect.
 
 use crate::data::Design;
 use crate::model::gating::{fit_multinomial_logit, logit_score_hessian, LogitRows, MAX_NEWTON_ITERATIONS};
 use crate::numerics::newton::Outcome;
 use crate::numerics::{log_softmax_row, most_likely, softmax_in_place};
-use crate::spec::Method;
+use crate::spec::{Method, WeightType};
 use nalgebra::DMatrix;
 use serde::Serialize;
 
@@ -70,12 +72,118 @@ fn information_covariance(h: &DMatrix<f64>) -> Result<DMatrix<f64>, String> {
     })
 }
 
-/// Step 2 and 3 from step-1 posteriors `tau` (n×g), case weights and the covariate design.
-pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: &Design) -> Result<StepThree, String> {
+/// Step 2: each row's most likely cluster under the step-1 posteriors `tau` (n×g).
+pub fn assignments(tau: &[f64], g: usize) -> Vec<usize> {
+    tau.chunks_exact(g).map(most_likely).collect()
+}
+
+/// The corrected step-3 coefficients and what the covariance needs: BCH's pseudo-posteriors
+/// (row i, cluster s gets (D⁻¹)[W_i][s]) or the ML step's posteriors, as each row's
+/// target in the logit score, and whether the optimiser met its tolerance.
+struct Corrected {
+    gamma: Vec<f64>,
+    targets: Vec<f64>,
+    log_d: Option<Vec<f64>>,
+    converged: bool,
+}
+
+#[allow(clippy::too_many_arguments)] // step 3's inputs, each needed
+fn corrected(
+    method: Method,
+    tau: &[f64],
+    g: usize,
+    weights: &[f64],
+    design: &Design,
+    assigned: &[usize],
+    start: &[f64],
+) -> Result<(Corrected, Vec<Vec<f64>>, f64), String> {
+    let (w, p) = (&design.x[..], design.p());
+    let (d, misclassified) = classification(tau, g, weights, assigned)?;
+    let dm = DMatrix::from_fn(g, g, |s, t| d[s][t]);
+    let dinv = inverse(dm, "classification-error matrix (the clusters cannot be told apart)")?;
+    let mut bch = vec![0.0; assigned.len() * g];
+    for (i, t) in assigned.iter().enumerate() {
+        for s in 0..g {
+            bch[i * g + s] = dinv[(*t, s)];
+        }
+    }
+    let rows = LogitRows {
+        w,
+        p,
+        tau: &bch,
+        g,
+        weights,
+        ridge: 0.0,
+    };
+    let bch_fit = fit_multinomial_logit(&rows, start, MAX_NEWTON_ITERATIONS);
+    let out = match method {
+        Method::ThreeStepMl => {
+            let log_d: Vec<f64> = assigned
+                .iter()
+                .flat_map(|t| (0..g).map(|s| d[s][*t].max(f64::MIN_POSITIVE).ln()).collect::<Vec<_>>())
+                .collect();
+            let from = if bch_fit.gamma.iter().all(|v| v.is_finite()) {
+                bch_fit.gamma
+            } else {
+                start.to_vec()
+            };
+            let (gamma, converged) = ml_em(w, p, &log_d, g, weights, from);
+            let mut targets = vec![0.0; log_d.len()];
+            ml_posteriors(w, p, &log_d, g, weights, &gamma, &mut targets);
+            Corrected {
+                gamma,
+                targets,
+                log_d: Some(log_d),
+                converged,
+            }
+        }
+        // A line search that can no longer raise the objective ends the iteration and
+        // counts as converged here (the step-three flag has always meant "did not run out
+        // of iterations or meet a singular Hessian").
+        _ => Corrected {
+            converged: matches!(bch_fit.outcome, Outcome::Converged | Outcome::LineSearchFailed),
+            gamma: bch_fit.gamma,
+            targets: bch,
+            log_d: None,
+        },
+    };
+    Ok((out, d, misclassified))
+}
+
+/// Step 3's corrected coefficients again, from other step-1 posteriors `tau` and
+/// assignments (for the step-1 correction of the standard errors and the bootstrap),
+/// starting from `start`; an error when the step-3 optimiser did not converge.
+#[allow(clippy::too_many_arguments)] // step 3's inputs, each needed
+pub fn re_estimate(
+    method: Method,
+    tau: &[f64],
+    g: usize,
+    weights: &[f64],
+    design: &Design,
+    assigned: &[usize],
+    start: &[f64],
+) -> Result<Vec<f64>, String> {
+    let (c, _, _) = corrected(method, tau, g, weights, design, assigned, start)?;
+    if !c.converged || c.gamma.iter().any(|v| !v.is_finite()) {
+        return Err("step 3 did not converge".to_string());
+    }
+    Ok(c.gamma)
+}
+
+/// Step 2 and 3 from step-1 posteriors `tau` (n×g), case weights (and what they mean) and
+/// the covariate design. The covariance is step 3's own (step 1 taken as known); the
+/// inference step adds step 1's part.
+pub fn estimate(
+    method: Method,
+    tau: &[f64],
+    g: usize,
+    weights: &[f64],
+    weight_type: Option<WeightType>,
+    design: &Design,
+) -> Result<StepThree, String> {
     let (w, p) = (&design.x[..], design.p());
     let n = weights.len();
-    let assigned: Vec<usize> = tau.chunks_exact(g).map(most_likely).collect();
-    let (d, misclassified) = classification(tau, g, weights, &assigned)?;
+    let assigned = assignments(tau, g);
     let zeros = vec![0.0; (g - 1) * p];
 
     // Classify-analyze.
@@ -83,62 +191,42 @@ pub fn estimate(method: Method, tau: &[f64], g: usize, weights: &[f64], design: 
     for (i, t) in assigned.iter().enumerate() {
         onehot[i * g + t] = 1.0;
     }
-    let rows = |tau| LogitRows {
+    let rows = LogitRows {
         w,
         p,
-        tau,
+        tau: &onehot,
         g,
         weights,
         ridge: 0.0,
     };
-    let naive = fit_multinomial_logit(&rows(&onehot), &zeros, MAX_NEWTON_ITERATIONS);
+    let naive = fit_multinomial_logit(&rows, &zeros, MAX_NEWTON_ITERATIONS);
     let (_, _, h) = logit_score_hessian(w, p, &onehot, g, weights, 0.0, &naive.gamma);
     let naive_covariance = information_covariance(&h)?;
 
-    // BCH weights: row i, cluster s gets (D⁻¹)[W_i][s].
-    let dm = DMatrix::from_fn(g, g, |s, t| d[s][t]);
-    let dinv = inverse(dm, "classification-error matrix (the clusters cannot be told apart)")?;
-    let mut bch = vec![0.0; n * g];
-    for (i, t) in assigned.iter().enumerate() {
-        for s in 0..g {
-            bch[i * g + s] = dinv[(*t, s)];
-        }
-    }
-    let bch_fit = fit_multinomial_logit(&rows(&bch), &naive.gamma, MAX_NEWTON_ITERATIONS);
-
-    let (gamma, covariance, converged) = match method {
-        Method::ThreeStepMl => {
-            let log_d: Vec<f64> = assigned
-                .iter()
-                .flat_map(|t| (0..g).map(|s| d[s][*t].max(f64::MIN_POSITIVE).ln()).collect::<Vec<_>>())
-                .collect();
-            let start = if bch_fit.gamma.iter().all(|v| v.is_finite()) {
-                bch_fit.gamma.clone()
-            } else {
-                naive.gamma.clone()
-            };
-            let (gamma, converged) = ml_em(w, p, &log_d, g, weights, start);
-            let h = ml_hessian(w, p, &log_d, g, weights, &gamma);
-            (gamma.clone(), information_covariance(&h)?, converged)
-        }
-        _ => {
-            let covariance = bch_sandwich(w, p, &bch, g, weights, &bch_fit.gamma)?;
-            // A line search that can no longer raise the objective ends the iteration
-            // and counts as converged here (the step-three flag has always meant "did
-            // not run out of iterations or meet a singular Hessian").
-            let converged = matches!(bch_fit.outcome, Outcome::Converged | Outcome::LineSearchFailed);
-            (bch_fit.gamma.clone(), covariance, converged)
-        }
+    let (c, d, misclassified) = corrected(method, tau, g, weights, design, &assigned, &naive.gamma)?;
+    let h = match &c.log_d {
+        Some(log_d) => ml_hessian(w, p, log_d, g, weights, &c.gamma),
+        None => logit_score_hessian(w, p, &c.targets, g, weights, 0.0, &c.gamma).2,
+    };
+    // ML under no or frequency weights: the inverse information. BCH, and ML under
+    // sampling weights: the robust sandwich, with the rows (or, under frequency weights,
+    // the people) as the units.
+    let covariance = if c.log_d.is_some() && weight_type != Some(WeightType::Sampling) {
+        information_covariance(&h)?
+    } else {
+        let hinv = inverse(-h, "step-3 Hessian")?;
+        let meat = logit_meat(w, p, &c.targets, g, weights, weight_type, &c.gamma);
+        &hinv * meat * &hinv
     };
     Ok(StepThree {
         method,
         classification: d,
         misclassified,
-        gamma,
+        gamma: c.gamma,
         covariance,
         naive_gamma: naive.gamma,
         naive_covariance,
-        converged,
+        converged: c.converged,
     })
 }
 
@@ -166,40 +254,53 @@ fn classification(tau: &[f64], g: usize, weights: &[f64], assigned: &[usize]) ->
     Ok((d, misclassified))
 }
 
-/// The robust sandwich H⁻¹ (Σ_i u_i u_i′) H⁻¹ of the BCH-weighted logit at `gamma`.
-fn bch_sandwich(
+/// The middle of step 3's sandwich: the variance of the total of the row scores
+/// u_i = c_i (r_i − π_i(γ)) ⊗ w_i, with r_i the row's targets (BCH pseudo-posteriors or the
+/// ML step's posteriors). As in the main sandwich: m/(m − 1) Σ_i u_i u_i′ over the m rows of
+/// positive weight, or under frequency weights N/(N − 1) Σ_i u_i u_i′ / c_i with N = Σ c_i
+/// (each of a row's c_i people has the score u_i / c_i).
+fn logit_meat(
     w: &[f64],
     p: usize,
-    bch: &[f64],
+    targets: &[f64],
     g: usize,
     weights: &[f64],
+    weight_type: Option<WeightType>,
     gamma: &[f64],
-) -> Result<DMatrix<f64>, String> {
-    let (_, _, h) = logit_score_hessian(w, p, bch, g, weights, 0.0, gamma);
-    let hinv = inverse(-h, "step-3 Hessian")?;
+) -> DMatrix<f64> {
+    let frequency = weight_type == Some(WeightType::Frequency);
     let m = (g - 1) * p;
     let mut meat = DMatrix::zeros(m, m);
     let mut lp = vec![0.0; g];
     let mut u = vec![0.0; m];
     for (i, c) in weights.iter().enumerate() {
-        if *c == 0.0 {
+        if *c <= 0.0 {
             continue;
         }
         let wr = &w[i * p..(i + 1) * p];
         log_softmax_row(gamma, p, wr, &mut lp);
         for k in 1..g {
-            let r = c * (bch[i * g + k] - lp[k].exp());
+            let r = c * (targets[i * g + k] - lp[k].exp());
             for j in 0..p {
                 u[(k - 1) * p + j] = r * wr[j];
             }
         }
+        let scale = if frequency { 1.0 / c } else { 1.0 };
         for a in 0..m {
             for b in 0..m {
-                meat[(a, b)] += u[a] * u[b];
+                meat[(a, b)] += scale * u[a] * u[b];
             }
         }
     }
-    Ok(&hinv * meat * &hinv)
+    let units = if frequency {
+        crate::numerics::sum(weights)
+    } else {
+        weights.iter().filter(|c| **c > 0.0).count() as f64
+    };
+    if units > 1.0 {
+        meat *= units / (units - 1.0);
+    }
+    meat
 }
 
 /// Responsibilities of the ML step at γ (n×g) and its log-likelihood.

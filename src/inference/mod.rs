@@ -19,6 +19,7 @@ pub mod chart;
 pub mod cluster_test;
 pub mod effects;
 pub mod screen;
+pub mod step_three;
 
 use crate::data::{Dataset, SurveyDesign};
 use crate::fit::em::{self, EmSettings};
@@ -316,8 +317,8 @@ pub fn uncertainty_of(
 /// Nonparametric bootstrap: each replicate draws n rows with replacement (as multiplicities
 /// on the case weights; under frequency weights it draws N = Σ c people, a row with the
 /// probability c_i/N, and their multiplicities are the weights), refits from the fitted
-/// responsibilities, and records the reported parameters. Replicates run in parallel, each on its own random stream, so the result
-/// does not depend on the thread count.
+/// responsibilities, and records the reported parameters. Replicates run in parallel, each
+/// on its own random stream, so the result does not depend on the thread count.
 fn bootstrap(
     model: &Model,
     tau: &[f64],
@@ -326,6 +327,22 @@ fn bootstrap(
     settings: &InferenceSettings,
     label: &str,
 ) -> Result<(DMatrix<f64>, usize), String> {
+    let draws = bootstrap_draws(model, tau, fd, settings, label, &|refit, _| {
+        Some(reported(refit).into_iter().map(|p| p.value).collect())
+    })?;
+    Ok((covariance_of(&draws), draws.len()))
+}
+
+/// The bootstrap's replicates: what `record` makes of each usable refit (given the refit
+/// and its resampled rows), at least two of them.
+pub(crate) fn bootstrap_draws(
+    model: &Model,
+    tau: &[f64],
+    fd: &FitData,
+    settings: &InferenceSettings,
+    label: &str,
+    record: &(dyn Fn(&Model, &FitData) -> Option<Vec<f64>> + Sync),
+) -> Result<Vec<Vec<f64>>, String> {
     let n = fd.n;
     // Under frequency weights, the cumulative weights to draw people from.
     let people = (settings.weight_type == Some(WeightType::Frequency)).then(|| {
@@ -361,7 +378,8 @@ fn bootstrap(
             let run = em::run(&resampled, start, tau.to_vec(), settings.em);
             run.termination
                 .usable()
-                .then(|| reported(&run.model).into_iter().map(|p| p.value).collect())
+                .then(|| record(&run.model, &resampled))
+                .flatten()
         })
         .collect();
     let ok: Vec<Vec<f64>> = draws.into_iter().flatten().collect();
@@ -371,11 +389,16 @@ fn bootstrap(
             settings.replicates
         ));
     }
-    let r = ok[0].len();
-    let m = ok.len() as f64;
-    let mean: Vec<f64> = (0..r).map(|i| ok.iter().map(|v| v[i]).sum::<f64>() / m).collect();
+    Ok(ok)
+}
+
+/// The covariance of the replicates (rows of `draws`), with m − 1 in the denominator.
+pub(crate) fn covariance_of(draws: &[Vec<f64>]) -> DMatrix<f64> {
+    let r = draws[0].len();
+    let m = draws.len() as f64;
+    let mean: Vec<f64> = (0..r).map(|i| draws.iter().map(|v| v[i]).sum::<f64>() / m).collect();
     let mut cov = DMatrix::zeros(r, r);
-    for v in &ok {
+    for v in draws {
         for a in 0..r {
             for b in 0..=a {
                 cov[(a, b)] += (v[a] - mean[a]) * (v[b] - mean[b]) / (m - 1.0);
@@ -387,7 +410,7 @@ fn bootstrap(
             cov[(b, a)] = cov[(a, b)];
         }
     }
-    Ok((cov, ok.len()))
+    cov
 }
 
 /// Multiplicities of the rows when round(N) people are drawn with replacement, a row with
@@ -434,19 +457,77 @@ pub fn for_fits(
             let best = f.best.as_ref().filter(|_| which.contains(&i))?;
             let label = format!("{}|{}|{}", f.placement, f.clusters, f.covariance());
             let pp = &prepared[f.placement_index];
-            let measurement = uncertainty(&best.run.model, &best.run.tau, data, pp, &settings, &label);
-            let uncertainty = match &f.step_three {
-                None => measurement,
-                Some(Err(reason)) => Err(format!("step 3 failed: {reason}")),
-                Some(Ok(st)) => measurement.map(|m| with_step_three(m, f, st, pp)),
+            let (uncertainty, step_three_errors) = match &f.step_three {
+                None => (
+                    uncertainty(&best.run.model, &best.run.tau, data, pp, &settings, &label),
+                    None,
+                ),
+                Some(Err(reason)) => (Err(format!("step 3 failed: {reason}")), None),
+                Some(Ok(st)) => match three_step_uncertainty(best, data, f, st, pp, &settings, &label) {
+                    Ok((u, errors)) => (Ok(u), Some(errors)),
+                    Err(e) => (Err(e), None),
+                },
             };
-            Some(FitInference::new(
-                uncertainty,
-                &study.inference.per,
-                pp.reported_design(f),
-            ))
+            let mut inference = FitInference::new(uncertainty, &study.inference.per, pp.reported_design(f));
+            inference.step_three_errors = step_three_errors;
+            Some(inference)
         })
         .collect()
+}
+
+/// How a three-step fit's gating errors were made, and how much step 1 added.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StepThreeErrors {
+    /// Whether each bootstrap replicate reran the three steps (else step 1's part was
+    /// added to step 3's own covariance).
+    pub bootstrap: bool,
+    /// The largest relative increase of a step-3 coefficient's standard error over step
+    /// 3's own (step 1 taken as known): corrected / own − 1.
+    pub largest_increase: f64,
+}
+
+/// A three-step fit's uncertainty with step 1's part in the step-3 coefficients' errors
+/// (see [`step_three`]).
+fn three_step_uncertainty(
+    best: &crate::fit::BestFit,
+    data: &Dataset,
+    f: &crate::fit::FitResult,
+    st: &crate::fit::three_step::StepThree,
+    pp: &PreparedPlacement,
+    settings: &InferenceSettings,
+    label: &str,
+) -> Result<(Uncertainty, StepThreeErrors), String> {
+    let design = pp
+        .step_three
+        .as_ref()
+        .ok_or("a three-step placement has no step-3 design")?;
+    let fd = fit_data(data, pp);
+    let reported = |m: &Model| named_parameters(m, pp);
+    let (model, tau) = (&best.run.model, &best.run.tau);
+    let bootstrap = settings.method == ErrorMethod::Bootstrap;
+    let (measurement, gating) = if bootstrap {
+        let (measurement, gating, used) =
+            step_three::bootstrap(model, tau, &fd, st, design, &reported, settings, label)?;
+        let u = Uncertainty {
+            method: settings.method,
+            parameters: reported(model),
+            covariance: measurement,
+            replicates: Some((used, settings.replicates)),
+        };
+        (u, gating)
+    } else {
+        let u = uncertainty_of(model, tau, &fd, &reported, settings, label)?;
+        let part = step_three::step_one_part(model, tau, &fd, st, design, settings)?;
+        (u, &st.covariance + part)
+    };
+    let largest_increase = (0..gating.nrows())
+        .map(|i| (gating[(i, i)] / st.covariance[(i, i)]).sqrt() - 1.0)
+        .fold(f64::NEG_INFINITY, f64::max);
+    let errors = StepThreeErrors {
+        bootstrap,
+        largest_increase,
+    };
+    Ok((with_step_three(measurement, f, st, &gating, pp), errors))
 }
 
 /// A fit's standard errors and what is computed from them once: every covariate effect
@@ -459,6 +540,8 @@ pub struct FitInference {
     pub effects: Vec<effects::Effect>,
     /// Joint Wald tests of the gating covariates (empty without standard errors).
     pub gating_tests: Vec<effects::WaldTest>,
+    /// Three-step fits: how the step-3 errors include step 1.
+    pub step_three_errors: Option<StepThreeErrors>,
 }
 
 impl FitInference {
@@ -477,17 +560,19 @@ impl FitInference {
             uncertainty,
             effects,
             gating_tests,
+            step_three_errors: None,
         }
     }
 }
 
-/// A three-step fit's uncertainty: its step-3 gating coefficients (with step 3's own
-/// covariance, on the original scale) in place of the measurement model's shares, which
-/// keep their own covariance.
+/// A three-step fit's uncertainty: its step-3 gating coefficients (with `gating_covariance`,
+/// their covariance on the fitting scale, carried to the original scale) in place of the
+/// measurement model's shares, which keep their own covariance.
 fn with_step_three(
     measurement: Uncertainty,
     f: &crate::fit::FitResult,
     st: &crate::fit::three_step::StepThree,
+    gating_covariance: &DMatrix<f64>,
     prepared: &PreparedPlacement,
 ) -> Uncertainty {
     let model = f.reported_model().expect("a fit with step 3 has a best start");
@@ -506,7 +591,7 @@ fn with_step_three(
             }
         }
     }
-    let gating_cov = &t * &st.covariance * t.transpose();
+    let gating_cov = &t * gating_covariance * t.transpose();
     let kept: Vec<usize> = (0..measurement.parameters.len())
         .filter(|i| !measurement.parameters[*i].block.is_gating())
         .collect();

@@ -270,11 +270,22 @@ pub struct StepThreeRecord {
     pub misclassified: f64,
     /// Whether the step-3 optimiser met its tolerance.
     pub converged: bool,
+    /// How the step-3 coefficients' standard errors include step 1's uncertainty:
+    /// `step-1-added` (V₃ + C V₁ C′, Bakk, Oberski & Vermunt 2014) or `bootstrap` (each
+    /// replicate reran the three steps); null without standard errors.
+    pub errors_include_step_one: Option<&'static str>,
+    /// The largest relative increase of a step-3 standard error over step 3's own:
+    /// corrected / own − 1.
+    pub step_one_increase: Option<f64>,
 }
 
 impl StepThreeRecord {
     /// Step 3's record with its rows and columns in the order of the cluster numbers.
-    fn numbered(st: &crate::fit::three_step::StepThree, numbers: &[usize]) -> StepThreeRecord {
+    fn numbered(
+        st: &crate::fit::three_step::StepThree,
+        numbers: &[usize],
+        errors: Option<&crate::inference::StepThreeErrors>,
+    ) -> StepThreeRecord {
         let mut order: Vec<usize> = (0..numbers.len()).collect();
         order.sort_by_key(|k| numbers[*k]);
         StepThreeRecord {
@@ -286,6 +297,8 @@ impl StepThreeRecord {
                 .collect(),
             misclassified: st.misclassified,
             converged: st.converged,
+            errors_include_step_one: errors.map(|e| if e.bootstrap { "bootstrap" } else { "step-1-added" }),
+            step_one_increase: errors.map(|e| e.largest_increase),
         }
     }
 }
@@ -554,7 +567,7 @@ fn fit_record(
             .step_three
             .as_ref()
             .and_then(|r| r.as_ref().ok())
-            .map(|st| StepThreeRecord::numbered(st, numbers)),
+            .map(|st| StepThreeRecord::numbered(st, numbers, by_fit.and_then(|i| i.step_three_errors.as_ref()))),
     }
 }
 

@@ -91,7 +91,7 @@ pub const DEFAULT_STARTS: usize = 20;
 /// Default EM iteration cap per start.
 pub const DEFAULT_MAX_ITERATIONS: usize = 1000;
 /// Default convergence tolerance on the relative log-likelihood change.
-pub const DEFAULT_TOLERANCE: f64 = 1e-8;
+pub const DEFAULT_TOLERANCE: f64 = 1e-10;
 /// Default EM iterations every start runs before the starts are ranked (when
 /// `[search].finish_best` turns the two-stage search on).
 pub const DEFAULT_WARMUP_ITERATIONS: usize = 25;

@@ -551,7 +551,7 @@ impl Block for GaussianComponents {
             .min_by(|a, b| a.1.total_cmp(&b.1))?;
         (smallest < SPURIOUS_EIGENVALUE_RATIO * pooled).then(|| {
             format!(
-                "cluster {} is {:.1e} times as narrow (smallest covariance eigenvalue) as the data's narrowest direction",
+                "cluster {} is {:.1e} times as narrow (smallest covariance eigenvalue) as the clusters' pooled covariance in its narrowest direction",
                 k + 1,
                 smallest / pooled
             )
