@@ -182,7 +182,8 @@ pub const ALL_PAIRS_UP_TO: usize = 4;
 
 /// Cross-tables of most-likely aligned clusters: the reference against each other
 /// placement, then every other pair when there are at most [`ALL_PAIRS_UP_TO`] placements.
-pub fn cross_tables(fits: &[FitResult], labelled: &[Labelled]) -> Vec<CrossTable> {
+/// The tables count rows; the adjusted Rand index weighs each row by its case weight.
+pub fn cross_tables(fits: &[FitResult], labelled: &[Labelled], weights: &[f64]) -> Vec<CrossTable> {
     let maps: Vec<(String, Vec<usize>)> = labelled
         .iter()
         .map(|l| {
@@ -199,14 +200,14 @@ pub fn cross_tables(fits: &[FitResult], labelled: &[Labelled]) -> Vec<CrossTable
     let firsts = if maps.len() <= ALL_PAIRS_UP_TO { maps.len() } else { 1 };
     for i in 0..firsts {
         for j in (i + 1)..maps.len() {
-            out.push(cross_table(&maps[i], &maps[j]));
+            out.push(cross_table(&maps[i], &maps[j], weights));
         }
     }
     out
 }
 
 /// The cross-table of two placements' most likely aligned clusters.
-fn cross_table(a: &(String, Vec<usize>), b: &(String, Vec<usize>)) -> CrossTable {
+fn cross_table(a: &(String, Vec<usize>), b: &(String, Vec<usize>), weights: &[f64]) -> CrossTable {
     let mut rows: Vec<usize> = a.1.clone();
     rows.sort_unstable();
     rows.dedup();
@@ -219,7 +220,7 @@ fn cross_table(a: &(String, Vec<usize>), b: &(String, Vec<usize>)) -> CrossTable
         let c = cols.iter().position(|v| v == y).unwrap_or(0);
         counts[r][c] += 1;
     }
-    let ari = assign::adjusted_rand_index(&a.1, &b.1);
+    let ari = assign::weighted_adjusted_rand_index(&a.1, &b.1, weights);
     let agreement = rows
         .iter()
         .zip(&counts)

@@ -92,14 +92,22 @@ fn choose2(x: f64) -> f64 {
 /// Adjusted Rand index of two labelings (Hubert & Arabie 1985), from their counts.
 /// 1 for identical partitions (up to relabelling), about 0 for independent ones.
 pub fn adjusted_rand_index(a: &[usize], b: &[usize]) -> f64 {
+    weighted_adjusted_rand_index(a, b, &vec![1.0; a.len()])
+}
+
+/// [`adjusted_rand_index`] with each row counted by its case weight: under frequency
+/// weights, the index of the rows written out once per person; under sampling weights
+/// (rescaled to mean 1), an estimate of the population's from the weighted table.
+pub fn weighted_adjusted_rand_index(a: &[usize], b: &[usize], weights: &[f64]) -> f64 {
     assert_eq!(a.len(), b.len());
+    assert_eq!(a.len(), weights.len());
     let ka = a.iter().max().map_or(0, |m| m + 1);
     let kb = b.iter().max().map_or(0, |m| m + 1);
     let mut table = vec![vec![0.0; kb]; ka];
-    for (x, y) in a.iter().zip(b) {
-        table[*x][*y] += 1.0;
+    for ((x, y), w) in a.iter().zip(b).zip(weights) {
+        table[*x][*y] += w;
     }
-    let n = a.len() as f64;
+    let n: f64 = weights.iter().sum();
     let sum_cells: f64 = table.iter().flatten().map(|c| choose2(*c)).sum();
     let sum_rows: f64 = table.iter().map(|r| choose2(r.iter().sum())).sum();
     let sum_cols: f64 = (0..kb).map(|j| choose2(table.iter().map(|r| r[j]).sum())).sum();
@@ -114,6 +122,27 @@ pub fn adjusted_rand_index(a: &[usize], b: &[usize]) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn weighted_index_equals_the_rows_written_out() {
+        let a = [0, 0, 1, 1, 2, 1, 0];
+        let b = [0, 1, 1, 1, 2, 2, 0];
+        let w = [2.0, 1.0, 3.0, 1.0, 2.0, 1.0, 4.0];
+        let (mut ra, mut rb) = (Vec::new(), Vec::new());
+        for i in 0..a.len() {
+            for _ in 0..w[i] as usize {
+                ra.push(a[i]);
+                rb.push(b[i]);
+            }
+        }
+        let written_out = adjusted_rand_index(&ra, &rb);
+        let weighted = weighted_adjusted_rand_index(&a, &b, &w);
+        assert!(
+            (weighted - written_out).abs() < 1e-12,
+            "{weighted} against {written_out}"
+        );
+        assert!((adjusted_rand_index(&a, &b) - written_out).abs() > 1e-3);
+    }
 
     fn brute_force(w: &[Vec<f64>]) -> f64 {
         // All injective maps of rows into columns (rows ≤ cols here).

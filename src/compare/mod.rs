@@ -475,7 +475,7 @@ pub fn compare(
             .cmp(&b.cluster)
             .then(rank(&a.placement).cmp(&rank(&b.placement)))
     });
-    let cross_tables = align::cross_tables(fits, labelled);
+    let cross_tables = align::cross_tables(fits, labelled, weights);
     let mut c = Comparison {
         reference: prepared[settings.reference].placement.name.clone(),
         fixed_clusters: settings.clusters,

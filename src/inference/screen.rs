@@ -7,7 +7,8 @@
 //! assumption is exactly that the covariates have no direct effects), plus the tested
 //! covariate in the gating network if it is not there already, so that the test asks
 //! about an effect beyond the one on membership. Both models are refitted by EM from the
-//! compared fit's posteriors, so they sit at neighbouring optima.
+//! compared fit's posteriors (to the polish tolerance, `fit::POLISH_TOLERANCE`), so they sit
+//! at neighbouring optima.
 //! Continuous indicators share one regression design, so a covariate is tested on all
 //! of them at once. Pairs are flagged by Holm's step-down procedure over the pairs tested
 //! in the placement (Holm 1979), which holds the family-wise error rate at 0.05 like
@@ -102,7 +103,12 @@ pub fn screen(
             pp,
             f,
             tau: &best.run.tau,
-            settings: EmSettings::for_search(&study.search),
+            // Refits run to the polish tolerance, as the fits they start from did, so that
+            // the statistic is a difference of two optima.
+            settings: EmSettings {
+                tolerance: crate::fit::POLISH_TOLERANCE,
+                ..EmSettings::for_search(&study.search)
+            },
             options: ModelOptions::for_study(study, f.structure),
             null,
         };
