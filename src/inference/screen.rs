@@ -12,7 +12,9 @@
 //! Continuous indicators share one regression design, so a covariate is tested on all
 //! of them at once. Pairs are flagged by Holm's step-down procedure over the pairs tested
 //! in the placement (Holm 1979), which holds the family-wise error rate at 0.05 like
-//! Bonferroni's correction and flags at least as many.
+//! Bonferroni's correction and flags at least as many. Under sampling weights or a survey
+//! design the rows are not independent draws of equal weight, and the statistic is divided
+//! by the tested parameters' mean design effect before its p-value ([`design_effect`]).
 
 use crate::data::Dataset;
 use crate::fit::em::{self, EmSettings};
@@ -43,6 +45,11 @@ pub struct DirectEffectTest {
     /// For a three-step placement, whether the covariate is one of its step-3 covariates
     /// (a flagged pair then breaks the three-step assumption).
     pub step_three_covariate: bool,
+    /// Under sampling weights or a survey design: the mean design effect δ̄ by which the
+    /// likelihood-ratio statistic was divided before its p-value (see [`design_effect`]);
+    /// `statistic` is the uncorrected one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub design_effect: Option<f64>,
     /// Why there is no statistic, when there is none.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub note: Option<String>,
@@ -69,8 +76,19 @@ pub fn holm(p_values: &[Option<f64>], alpha: f64) -> Vec<bool> {
     flagged
 }
 
-/// A refit's log-likelihood and parameter count, or why it failed.
-type Refit = Result<(f64, usize), String>;
+/// A refit's log-likelihood, parameter count and, when the test is design-based, the trace
+/// tr(I⁻¹ J) of its information I and design-based score variance J; or why it failed.
+type Refit = Result<(f64, usize, Option<f64>), String>;
+
+/// The mean design effect of the parameters a nested test adds: with q = k₁ − k₀ of them,
+/// δ̄ = (tr(I₁⁻¹ J₁) − tr(I₀⁻¹ J₀)) / q, the first-order correction of Rao & Scott (1984) in the
+/// form of Satorra & Bentler's (2001) scaled difference. Under the null the statistic's mean
+/// is about q δ̄, so LR / δ̄ is referred to χ²(q). None when δ̄ is not positive (it can fall
+/// below 0 in small samples).
+pub fn design_effect(trace_null: f64, trace_alternative: f64, q: usize) -> Option<f64> {
+    let d = (trace_alternative - trace_null) / q as f64;
+    (q > 0 && d.is_finite() && d > 0.0).then_some(d)
+}
 
 /// The indicator groups a covariate can act on, in block order: each family's
 /// ([`crate::model::family::Family::effect_groups`]; the continuous indicators together).
@@ -181,11 +199,33 @@ impl FitScreen<'_> {
         model.gating.prepare_bound(fd.w, fd.weights);
         let k = model.n_params();
         let run = em::run(&fd, model, self.tau.to_vec(), self.settings);
-        if run.termination.usable() {
-            Ok((run.loglik, k))
-        } else {
-            Err(run.termination.reason().unwrap_or("the refit failed").to_string())
+        if !run.termination.usable() {
+            return Err(run.termination.reason().unwrap_or("the refit failed").to_string());
         }
+        let trace = match self.design_based() {
+            false => None,
+            true => Some(self.trace(&run.model, &fd)?),
+        };
+        Ok((run.loglik, k, trace))
+    }
+
+    /// Whether the rows are not independent draws of equal weight: sampling weights or a
+    /// survey design, under which the likelihood-ratio statistic is corrected.
+    fn design_based(&self) -> bool {
+        self.study.weight_type == Some(crate::spec::WeightType::Sampling) || self.data.survey.is_some()
+    }
+
+    /// tr(I⁻¹ J) at a refit: I its observed information, J the design-based variance of its
+    /// score (the middle of the sandwich).
+    fn trace(&self, model: &crate::model::Model, fd: &crate::model::FitData) -> Result<f64, String> {
+        let chart = super::chart::Chart::new(model)?;
+        let info = super::observed_information(&chart, fd)?;
+        let meat = super::score_outer_product(&chart, fd, self.study.weight_type, self.data.survey.as_deref())?;
+        let inverse = info
+            .cholesky()
+            .ok_or("the refit's information is not positive definite")?
+            .inverse();
+        Ok((inverse * meat).trace())
     }
 
     /// A study covariate's column.
@@ -223,13 +263,26 @@ impl FitScreen<'_> {
             alt.acts_on.insert(c.to_string(), members.to_vec());
         }
         let result = match (base, self.refit(&alt)) {
-            (Ok((l0, k0)), Ok((l1, k1))) => Ok((2.0 * (l1 - l0), k1 - k0)),
+            (Ok((l0, k0, t0)), Ok((l1, k1, t1))) => Ok((2.0 * (l1 - l0), k1 - k0, t0.zip(t1))),
             (Err(e), _) => Err(format!("the model without the effect failed: {e}")),
             (_, Err(e)) => Err(format!("the model with the effect failed: {e}")),
         };
-        let (statistic, df, note) = match result {
-            Ok((lr, df)) => (Some(lr.max(0.0)), df, None),
-            Err(e) => (None, 0, Some(e)),
+        let (statistic, df, mut note, traces) = match result {
+            Ok((lr, df, traces)) => (Some(lr.max(0.0)), df, None, traces),
+            Err(e) => (None, 0, Some(e), None),
+        };
+        let design_effect = traces.and_then(|(t0, t1)| design_effect(t0, t1, df));
+        let p_value = match (statistic, self.design_based(), design_effect) {
+            (Some(x), false, _) => Some(super::effects::chi_squared_p_value(x, df)),
+            (Some(x), true, Some(d)) => Some(super::effects::chi_squared_p_value(x / d, df)),
+            (Some(_), true, None) => {
+                note = Some(
+                    "the design effect of this test could not be estimated (not positive), so it has no p-value"
+                        .to_string(),
+                );
+                None
+            }
+            (None, _, _) => None,
         };
         let placement = &self.pp.placement;
         DirectEffectTest {
@@ -238,9 +291,10 @@ impl FitScreen<'_> {
             indicator: group.to_string(),
             statistic,
             df,
-            p_value: statistic.map(|x| super::effects::chi_squared_p_value(x, df)),
+            p_value,
             flagged: false,
             step_three_covariate: placement.method.is_three_step() && placement.gating.iter().any(|x| x.name == c),
+            design_effect,
             note,
         }
     }
@@ -248,7 +302,16 @@ impl FitScreen<'_> {
 
 #[cfg(test)]
 mod tests {
-    use super::holm;
+    use super::{design_effect, holm};
+
+    #[test]
+    fn the_design_effect_is_the_mean_added_trace_and_none_when_not_positive() {
+        // Two parameters added; the traces grow from 10 to 16: each added parameter's
+        // statistic is about 3 times a chi-squared one.
+        assert_eq!(design_effect(10.0, 16.0, 2), Some(3.0));
+        assert_eq!(design_effect(10.0, 9.0, 2), None);
+        assert_eq!(design_effect(10.0, 12.0, 0), None);
+    }
 
     #[test]
     fn holm_steps_down_and_flags_at_least_what_bonferroni_does() {

@@ -169,7 +169,7 @@ fn weights_line(s: &crate::pipeline::output::StudySummary) -> String {
         return match design {
             None => "none".into(),
             Some(d) => format!(
-                "none (equal selection probabilities); standard errors are design-based over {d}, by linearisation (Binder 1983)"
+                "none (equal selection probabilities); standard errors are design-based over {d}, by linearisation (Binder 1983), and the direct-effect screen divides its likelihood-ratio statistics by their mean design effect (first-order Rao-Scott correction)"
             ),
         };
     };
@@ -180,8 +180,10 @@ fn weights_line(s: &crate::pipeline::output::StudySummary) -> String {
         ),
         _ => format!(
             "'{column}', sampling weights, rescaled to mean 1 over the rows used (their scale changes nothing); \
-             standard errors are design-based, {} (Binder 1983); BIC, ICL and the \
-             likelihood-ratio tests treat the rescaled weights as counts, so they are approximate",
+             standard errors are design-based, {} (Binder 1983); the direct-effect screen divides \
+             its likelihood-ratio statistics by their mean design effect (first-order Rao-Scott \
+             correction); BIC, ICL and the cluster-count test treat the rescaled weights as counts, \
+             so they are approximate",
             match design {
                 Some(d) => format!("by linearisation over {d}"),
                 None => "each row a sampling unit".to_string(),
