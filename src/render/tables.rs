@@ -269,7 +269,7 @@ fn three_step_table(c: &Comparison, out: &mut Vec<Table>) {
     if !c.three_step.is_empty() {
         out.push(Table {
             id: TableId::ThreeStep,
-            note: "Gating effects estimated after the clusters were fitted without covariates: each row assigned to its most likely cluster, then a multinomial logit corrected for the assignment errors (BCH: Bolck, Croon & Hagenaars 2004; ML: Vermunt 2010). Classify-analyze, the same logit without the correction, is biased toward no effect and shown only as a contrast. Relative risk ratios with 95% intervals; the corrected intervals treat the assignment errors as known.".into(),
+            note: "Gating effects estimated after the clusters were fitted without covariates: each row assigned to its most likely cluster, then a multinomial logit corrected for the assignment errors (BCH: Bolck, Croon & Hagenaars 2004; ML: Vermunt 2010). Classify-analyze, the same logit without the correction, is biased toward no effect and shown only as a contrast. Relative risk ratios with 95% intervals; the corrected intervals include the uncertainty of the first step's fit (Bakk, Oberski & Vermunt 2014: its part added to the third step's own, or, with bootstrap errors, all three steps rerun in each replicate); the classify-analyze intervals do not.".into(),
             header: ["placement", "method", "misclassified", "cluster", "term", "per", "corrected", "classify-analyze (biased)"].iter().map(|s| s.to_string()).collect(),
             rows: c
                 .three_step
