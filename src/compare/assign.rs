@@ -97,7 +97,8 @@ pub fn adjusted_rand_index(a: &[usize], b: &[usize]) -> f64 {
 
 /// [`adjusted_rand_index`] with each row counted by its case weight: under frequency
 /// weights, the index of the rows written out once per person; under sampling weights
-/// (rescaled to mean 1), an estimate of the population's from the weighted table.
+/// (rescaled to mean 1) the same formula on the weighted table, a plug-in whose pair counts
+/// x(x − 1)/2 differ from a design-unbiased count by O(1/n).
 pub fn weighted_adjusted_rand_index(a: &[usize], b: &[usize], weights: &[f64]) -> f64 {
     assert_eq!(a.len(), b.len());
     assert_eq!(a.len(), weights.len());

@@ -62,7 +62,7 @@ pub struct Criteria {
     /// Weighted count of the rows assigned (most likely) to the smallest cluster: people
     /// under frequency weights, rows without weights.
     pub smallest_count: Option<f64>,
-    /// Starts within 1e-6 of the best.
+    /// Starts on the best start's optimum (see [`crate::fit::same_optimum`]).
     pub starts_reaching_best: usize,
     /// Starts run to their end (see [`crate::fit::FitResult::finished_starts`]).
     pub starts: usize,

@@ -104,8 +104,10 @@ struct Starts<'a> {
 }
 
 impl Starts<'_> {
-    /// The best start run on to the polish tolerance (its iterations and trace continued).
-    /// A polish that ends unusable or spurious, or lower, leaves the run as it was.
+    /// The best start run on to the polish tolerance (its iterations and trace continued),
+    /// when it converged at the search tolerance. A polish that does not converge within
+    /// the iteration cap (counted afresh), ends spurious, or ends lower leaves the run as it
+    /// was.
     fn polish(&self, run: EmRun) -> EmRun {
         let search = &self.spec.search;
         if !(search.polish_tolerance < search.em.tolerance) || run.termination != Termination::Converged {
@@ -117,7 +119,7 @@ impl Starts<'_> {
         };
         let mut polished = em::run(self.fd, run.model.clone(), run.tau.clone(), settings);
         let spurious = search.spurious_guard && spurious(&polished, self.fd).is_some();
-        if !polished.termination.usable() || spurious || polished.objective < run.objective {
+        if polished.termination != Termination::Converged || spurious || polished.objective < run.objective {
             return run;
         }
         polished.iterations += run.iterations;

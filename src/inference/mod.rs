@@ -464,7 +464,7 @@ pub fn for_fits(
                 ),
                 Some(Err(reason)) => (Err(format!("step 3 failed: {reason}")), None),
                 Some(Ok(st)) => match three_step_uncertainty(best, data, f, st, pp, &settings, &label) {
-                    Ok((u, errors)) => (Ok(u), Some(errors)),
+                    Ok((u, errors)) => (Ok(u), errors),
                     Err(e) => (Err(e), None),
                 },
             };
@@ -487,7 +487,9 @@ pub struct StepThreeErrors {
 }
 
 /// A three-step fit's uncertainty with step 1's part in the step-3 coefficients' errors
-/// (see [`step_three`]).
+/// (see [`step_three`]). When step 1's part cannot be computed (a moved step 1 whose step 3
+/// does not converge), the step-3 errors are step 3's own and no [`StepThreeErrors`] says
+/// otherwise (results.json then has `errors_include_step_one: null`).
 fn three_step_uncertainty(
     best: &crate::fit::BestFit,
     data: &Dataset,
@@ -496,7 +498,7 @@ fn three_step_uncertainty(
     pp: &PreparedPlacement,
     settings: &InferenceSettings,
     label: &str,
-) -> Result<(Uncertainty, StepThreeErrors), String> {
+) -> Result<(Uncertainty, Option<StepThreeErrors>), String> {
     let design = pp
         .step_three
         .as_ref()
@@ -517,8 +519,10 @@ fn three_step_uncertainty(
         (u, gating)
     } else {
         let u = uncertainty_of(model, tau, &fd, &reported, settings, label)?;
-        let part = step_three::step_one_part(model, tau, &fd, st, design, settings)?;
-        (u, &st.covariance + part)
+        match step_three::step_one_part(model, tau, &fd, st, design, settings) {
+            Ok(part) => (u, &st.covariance + part),
+            Err(_) => return Ok((with_step_three(u, f, st, &st.covariance, pp), None)),
+        }
     };
     let largest_increase = (0..gating.nrows())
         .map(|i| (gating[(i, i)] / st.covariance[(i, i)]).sqrt() - 1.0)
@@ -527,7 +531,7 @@ fn three_step_uncertainty(
         bootstrap,
         largest_increase,
     };
-    Ok((with_step_three(measurement, f, st, &gating, pp), errors))
+    Ok((with_step_three(measurement, f, st, &gating, pp), Some(errors)))
 }
 
 /// A fit's standard errors and what is computed from them once: every covariate effect

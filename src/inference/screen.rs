@@ -77,8 +77,9 @@ pub fn holm(p_values: &[Option<f64>], alpha: f64) -> Vec<bool> {
 }
 
 /// A refit's log-likelihood, parameter count and, when the test is design-based, the trace
-/// tr(I⁻¹ J) of its information I and design-based score variance J; or why it failed.
-type Refit = Result<(f64, usize, Option<f64>), String>;
+/// tr(I⁻¹ J) of its information I and design-based score variance J (or why it could not be
+/// computed); or why the refit failed.
+type Refit = Result<(f64, usize, Option<Result<f64, String>>), String>;
 
 /// The mean design effect of the parameters a nested test adds: with q = k₁ − k₀ of them,
 /// δ̄ = (tr(I₁⁻¹ J₁) − tr(I₀⁻¹ J₀)) / q, the first-order correction of Rao & Scott (1984) in the
@@ -202,10 +203,7 @@ impl FitScreen<'_> {
         if !run.termination.usable() {
             return Err(run.termination.reason().unwrap_or("the refit failed").to_string());
         }
-        let trace = match self.design_based() {
-            false => None,
-            true => Some(self.trace(&run.model, &fd)?),
-        };
+        let trace = self.design_based().then(|| self.trace(&run.model, &fd));
         Ok((run.loglik, k, trace))
     }
 
@@ -263,7 +261,7 @@ impl FitScreen<'_> {
             alt.acts_on.insert(c.to_string(), members.to_vec());
         }
         let result = match (base, self.refit(&alt)) {
-            (Ok((l0, k0, t0)), Ok((l1, k1, t1))) => Ok((2.0 * (l1 - l0), k1 - k0, t0.zip(t1))),
+            (Ok((l0, k0, t0)), Ok((l1, k1, t1))) => Ok((2.0 * (l1 - l0), k1 - k0, t0.clone().zip(t1))),
             (Err(e), _) => Err(format!("the model without the effect failed: {e}")),
             (_, Err(e)) => Err(format!("the model with the effect failed: {e}")),
         };
@@ -271,18 +269,21 @@ impl FitScreen<'_> {
             Ok((lr, df, traces)) => (Some(lr.max(0.0)), df, None, traces),
             Err(e) => (None, 0, Some(e), None),
         };
-        let design_effect = traces.and_then(|(t0, t1)| design_effect(t0, t1, df));
-        let p_value = match (statistic, self.design_based(), design_effect) {
-            (Some(x), false, _) => Some(super::effects::chi_squared_p_value(x, df)),
-            (Some(x), true, Some(d)) => Some(super::effects::chi_squared_p_value(x / d, df)),
-            (Some(_), true, None) => {
-                note = Some(
-                    "the design effect of this test could not be estimated (not positive), so it has no p-value"
-                        .to_string(),
-                );
+        let design = traces.map(|(t0, t1)| match (t0, t1) {
+            (Ok(t0), Ok(t1)) => design_effect(t0, t1, df).ok_or_else(|| "it was not positive".to_string()),
+            (Err(e), _) | (_, Err(e)) => Err(e),
+        });
+        let design_effect = design.as_ref().and_then(|d| d.as_ref().ok().copied());
+        let p_value = match (statistic, design) {
+            (Some(x), None) => Some(super::effects::chi_squared_p_value(x, df)),
+            (Some(x), Some(Ok(d))) => Some(super::effects::chi_squared_p_value(x / d, df)),
+            (Some(_), Some(Err(why))) => {
+                note = Some(format!(
+                    "the design effect of this test could not be estimated ({why}), so the statistic has no p-value"
+                ));
                 None
             }
-            (None, _, _) => None,
+            (None, _) => None,
         };
         let placement = &self.pp.placement;
         DirectEffectTest {

@@ -274,8 +274,9 @@ pub struct StepThreeRecord {
     /// `step-1-added` (V₃ + C V₁ C′, Bakk, Oberski & Vermunt 2014) or `bootstrap` (each
     /// replicate reran the three steps); null without standard errors.
     pub errors_include_step_one: Option<&'static str>,
-    /// The largest relative increase of a step-3 standard error over step 3's own:
-    /// corrected / own − 1.
+    /// The largest relative change of a step-3 standard error from step 3's own:
+    /// corrected / own − 1 (above 0 when step 1's part is added; a bootstrap's can be
+    /// below).
     pub step_one_increase: Option<f64>,
 }
 
@@ -345,7 +346,8 @@ pub struct StartSummary {
     /// Starts that ended at a spurious solution (a cluster fitting a few rows too
     /// closely), set apart and never chosen.
     pub spurious: usize,
-    /// Starts within 1e-6 (relative) of the best log-likelihood.
+    /// Starts on the best start's optimum: within 0.01 of its log-likelihood (or 1e-9 of
+    /// its size) where the search tolerance stopped them.
     pub reaching_best: usize,
     /// The best start (1-based).
     pub best_start: Option<usize>,

@@ -396,7 +396,7 @@ fn cross_tables(c: &Comparison, out: &mut Vec<Table>) {
                 rows: t.rows.clone(),
                 columns: t.columns.clone(),
             },
-            note: format!("Rows by most likely cluster; same cluster = share of the row cluster's rows in the same aligned cluster in the column placement; adjusted Rand index {:.3} (Hubert & Arabie 1985; 1 = the same partition).", t.adjusted_rand_index),
+            note: format!("Rows by most likely cluster; same cluster = share of the row cluster's rows in the same aligned cluster in the column placement; adjusted Rand index {:.3} (Hubert & Arabie 1985; 1 = the same partition; rows counted by their case weights).", t.adjusted_rand_index),
             header,
             rows: t
                 .row_clusters

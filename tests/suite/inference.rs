@@ -840,6 +840,9 @@ fn corrected_three_step_intervals_cover_the_truth() {
                 let st = result.step_three.as_ref()?.as_ref().ok()?.clone();
                 let fits = [result];
                 let inf = inference::for_fits(&study, &data, &prepared, &fits, &[0]).pop()??;
+                // Only fits whose errors include step 1 (a fit falls back to step 3's own
+                // errors when a moved step 1 has no converging step 3).
+                inf.step_three_errors.as_ref()?;
                 let u = inf.uncertainty.ok()?;
                 let best = fits[0].best.as_ref()?;
                 let gauss = best
