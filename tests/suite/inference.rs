@@ -984,6 +984,7 @@ fn three_step_errors_match_the_spread_of_the_estimates() {
             let st = fit.step_three.clone()?.ok()?;
             let design = prepared[0].step_three.clone()?;
             let inf = inference::for_fits(&study, &data, &prepared, &[fit], &[0]).pop()??;
+            inf.step_three_errors.as_ref()?; // errors with step 1 (or the bootstrap), not a fallback
             let u = inf.uncertainty.ok()?;
             let i = u.index("gating", 2, None, Some("age"))?;
             Some((sign * u.parameters[i].value, u.se(i), st.covariance[(1, 1)].sqrt() / design.terms[1].scale))
