@@ -70,7 +70,7 @@ impl Parts {
         let design = pp.reported_design(f);
         if let Some(Ok(st)) = &f.step_three {
             self.three_step
-                .extend(three_step_effects(st, design, aligned, &f.placement, per));
+                .extend(three_step_effects(st, design, aligned, &f.placement, uncertainty, per));
         }
         self.gating_effects
             .extend(effects(&gating, design, aligned, &f.placement, uncertainty, per));
@@ -267,6 +267,7 @@ fn three_step_effects(
     design: &Design,
     aligned: &[usize],
     placement: &str,
+    uncertainty: Option<&crate::inference::Uncertainty>,
     per: &BTreeMap<String, f64>,
 ) -> Vec<ThreeStepEffect> {
     use crate::inference::effects::{per_units, Interval};
@@ -281,6 +282,14 @@ fn three_step_effects(
             let i = (k - 1) * p + j;
             // A slope maps to the original scale by 1/scale alone.
             let se = |cov: &nalgebra::DMatrix<f64>| cov[(i, i)].max(0.0).sqrt() / term.scale * units;
+            // The corrected error is the fit's own (with step 1's part, as in results.json);
+            // step 3's alone only when the fit has no standard errors.
+            let corrected_se = uncertainty
+                .and_then(|u| {
+                    u.index("gating", k + 1, None, Some(&term.name))
+                        .map(|at| u.se(at) * units)
+                })
+                .unwrap_or_else(|| se(&st.covariance));
             out.push(ThreeStepEffect {
                 placement: placement.to_string(),
                 method: st.method.word(),
@@ -289,7 +298,7 @@ fn three_step_effects(
                 versus: aligned[0],
                 term: term.name.clone(),
                 per: units,
-                corrected: Interval::new(corrected[j] * units, se(&st.covariance), true),
+                corrected: Interval::new(corrected[j] * units, corrected_se, true),
                 classify_analyze: Interval::new(naive[j] * units, se(&st.naive_covariance), true),
             });
         }

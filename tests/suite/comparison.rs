@@ -375,3 +375,50 @@ fn a_covariate_that_separates_clusters_is_reported_as_separation() {
     let report = std::fs::read_to_string(dir.path().join("run/report.html")).unwrap();
     assert!(report.contains("separation: not estimable"));
 }
+
+/// The three-step table's corrected intervals are the fit's own (with step 1's part), the
+/// same numbers results.json gives the fit's gating effects, not step 3's errors alone.
+#[test]
+fn three_step_intervals_in_the_comparison_are_the_fits_own() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_cohortmix"))
+        .args([
+            "compare",
+            super::common::root("configs/symptoms.toml").to_str().unwrap(),
+            "--out",
+            "run",
+        ])
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let results: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(dir.path().join("run/results.json")).unwrap()).unwrap();
+    let rows = results["comparison"]["three_step"].as_array().unwrap();
+    assert!(!rows.is_empty(), "the symptoms study has a three-step placement");
+    for row in rows {
+        let fit = results["fits"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|f| {
+                f["placement"] == row["placement"] && f["step_three"]["errors_include_step_one"] == "step-1-added"
+            })
+            .expect("the compared three-step fit, with step 1 in its errors");
+        let effect = fit["effects"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|e| e["block"] == "gating" && e["cluster"] == row["cluster"] && e["term"] == row["term"])
+            .unwrap();
+        for key in ["estimate", "lower", "upper"] {
+            let (a, b) = (row["corrected"][key].as_f64().unwrap(), effect[key].as_f64().unwrap());
+            assert!(
+                (a - b).abs() <= 1e-12 * b.abs(),
+                "{} {}: {key} {a} against {b}",
+                row["cluster"],
+                row["term"]
+            );
+        }
+    }
+}
