@@ -72,6 +72,18 @@ fn information_covariance(h: &DMatrix<f64>) -> Result<DMatrix<f64>, String> {
     })
 }
 
+/// The unpenalised logit of targets `tau` (n×g) on the covariate design.
+fn logit_rows<'a>(design: &'a Design, tau: &'a [f64], g: usize, weights: &'a [f64]) -> LogitRows<'a> {
+    LogitRows {
+        w: &design.x,
+        p: design.p(),
+        tau,
+        g,
+        weights,
+        ridge: 0.0,
+    }
+}
+
 /// Step 2: each row's most likely cluster under the step-1 posteriors `tau` (n×g).
 pub fn assignments(tau: &[f64], g: usize) -> Vec<usize> {
     tau.chunks_exact(g).map(most_likely).collect()
@@ -87,7 +99,6 @@ struct Corrected {
     converged: bool,
 }
 
-#[allow(clippy::too_many_arguments)] // step 3's inputs, each needed
 fn corrected(
     method: Method,
     tau: &[f64],
@@ -107,15 +118,7 @@ fn corrected(
             bch[i * g + s] = dinv[(*t, s)];
         }
     }
-    let rows = LogitRows {
-        w,
-        p,
-        tau: &bch,
-        g,
-        weights,
-        ridge: 0.0,
-    };
-    let bch_fit = fit_multinomial_logit(&rows, start, MAX_NEWTON_ITERATIONS);
+    let bch_fit = fit_multinomial_logit(&logit_rows(design, &bch, g, weights), start, MAX_NEWTON_ITERATIONS);
     let out = match method {
         Method::ThreeStepMl => {
             let log_d: Vec<f64> = assigned
@@ -153,7 +156,6 @@ fn corrected(
 /// Step 3's corrected coefficients again, from other step-1 posteriors `tau` and
 /// assignments (for the step-1 correction of the standard errors and the bootstrap),
 /// starting from `start`; an error when the step-3 optimiser did not converge.
-#[allow(clippy::too_many_arguments)] // step 3's inputs, each needed
 pub fn re_estimate(
     method: Method,
     tau: &[f64],
@@ -191,15 +193,7 @@ pub fn estimate(
     for (i, t) in assigned.iter().enumerate() {
         onehot[i * g + t] = 1.0;
     }
-    let rows = LogitRows {
-        w,
-        p,
-        tau: &onehot,
-        g,
-        weights,
-        ridge: 0.0,
-    };
-    let naive = fit_multinomial_logit(&rows, &zeros, MAX_NEWTON_ITERATIONS);
+    let naive = fit_multinomial_logit(&logit_rows(design, &onehot, g, weights), &zeros, MAX_NEWTON_ITERATIONS);
     let (_, _, h) = logit_score_hessian(w, p, &onehot, g, weights, 0.0, &naive.gamma);
     let naive_covariance = information_covariance(&h)?;
 

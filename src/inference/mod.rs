@@ -298,20 +298,33 @@ pub fn uncertainty_of(
         });
     }
     let chart = Chart::new(model)?;
+    analytic(&chart, parameters, fd, reported, settings).map(|(u, _)| u)
+}
+
+/// The observed-information or sandwich uncertainty of `reported` at the chart's model, and
+/// the covariance V of the chart's coordinates it came from.
+fn analytic(
+    chart: &Chart,
+    parameters: Vec<Parameter>,
+    fd: &FitData,
+    reported: &(dyn Fn(&Model) -> Vec<Parameter> + Sync),
+    settings: &InferenceSettings,
+) -> Result<(Uncertainty, DMatrix<f64>), String> {
     let v = parameter_covariance(
-        &chart,
+        chart,
         fd,
         settings.method,
         settings.weight_type,
         settings.survey.as_deref(),
     )?;
-    let jac = reported_jacobian(&chart, reported, parameters.len())?;
-    Ok(Uncertainty {
+    let jac = reported_jacobian(chart, reported, parameters.len())?;
+    let u = Uncertainty {
         method: settings.method,
         parameters,
-        covariance: &jac * v * jac.transpose(),
+        covariance: &jac * &v * jac.transpose(),
         replicates: None,
-    })
+    };
+    Ok((u, v))
 }
 
 /// Nonparametric bootstrap: each replicate draws n rows with replacement (as multiplicities
@@ -518,8 +531,10 @@ fn three_step_uncertainty(
         };
         (u, gating)
     } else {
-        let u = uncertainty_of(model, tau, &fd, &reported, settings, label)?;
-        match step_three::step_one_part(model, tau, &fd, st, design, settings) {
+        // Step 1's coordinates and their covariance serve both its own errors and C V₁ C′.
+        let chart = Chart::new(model)?;
+        let (u, v1) = analytic(&chart, reported(model), &fd, &reported, settings)?;
+        match step_three::step_one_part(&chart, &v1, tau, &fd, st, design) {
             Ok(part) => (u, &st.covariance + part),
             Err(_) => return Ok((with_step_three(u, f, st, &st.covariance, pp), None)),
         }

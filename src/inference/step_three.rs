@@ -9,12 +9,11 @@
 //! replicate reruns all three steps instead.
 
 use super::chart::Chart;
-use super::{bootstrap_draws, covariance_of, parameter_covariance, InferenceSettings};
+use super::{bootstrap_draws, covariance_of, InferenceSettings};
 use crate::data::Design;
 use crate::fit::three_step::{assignments, re_estimate, StepThree};
 use crate::model::family::Parameter;
 use crate::model::{e_step, FitData, Model};
-use crate::spec::ErrorMethod;
 use nalgebra::DMatrix;
 use rayon::prelude::*;
 
@@ -28,23 +27,18 @@ fn posteriors(model: &Model, fd: &FitData) -> Vec<f64> {
     tau
 }
 
-/// C V₁ C′: step 1's part of the step-3 covariance (fitting scale). `tau` are the fit's
-/// step-1 posteriors, from which step 2 assigned the rows.
+/// C V₁ C′: step 1's part of the step-3 covariance (fitting scale), with V₁ the covariance
+/// of the step-1 model's `chart` coordinates. `tau` are the fit's step-1 posteriors, from
+/// which step 2 assigned the rows.
 pub fn step_one_part(
-    model: &Model,
+    chart: &Chart,
+    v1: &DMatrix<f64>,
     tau: &[f64],
     fd: &FitData,
     st: &StepThree,
     design: &Design,
-    settings: &InferenceSettings,
 ) -> Result<DMatrix<f64>, String> {
-    let chart = Chart::new(model)?;
-    let method = match settings.method {
-        ErrorMethod::Bootstrap => ErrorMethod::ObservedInformation,
-        m => m,
-    };
-    let v1 = parameter_covariance(&chart, fd, method, settings.weight_type, settings.survey.as_deref())?;
-    let g = model.clusters();
+    let g = st.classification.len();
     let assigned = assignments(tau, g);
     let p1 = chart.len();
     let columns: Vec<Result<Vec<f64>, String>> = (0..p1)
