@@ -23,6 +23,8 @@ pub enum TableId {
     GatingTests,
     /// Three-step estimates.
     ThreeStep,
+    /// Distal outcomes by cluster.
+    Outcomes,
     /// Bootstrap tests of the cluster count.
     ClusterCountTests,
     /// The direct-effect screen.

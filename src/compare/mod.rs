@@ -174,6 +174,20 @@ pub struct ComponentEffect {
     pub effect: crate::inference::effects::Effect,
 }
 
+/// A distal outcome compared across a placement's clusters.
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
+pub struct OutcomeComparison {
+    /// Placement.
+    pub placement: String,
+    /// Outcome column.
+    pub outcome: String,
+    /// The comparison, clusters by their aligned numbers (null when it failed).
+    pub comparison: Option<crate::inference::outcomes::OutcomeRecord>,
+    /// Why it failed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unavailable: Option<String>,
+}
+
 /// A three-step placement's gating effect: the corrected estimate beside plain
 /// classify-analyze, which is biased toward no effect and shown only as a contrast.
 #[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
@@ -310,6 +324,8 @@ pub struct Comparison {
     pub gating_tests: Vec<GatingTest>,
     /// Three-step placements: corrected and classify-analyze gating effects.
     pub three_step: Vec<ThreeStepEffect>,
+    /// Distal outcomes compared across each placement's clusters.
+    pub outcomes: Vec<OutcomeComparison>,
     /// Likelihood-ratio tests of direct effects the compared fits leave out.
     pub direct_effects: Vec<crate::inference::screen::DirectEffectTest>,
     /// Bootstrap likelihood-ratio tests of each compared fit's cluster count against one
@@ -487,6 +503,7 @@ pub fn compare(
         gating_effects: parts.gating_effects,
         gating_tests: parts.gating_tests,
         three_step: parts.three_step,
+        outcomes: parts.outcomes,
         direct_effects: inference.screen.to_vec(),
         cluster_count_tests: inference.cluster_tests.to_vec(),
         component_effects: parts.component_effects,

@@ -2,7 +2,9 @@
 //! profiles, certainty, gating effects (with the effect curves), three-step estimates,
 //! component effects and how its standard errors were obtained.
 
-use super::{ComponentEffect, EffectCurve, GatingEffect, GatingTest, InferenceNote, Profile, ThreeStepEffect};
+use super::{
+    ComponentEffect, EffectCurve, GatingEffect, GatingTest, InferenceNote, OutcomeComparison, Profile, ThreeStepEffect,
+};
 use crate::data::{Dataset, Design};
 use crate::fit::{FitResult, PreparedPlacement};
 use crate::inference::FitInference;
@@ -20,6 +22,7 @@ pub struct Parts {
     pub certainty: Vec<(String, Vec<f64>)>,
     pub gating_tests: Vec<GatingTest>,
     pub three_step: Vec<ThreeStepEffect>,
+    pub outcomes: Vec<OutcomeComparison>,
     pub component_effects: Vec<ComponentEffect>,
     pub inference_notes: Vec<InferenceNote>,
 }
@@ -63,6 +66,15 @@ impl Parts {
                             effect: effect.clone(),
                         }),
                 );
+        }
+        if let Some(fi) = inference {
+            self.outcomes
+                .extend(fi.outcomes.iter().map(|(name, r)| OutcomeComparison {
+                    placement: f.placement.clone(),
+                    outcome: name.clone(),
+                    comparison: r.as_ref().ok().map(|e| crate::inference::outcomes::record(e, aligned)),
+                    unavailable: r.as_ref().err().cloned(),
+                }));
         }
         self.add_sizes(data, f, aligned);
         let best = f.best.as_ref().expect("labelled fits have a best start");

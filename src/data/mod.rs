@@ -77,9 +77,23 @@ pub struct Dataset {
     pub exposure: Option<Arc<Exposure>>,
     /// Covariate columns by name.
     pub columns: BTreeMap<String, Column>,
+    /// Distal outcome columns by name (read only for fitting, never for scoring).
+    pub outcomes: BTreeMap<String, OutcomeColumn>,
     /// What the reader noticed and the user should hear of (levels that differ only in
     /// case); the run goes on.
     pub warnings: Vec<String>,
+}
+
+/// A distal outcome over the kept rows. A row missing it stays in every fit; it is left out
+/// of that outcome's comparison only.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutcomeColumn {
+    /// Continuous, binary or count.
+    pub kind: VariableType,
+    /// Values of the kept rows, NaN where missing.
+    pub values: Vec<f64>,
+    /// Kept rows missing it.
+    pub missing: usize,
 }
 
 /// The indicators of one family, stored as the family's [`Layout`] says.
@@ -312,6 +326,8 @@ enum Role {
     Stratum,
     /// `[study] psu`.
     Unit,
+    /// A placement's distal outcome.
+    Outcome,
 }
 
 struct Needed {
@@ -626,6 +642,7 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
         exposure: None,
         columns: BTreeMap::new(),
     };
+    let mut outcomes = BTreeMap::new();
     let (mut strata, mut units) = (None, None);
     for (k, nd) in needed.iter().enumerate() {
         match nd.role {
@@ -638,6 +655,30 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
                 } else {
                     units = coded;
                 }
+            }
+            Role::Outcome => {
+                let kept = kept_cells(&lines, &cells[k], &keep);
+                let present = kept.clone().filter_map(|(l, c)| c.map(|c| (l, c)));
+                let count = present.clone().count();
+                let Column::Numeric { values, .. } = parse_numbers(raw, nd, &nd.kind, present, count)? else {
+                    unreachable!("an outcome is numeric")
+                };
+                let mut read = values.into_iter();
+                let values: Vec<f64> = kept
+                    .map(|(_, c)| match c {
+                        Some(_) => read.next().expect("a value per present cell"),
+                        None => f64::NAN,
+                    })
+                    .collect();
+                let missing = rows_used - count;
+                outcomes.insert(
+                    nd.col.name.clone(),
+                    OutcomeColumn {
+                        kind: nd.kind.clone(),
+                        values,
+                        missing,
+                    },
+                );
             }
             Role::Indicator(set, j) if study.blocks[set].family.layout == Layout::Levels => {
                 let (levels, codes) = parse_item(raw, study, nd, &lines, &cells[k], &keep, purpose)?;
@@ -681,6 +722,7 @@ fn assemble(study: &Study, raw: &Raw, sha256: String, read: ReadCells, purpose: 
         indicator_sets: study.blocks.iter().zip(sets).map(|(b, s)| s.finish(b)).collect(),
         exposure: parsed.exposure.map(Arc::new),
         columns: parsed.columns,
+        outcomes,
         warnings,
     })
 }
@@ -794,6 +836,9 @@ fn rows_to_keep(
                     )
                     .help("check the column in the data file, or leave it out of the spec"),
             ));
+        }
+        if nd.role == Role::Outcome {
+            continue; // missing only in its own comparison
         }
         if nd.role != Role::Id {
             missing_by_column.push((nd.col.name.clone(), missing));
@@ -1011,8 +1056,8 @@ impl Parsed {
             Role::Covariate => {
                 self.columns.insert(nd.col.name.clone(), column);
             }
-            Role::Id | Role::Indicator(..) | Role::Stratum | Role::Unit => {
-                unreachable!("ids, indicators and the survey design are kept elsewhere")
+            Role::Id | Role::Indicator(..) | Role::Stratum | Role::Unit | Role::Outcome => {
+                unreachable!("ids, indicators, outcomes and the survey design are kept elsewhere")
             }
         }
         Ok(())
@@ -1064,7 +1109,17 @@ fn needed_columns(study: &Study, header: &[String], purpose: Purpose) -> Result<
         })
     };
     let mut add = |c: &ColumnRef, role: Role| -> Result<()> {
-        if out.iter().any(|n| n.col.name == c.name) {
+        if let Some(n) = out.iter().find(|n| n.col.name == c.name) {
+            if (role == Role::Outcome) != (n.role == Role::Outcome) {
+                return Err(Error::input(
+                    study
+                        .error_at(
+                            c.span.clone(),
+                            format!("'{}' is a covariate of one placement and a distal outcome of another", c.name),
+                        )
+                        .help("a row missing a covariate leaves every fit, a row missing an outcome only that outcome's comparison; copy the column under a second name for the other use"),
+                ));
+            }
             return Ok(());
         }
         let index = find(c)?;
@@ -1073,9 +1128,10 @@ fn needed_columns(study: &Study, header: &[String], purpose: Purpose) -> Result<
             Role::Weight | Role::Exposure => VariableType::Continuous,
             Role::Stratum | Role::Unit => VariableType::Categorical { reference: None, levels: None },
             _ => study.variable_type(&c.name).ok_or_else(|| {
+                let what = if role == Role::Outcome { "distal outcome" } else { "covariate" };
                 Error::input(
                     study
-                        .error_at(c.span.clone(), format!("covariate '{}' has no type in [variables]", c.name))
+                        .error_at(c.span.clone(), format!("{what} '{}' has no type in [variables]", c.name))
                         .help(format!(
                             "add {0} = \"continuous\" (or \"binary\", \"count\", {{ type = \"categorical\", reference = \"...\" }}) under [variables]",
                             c.name
@@ -1083,6 +1139,13 @@ fn needed_columns(study: &Study, header: &[String], purpose: Purpose) -> Result<
                 )
             })?,
         };
+        if role == Role::Outcome && matches!(kind, VariableType::Categorical { .. }) {
+            return Err(Error::input(
+                study
+                    .error_at(c.span.clone(), format!("distal outcome '{}' is categorical", c.name))
+                    .help("an outcome is continuous, binary (0/1) or a count; for a categorical one, make a 0/1 column per level and list those"),
+            ));
+        }
         out.push(Needed {
             col: c.clone(),
             index,
@@ -1117,6 +1180,11 @@ fn needed_columns(study: &Study, header: &[String], purpose: Purpose) -> Result<
     }
     for c in study.all_covariates() {
         add(c, Role::Covariate)?;
+    }
+    if purpose == Purpose::Fit {
+        for o in study.all_outcomes() {
+            add(o, Role::Outcome)?;
+        }
     }
     Ok(out)
 }

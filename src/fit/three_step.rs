@@ -226,7 +226,12 @@ pub fn estimate(
 
 /// The classification-error matrix D[s][t] = P(assigned t | cluster s) from the
 /// posteriors and the assignments, and the share misclassified, 1 − Σ_s N_s D[s][s] / N.
-fn classification(tau: &[f64], g: usize, weights: &[f64], assigned: &[usize]) -> Result<(Vec<Vec<f64>>, f64), String> {
+pub fn classification(
+    tau: &[f64],
+    g: usize,
+    weights: &[f64],
+    assigned: &[usize],
+) -> Result<(Vec<Vec<f64>>, f64), String> {
     let mut d = vec![vec![0.0; g]; g];
     let mut size = vec![0.0; g];
     for ((row, c), t) in tau.chunks_exact(g).zip(weights).zip(assigned) {

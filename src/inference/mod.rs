@@ -18,6 +18,7 @@
 pub mod chart;
 pub mod cluster_test;
 pub mod effects;
+pub mod outcomes;
 pub mod screen;
 pub mod step_three;
 
@@ -470,20 +471,75 @@ pub fn for_fits(
             let best = f.best.as_ref().filter(|_| which.contains(&i))?;
             let label = format!("{}|{}|{}", f.placement, f.clusters, f.covariance());
             let pp = &prepared[f.placement_index];
-            let (uncertainty, step_three_errors) = match &f.step_three {
-                None => (
-                    uncertainty(&best.run.model, &best.run.tau, data, pp, &settings, &label),
-                    None,
-                ),
-                Some(Err(reason)) => (Err(format!("step 3 failed: {reason}")), None),
+            let (model, tau) = (&best.run.model, &best.run.tau);
+            let analytic_v1 = settings.method != ErrorMethod::Bootstrap && !pp.placement.outcomes.is_empty();
+            // V₁: the covariance of the fitted model's chart coordinates, which the outcomes'
+            // errors need for step 1's part.
+            let (uncertainty, step_three_errors, v1) = match &f.step_three {
+                None if analytic_v1 => {
+                    let fd = fit_data(data, pp);
+                    let reported = |m: &Model| named_parameters(m, pp);
+                    match Chart::new(model)
+                        .and_then(|chart| analytic(&chart, reported(model), &fd, &reported, &settings))
+                    {
+                        Ok((u, v1)) => (Ok(u), None, Some(v1)),
+                        Err(e) => (Err(e), None, None),
+                    }
+                }
+                None => (uncertainty(model, tau, data, pp, &settings, &label), None, None),
+                Some(Err(reason)) => (Err(format!("step 3 failed: {reason}")), None, None),
                 Some(Ok(st)) => match three_step_uncertainty(best, data, f, st, pp, &settings, &label) {
-                    Ok((u, errors)) => (Ok(u), errors),
-                    Err(e) => (Err(e), None),
+                    Ok((u, errors, v1)) => (Ok(u), errors, v1),
+                    Err(e) => (Err(e), None, None),
                 },
             };
             let mut inference = FitInference::new(uncertainty, &study.inference.per, pp.reported_design(f));
             inference.step_three_errors = step_three_errors;
+            inference.outcomes = fit_outcomes(data, pp, model, tau, v1.as_ref(), &settings, &label);
             Some(inference)
+        })
+        .collect()
+}
+
+/// Every distal outcome of a fit's placement compared across its clusters (see
+/// [`outcomes`]); `v1`, the covariance of the model's chart coordinates, gives analytic
+/// errors step 1's part.
+fn fit_outcomes(
+    data: &Dataset,
+    pp: &PreparedPlacement,
+    model: &Model,
+    tau: &[f64],
+    v1: Option<&DMatrix<f64>>,
+    settings: &InferenceSettings,
+    label: &str,
+) -> Vec<(String, Result<outcomes::OutcomeEstimate, String>)> {
+    if pp.placement.outcomes.is_empty() {
+        return Vec::new();
+    }
+    let fd = fit_data(data, pp);
+    let chart = v1.and_then(|_| Chart::new(model).ok());
+    let step_one = outcomes::StepOne {
+        model,
+        tau,
+        fd: &fd,
+        chart: chart.as_ref().zip(v1),
+    };
+    pp.placement
+        .outcomes
+        .iter()
+        .map(|o| {
+            let column = &data.outcomes[&o.name];
+            let kind = outcomes::OutcomeKind::of(&column.kind).expect("outcomes are not categorical");
+            let od = outcomes::OutcomeData {
+                kind,
+                y: &column.values,
+                weights: fd.weights,
+                weight_type: settings.weight_type,
+                survey: settings.survey.as_deref(),
+            };
+            let result =
+                outcomes::compare_outcome(&o.name, pp.placement.outcome_method, &od, &step_one, settings, label);
+            (o.name.clone(), result)
         })
         .collect()
 }
@@ -499,6 +555,10 @@ pub struct StepThreeErrors {
     pub largest_increase: f64,
 }
 
+/// A three-step fit's uncertainty, how its step-3 errors include step 1, and the covariance
+/// V₁ of step 1's chart coordinates (None with bootstrap errors).
+type ThreeStepUncertainty = (Uncertainty, Option<StepThreeErrors>, Option<DMatrix<f64>>);
+
 /// A three-step fit's uncertainty with step 1's part in the step-3 coefficients' errors
 /// (see [`step_three`]). When step 1's part cannot be computed (a moved step 1 whose step 3
 /// does not converge), the step-3 errors are step 3's own and no [`StepThreeErrors`] says
@@ -511,7 +571,7 @@ fn three_step_uncertainty(
     pp: &PreparedPlacement,
     settings: &InferenceSettings,
     label: &str,
-) -> Result<(Uncertainty, Option<StepThreeErrors>), String> {
+) -> Result<ThreeStepUncertainty, String> {
     let design = pp
         .step_three
         .as_ref()
@@ -520,7 +580,7 @@ fn three_step_uncertainty(
     let reported = |m: &Model| named_parameters(m, pp);
     let (model, tau) = (&best.run.model, &best.run.tau);
     let bootstrap = settings.method == ErrorMethod::Bootstrap;
-    let (measurement, gating) = if bootstrap {
+    let (measurement, gating, v1) = if bootstrap {
         let (measurement, gating, used) =
             step_three::bootstrap(model, tau, &fd, st, design, &reported, settings, label)?;
         let u = Uncertainty {
@@ -529,14 +589,14 @@ fn three_step_uncertainty(
             covariance: measurement,
             replicates: Some((used, settings.replicates)),
         };
-        (u, gating)
+        (u, gating, None)
     } else {
         // Step 1's coordinates and their covariance serve both its own errors and C V₁ C′.
         let chart = Chart::new(model)?;
         let (u, v1) = analytic(&chart, reported(model), &fd, &reported, settings)?;
         match step_three::step_one_part(&chart, &v1, tau, &fd, st, design) {
-            Ok(part) => (u, &st.covariance + part),
-            Err(_) => return Ok((with_step_three(u, f, st, &st.covariance, pp), None)),
+            Ok(part) => (u, &st.covariance + part, Some(v1)),
+            Err(_) => return Ok((with_step_three(u, f, st, &st.covariance, pp), None, Some(v1))),
         }
     };
     let largest_increase = (0..gating.nrows())
@@ -546,7 +606,7 @@ fn three_step_uncertainty(
         bootstrap,
         largest_increase,
     };
-    Ok((with_step_three(measurement, f, st, &gating, pp), Some(errors)))
+    Ok((with_step_three(measurement, f, st, &gating, pp), Some(errors), v1))
 }
 
 /// A fit's standard errors and what is computed from them once: every covariate effect
@@ -561,6 +621,8 @@ pub struct FitInference {
     pub gating_tests: Vec<effects::WaldTest>,
     /// Three-step fits: how the step-3 errors include step 1.
     pub step_three_errors: Option<StepThreeErrors>,
+    /// The placement's distal outcomes compared across the clusters, each or why not.
+    pub outcomes: Vec<(String, Result<outcomes::OutcomeEstimate, String>)>,
 }
 
 impl FitInference {
@@ -580,6 +642,7 @@ impl FitInference {
             effects,
             gating_tests,
             step_three_errors: None,
+            outcomes: Vec::new(),
         }
     }
 }

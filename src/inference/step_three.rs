@@ -21,7 +21,7 @@ use rayon::prelude::*;
 const STEP_ONE_STEP: f64 = 1e-4;
 
 /// The step-1 posteriors of `model` on `fd`.
-fn posteriors(model: &Model, fd: &FitData) -> Vec<f64> {
+pub(crate) fn posteriors(model: &Model, fd: &FitData) -> Vec<f64> {
     let mut tau = vec![0.0; fd.n * model.clusters()];
     e_step(model, fd, &mut tau, None);
     tau
@@ -40,6 +40,24 @@ pub fn step_one_part(
 ) -> Result<DMatrix<f64>, String> {
     let g = st.classification.len();
     let assigned = assignments(tau, g);
+    let re = |t: &[f64]| re_estimate(st.method, t, g, fd.weights, design, &assigned, &st.gamma);
+    through_step_one(chart, v1, fd, st.gamma.len(), &re)
+}
+
+/// Estimates again from moved step-1 posteriors, or why they could not be.
+pub type ReEstimate<'a> = dyn Fn(&[f64]) -> Result<Vec<f64>, String> + Sync + 'a;
+
+/// C V₁ C′ for any estimate that step 1 feeds: `re` gives the m estimates from step-1
+/// posteriors (the assignments of step 2 held as they are), and C is found by central
+/// differences of `re` along each coordinate of the step-1 model's `chart`, whose
+/// covariance is `v1`.
+pub fn through_step_one(
+    chart: &Chart,
+    v1: &DMatrix<f64>,
+    fd: &FitData,
+    m: usize,
+    re: &ReEstimate,
+) -> Result<DMatrix<f64>, String> {
     let p1 = chart.len();
     let columns: Vec<Result<Vec<f64>, String>> = (0..p1)
         .into_par_iter()
@@ -49,14 +67,12 @@ pub fn step_one_part(
                 let mut theta = vec![0.0; p1];
                 theta[j] = x;
                 let moved = chart.model(&theta).map_err(|e| e.reason)?;
-                let t = posteriors(&moved, fd);
-                re_estimate(st.method, &t, g, fd.weights, design, &assigned, &st.gamma)
+                re(&posteriors(&moved, fd))
             };
             let (up, down) = (at(h)?, at(-h)?);
             Ok(up.iter().zip(&down).map(|(a, b)| (a - b) / (2.0 * h)).collect())
         })
         .collect();
-    let m = st.gamma.len();
     let mut c = DMatrix::zeros(m, p1);
     for (j, column) in columns.into_iter().enumerate() {
         for (i, v) in column?.into_iter().enumerate() {
@@ -64,7 +80,7 @@ pub fn step_one_part(
         }
     }
     if c.iter().any(|v| !v.is_finite()) {
-        return Err("step 3 does not change smoothly with the step-1 parameters".to_string());
+        return Err("the estimates do not change smoothly with the step-1 parameters".to_string());
     }
     Ok(&c * v1 * c.transpose())
 }

@@ -13,8 +13,9 @@ use crate::spec::Study;
 use serde::Serialize;
 
 /// Version of the `results.json` layout (4: `newton_steps_failed` per fit; 5: every
-/// cluster by its number in the run's files, with its place in the fit beside it).
-pub const SCHEMA_VERSION: u32 = 6;
+/// cluster by its number in the run's files, with its place in the fit beside it; 6: declared
+/// weight types and the statistics that follow them; 7: distal outcomes per fit).
+pub const SCHEMA_VERSION: u32 = 7;
 
 fn is_zero(n: &usize) -> bool {
     *n == 0
@@ -232,6 +233,22 @@ pub struct FitRecord {
     /// misclassified (the gating parameters above are the step-3 estimates).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub step_three: Option<StepThreeRecord>,
+    /// The placement's distal outcomes compared across this fit's clusters (compared fits
+    /// only), each with its estimates or why there are none.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub outcomes: Vec<OutcomeEntry>,
+}
+
+/// A distal outcome compared across a fit's clusters, or why it could not be.
+#[derive(Debug, Serialize, schemars::JsonSchema)]
+pub struct OutcomeEntry {
+    /// The outcome column.
+    pub outcome: String,
+    /// The comparison (null when it failed).
+    pub comparison: Option<crate::inference::outcomes::OutcomeRecord>,
+    /// Why it failed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unavailable: Option<String>,
 }
 
 /// One cluster's share.
@@ -570,6 +587,16 @@ fn fit_record(
             .as_ref()
             .and_then(|r| r.as_ref().ok())
             .map(|st| StepThreeRecord::numbered(st, numbers, by_fit.and_then(|i| i.step_three_errors.as_ref()))),
+        outcomes: by_fit.map_or_else(Vec::new, |i| {
+            i.outcomes
+                .iter()
+                .map(|(name, r)| OutcomeEntry {
+                    outcome: name.clone(),
+                    comparison: r.as_ref().ok().map(|e| crate::inference::outcomes::record(e, numbers)),
+                    unavailable: r.as_ref().err().cloned(),
+                })
+                .collect()
+        }),
     }
 }
 

@@ -416,6 +416,10 @@ fn html_effects(s: &mut String, c: &Comparison, find: &Find) {
         s.push_str("<h3>Three-step estimates</h3>");
         html_table(s, t);
     }
+    if let Some(t) = find(TableId::Outcomes) {
+        s.push_str("<h2>Distal outcomes by cluster</h2>");
+        html_table(s, t);
+    }
     if let Some(t) = find(TableId::DirectEffects) {
         s.push_str("<h2>Direct effects left out</h2>");
         html_table(s, t);

@@ -58,6 +58,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
     gating_table(c, &placements, &mut out);
     gating_tests_table(c, &mut out);
     three_step_table(c, &mut out);
+    outcomes_table(c, &mut out);
     count_tests_table(c, &mut out);
     screen_table(c, &mut out);
     component_table(c, &placements, &mut out);
@@ -290,6 +291,86 @@ fn three_step_table(c: &Comparison, out: &mut Vec<Table>) {
                 .collect(),
         });
     }
+}
+
+/// Distal outcomes per cluster, against cluster 1, and the joint test.
+fn outcomes_table(c: &Comparison, out: &mut Vec<Table>) {
+    if c.outcomes.is_empty() {
+        return;
+    }
+    let mut rows = Vec::new();
+    for o in &c.outcomes {
+        let r = match (&o.comparison, &o.unavailable) {
+            (Some(r), _) => r,
+            (None, why) => {
+                let why = why.as_deref().unwrap_or("no reason recorded");
+                rows.push(vec![
+                    o.placement.clone(),
+                    o.outcome.clone(),
+                    "–".into(),
+                    "–".into(),
+                    format!("not available: {why}"),
+                    "–".into(),
+                    "–".into(),
+                    "–".into(),
+                ]);
+                continue;
+            }
+        };
+        let digits = if r.kind == crate::inference::outcomes::OutcomeKind::Binary {
+            3
+        } else {
+            2
+        };
+        let fmt = |x: f64| format!("{x:.digits$}");
+        let joint = match (r.joint_statistic, r.joint_p_value) {
+            (Some(w), Some(p)) => format!("χ² {w:.2} ({} df), p {}", r.joint_df, p_value(p)),
+            _ => "–".into(),
+        };
+        for (i, k) in r.clusters.iter().enumerate() {
+            let interval = k.lower.zip(k.upper).map(|(a, b)| (fmt(a), fmt(b)));
+            let (versus, p) = match i.checked_sub(1).and_then(|j| r.contrasts.get(j)) {
+                None => ("reference".to_string(), String::new()),
+                Some(ct) => match ct.estimate {
+                    Some(e) => {
+                        let show = |x: f64| {
+                            if r.kind == crate::inference::outcomes::OutcomeKind::Continuous {
+                                format!("{x:.2}")
+                            } else {
+                                ratio(x)
+                            }
+                        };
+                        (
+                            with_interval(show(e), ct.lower.zip(ct.upper).map(|(a, b)| (show(a), show(b)))),
+                            ct.p_value.map_or_else(String::new, p_value),
+                        )
+                    }
+                    None => ("–".into(), String::new()),
+                },
+            };
+            rows.push(vec![
+                o.placement.clone(),
+                o.outcome.clone(),
+                format!(
+                    "{} ({}, {} rows)",
+                    r.estimate,
+                    r.method.word().to_uppercase(),
+                    r.rows_used
+                ),
+                format!("cluster {}", k.cluster),
+                with_interval(fmt(k.estimate), interval),
+                versus,
+                p,
+                if i == 0 { joint.clone() } else { String::new() },
+            ]);
+        }
+    }
+    out.push(Table {
+        id: TableId::Outcomes,
+        note: "Outcomes that are in no model, compared across each placement's compared clusters: each row assigned to its most likely cluster, and the outcome's mean, risk or mean count per cluster corrected for the assignment errors (BCH: Bolck, Croon & Hagenaars 2004, Bakk & Vermunt 2016; ML: Vermunt 2010), with 95% intervals that include the uncertainty of the fitted clusters (Bakk, Oberski & Vermunt 2014). Each cluster is set against cluster 1 (a difference for a continuous outcome, a ratio of risks or of mean counts otherwise); the joint test asks whether the outcome is the same in every cluster. An association, not an effect of membership: the clusters were not assigned at random.".into(),
+        header: ["placement", "outcome", "estimate", "cluster", "estimate (95% CI)", "against cluster 1 (95% CI)", "p", "all clusters equal"].iter().map(|s| s.to_string()).collect(),
+        rows,
+    });
 }
 
 /// Bootstrap tests of the cluster counts.

@@ -26,6 +26,7 @@ pub fn table_name(t: &TableId) -> String {
         TableId::GatingEffects => "gating effects table".into(),
         TableId::GatingTests => "gating tests table".into(),
         TableId::ThreeStep => "three-step table".into(),
+        TableId::Outcomes => "distal outcomes table".into(),
         TableId::ClusterCountTests => "cluster count test table".into(),
         TableId::DirectEffects => "direct-effect screen table".into(),
         TableId::ComponentEffects => "component effects table".into(),

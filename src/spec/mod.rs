@@ -214,7 +214,30 @@ pub struct Placement {
     pub acts_on: BTreeMap<String, Vec<String>>,
     /// How the gating effects are estimated.
     pub method: Method,
+    /// Distal outcomes compared across the clusters (not part of any model).
+    pub outcomes: Vec<ColumnRef>,
+    /// How the distal outcomes are compared.
+    pub outcome_method: OutcomeMethod,
 }
+
+/// How a placement compares distal outcomes across its clusters, both correcting for the
+/// errors of assigning rows to their most likely cluster.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, schemars::JsonSchema)]
+#[serde(rename_all = "kebab-case")]
+pub enum OutcomeMethod {
+    /// Weighted means with the inverse classification-error weights (Bolck, Croon &
+    /// Hagenaars 2004; Bakk & Vermunt 2016).
+    #[default]
+    Bch,
+    /// A mixture of the outcome's distributions with the classification errors as known
+    /// cluster densities (Vermunt 2010).
+    Ml,
+}
+
+words!(OutcomeMethod {
+    Bch => "bch",
+    Ml => "ml",
+});
 
 /// How a placement estimates its gating effects.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, schemars::JsonSchema)]
@@ -416,6 +439,17 @@ impl Study {
             .filter(|b| b.family.reads(key))
             .flat_map(|b| &b.columns)
             .collect()
+    }
+
+    /// Every distal outcome of any placement, in first-use order, without repeats.
+    pub fn all_outcomes(&self) -> Vec<&ColumnRef> {
+        let mut seen: Vec<&ColumnRef> = Vec::new();
+        for o in self.placements.iter().flat_map(|p| &p.outcomes) {
+            if !seen.iter().any(|s| s.name == o.name) {
+                seen.push(o);
+            }
+        }
+        seen
     }
 
     /// Every covariate used by any placement, in first-use order, without repeats.
@@ -1073,6 +1107,8 @@ fn placements(
             clusters_span: default_span.clone(),
             acts_on: BTreeMap::new(),
             method: Method::OneStep,
+            outcomes: Vec::new(),
+            outcome_method: OutcomeMethod::Bch,
         });
     }
     for p in raw {
@@ -1111,6 +1147,18 @@ fn special_columns(
                         format!("'{}' is the {} column and cannot be a covariate", c.name, special.key),
                     )
                     .help("remove it from the placement's covariate lists"),
+                ));
+            }
+            if let Some(o) = p.outcomes.iter().find(|o| o.name == special.name) {
+                return Err(Error::input(
+                    ctx.err(
+                        o.span.clone(),
+                        format!(
+                            "'{}' is the {} column and cannot be a distal outcome",
+                            o.name, special.key
+                        ),
+                    )
+                    .help("remove it from the placement's outcomes"),
                 ));
             }
         }
@@ -1733,6 +1781,7 @@ fn placement(
     }
     let acts_on = acts_on(ctx, r, &components, indicators, blocks)?;
     let method = method(ctx, r.method.as_ref(), gating.is_empty())?;
+    let (outcomes, outcome_method) = outcomes(ctx, r, &gating, &components, indicators)?;
     Ok(Placement {
         name,
         gating,
@@ -1742,7 +1791,61 @@ fn placement(
         clusters_span,
         acts_on,
         method,
+        outcomes,
+        outcome_method,
     })
+}
+
+/// `outcomes = [...]` and `outcome_method`: distal outcomes are neither indicators nor
+/// covariates of the placement (they are compared across its clusters, not modelled).
+fn outcomes(
+    ctx: &Ctx,
+    r: &RawPlacement,
+    gating: &[ColumnRef],
+    components: &[ColumnRef],
+    indicators: &[ColumnRef],
+) -> Result<(Vec<ColumnRef>, OutcomeMethod)> {
+    let outcomes = column_list(&r.outcomes, "[placement].outcomes");
+    check_unique(ctx, &outcomes)?;
+    for o in &outcomes {
+        if indicators.iter().any(|i| i.name == o.name) {
+            return Err(Error::input(
+                ctx.err(
+                    o.span.clone(),
+                    format!("'{}' is an indicator and cannot also be a distal outcome", o.name),
+                )
+                .help("an outcome is compared across the clusters the indicators define; list it under outcomes or under the indicators, not both"),
+            ));
+        }
+        if gating.iter().chain(components).any(|c| c.name == o.name) {
+            return Err(Error::input(
+                ctx.err(
+                    o.span.clone(),
+                    format!("'{}' is a covariate of this placement and cannot also be its distal outcome", o.name),
+                )
+                .help("an outcome is what the clusters may predict, a covariate what may predict them; remove it from one list"),
+            ));
+        }
+    }
+    let method = match &r.outcome_method {
+        None => OutcomeMethod::Bch,
+        Some(m) => {
+            if outcomes.is_empty() {
+                return Err(Error::input(
+                    ctx.err(m.span(), "outcome_method is set, but this placement lists no outcomes")
+                        .help("add outcomes = [\"column\", ...], or remove outcome_method"),
+                ));
+            }
+            choose(
+                ctx,
+                m.span(),
+                m.get_ref(),
+                format!("unknown outcome method '{}'", m.get_ref()),
+                listed("use one of: "),
+            )?
+        }
+    };
+    Ok((outcomes, method))
 }
 
 /// `acts_on = { covariate = ["indicator", ...] }`: each key a component covariate of the

@@ -212,4 +212,8 @@ pub struct RawPlacement {
     /// Which indicators a component covariate acts on, e.g. `{ age = ["cough", "wheeze"] }`;
     /// a covariate not named here acts on every indicator.
     pub acts_on: Option<Spanned<BTreeMap<String, SList>>>,
+    /// Distal outcome columns compared across the clusters.
+    pub outcomes: Option<SList>,
+    /// How the outcomes are compared: `bch` (default) or `ml`.
+    pub outcome_method: Option<SStr>,
 }

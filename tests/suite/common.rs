@@ -84,6 +84,8 @@ pub fn free_placement() -> cohortmix::spec::Placement {
         clusters_span: 0..0,
         acts_on: Default::default(),
         method: Default::default(),
+        outcomes: vec![],
+        outcome_method: Default::default(),
     }
 }
 

@@ -12,6 +12,7 @@ pub mod faults;
 pub mod inference;
 pub mod layers;
 pub mod numbering;
+pub mod outcomes;
 pub mod properties;
 pub mod recovery;
 pub mod reference;
