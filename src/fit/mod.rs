@@ -207,6 +207,7 @@ pub fn step_three_of(
         (Some(design), Some(b)) if g > 1 => Some(three_step::estimate(
             prepared.placement.method,
             &b.run.tau,
+            &three_step::log_shares(&b.run.model),
             g,
             weights,
             weight_type,

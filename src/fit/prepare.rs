@@ -131,7 +131,7 @@ pub fn prepare_placement(
         }
     };
     let covariates = design_on(p.gating.iter().collect())?;
-    if p.method.is_three_step() {
+    if p.method.is_stepwise() {
         let gating = design_on(Vec::new())?;
         let mut pp = assemble(data, p, gating, components, families);
         pp.step_three = Some(covariates);

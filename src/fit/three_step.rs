@@ -13,7 +13,13 @@
 //!   cluster densities D[s][W_i] are known; EM with a full logit M-step. Standard errors:
 //!   the inverse observed information of that likelihood.
 //!
-//! Both treat D as known, so the covariance computed here leaves out the step-1
+//! - **Two-step** (Bakk & Kuha 2018): maximise Σ_i c_i log Σ_s π_s(w_i; γ) f_s(y_i), the
+//!   full likelihood with the cluster models f_s held at step 1 (no assignments). Since
+//!   step 1's posteriors are τ_is ∝ π̂_s f_s(y_i), log f_s(y_i) = log τ_is − log π̂_s up to a
+//!   constant per row, which changes neither the estimate nor its information; so this is
+//!   the ML step with those in place of log D[s][W_i]. Standard errors as for ML.
+//!
+//! All three treat step 1 as known, so the covariance computed here leaves out the step-1
 //! uncertainty and is too small (in our simulations its 95% intervals covered 92–93%);
 //! the inference step adds step 1's part (`inference::step_three`, after Bakk, Oberski &
 //! Vermunt 2014). Under sampling weights the ML step's covariance is a sandwich too.
@@ -38,7 +44,7 @@ const ML_STEP: f64 = 1e-5;
 /// The outcome of step 3.
 #[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
 pub struct StepThree {
-    /// BCH or ML.
+    /// BCH, ML or two-step.
     pub method: Method,
     /// D[s][t] = P(assigned to t | cluster s).
     pub classification: Vec<Vec<f64>>,
@@ -84,6 +90,13 @@ fn logit_rows<'a>(design: &'a Design, tau: &'a [f64], g: usize, weights: &'a [f6
     }
 }
 
+/// The log shares of a step-1 model (estimated proportions, no gating covariates).
+pub fn log_shares(model: &crate::model::Model) -> Vec<f64> {
+    let mut out = vec![0.0; model.clusters()];
+    model.gating.log_priors(&[], &mut out);
+    out
+}
+
 /// Step 2: each row's most likely cluster under the step-1 posteriors `tau` (n×g).
 pub fn assignments(tau: &[f64], g: usize) -> Vec<usize> {
     tau.chunks_exact(g).map(most_likely).collect()
@@ -99,9 +112,11 @@ struct Corrected {
     converged: bool,
 }
 
+#[allow(clippy::too_many_arguments)] // step 1's posteriors and shares, and step 3's data
 fn corrected(
     method: Method,
     tau: &[f64],
+    log_pi: &[f64],
     g: usize,
     weights: &[f64],
     design: &Design,
@@ -120,11 +135,17 @@ fn corrected(
     }
     let bch_fit = fit_multinomial_logit(&logit_rows(design, &bch, g, weights), start, MAX_NEWTON_ITERATIONS);
     let out = match method {
-        Method::ThreeStepMl => {
-            let log_d: Vec<f64> = assigned
-                .iter()
-                .flat_map(|t| (0..g).map(|s| d[s][*t].max(f64::MIN_POSITIVE).ln()).collect::<Vec<_>>())
-                .collect();
+        Method::ThreeStepMl | Method::TwoStep => {
+            let log_d: Vec<f64> = if method == Method::TwoStep {
+                tau.chunks_exact(g)
+                    .flat_map(|row| (0..g).map(|s| row[s].max(f64::MIN_POSITIVE).ln() - log_pi[s]))
+                    .collect()
+            } else {
+                assigned
+                    .iter()
+                    .flat_map(|t| (0..g).map(|s| d[s][*t].max(f64::MIN_POSITIVE).ln()))
+                    .collect()
+            };
             let from = if bch_fit.gamma.iter().all(|v| v.is_finite()) {
                 bch_fit.gamma
             } else {
@@ -153,31 +174,35 @@ fn corrected(
     Ok((out, d, misclassified))
 }
 
-/// Step 3's corrected coefficients again, from other step-1 posteriors `tau` and
-/// assignments (for the step-1 correction of the standard errors and the bootstrap),
-/// starting from `start`; an error when the step-3 optimiser did not converge.
+/// Step 3's corrected coefficients again, from other step-1 posteriors `tau`, log shares
+/// `log_pi` and assignments (for the step-1 correction of the standard errors and the
+/// bootstrap), starting from `start`; an error when the step-3 optimiser did not converge.
+#[allow(clippy::too_many_arguments)] // step 1's posteriors and shares, and step 3's data
 pub fn re_estimate(
     method: Method,
     tau: &[f64],
+    log_pi: &[f64],
     g: usize,
     weights: &[f64],
     design: &Design,
     assigned: &[usize],
     start: &[f64],
 ) -> Result<Vec<f64>, String> {
-    let (c, _, _) = corrected(method, tau, g, weights, design, assigned, start)?;
+    let (c, _, _) = corrected(method, tau, log_pi, g, weights, design, assigned, start)?;
     if !c.converged || c.gamma.iter().any(|v| !v.is_finite()) {
         return Err("step 3 did not converge".to_string());
     }
     Ok(c.gamma)
 }
 
-/// Step 2 and 3 from step-1 posteriors `tau` (n×g), case weights (and what they mean) and
-/// the covariate design. The covariance is step 3's own (step 1 taken as known); the
-/// inference step adds step 1's part.
+/// Step 2 and 3 from step-1 posteriors `tau` (n×g) and log shares `log_pi`, case weights
+/// (and what they mean) and the covariate design. The covariance is step 3's own (step 1
+/// taken as known); the inference step adds step 1's part.
+#[allow(clippy::too_many_arguments)] // step 1's posteriors and shares, and step 3's data
 pub fn estimate(
     method: Method,
     tau: &[f64],
+    log_pi: &[f64],
     g: usize,
     weights: &[f64],
     weight_type: Option<WeightType>,
@@ -197,7 +222,7 @@ pub fn estimate(
     let (_, _, h) = logit_score_hessian(w, p, &onehot, g, weights, 0.0, &naive.gamma);
     let naive_covariance = information_covariance(&h)?;
 
-    let (c, d, misclassified) = corrected(method, tau, g, weights, design, &assigned, &naive.gamma)?;
+    let (c, d, misclassified) = corrected(method, tau, log_pi, g, weights, design, &assigned, &naive.gamma)?;
     let h = match &c.log_d {
         Some(log_d) => ml_hessian(w, p, log_d, g, weights, &c.gamma),
         None => logit_score_hessian(w, p, &c.targets, g, weights, 0.0, &c.gamma).2,

@@ -600,8 +600,8 @@ pub fn compare_outcome(
     } else {
         let own = own_covariance(&f, data)?;
         let part = step_one.chart.and_then(|(chart, v1)| {
-            let re = |t: &[f64]| values(method, data, t, g, &assigned);
-            through_step_one(chart, v1, step_one.fd, g, &re).ok()
+            let re = |moved: &Model| values(method, data, &posteriors(moved, step_one.fd), g, &assigned);
+            through_step_one(chart, v1, g, &re).ok()
         });
         match part {
             Some(part) => {

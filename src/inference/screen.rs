@@ -294,7 +294,7 @@ impl FitScreen<'_> {
             df,
             p_value,
             flagged: false,
-            step_three_covariate: placement.method.is_three_step() && placement.gating.iter().any(|x| x.name == c),
+            step_three_covariate: placement.method.is_stepwise() && placement.gating.iter().any(|x| x.name == c),
             design_effect,
             note,
         }

@@ -11,7 +11,7 @@
 use super::chart::Chart;
 use super::{bootstrap_draws, covariance_of, InferenceSettings};
 use crate::data::Design;
-use crate::fit::three_step::{assignments, re_estimate, StepThree};
+use crate::fit::three_step::{assignments, log_shares, re_estimate, StepThree};
 use crate::model::family::Parameter;
 use crate::model::{e_step, FitData, Model};
 use nalgebra::DMatrix;
@@ -40,24 +40,30 @@ pub fn step_one_part(
 ) -> Result<DMatrix<f64>, String> {
     let g = st.classification.len();
     let assigned = assignments(tau, g);
-    let re = |t: &[f64]| re_estimate(st.method, t, g, fd.weights, design, &assigned, &st.gamma);
-    through_step_one(chart, v1, fd, st.gamma.len(), &re)
+    let re = |moved: &Model| {
+        let t = posteriors(moved, fd);
+        re_estimate(
+            st.method,
+            &t,
+            &log_shares(moved),
+            g,
+            fd.weights,
+            design,
+            &assigned,
+            &st.gamma,
+        )
+    };
+    through_step_one(chart, v1, st.gamma.len(), &re)
 }
 
-/// Estimates again from moved step-1 posteriors, or why they could not be.
-pub type ReEstimate<'a> = dyn Fn(&[f64]) -> Result<Vec<f64>, String> + Sync + 'a;
+/// Estimates again from a moved step-1 model, or why they could not be.
+pub type ReEstimate<'a> = dyn Fn(&Model) -> Result<Vec<f64>, String> + Sync + 'a;
 
-/// C V₁ C′ for any estimate that step 1 feeds: `re` gives the m estimates from step-1
-/// posteriors (the assignments of step 2 held as they are), and C is found by central
+/// C V₁ C′ for any estimate that step 1 feeds: `re` gives the m estimates from a moved
+/// step-1 model (the assignments of step 2 held as they are), and C is found by central
 /// differences of `re` along each coordinate of the step-1 model's `chart`, whose
 /// covariance is `v1`.
-pub fn through_step_one(
-    chart: &Chart,
-    v1: &DMatrix<f64>,
-    fd: &FitData,
-    m: usize,
-    re: &ReEstimate,
-) -> Result<DMatrix<f64>, String> {
+pub fn through_step_one(chart: &Chart, v1: &DMatrix<f64>, m: usize, re: &ReEstimate) -> Result<DMatrix<f64>, String> {
     let p1 = chart.len();
     let columns: Vec<Result<Vec<f64>, String>> = (0..p1)
         .into_par_iter()
@@ -66,8 +72,7 @@ pub fn through_step_one(
             let at = |x: f64| -> Result<Vec<f64>, String> {
                 let mut theta = vec![0.0; p1];
                 theta[j] = x;
-                let moved = chart.model(&theta).map_err(|e| e.reason)?;
-                re(&posteriors(&moved, fd))
+                re(&chart.model(&theta).map_err(|e| e.reason)?)
             };
             let (up, down) = (at(h)?, at(-h)?);
             Ok(up.iter().zip(&down).map(|(a, b)| (a - b) / (2.0 * h)).collect())
@@ -105,7 +110,17 @@ pub fn bootstrap(
     let draws = bootstrap_draws(model, tau, fd, settings, label, &|refit, resampled| {
         let t = posteriors(refit, resampled);
         let assigned = assignments(&t, g);
-        let gamma = re_estimate(st.method, &t, g, resampled.weights, design, &assigned, &st.gamma).ok()?;
+        let gamma = re_estimate(
+            st.method,
+            &t,
+            &log_shares(refit),
+            g,
+            resampled.weights,
+            design,
+            &assigned,
+            &st.gamma,
+        )
+        .ok()?;
         gamma.iter().all(|v| v.is_finite()).then(|| {
             let mut values: Vec<f64> = reported(refit).into_iter().map(|p| p.value).collect();
             values.extend(gamma);

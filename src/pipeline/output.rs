@@ -275,7 +275,7 @@ pub struct NumberedEffect {
 /// Step 3 of a three-step placement, with its clusters by number.
 #[derive(Debug, Serialize, schemars::JsonSchema)]
 pub struct StepThreeRecord {
-    /// BCH or ML.
+    /// BCH, ML or two-step.
     pub method: crate::spec::Method,
     /// The cluster numbers of the classification matrix's rows and columns, in order.
     pub clusters: Vec<usize>,

@@ -252,17 +252,22 @@ pub enum Method {
     /// Fit the clusters without gating covariates, classify, then a multinomial logit
     /// whose likelihood includes the classification errors (Vermunt 2010).
     ThreeStepMl,
+    /// Fit the clusters without gating covariates, then the multinomial logit of the full
+    /// likelihood with the clusters' models held at that fit (Bakk & Kuha 2018).
+    TwoStep,
 }
 
 words!(Method {
     OneStep => "one-step",
     ThreeStepBch => "three-step-bch",
     ThreeStepMl => "three-step-ml",
+    TwoStep => "two-step",
 });
 
 impl Method {
-    /// Whether the gating effects come after the clusters are fixed.
-    pub fn is_three_step(&self) -> bool {
+    /// Whether the gating effects come after the clusters are fixed (three-step or
+    /// two-step).
+    pub fn is_stepwise(&self) -> bool {
         !matches!(self, Method::OneStep)
     }
 }
@@ -1206,7 +1211,7 @@ fn survey_design(
             .help("use weight_type = \"sampling\" for a survey's inverse selection probabilities, or remove strata and psu"),
         ));
     }
-    if let Some(p) = placements.iter().find(|p| p.method.is_three_step()) {
+    if let Some(p) = placements.iter().find(|p| p.method.is_stepwise()) {
         return Err(Error::input(
             ctx.err(
                 first.span(),
@@ -1716,7 +1721,7 @@ fn method(ctx: &Ctx, word: Option<&SStr>, no_gating: bool) -> Result<Method> {
         format!("unknown method '{}'", m.get_ref()),
         listed("use one of: "),
     )?;
-    if method.is_three_step() && no_gating {
+    if method.is_stepwise() && no_gating {
         return Err(Error::input(
             ctx.err(
                 m.span(),
