@@ -19,8 +19,9 @@ Examples:
   cohortmix check configs/demo.toml       validate the spec against its data, show the plan
   cohortmix fit configs/demo.toml         fit every placement and cluster count
   cohortmix compare configs/demo.toml     fit, then compare placements: report.html
-  cohortmix predict runs/demo new.csv      memberships of new rows under the fitted models
-  cohortmix simulate demo-data/respiratory-truth.toml
+  cohortmix predict runs/demo demo-data/respiratory.csv
+                                          memberships of rows under the fitted models
+  cohortmix simulate demo-data/respiratory-truth.toml --out my-cohort.csv
                                           write data drawn from a stated truth
 
 Exit status: 0 success, 2 bad spec, data or command line, 1 other failure.";
@@ -94,7 +95,7 @@ with a \"comparison\" section, besides models.csv, memberships.csv and manifest.
     /// Posterior memberships of new rows under the models a run folder saved (the fits its
     /// report compares; after `fit`, each placement's lowest-BIC fit).
     #[command(
-        after_help = "Example:\n  cohortmix predict runs/demo new-workers.csv --out new-memberships.csv\n\n\
+        after_help = "Example (after `cohortmix compare configs/demo.toml`):\n  cohortmix predict runs/demo demo-data/respiratory.csv --out scored.csv\n\n\
 The new data need the columns the study uses (indicators, covariates, id), coded as the\n\
 fitted data were; case weights are not needed. Rows missing a value the models need are\n\
 left out and counted. Output: the layout of memberships.csv."
@@ -112,14 +113,20 @@ left out and counted. Output: the layout of memberships.csv."
         wait: bool,
     },
     /// Write a CSV of data drawn from the truth a truth spec states (seeded).
-    #[command(after_help = "Example:\n  cohortmix simulate demo-data/respiratory-truth.toml\n\n\
-The truth spec format is described in docs/simulate.md.")]
+    #[command(
+        after_help = "Example:\n  cohortmix simulate demo-data/respiratory-truth.toml --out my-cohort.csv\n\n\
+The truth spec format is described in docs/simulate.md. An existing file is replaced only\n\
+with --force (or when it already holds exactly the rows drawn)."
+    )]
     Simulate {
         /// The truth spec (TOML).
         spec: PathBuf,
         /// Output CSV (overrides [simulation].output).
         #[arg(long, value_name = "FILE")]
         out: Option<PathBuf>,
+        /// Replace an existing output file that holds other rows.
+        #[arg(long)]
+        force: bool,
     },
 }
 
@@ -170,7 +177,7 @@ pub fn run(cli: Cli) -> Result<()> {
             wait,
             force,
         } => fit_command(&spec, out.as_deref(), Mode::Compare, fresh, OpenOptions { wait, force }),
-        Command::Simulate { spec, out } => simulate_command(&spec, out.as_deref()),
+        Command::Simulate { spec, out, force } => simulate_command(&spec, out.as_deref(), force),
         Command::Predict { run, data, out, wait } => predict_command(&run, &data, out.as_deref(), wait),
     }
 }
@@ -434,11 +441,24 @@ fn predict_command(run: &Path, data_path: &Path, out: Option<&Path>, wait: bool)
     Ok(())
 }
 
-fn simulate_command(spec_path: &Path, out: Option<&Path>) -> Result<()> {
+fn simulate_command(spec_path: &Path, out: Option<&Path>, force: bool) -> Result<()> {
     let truth = crate::simulate::load(spec_path)?;
     let dest = out.map_or_else(|| truth.output.clone(), Path::to_path_buf);
     crate::runfolder::check_output_file(&dest, &[spec_path])?;
     let sim = crate::simulate::generate(&truth);
+    match std::fs::read(&dest) {
+        Ok(existing) if existing == sim.csv.as_bytes() => {
+            println!("{} already holds exactly these rows; left as it was", dest.display());
+            return Ok(());
+        }
+        Ok(_) if !force => {
+            return Err(Error::input(
+                Diagnostic::new(format!("{} exists and holds other rows", dest.display()))
+                    .help("write elsewhere with --out FILE, or replace it with --force"),
+            ));
+        }
+        _ => {}
+    }
     write_file(&dest, sim.csv)?;
     let mut counts = vec![0usize; truth.clusters.len()];
     for k in &sim.clusters {

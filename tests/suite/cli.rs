@@ -355,11 +355,41 @@ fn the_demo_data_is_what_its_truth_spec_generates() {
     ] {
         let out = cohortmix(
             dir.path(),
-            &["simulate", root(truth).to_str().unwrap(), "--out", "demo.csv"],
+            &[
+                "simulate",
+                root(truth).to_str().unwrap(),
+                "--out",
+                "demo.csv",
+                "--force",
+            ],
         );
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
         assert_eq!(read(&dir.path().join("demo.csv")), read(&root(data)), "{data}");
     }
+}
+
+/// `simulate` leaves a file that holds other rows alone unless told `--force`, and says
+/// when the file already holds exactly the rows drawn.
+#[test]
+fn simulate_never_overwrites_other_rows_without_force() {
+    let dir = small_study();
+    let data = dir.path().join("small.csv");
+    let before = read(&data);
+    let again = cohortmix(dir.path(), &["simulate", "truth.toml"]);
+    assert!(again.status.success());
+    assert!(String::from_utf8_lossy(&again.stdout).contains("already holds exactly these rows"));
+    std::fs::write(&data, "edited by hand\n").unwrap();
+    let refused = cohortmix(dir.path(), &["simulate", "truth.toml"]);
+    assert_eq!(refused.status.code(), Some(2));
+    let message = String::from_utf8_lossy(&refused.stderr);
+    assert!(
+        message.contains("exists and holds other rows") && message.contains("--force"),
+        "{message}"
+    );
+    assert_eq!(read(&data), b"edited by hand\n");
+    let forced = cohortmix(dir.path(), &["simulate", "truth.toml", "--force"]);
+    assert!(forced.status.success());
+    assert_eq!(read(&data), before);
 }
 
 /// The mixed-family demo runs end to end, checks its items and counts, and reports the
@@ -377,11 +407,31 @@ fn the_symptom_demo_compares_its_placements() {
 
 #[test]
 fn help_shows_an_example_for_every_command() {
+    let top = String::from_utf8_lossy(&cohortmix(Path::new("."), &["--help"]).stdout).to_string();
     for cmd in ["check", "fit", "compare", "predict", "simulate"] {
         let out = cohortmix(Path::new("."), &[cmd, "--help"]);
         assert!(out.status.success());
         let s = String::from_utf8_lossy(&out.stdout);
         assert!(s.contains(&format!("cohortmix {cmd} ")), "{cmd}: {s}");
+        // Every input an example names is in the repository (outputs follow --out; run
+        // folders are what compare writes).
+        for line in s
+            .lines()
+            .chain(top.lines())
+            .filter(|l| l.trim_start().starts_with("cohortmix "))
+        {
+            let words: Vec<&str> = line.split_whitespace().collect();
+            for (i, w) in words.iter().enumerate() {
+                let output = i > 0 && words[i - 1] == "--out";
+                if (w.ends_with(".toml") || w.ends_with(".csv")) && !output {
+                    assert!(
+                        root(w).exists(),
+                        "the example '{}' names {w}, which does not exist",
+                        line.trim()
+                    );
+                }
+            }
+        }
     }
 }
 
