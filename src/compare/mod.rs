@@ -13,6 +13,7 @@ mod align;
 pub mod assign;
 pub mod findings;
 mod parts;
+pub mod terms;
 
 pub use align::{Numbering, ALL_PAIRS_UP_TO};
 pub use findings::{Finding, RowRef, Source, TableId};
@@ -123,6 +124,8 @@ pub struct GatingEffect {
     pub cluster: usize,
     /// Gating term.
     pub term: String,
+    /// The term in words.
+    pub words: terms::TermWords,
     /// Units of the term per which the ratio is given (`[inference].per`, else 1).
     pub per: f64,
     /// exp(per × coefficient): multiplies the relative risk of the cluster versus
@@ -234,9 +237,12 @@ pub struct InferenceInput<'a> {
     pub screen: &'a [crate::inference::screen::DirectEffectTest],
     /// Bootstrap tests of the compared fits' cluster counts.
     pub cluster_tests: &'a [crate::inference::cluster_test::ClusterCountTest],
+    /// Labels and units of the columns (`[variables]`).
+    pub words: &'a std::collections::BTreeMap<String, crate::spec::ColumnWords>,
 }
 
 static NO_UNITS: std::collections::BTreeMap<String, f64> = std::collections::BTreeMap::new();
+static NO_WORDS: std::collections::BTreeMap<String, crate::spec::ColumnWords> = std::collections::BTreeMap::new();
 
 impl InferenceInput<'static> {
     /// No standard errors: effects without intervals, per unit.
@@ -246,6 +252,7 @@ impl InferenceInput<'static> {
             by_fit: &[],
             screen: &[],
             cluster_tests: &[],
+            words: &NO_WORDS,
         }
     }
 }
@@ -477,7 +484,7 @@ pub fn compare(
             &fits[l.fit],
             &l.aligned,
             by_fit,
-            inference.per,
+            &inference,
         );
     }
     let rank = |name: &str| {
@@ -495,7 +502,7 @@ pub fn compare(
     let mut c = Comparison {
         reference: prepared[settings.reference].placement.name.clone(),
         fixed_clusters: settings.clusters,
-        reference_values: REFERENCE_VALUES.into(),
+        reference_values: terms::reference_values(&covariate_names(prepared), data, inference.words),
         indicators: prepared[settings.reference].profile_columns(),
         criteria,
         alignments,
@@ -517,5 +524,16 @@ pub fn compare(
     c
 }
 
-/// How profiles are set at reference covariate values.
-const REFERENCE_VALUES: &str = "profiles at the reference covariate values: continuous and count covariates at their sample mean, categorical and binary ones at their reference level";
+/// Every covariate of the placements, in the order first listed.
+fn covariate_names(prepared: &[PreparedPlacement]) -> Vec<String> {
+    let mut out: Vec<String> = Vec::new();
+    for c in prepared
+        .iter()
+        .flat_map(|p| p.placement.gating.iter().chain(&p.placement.components))
+    {
+        if !out.contains(&c.name) {
+            out.push(c.name.clone());
+        }
+    }
+    out
+}

@@ -37,8 +37,9 @@ impl Parts {
         f: &FitResult,
         aligned: &[usize],
         inference: Option<&FitInference>,
-        per: &BTreeMap<String, f64>,
+        input: &super::InferenceInput,
     ) {
+        let per = input.per;
         let uncertainty = inference.and_then(|fi| {
             self.inference_notes.push(InferenceNote {
                 placement: f.placement.clone(),
@@ -84,8 +85,16 @@ impl Parts {
             self.three_step
                 .extend(three_step_effects(st, design, aligned, &f.placement, uncertainty, per));
         }
-        self.gating_effects
-            .extend(effects(&gating, design, aligned, &f.placement, uncertainty, per));
+        self.gating_effects.extend(
+            effects(&gating, design, aligned, &f.placement, uncertainty, per)
+                .into_iter()
+                .map(|mut e| {
+                    if let Some(term) = design.terms.iter().find(|t| t.name == e.term) {
+                        e.words = super::terms::term_words(term, data, input.words);
+                    }
+                    e
+                }),
+        );
         self.effect_curves
             .extend(curves(data, &gating, design, aligned, &f.placement));
     }
@@ -263,6 +272,11 @@ fn effects(
                 placement: placement.to_string(),
                 cluster: aligned[k],
                 term: term.name.clone(),
+                words: super::terms::TermWords {
+                    label: term.name.clone(),
+                    unit: None,
+                    numeric: true,
+                },
                 per: units,
                 rrr: (coef * units).exp(),
                 interval: interval.map(|i| (i.lower, i.upper)),

@@ -190,6 +190,7 @@ pub fn run(loaded: &Loaded, mode: Mode, cache: Cache, observer: &mut dyn Observe
             by_fit: &inference,
             screen: &screen,
             cluster_tests: &cluster_tests,
+            words: &study.words,
         };
         results.comparison = Some(compare(data, prepared, &fits, &numbering, &study.compare, input));
     }

@@ -37,11 +37,19 @@ pub fn ratio(x: f64) -> String {
     format!("{x:.3}")
 }
 
-/// "unit of age" or "10 units of age".
-pub fn per_phrase(per: f64, term: &str) -> String {
-    if per == 1.0 {
-        format!("unit of {term}")
+/// The amount of a numeric term an effect is per, in words: "10 years of age", "unit of
+/// age (years)", "10 units of age".
+pub fn per_phrase(per: f64, words: &crate::compare::terms::TermWords) -> String {
+    let label = &words.label;
+    let amount = if per == per.trunc() {
+        format!("{per:.0}")
     } else {
-        format!("{per} units of {term}")
+        format!("{per}")
+    };
+    match (&words.unit, per == 1.0) {
+        (Some(u), true) => format!("unit of {label} ({u})"),
+        (Some(u), false) => format!("{amount} {u} of {label}"),
+        (None, true) => format!("unit of {label}"),
+        (None, false) => format!("{amount} units of {label}"),
     }
 }

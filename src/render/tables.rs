@@ -216,23 +216,22 @@ fn gating_table(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
         let mut keys: Vec<(usize, String)> = c.gating_effects.iter().map(|e| (e.cluster, e.term.clone())).collect();
         keys.sort();
         keys.dedup();
-        let mut header = vec![
-            "cluster vs cluster 1".to_string(),
-            "term".to_string(),
-            "per".to_string(),
-        ];
+        let mut header = vec!["cluster vs cluster 1".to_string(), "term".to_string()];
         header.extend(with_gating.iter().map(|p| p.to_string()));
         out.push(Table {
             id: TableId::GatingEffects,
-            note: "Relative risk ratios exp(γ) with 95% Wald confidence intervals: how the stated units of the term multiply the risk of belonging to the cluster rather than aligned cluster 1 (1 = no effect). For a level of a categorical covariate: that level against the reference level. \"separation\": the term (nearly) perfectly separates the two clusters, so its ratio runs off towards 0 or infinity and no effect can be estimated.".into(),
+            note: "Relative risk ratios exp(γ) with 95% Wald confidence intervals and Wald p-values: how the stated amount of the term multiplies the risk of belonging to the cluster rather than aligned cluster 1 (1 = no effect). For a level of a categorical covariate or a binary one: that level against the reference, as the term says. \"separation\": the term (nearly) perfectly separates the two clusters, so its ratio runs off towards 0 or infinity and no effect can be estimated.".into(),
             header,
             rows: keys
                 .iter()
                 .map(|(k, term)| {
-                    let per = c.gating_effects.iter().find(|e| &e.term == term).map_or(1.0, |e| e.per);
-                    let mut row = vec![format!("cluster {k}"), term.clone(), units(per)];
+                    let shown = c.gating_effects.iter().find(|e| &e.term == term).map_or_else(|| term.clone(), |e| e.words.with_per(e.per));
+                    let mut row = vec![format!("cluster {k}"), shown];
                     for pl in &with_gating {
-                        row.push(c.gating_effects.iter().find(|e| e.cluster == *k && &e.term == term && &e.placement == *pl).map_or_else(|| "–".into(), |e| if e.separation { SEPARATION_CELL.into() } else { with_interval(ratio(e.rrr), e.interval.map(|(a, b)| (ratio(a), ratio(b)))) }));
+                        row.push(c.gating_effects.iter().find(|e| e.cluster == *k && &e.term == term && &e.placement == *pl).map_or_else(|| "–".into(), |e| if e.separation { SEPARATION_CELL.into() } else {
+                            let cell = with_interval(ratio(e.rrr), e.interval.map(|(a, b)| (ratio(a), ratio(b))));
+                            match e.p_value { Some(p) => format!("{cell}; p {}", p_value(p)), None => cell }
+                        }));
                     }
                     row
                 })

@@ -123,18 +123,28 @@ fn phrase_effects(f: &Finding) -> (String, Vec<String>) {
     match f {
         Finding::DirectionChange { first: a, second: b } => (
             format!(
-                "The effect of {} on belonging to cluster {} rather than cluster 1 changes direction: relative risk ratio {} per {} under '{}', {} under '{}'.",
-                a.term, a.cluster, ratio(a.rrr), per_phrase(a.per, &a.term), a.placement, ratio(b.rrr), b.placement
+                "The effect of {} on belonging to cluster {} rather than cluster 1 changes direction: relative risk ratio {}{} under '{}', {} under '{}'.",
+                a.words.label,
+                a.cluster,
+                ratio(a.rrr),
+                if a.words.numeric { format!(" per {}", per_phrase(a.per, &a.words)) } else { String::new() },
+                a.placement,
+                ratio(b.rrr),
+                b.placement
             ),
             vec![ratio(a.rrr), ratio(b.rrr)],
         ),
         Finding::StrongestEffect(e) => {
             let word = if e.rrr > 1.0 { "raises" } else { "lowers" };
+            let subject = if e.words.numeric {
+                format!("each {}", per_phrase(e.per, &e.words))
+            } else {
+                e.words.label.clone()
+            };
             (
                 format!(
-                    "Under '{}', each {} {word} the relative risk of cluster {} against cluster 1 by a factor of {}.",
+                    "Under '{}', {subject} {word} the relative risk of cluster {} against cluster 1 by a factor of {}.",
                     e.placement,
-                    per_phrase(e.per, &e.term),
                     e.cluster,
                     ratio(e.rrr)
                 ),
@@ -145,7 +155,7 @@ fn phrase_effects(f: &Finding) -> (String, Vec<String>) {
             format!(
                 "Under '{}', {} (nearly) perfectly separates cluster {} from cluster 1: its relative risk ratio runs off towards {} and cannot be estimated. This is separation, not an effect size; a gating ridge ([search] gating_ridge), merging rare levels, or fewer clusters gives estimable effects.",
                 e.placement,
-                e.term,
+                e.words.label,
                 e.cluster,
                 if e.rrr > 1.0 { "infinity" } else { "0" }
             ),

@@ -363,6 +363,8 @@ pub struct Study {
     pub simulated: bool,
     /// Declared column types, by name, with their spans.
     pub variables: BTreeMap<String, (VariableType, Range<usize>)>,
+    /// Labels and units of columns, by name (`[variables]`), for tables and sentences.
+    pub words: BTreeMap<String, ColumnWords>,
     /// Family of the indicators, as the spec chose it.
     pub family: FamilyChoice,
     /// Indicator columns.
@@ -777,6 +779,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
     let study = raw.study.get_ref();
     let (title, seed) = study_keys(&ctx, study)?;
     let variables = variables(&ctx, &raw.variables)?;
+    let words = column_words(&ctx, &raw.variables)?;
     let ind = indicators(&ctx, &raw.indicators, families, &variables)?;
     let (default_clusters, default_span, search) = search(&ctx, &raw, &ind.blocks)?;
     let placements = placements(&ctx, &raw.placement, &default_clusters, &default_span, &ind)?;
@@ -816,6 +819,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         output,
         simulated: study.simulated.unwrap_or(false),
         variables,
+        words,
         family: ind.family,
         indicators: ind.indicators,
         indicator_families: ind.indicator_families,
@@ -901,6 +905,42 @@ fn variables(ctx: &Ctx, raw: &BTreeMap<String, Spanned<raw::RawVariable>>) -> Re
     }
 
     Ok(variables)
+}
+
+/// What a column is called in tables and sentences, and its unit.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, schemars::JsonSchema)]
+pub struct ColumnWords {
+    /// Label (the column name when not given).
+    pub label: Option<String>,
+    /// Unit, such as "years" or "% predicted".
+    pub unit: Option<String>,
+}
+
+/// The labels and units of `[variables]`; an empty one is an error.
+fn column_words(ctx: &Ctx, raw: &BTreeMap<String, Spanned<raw::RawVariable>>) -> Result<BTreeMap<String, ColumnWords>> {
+    let mut out = BTreeMap::new();
+    for (name, v) in raw {
+        let r = v.get_ref();
+        for (key, text) in [("label", &r.label), ("unit", &r.unit)] {
+            if text.as_deref().is_some_and(|t| t.trim().is_empty()) {
+                return Err(Error::input(
+                    ctx.err(v.span(), format!("the {key} of '{name}' is empty"))
+                        .help(format!("write a {key}, or leave the key out")),
+                ));
+            }
+        }
+        if r.label.is_some() || r.unit.is_some() {
+            let clean = |t: &Option<String>| t.as_ref().map(|t| t.trim().to_string());
+            out.insert(
+                name.clone(),
+                ColumnWords {
+                    label: clean(&r.label),
+                    unit: clean(&r.unit),
+                },
+            );
+        }
+    }
+    Ok(out)
 }
 
 /// Declared column types, by name, with their spans.

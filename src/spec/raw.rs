@@ -103,6 +103,10 @@ pub struct RawVariable {
     pub reference: Option<String>,
     /// All levels of a categorical column, in order.
     pub levels: Option<Vec<String>>,
+    /// What the column is called in tables and sentences.
+    pub label: Option<String>,
+    /// Its unit ("years", "% predicted").
+    pub unit: Option<String>,
 }
 
 impl<'de> Deserialize<'de> for RawVariable {
@@ -121,18 +125,28 @@ impl<'de> Deserialize<'de> for RawVariable {
                     kind: v.to_string(),
                     reference: None,
                     levels: None,
+                    label: None,
+                    unit: None,
                 })
             }
             fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<RawVariable, A::Error> {
                 let mut kind = None;
                 let mut reference = None;
                 let mut levels = None;
+                let (mut label, mut unit) = (None, None);
                 while let Some(key) = map.next_key::<String>()? {
                     match key.as_str() {
                         "type" => kind = Some(map.next_value::<String>()?),
                         "reference" => reference = Some(map.next_value::<String>()?),
                         "levels" => levels = Some(map.next_value::<Vec<String>>()?),
-                        other => return Err(de::Error::unknown_field(other, &["type", "reference", "levels"])),
+                        "label" => label = Some(map.next_value::<String>()?),
+                        "unit" => unit = Some(map.next_value::<String>()?),
+                        other => {
+                            return Err(de::Error::unknown_field(
+                                other,
+                                &["type", "reference", "levels", "label", "unit"],
+                            ))
+                        }
                     }
                 }
                 let kind = kind.ok_or_else(|| de::Error::missing_field("type"))?;
@@ -140,6 +154,8 @@ impl<'de> Deserialize<'de> for RawVariable {
                     kind,
                     reference,
                     levels,
+                    label,
+                    unit,
                 })
             }
         }

@@ -368,7 +368,7 @@ fn a_covariate_that_separates_clusters_is_reported_as_separation() {
     assert!(
         sentences
             .iter()
-            .any(|s| s.contains("x (nearly) perfectly separates") && s.contains("gating ridge")),
+            .any(|s| s.contains("x (1 vs 0) (nearly) perfectly separates") && s.contains("gating ridge")),
         "{sentences:?}"
     );
     assert!(!sentences.iter().any(|s| s.contains("each unit of x")), "{sentences:?}");
@@ -421,4 +421,56 @@ fn three_step_intervals_in_the_comparison_are_the_fits_own() {
             );
         }
     }
+}
+
+/// Terms read in the study's words: a label and unit from `[variables]` with the amount an
+/// effect is per, a binary covariate as 1 against 0, a categorical level against the
+/// reference; and the reference values of the profiles name each covariate's value.
+#[test]
+fn terms_read_in_the_words_of_the_study() {
+    use cohortmix::compare::terms::{reference_values, term_words};
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(
+        dir.path().join("d.csv"),
+        "y,age,smoker,sex\n1.0,30,0,female\n2.0,50,1,male\n3.0,40,1,female\n",
+    )
+    .unwrap();
+    let text = r#"
+[study]
+title = "words"
+data = "d.csv"
+[variables]
+age = { type = "continuous", label = "age at entry", unit = "years" }
+smoker = { type = "binary", label = "current smoker" }
+sex = { type = "categorical", reference = "female" }
+[indicators]
+columns = ["y"]
+[search]
+clusters = [1]
+[[placement]]
+name = "all"
+gating = ["age", "smoker", "sex"]
+"#;
+    let families = super::common::families();
+    let study = spec::parse(&dir.path().join("s.toml"), text, &families.infos()).unwrap();
+    let data = data::load(&study).unwrap();
+    let term = |name: &str, covariate: &str| data::Term {
+        name: name.to_string(),
+        covariate: Some(covariate.to_string()),
+        center: 0.0,
+        scale: 1.0,
+    };
+    let age = term_words(&term("age", "age"), &data, &study.words);
+    assert_eq!(age.with_per(10.0), "age at entry, per 10 years");
+    assert_eq!(age.with_per(1.0), "age at entry (years), per unit");
+    assert_eq!(render::per_phrase(10.0, &age), "10 years of age at entry");
+    let smoker = term_words(&term("smoker", "smoker"), &data, &study.words);
+    assert_eq!(smoker.with_per(1.0), "current smoker (1 vs 0)");
+    let sex = term_words(&term("sex=male", "sex"), &data, &study.words);
+    assert_eq!(sex.with_per(1.0), "sex (male vs female)");
+    let names = ["age".to_string(), "smoker".to_string(), "sex".to_string()];
+    assert_eq!(
+        reference_values(&names, &data, &study.words),
+        "profiles at the reference covariate values: age at entry 40.0 years (sample mean), current smoker 0, sex female (reference level)"
+    );
 }
