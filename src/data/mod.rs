@@ -309,8 +309,8 @@ fn field_offset(line: &str, field: usize) -> (usize, usize) {
     }
 }
 
-fn is_missing(s: &str) -> bool {
-    s.is_empty() || s == MISSING_WORD
+fn is_missing(s: &str, codes: &[String]) -> bool {
+    s.is_empty() || s == MISSING_WORD || codes.iter().any(|c| c == s)
 }
 
 /// Role of a needed column.
@@ -590,7 +590,7 @@ fn read_cells(study: &Study, raw: &Raw, input: impl std::io::Read, purpose: Purp
             // decomposed accent are one level.
             let v = crate::spec::nfc(record.get(nd.index).unwrap_or(""));
             let v = v.as_ref();
-            if !cells[k].push((!is_missing(v)).then_some(v)) {
+            if !cells[k].push((!is_missing(v, &study.missing_codes)).then_some(v)) {
                 return Err(Error::input(
                     Diagnostic::new(format!(
                         "column '{}' holds more than 4 GiB of text by line {line}",
@@ -1302,8 +1302,9 @@ fn parse_numbers<'c>(
                 line,
                 format!("'{}' in column '{name}' is not a number", quoted(v)),
                 format!(
-                    "'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing",
-                    kind.word()
+                    "'{name}' is {}; write a number, or leave the cell empty (or {MISSING_WORD}) if it is missing; if '{}' marks missing values in this file, list it in [study] missing_codes",
+                    kind.word(),
+                    quoted(v)
                 ),
             )
         })?;

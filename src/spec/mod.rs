@@ -361,6 +361,8 @@ pub struct Study {
     /// Whether the data are simulated (`[study] simulated`): the reports then say that
     /// they describe no real people.
     pub simulated: bool,
+    /// Cell texts read as missing besides an empty cell and `NA` (`[study] missing_codes`).
+    pub missing_codes: Vec<String>,
     /// Declared column types, by name, with their spans.
     pub variables: BTreeMap<String, (VariableType, Range<usize>)>,
     /// Labels and units of columns, by name (`[variables]`), for tables and sentences.
@@ -818,6 +820,7 @@ pub fn validate(path: &Path, text: &str, raw: RawSpec, families: &[&'static Fami
         seed,
         output,
         simulated: study.simulated.unwrap_or(false),
+        missing_codes: missing_codes(&ctx, study.missing_codes.as_ref())?,
         variables,
         words,
         family: ind.family,
@@ -905,6 +908,27 @@ fn variables(ctx: &Ctx, raw: &BTreeMap<String, Spanned<raw::RawVariable>>) -> Re
     }
 
     Ok(variables)
+}
+
+/// `[study] missing_codes`: texts such as "." or "-99" that mean a missing value. A code
+/// is compared with the whole cell (after Unicode normalisation), so "-99" does not
+/// make "-99.5" missing; an empty code is an error (an empty cell is missing already).
+fn missing_codes(ctx: &Ctx, list: Option<&SList>) -> Result<Vec<String>> {
+    let Some(list) = list else { return Ok(Vec::new()) };
+    let mut out = Vec::new();
+    for code in list.get_ref() {
+        let text = nfc(code.get_ref()).to_string();
+        if text.trim().is_empty() {
+            return Err(Error::input(
+                ctx.err(code.span(), "a missing-value code is empty")
+                    .help("empty cells are read as missing already; list only codes such as \".\" or \"-99\""),
+            ));
+        }
+        if !out.contains(&text) {
+            out.push(text);
+        }
+    }
+    Ok(out)
 }
 
 /// What a column is called in tables and sentences, and its unit.

@@ -92,6 +92,8 @@ pub struct RawStudy {
     pub output: Option<SStr>,
     /// Whether the data are simulated (the report then says so).
     pub simulated: Option<bool>,
+    /// Cell texts that mean "missing" besides an empty cell and `NA`.
+    pub missing_codes: Option<SList>,
 }
 
 /// One entry of `[variables]`: either a bare type word or a table.

@@ -155,3 +155,36 @@ fn a_bom_crlf_and_quoted_commas_are_read_like_plain_csv() {
     assert_eq!(a.indicator_sets, b.indicator_sets);
     assert_eq!(a.columns, b.columns);
 }
+
+/// Cells that `[study] missing_codes` lists are missing like empty ones: the rows they
+/// are in leave the fits, counted per column, while a number that merely starts like a
+/// code is read as a number. Without the key, the same cell is an error that names it.
+#[test]
+fn listed_missing_codes_are_read_as_missing() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(
+        dir.path().join("data.csv"),
+        "age,y\n30,1.0\n.,2.0\n45,n/a\n-99,3.0\n-99.5,4.0\n50,5.0\n",
+    )
+    .unwrap();
+    let spec = |codes: &str| {
+        format!(
+            "[study]\ntitle = \"codes\"\ndata = \"data.csv\"\n{codes}\n[variables]\nage = \"continuous\"\n[indicators]\ncolumns = [\"y\"]\n[search]\nclusters = [1]\n[[placement]]\nname = \"p\"\ngating = [\"age\"]\n"
+        )
+    };
+    let families = super::common::families();
+    let parse = |text: &str| cohortmix::spec::parse(&dir.path().join("spec.toml"), text, &families.infos()).unwrap();
+    let data = cohortmix::data::load(&parse(&spec("missing_codes = [\".\", \"n/a\", \"-99\"]"))).unwrap();
+    assert_eq!((data.rows_read, data.rows_excluded), (6, 3));
+    assert!(data.missing_by_column.contains(&("age".to_string(), 2)));
+    assert!(data.missing_by_column.contains(&("y".to_string(), 1)));
+    let Some(cohortmix::data::Column::Numeric { values, .. }) = data.columns.get("age") else {
+        panic!("age is numeric")
+    };
+    assert_eq!(values, &vec![30.0, -99.5, 50.0]);
+    let message = cohortmix::data::load(&parse(&spec(""))).unwrap_err().to_string();
+    assert!(
+        message.contains("'n/a' in column 'y' is not a number") && message.contains("missing_codes"),
+        "{message}"
+    );
+}
