@@ -311,13 +311,16 @@ pub struct EffectCurve {
 pub struct Comparison {
     /// Reference placement.
     pub reference: String,
+    /// Names of aligned clusters, by number (`[compare] names`).
+    pub cluster_names: std::collections::BTreeMap<usize, String>,
     /// Cluster count fixed by the spec, if any.
     pub fixed_clusters: Option<usize>,
     /// How reference covariate values are set for profiles.
     pub reference_values: String,
-    /// Profile columns: a continuous indicator's name (its mean), `item=level` (that
-    /// level's probability; binary items show level 1 only) or `count (rate)` (events per
-    /// unit of exposure, or the mean count without an exposure).
+    /// Profile columns in words ([`terms::profile_label`]): a continuous indicator's label
+    /// and unit (its mean), `item: level` (that level's probability; binary items show
+    /// level 1 only) or `count (rate)` (events per unit of exposure, or the mean count
+    /// without an exposure).
     pub indicators: Vec<String>,
     /// Criteria, one row per fit.
     pub criteria: Vec<Criteria>,
@@ -501,9 +504,14 @@ pub fn compare(
     let cross_tables = align::cross_tables(fits, labelled, weights);
     let mut c = Comparison {
         reference: prepared[settings.reference].placement.name.clone(),
+        cluster_names: settings.names.clone(),
         fixed_clusters: settings.clusters,
         reference_values: terms::reference_values(&covariate_names(prepared), data, inference.words),
-        indicators: prepared[settings.reference].profile_columns(),
+        indicators: prepared[settings.reference]
+            .profile_columns()
+            .iter()
+            .map(|c| terms::profile_label(c, inference.words))
+            .collect(),
         criteria,
         alignments,
         profiles: parts.profiles,

@@ -47,6 +47,21 @@ pub fn label(name: &str, words: &BTreeMap<String, ColumnWords>) -> String {
         .unwrap_or_else(|| name.to_string())
 }
 
+/// A profile column in words: an indicator's label with its unit in brackets ("FEV1 (%
+/// predicted)"), or an item level's ("chest tightness: often").
+pub fn profile_label(column: &str, words: &BTreeMap<String, ColumnWords>) -> String {
+    match column.split_once('=') {
+        Some((item, level)) => format!("{}: {level}", label(item, words)),
+        None => match column.strip_suffix(" (rate)") {
+            Some(count) => format!("{} (rate)", label(count, words)),
+            None => match words.get(column).and_then(|w| w.unit.as_deref()) {
+                Some(unit) => format!("{} ({unit})", label(column, words)),
+                None => label(column, words),
+            },
+        },
+    }
+}
+
 /// A design term in words.
 pub fn term_words(term: &Term, data: &Dataset, words: &BTreeMap<String, ColumnWords>) -> TermWords {
     let Some(covariate) = &term.covariate else {

@@ -86,7 +86,7 @@ pub fn summary(results: &Results) -> String {
     }
     if let Some(c) = &results.comparison {
         out.push_str("What changes between placements:\n");
-        for sentence in c.findings.iter().map(words::sentence) {
+        for sentence in c.findings.iter().map(|f| words::sentence(f, &c.cluster_names)) {
             let _ = writeln!(out, "  - {}", sentence.text);
         }
     }

@@ -208,7 +208,7 @@ pub fn markdown(results: &Results, c: &Comparison) -> String {
         let _ = write!(s, "\n>\n> **Data.** {}", md_text(w));
     }
     s.push_str("\n\n## What changes between placements\n\n");
-    for sentence in c.findings.iter().map(words::sentence) {
+    for sentence in c.findings.iter().map(|f| words::sentence(f, &c.cluster_names)) {
         let _ = writeln!(s, "- {} *(see {})*", md_text(&sentence.text), md_text(&sentence.source));
     }
     s.push('\n');
@@ -277,7 +277,9 @@ svg.small{width:300px;height:auto;display:inline-block;margin:.3em}\
 svg.grid{max-width:420px;height:auto;display:inline-block;margin:.3em}\
 svg text.ct{font-size:14px;font-weight:600}svg text.tk{font-size:11px}\
 p.cap{font-weight:600;font-size:.9em;margin:1em 0 0}.curves svg.chart{max-width:520px;display:inline-block}\
-@media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}}";
+@media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}\
+.scroll{overflow:visible}table{font-size:6.5pt;width:100%}th,td{padding:1px 3px;overflow-wrap:break-word}}\
+@page{size:A4 landscape;margin:10mm}";
 
 /// `report.html`: one self-contained page (inline CSS and SVG, no scripts, nothing fetched).
 pub fn html(results: &Results, c: &Comparison) -> String {
@@ -309,7 +311,7 @@ fn html_head(s: &mut String, results: &Results, c: &Comparison) {
     }
     s.push_str("</ul></div>");
     s.push_str("<h2>What changes between placements</h2><ul>");
-    for sentence in c.findings.iter().map(words::sentence) {
+    for sentence in c.findings.iter().map(|f| words::sentence(f, &c.cluster_names)) {
         let _ = write!(
             s,
             "<li>{} <span class=\"note\">(see {})</span></li>",
@@ -384,7 +386,7 @@ fn html_effects(s: &mut String, c: &Comparison, find: &Find) {
                 .zip(&curve.probabilities)
                 .enumerate()
                 .map(|(i, (k, pr))| Series {
-                    name: format!("cluster {k}"),
+                    name: crate::render::name_clusters(&format!("cluster {k}"), &c.cluster_names),
                     points: curve.x.iter().copied().zip(pr.iter().copied()).collect(),
                     colour: cluster_colour(*k).to_string(),
                     style: i,
@@ -547,7 +549,11 @@ fn profile_grid(c: &Comparison) -> String {
                             .map(|p| (i, p.population_averaged[j]))
                     })
                     .collect();
-                (format!("cluster {k}"), cluster_colour(*k), marks)
+                (
+                    crate::render::name_clusters(&format!("cluster {k}"), &c.cluster_names),
+                    cluster_colour(*k),
+                    marks,
+                )
             })
             .collect();
         s.push_str(&svg::dot_rows(ind, &rows, lo - pad, hi + pad));

@@ -36,7 +36,11 @@ pub fn results_file(results: &Results) -> ResultsFile<'_> {
         comparison: results.comparison.as_ref().map(|c| ComparisonFile {
             comparison: c,
             inference_notes: c.inference_notes.iter().map(words::inference_note).collect(),
-            sentences: c.findings.iter().map(words::sentence).collect(),
+            sentences: c
+                .findings
+                .iter()
+                .map(|f| words::sentence(f, &c.cluster_names))
+                .collect(),
         }),
     }
 }

@@ -63,6 +63,14 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
     screen_table(c, &mut out);
     component_table(c, &placements, &mut out);
     cross_tables(c, &mut out);
+    // Named clusters: every cell and header that starts with a cluster number.
+    for t in &mut out {
+        for cell in t.rows.iter_mut().flatten().chain(t.header.iter_mut()) {
+            if cell.starts_with("cluster ") {
+                *cell = super::name_clusters(cell, &c.cluster_names);
+            }
+        }
+    }
     out
 }
 

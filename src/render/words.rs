@@ -60,12 +60,12 @@ pub fn source(s: &Source) -> String {
     }
 }
 
-/// A finding as a sentence.
-pub fn sentence(f: &Finding) -> Sentence {
+/// A finding as a sentence, its clusters with their `names` ([`super::name_clusters`]).
+pub fn sentence(f: &Finding, names: &std::collections::BTreeMap<usize, String>) -> Sentence {
     let (text, numbers) = phrase(f);
     Sentence {
-        text,
-        source: source(&f.source()),
+        text: super::name_clusters(&text, names),
+        source: super::name_clusters(&source(&f.source()), names),
         numbers,
     }
 }

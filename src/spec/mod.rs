@@ -1439,6 +1439,7 @@ fn compare_settings(
     let mut settings = CompareSettings {
         reference: 0,
         clusters: None,
+        names: BTreeMap::new(),
     };
     let Some(raw) = raw else { return Ok(settings) };
     let r = raw.get_ref();
@@ -1476,7 +1477,48 @@ fn compare_settings(
         }
         settings.clusters = Some(g);
     }
+    if let Some(names) = &r.names {
+        settings.names = cluster_names(ctx, names, placements)?;
+    }
     Ok(settings)
+}
+
+/// `[compare] names = { 1 = "preserved function", ... }`: each key a cluster number that
+/// some placement can have, each name given once and not empty.
+fn cluster_names(
+    ctx: &Ctx,
+    names: &Spanned<BTreeMap<String, SStr>>,
+    placements: &[Placement],
+) -> Result<BTreeMap<usize, String>> {
+    let most = placements
+        .iter()
+        .flat_map(|p| p.clusters.iter().copied())
+        .max()
+        .unwrap_or(1);
+    let mut out: BTreeMap<usize, String> = BTreeMap::new();
+    for (key, name) in names.get_ref() {
+        let k = key.trim().parse::<usize>().ok().filter(|k| (1..=most).contains(k)).ok_or_else(|| {
+            Error::input(
+                ctx.err(names.span(), format!("[compare].names has the key '{key}', which is not a cluster number"))
+                    .help(format!("keys are cluster numbers as the report shows them, 1 to {most}: {{ 1 = \"preserved function\" }}")),
+            )
+        })?;
+        let text = name.get_ref().trim().to_string();
+        if text.is_empty() {
+            return Err(Error::input(
+                ctx.err(name.span(), format!("the name of cluster {k} is empty"))
+                    .help("write a name, or leave the cluster out of names"),
+            ));
+        }
+        if let Some((other, _)) = out.iter().find(|(_, n)| **n == text) {
+            return Err(Error::input(
+                ctx.err(name.span(), format!("clusters {other} and {k} are both named '{text}'"))
+                    .help("give each cluster its own name"),
+            ));
+        }
+        out.insert(k, text);
+    }
+    Ok(out)
 }
 
 fn check_unique(ctx: &Ctx, cols: &[ColumnRef]) -> Result<()> {

@@ -66,6 +66,8 @@ pub struct RawCompare {
     pub reference: Option<SStr>,
     /// Cluster count used for every placement (default: each placement's lowest BIC).
     pub clusters: Option<Spanned<i64>>,
+    /// Names of aligned clusters by number, e.g. `{ 1 = "preserved function" }`.
+    pub names: Option<Spanned<BTreeMap<String, SStr>>>,
 }
 
 /// `[study]`.

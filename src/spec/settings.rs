@@ -221,6 +221,8 @@ pub struct CompareSettings {
     pub reference: usize,
     /// Cluster count fixed for the comparison, if any.
     pub clusters: Option<usize>,
+    /// Names of aligned clusters, by number (`[compare] names`).
+    pub names: std::collections::BTreeMap<usize, String>,
 }
 
 #[cfg(test)]

@@ -181,7 +181,11 @@ fn an_extra_cluster_is_shown_without_a_counterpart() {
         matched.iter().all(|o| *o > 0.95),
         "well-separated clusters overlap almost fully: {matched:?}"
     );
-    let sentences: Vec<words::Sentence> = c.findings.iter().map(words::sentence).collect();
+    let sentences: Vec<words::Sentence> = c
+        .findings
+        .iter()
+        .map(|f| words::sentence(f, &c.cluster_names))
+        .collect();
     assert!(
         sentences
             .iter()
@@ -224,7 +228,7 @@ fn sentences_cite_numbers_found_in_the_tables() {
     assert!(c.findings.len() >= 4, "{:?}", c.findings);
     let tables = render::tables::tables(&c);
     for finding in &c.findings {
-        let sentence = words::sentence(finding);
+        let sentence = words::sentence(finding, &c.cluster_names);
         let table = tables
             .iter()
             .find(|t| t.id == finding.source().table)

@@ -295,7 +295,8 @@ fn every_file_gives_the_same_outcome_numbers() {
     let dir = tempfile::tempdir().unwrap();
     std::fs::write(dir.path().join("data.csv"), data(5, 1500)).unwrap();
     let spec = study("bch", "").replace("clusters = [2]", "clusters = [1, 2]")
-        + "\n[[placement]]\nname = \"age drives membership\"\ngating = [\"age\"]\noutcomes = [\"event\"]\noutcome_method = \"ml\"\n";
+        + "\n[[placement]]\nname = \"age drives membership\"\ngating = [\"age\"]\noutcomes = [\"event\"]\noutcome_method = \"ml\"\n"
+        + "\n[compare]\nnames = { 2 = \"high scorers\" }\n";
     std::fs::write(dir.path().join("study.toml"), spec).unwrap();
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_cohortmix"))
         .args(["compare", "study.toml", "--out", "run"])
@@ -307,6 +308,8 @@ fn every_file_gives_the_same_outcome_numbers() {
     let results: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(run.join("results.json")).unwrap()).unwrap();
     let summary = std::fs::read_to_string(run.join("summary.md")).unwrap();
+    // A named cluster carries its name in the tables and sentences.
+    assert!(summary.contains("| cluster 2 (high scorers) |"), "{summary}");
     let compared = results["comparison"]["outcomes"].as_array().unwrap();
     assert_eq!(compared.len(), 4, "3 outcomes of one placement, 1 of the other");
     for c in compared {
