@@ -73,8 +73,9 @@ Default folder: [study].output in the spec, else runs/<spec name> here.")]
     /// Fit what the spec lists, then compare the placements: aligned clusters, profiles,
     /// effects, agreement; writes report.html and summary.md beside the fit outputs.
     #[command(after_help = "Example:\n  cohortmix compare configs/demo.toml\n\n\
-The run folder gets report.html (one self-contained page), summary.md, and results.json\n\
-with a \"comparison\" section, besides models.csv, memberships.csv and manifest.json.")]
+The run folder gets report.html (one self-contained page), summary.md, table1.csv\n\
+(covariates and indicators by cluster) and results.json with a \"comparison\" section,\n\
+besides models.csv, memberships.csv and manifest.json.")]
     Compare {
         /// The study spec (TOML).
         spec: PathBuf,

@@ -25,6 +25,11 @@ pub enum TableId {
     ThreeStep,
     /// Distal outcomes by cluster.
     Outcomes,
+    /// Covariates and indicators by cluster of one placement's compared fit.
+    TableOne {
+        /// The placement.
+        placement: String,
+    },
     /// Bootstrap tests of the cluster count.
     ClusterCountTests,
     /// The direct-effect screen.

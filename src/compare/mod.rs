@@ -13,6 +13,7 @@ mod align;
 pub mod assign;
 pub mod findings;
 mod parts;
+pub mod table_one;
 pub mod terms;
 
 pub use align::{Numbering, ALL_PAIRS_UP_TO};
@@ -336,6 +337,9 @@ pub struct Comparison {
     pub three_step: Vec<ThreeStepEffect>,
     /// Distal outcomes compared across each placement's clusters.
     pub outcomes: Vec<OutcomeComparison>,
+    /// "Table 1": every covariate and indicator per aligned cluster of each compared fit,
+    /// posterior-weighted and by most likely cluster ([`table_one`]).
+    pub table_one: Vec<table_one::TableOneCell>,
     /// Likelihood-ratio tests of direct effects the compared fits leave out.
     pub direct_effects: Vec<crate::inference::screen::DirectEffectTest>,
     /// Bootstrap likelihood-ratio tests of each compared fit's cluster count against one
@@ -519,6 +523,18 @@ pub fn compare(
         gating_tests: parts.gating_tests,
         three_step: parts.three_step,
         outcomes: parts.outcomes,
+        table_one: labelled
+            .iter()
+            .flat_map(|l| {
+                table_one::table_one(
+                    data,
+                    &fits[l.fit],
+                    &l.aligned,
+                    &covariate_names(prepared),
+                    inference.words,
+                )
+            })
+            .collect(),
         direct_effects: inference.screen.to_vec(),
         cluster_count_tests: inference.cluster_tests.to_vec(),
         component_effects: parts.component_effects,

@@ -37,6 +37,42 @@ pub fn safe_text(s: &str) -> std::borrow::Cow<'_, str> {
     }
 }
 
+/// `table1.csv`: every Table 1 summary, both conventions, one row per placement, cluster,
+/// variable and level (numbers in full precision; empty where a summary does not apply).
+pub fn table_one_csv(c: &crate::compare::Comparison) -> String {
+    let mut w = writer(Vec::new());
+    let header = [
+        "placement",
+        "cluster",
+        "cluster_name",
+        "variable",
+        "level",
+        "weighted_n",
+        "weighted_mean",
+        "weighted_sd",
+        "weighted_share",
+        "most_likely_n",
+        "most_likely_mean",
+        "most_likely_sd",
+        "most_likely_share",
+    ];
+    w.write_record(header).expect("writing to memory");
+    for t in &c.table_one {
+        let mut row = vec![
+            t.placement.clone(),
+            t.cluster.to_string(),
+            c.cluster_names.get(&t.cluster).cloned().unwrap_or_default(),
+            t.variable.clone(),
+            t.level.clone().unwrap_or_default(),
+        ];
+        for s in [&t.weighted, &t.most_likely] {
+            row.extend([num(Some(s.n)), num(s.mean), num(s.sd), num(s.share)]);
+        }
+        w.write_record(&row).expect("writing to memory");
+    }
+    String::from_utf8(w.into_inner().expect("writing to memory")).expect("UTF-8 in, UTF-8 out")
+}
+
 /// `models.csv`: one row per fit.
 pub fn models_csv(results: &Results) -> String {
     let mut w = writer(Vec::new());

@@ -370,6 +370,22 @@ fn html_clusters(s: &mut String, c: &Comparison, find: &Find) {
     if let Some(t) = find(TableId::Profiles) {
         html_table(s, t);
     }
+    let ones: Vec<&Table> = c
+        .alignments
+        .iter()
+        .filter_map(|a| {
+            find(TableId::TableOne {
+                placement: a.placement.clone(),
+            })
+        })
+        .collect();
+    if !ones.is_empty() {
+        s.push_str("<h2>Table 1: who is in each cluster</h2>");
+        for t in ones {
+            let _ = write!(s, "<p class=\"cap\">{}</p>", esc(&capitalise(&t.name())));
+            html_table(s, t);
+        }
+    }
 }
 
 /// Effects: gating effects with their curves and tests, three-step estimates, the screen,

@@ -59,6 +59,7 @@ pub fn tables(c: &Comparison) -> Vec<Table> {
     gating_tests_table(c, &mut out);
     three_step_table(c, &mut out);
     outcomes_table(c, &mut out);
+    table_one(c, &placements, &mut out);
     count_tests_table(c, &mut out);
     screen_table(c, &mut out);
     component_table(c, &placements, &mut out);
@@ -378,6 +379,52 @@ fn outcomes_table(c: &Comparison, out: &mut Vec<Table>) {
         header: ["placement", "outcome", "estimate", "cluster", "estimate (95% CI)", "against cluster 1 (95% CI)", "p", "all clusters equal"].iter().map(|s| s.to_string()).collect(),
         rows,
     });
+}
+
+/// Table 1 of each placement: variables (and levels) by aligned cluster, posterior-weighted.
+fn table_one(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
+    for placement in placements {
+        let cells: Vec<&crate::compare::table_one::TableOneCell> =
+            c.table_one.iter().filter(|t| &t.placement == placement).collect();
+        if cells.is_empty() {
+            continue;
+        }
+        let mut clusters: Vec<usize> = cells.iter().map(|t| t.cluster).collect();
+        clusters.sort_unstable();
+        clusters.dedup();
+        let mut rows: Vec<Vec<String>> = Vec::new();
+        for t in cells.iter().filter(|t| t.cluster == clusters[0]) {
+            let mut row = vec![match &t.level {
+                Some(level) => format!("{}: {level}", t.variable),
+                None => t.variable.clone(),
+            }];
+            for k in &clusters {
+                let cell = cells
+                    .iter()
+                    .find(|x| x.cluster == *k && x.variable == t.variable && x.level == t.level)
+                    .map(|x| &x.weighted);
+                row.push(match cell {
+                    Some(s) => match (s.mean, s.sd, s.share) {
+                        (Some(m), Some(sd), _) => format!("{} ({})", val(m), val(sd)),
+                        (_, _, Some(share)) => format!("{:.0} ({})", s.n, pct(share)),
+                        _ => "–".into(),
+                    },
+                    None => "–".into(),
+                });
+            }
+            rows.push(row);
+        }
+        let mut header = vec!["variable".to_string()];
+        header.extend(clusters.iter().map(|k| format!("cluster {k}")));
+        out.push(Table {
+            id: TableId::TableOne {
+                placement: placement.clone(),
+            },
+            note: format!("Covariates and indicators by cluster under '{placement}': mean (SD) for numbers, weighted count (%) for each level (for a binary column, its 1s). Posterior-weighted: each row counts in every cluster by its probability of belonging there (times its case weight). table1.csv also gives each summary over the rows whose most likely cluster it is."),
+            header,
+            rows,
+        });
+    }
 }
 
 /// Bootstrap tests of the cluster counts.

@@ -27,6 +27,7 @@ pub fn table_name(t: &TableId) -> String {
         TableId::GatingTests => "gating tests table".into(),
         TableId::ThreeStep => "three-step table".into(),
         TableId::Outcomes => "distal outcomes table".into(),
+        TableId::TableOne { placement } => format!("Table 1 of '{placement}'"),
         TableId::ClusterCountTests => "cluster count test table".into(),
         TableId::DirectEffects => "direct-effect screen table".into(),
         TableId::ComponentEffects => "component effects table".into(),

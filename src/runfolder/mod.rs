@@ -24,13 +24,14 @@ use std::path::{Path, PathBuf};
 
 /// The files a run writes (`manifest.json` last); a run folder holds these, `cache/`, and
 /// what `predict` wrote (`predictions/`).
-pub const FILES: [&str; 7] = [
+pub const FILES: [&str; 8] = [
     "results.json",
     "models.csv",
     "memberships.csv",
     crate::fit::saved::FILE_NAME,
     "summary.md",
     "report.html",
+    "table1.csv",
     "manifest.json",
 ];
 
@@ -51,6 +52,7 @@ pub fn outputs<'a>(loaded: &'a Loaded, run: &'a RunResults) -> Result<RunFiles<'
     if let Some(c) = &results.comparison {
         files.add("summary.md", render::document::markdown(results, c));
         files.add("report.html", render::document::html(results, c));
+        files.add("table1.csv", render::csv::table_one_csv(c));
     }
     Ok(files)
 }

@@ -478,3 +478,56 @@ gating = ["age", "smoker", "sex"]
         "profiles at the reference covariate values: age at entry 40.0 years (sample mean), current smoker 0, sex female (reference level)"
     );
 }
+
+/// Table 1 agrees with the cluster sizes (its posterior-weighted counts are the shares of
+/// the rows, its most-likely counts the rows assigned), its means are the posterior-weighted
+/// means computed here from the posteriors, and each categorical column's level shares add
+/// up to 1 in every cluster.
+#[test]
+fn table_one_agrees_with_the_sizes_and_the_posteriors() {
+    let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [3]\n");
+    let (d, p, fits) = run(&s);
+    let numbering = compare::number_clusters(&d, p.len(), &fits, &s.compare);
+    let c = compare::compare(&d, &p, &fits, &numbering, &s.compare, compare::InferenceInput::none());
+    let n = d.weights.len() as f64;
+    let data::Column::Numeric { values: age, .. } = &d.columns["age"] else {
+        panic!("age is numeric")
+    };
+    for l in &numbering.labelled {
+        let f = &fits[l.fit];
+        let tau = &f.best.as_ref().unwrap().run.tau;
+        for (k, &number) in l.aligned.iter().enumerate() {
+            let cell = |variable: &str, level: Option<&str>| {
+                c.table_one
+                    .iter()
+                    .find(|t| {
+                        t.placement == f.placement
+                            && t.cluster == number
+                            && t.variable == variable
+                            && t.level.as_deref() == level
+                    })
+                    .unwrap_or_else(|| panic!("{} cluster {number} {variable}", f.placement))
+            };
+            let profile = c
+                .profiles
+                .iter()
+                .find(|p| p.placement == f.placement && p.cluster == number)
+                .unwrap();
+            let rows = cell(compare::table_one::ROWS, None);
+            assert_eq!(rows.weighted.share, Some(profile.share));
+            assert_eq!(rows.most_likely.n, profile.count as f64);
+            let a = cell("age", None);
+            assert!((a.weighted.n - profile.share * n).abs() < 1e-9 * n);
+            assert_eq!(a.most_likely.n, profile.count as f64);
+            let (sw, swx) = (0..age.len()).fold((0.0, 0.0), |(w, wx), i| {
+                (w + tau[i * 3 + k], wx + tau[i * 3 + k] * age[i])
+            });
+            assert!((a.weighted.mean.unwrap() - swx / sw).abs() < 1e-9, "{:?}", a.weighted);
+            let shares: f64 = ["a", "b"]
+                .iter()
+                .map(|l| cell("group", Some(l)).weighted.share.unwrap())
+                .sum();
+            assert!((shares - 1.0).abs() < 1e-12);
+        }
+    }
+}
