@@ -96,7 +96,12 @@ impl Parts {
                 }),
         );
         self.effect_curves
-            .extend(curves(data, &gating, design, aligned, &f.placement));
+            .extend(curves(data, &gating, design, aligned, &f.placement, &|c: &str| {
+                // A covariate's joint Wald statistic, when the fit has standard errors.
+                inference
+                    .and_then(|fi| fi.gating_tests.iter().find(|t| t.covariate == c))
+                    .map_or(0.0, |t| t.statistic)
+            }));
     }
 
     /// Sizes, certainty and profiles of `f`'s clusters.
@@ -163,15 +168,40 @@ fn cluster_profile(data: &Dataset, best: &crate::fit::BestFit, k: usize) -> (Vec
 
 /// Effect curves for the first continuous gating covariate, by the levels of the first
 /// categorical one.
-fn curves(data: &Dataset, gating: &Gating, design: &Design, aligned: &[usize], placement: &str) -> Vec<EffectCurve> {
+/// Membership probabilities along the numeric gating covariate with the largest joint
+/// Wald statistic (`strength`; the first listed when there are no standard errors), one
+/// curve per level of the strongest categorical or binary gating covariate, the others at
+/// their reference values.
+fn curves(
+    data: &Dataset,
+    gating: &Gating,
+    design: &Design,
+    aligned: &[usize],
+    placement: &str,
+    strength: &dyn Fn(&str) -> f64,
+) -> Vec<EffectCurve> {
     use crate::data::Column;
+    use crate::spec::VariableType;
     let Gating::Logit { g, p, gamma, .. } = gating else {
         return Vec::new();
     };
     let (g, p) = (*g, *p);
-    let x_term = design.terms.iter().position(|t| {
-        t.covariate.as_ref().is_some_and(|c| matches!(data.columns.get(c), Some(Column::Numeric { kind, .. }) if *kind != crate::spec::VariableType::Binary))
-    });
+    // The strongest of the terms `keep` accepts (the first of equals).
+    let strongest = |keep: &dyn Fn(&Column) -> bool| -> Option<usize> {
+        let mut best: Option<(usize, f64)> = None;
+        for (j, t) in design.terms.iter().enumerate() {
+            let Some(c) = &t.covariate else { continue };
+            if !data.columns.get(c).is_some_and(keep) {
+                continue;
+            }
+            let s = strength(c);
+            if best.is_none_or(|(_, b)| s > b) {
+                best = Some((j, s));
+            }
+        }
+        best.map(|(j, _)| j)
+    };
+    let x_term = strongest(&|c| matches!(c, Column::Numeric { kind, .. } if *kind != VariableType::Binary));
     let Some(xj) = x_term else { return Vec::new() };
     let x_name = design.terms[xj].covariate.clone().unwrap_or_default();
     let Some(Column::Numeric { values, .. }) = data.columns.get(&x_name) else {
@@ -181,17 +211,28 @@ fn curves(data: &Dataset, gating: &Gating, design: &Design, aligned: &[usize], p
         .iter()
         .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| (a.min(*v), b.max(*v)));
     let xs: Vec<f64> = (0..=40).map(|i| lo + (hi - lo) * i as f64 / 40.0).collect();
-    // Levels of the first categorical gating covariate (reference level = all dummies 0).
-    let by = design.terms.iter().find_map(|t| {
-        let c = t.covariate.as_ref()?;
-        match data.columns.get(c) {
-            Some(Column::Categorical { levels, reference, .. }) => Some((c.clone(), levels.clone(), *reference)),
-            _ => None,
+    // Levels of the strongest categorical or binary gating covariate (the reference level
+    // has every dummy 0; a binary covariate's levels are 0 and 1).
+    let by = strongest(&|c| {
+        matches!(
+            c,
+            Column::Categorical { .. }
+                | Column::Numeric {
+                    kind: VariableType::Binary,
+                    ..
+                }
+        )
+    })
+    .and_then(|j| {
+        let c = design.terms[j].covariate.clone()?;
+        match data.columns.get(&c)? {
+            Column::Categorical { levels, .. } => Some((c, levels.clone())),
+            _ => Some((c, vec!["0".to_string(), "1".to_string()])),
         }
     });
     let settings: Vec<Option<(String, String)>> = match &by {
         None => vec![None],
-        Some((c, levels, _)) => levels.iter().map(|l| Some((c.clone(), l.clone()))).collect(),
+        Some((c, levels)) => levels.iter().map(|l| Some((c.clone(), l.clone()))).collect(),
     };
     let mut order: Vec<usize> = (0..g).collect();
     order.sort_by_key(|k| aligned[*k]);
@@ -205,7 +246,12 @@ fn curves(data: &Dataset, gating: &Gating, design: &Design, aligned: &[usize], p
             let t = &design.terms[xj];
             w[xj] = (x - t.center) / t.scale;
             if let Some((c, l)) = &level {
-                if let Some(j) = design.terms.iter().position(|t| t.name == format!("{c}={l}")) {
+                // A categorical level's dummy, or a binary covariate's own term at 1.
+                let j = design
+                    .terms
+                    .iter()
+                    .position(|t| t.name == format!("{c}={l}") || (t.name == *c && l == "1"));
+                if let Some(j) = j {
                     w[j] = 1.0;
                 }
             }

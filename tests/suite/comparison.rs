@@ -531,3 +531,45 @@ fn table_one_agrees_with_the_sizes_and_the_posteriors() {
         }
     }
 }
+
+/// The membership curves run along the numeric gating covariate with the largest joint
+/// Wald statistic: with standard errors, `dose` (a strong effect) though `age` (none) is
+/// listed first; without them, the first listed.
+#[test]
+fn membership_curves_follow_the_strongest_covariate() {
+    let dir = tempfile::tempdir().unwrap();
+    let truth_text = TRUTH
+        .replace(
+            "[[cluster]]\nname = \"one\"",
+            "[[covariate]]\nname = \"dose\"\ndistribution = \"normal\"\nmean = 0\nsd = 1\n[[cluster]]\nname = \"one\"",
+        )
+        .replace(
+            "gating = { intercept = -2.0, age = 0.04 }",
+            "gating = { intercept = -1.0, dose = 1.5 }",
+        );
+    let truth = simulate::parse(&dir.path().join("t.toml"), &truth_text).unwrap();
+    std::fs::write(&truth.output, simulate::generate(&truth).csv).unwrap();
+    let text = "[study]\ntitle = \"t\"\ndata = \"three.csv\"\nid = \"pid\"\n[variables]\nage = \"continuous\"\ndose = \"continuous\"\ngroup = \"categorical\"\n[indicators]\ncolumns = [\"y1\", \"y2\"]\n[search]\nstarts = 6\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"dose\"]\nclusters = [3]\n";
+    let s = spec::parse(&dir.path().join("s.toml"), text, &super::common::families().infos()).unwrap();
+    let (d, p, fits) = run(&s);
+    let numbering = compare::number_clusters(&d, p.len(), &fits, &s.compare);
+    let without = compare::compare(&d, &p, &fits, &numbering, &s.compare, compare::InferenceInput::none());
+    assert_eq!(without.effect_curves[0].covariate, "age");
+    let by_fit = cohortmix::inference::for_fits(&s, &d, &p, &fits, &[0]);
+    let input = compare::InferenceInput {
+        by_fit: &by_fit,
+        ..compare::InferenceInput::none()
+    };
+    let with = compare::compare(&d, &p, &fits, &numbering, &s.compare, input);
+    let statistic = |c: &str| {
+        with.gating_tests
+            .iter()
+            .find(|t| t.test.covariate == c)
+            .unwrap()
+            .test
+            .statistic
+    };
+    println!("Wald: age {:.1}, dose {:.1}", statistic("age"), statistic("dose"));
+    assert!(statistic("dose") > statistic("age"));
+    assert_eq!(with.effect_curves[0].covariate, "dose");
+}
