@@ -103,11 +103,23 @@ pub fn ticks(lo: f64, hi: f64, n: usize) -> Vec<f64> {
     out
 }
 
-fn fmt_tick(v: f64) -> String {
-    if v.abs() >= 1000.0 || (v - v.round()).abs() < 1e-9 {
-        format!("{v:.0}")
-    } else {
-        format!("{v:.2}").trim_end_matches('0').to_string()
+/// A tick label with as many decimals as the ticks' spacing `step` needs, so that
+/// neighbouring ticks never read alike (7186.5 and 7187.0, not 7187 and 7187).
+fn fmt_tick(v: f64, step: f64) -> String {
+    let decimals: usize = (0..=6usize)
+        .find(|d| {
+            let scaled = step.abs() * 10f64.powi(*d as i32);
+            (scaled - scaled.round()).abs() < 1e-6 * scaled.max(1.0)
+        })
+        .unwrap_or(6);
+    format!("{v:.decimals$}")
+}
+
+/// The spacing of a tick list (1 for a single tick).
+fn step_of(ticks: &[f64]) -> f64 {
+    match ticks {
+        [a, b, ..] => b - a,
+        _ => 1.0,
     }
 }
 
@@ -199,7 +211,9 @@ impl Frame {
             w - l - r,
             h - t - b
         );
-        for v in ticks(self.y.0, self.y.1, 5) {
+        let yt = ticks(self.y.0, self.y.1, 5);
+        let y_step = step_of(&yt);
+        for v in yt {
             let y = self.sy(v);
             let _ = write!(
                 s,
@@ -207,7 +221,7 @@ impl Frame {
                 w - r,
                 l - 6.0,
                 y + 4.0,
-                fmt_tick(v)
+                fmt_tick(v, y_step)
             );
         }
         let (x0, x1) = self.x;
@@ -216,13 +230,14 @@ impl Frame {
         } else {
             ticks(x0, x1, 6)
         };
+        let x_step = step_of(&xt);
         for v in xt {
             let x = self.sx(v);
             let _ = write!(
                 s,
                 r#"<text x="{x:.1}" y="{}" class="tk" text-anchor="middle">{}</text>"#,
                 h - b + 16.0,
-                fmt_tick(v)
+                fmt_tick(v, x_step)
             );
         }
         let _ = write!(
@@ -463,12 +478,14 @@ pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
         }
     }
     let y = h - 8.0;
-    for v in ticks(lo, hi, 3) {
+    let dt = ticks(lo, hi, 3);
+    let d_step = step_of(&dt);
+    for v in dt {
         let _ = write!(
             s,
             r#"<text x="{:.1}" y="{y}" class="tk" text-anchor="middle">{}</text>"#,
             sx(v),
-            fmt_tick(v)
+            fmt_tick(v, d_step)
         );
     }
     s.push_str("</svg>");
@@ -511,6 +528,17 @@ mod tests {
             esc(r#"<script>"a" & 'b'</script>"#),
             "&lt;script&gt;&quot;a&quot; &amp; &#39;b&#39;&lt;/script&gt;"
         );
+    }
+
+    #[test]
+    fn tick_labels_carry_the_decimals_their_spacing_needs() {
+        use super::fmt_tick;
+        // Ticks half a unit apart above 1000 keep one decimal (they read alike without it).
+        let labels: Vec<String> = [7186.5, 7187.0, 7187.5].iter().map(|v| fmt_tick(*v, 0.5)).collect();
+        assert_eq!(labels, ["7186.5", "7187.0", "7187.5"]);
+        assert_eq!(fmt_tick(0.25, 0.25), "0.25");
+        assert_eq!(fmt_tick(116000.0, 1000.0), "116000");
+        assert_eq!(fmt_tick(0.4, 0.2), "0.4");
     }
 
     #[test]
