@@ -15,7 +15,7 @@ use serde::Serialize;
 /// Version of the `results.json` layout (4: `newton_steps_failed` per fit; 5: every
 /// cluster by its number in the run's files, with its place in the fit beside it; 6: declared
 /// weight types and the statistics that follow them; 7: distal outcomes per fit).
-pub const SCHEMA_VERSION: u32 = 7;
+pub const SCHEMA_VERSION: u32 = 8;
 
 fn is_zero(n: &usize) -> bool {
     *n == 0

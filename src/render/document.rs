@@ -169,7 +169,7 @@ fn weights_line(s: &crate::pipeline::output::StudySummary) -> String {
         return match design {
             None => "none".into(),
             Some(d) => format!(
-                "none (equal selection probabilities); standard errors are design-based over {d}, by linearisation (Binder 1983), and the direct-effect screen divides its likelihood-ratio statistics by their mean design effect (first-order Rao-Scott correction)"
+                "none (equal selection probabilities); standard errors are design-based over {d}, by linearisation (Binder 1983), and the direct-effect screen refers its shared-effect score tests to the design-based score variance and divides its per-cluster likelihood-ratio statistics by their mean design effect (first-order Rao-Scott correction)"
             ),
         };
     };
@@ -180,9 +180,10 @@ fn weights_line(s: &crate::pipeline::output::StudySummary) -> String {
         ),
         _ => format!(
             "'{column}', sampling weights, rescaled to mean 1 over the rows used (their scale changes nothing); \
-             standard errors are design-based, {} (Binder 1983); the direct-effect screen divides \
-             its likelihood-ratio statistics by their mean design effect (first-order Rao-Scott \
-             correction); BIC, ICL and the cluster-count test treat the rescaled weights as counts, \
+             standard errors are design-based, {} (Binder 1983); the direct-effect screen refers \
+             its shared-effect score tests to the design-based score variance and divides its \
+             per-cluster likelihood-ratio statistics by their mean design effect (first-order \
+             Rao-Scott correction); BIC, ICL and the cluster-count test treat the rescaled weights as counts, \
              so they are approximate",
             match design {
                 Some(d) => format!("by linearisation over {d}"),

@@ -455,24 +455,40 @@ fn count_tests_table(c: &Comparison, out: &mut Vec<Table>) {
 /// The direct-effect screen.
 fn screen_table(c: &Comparison, out: &mut Vec<Table>) {
     if !c.direct_effects.is_empty() {
+        let test = |x: Option<f64>, df: usize, p: Option<f64>, note: &Option<String>| -> (String, String) {
+            match (x, p) {
+                (Some(x), Some(p)) => (format!("{x:.2} ({df})"), p_value(p)),
+                (Some(x), None) => (format!("{x:.2} ({df})"), note.clone().unwrap_or_else(|| "–".into())),
+                _ => ("–".into(), note.clone().unwrap_or_else(|| "–".into())),
+            }
+        };
         out.push(Table {
             id: TableId::DirectEffects,
-            note: "Likelihood-ratio tests of adding each covariate as a direct effect on an indicator inside every cluster, to the model with the placement's gating covariates (for a three-step placement, the one-step model its estimate assumes). Continuous indicators are tested together. ⚑ marks a test flagged by Holm's step-down procedure over the placement's tests (family-wise error 0.05; Holm 1979); for a three-step placement's own covariates it means the three-step assumption fails.".into(),
-            header: ["placement", "covariate", "indicator", "LR χ²", "df", "p-value", "flag"].iter().map(|s| s.to_string()).collect(),
+            note: "Tests of adding each covariate as a direct effect on an indicator, to the model with the placement's gating covariates (for a three-step placement, the one-step model its estimate assumes); continuous indicators are tested together. First, one effect shared by every cluster (score test at the model without it, df (levels − 1) × terms); then, as a follow-up, an effect of its own in each cluster (likelihood-ratio test, df clusters times as many), which also finds an effect present in some clusters only. ⚑ marks a pair with either test flagged by Holm's step-down procedure over all the placement's tests of both kinds (family-wise error 0.05; Holm 1979); for a three-step placement's own covariates it means the three-step assumption fails.".into(),
+            header: ["placement", "covariate", "indicator", "shared: score χ² (df)", "p-value", "per cluster: LR χ² (df)", "p-value", "flag"].iter().map(|s| s.to_string()).collect(),
             rows: c
                 .direct_effects
                 .iter()
                 .map(|t| {
+                    let (shared, shared_p) = test(t.shared.statistic, t.shared.df, t.shared.p_value, &t.shared.note);
+                    let (own, own_p) = test(t.statistic, t.df, t.p_value, &t.note);
+                    let which = match (t.shared.flagged, t.by_cluster_flagged) {
+                        (true, true) => "both tests",
+                        (true, false) => "shared",
+                        (false, true) => "per cluster",
+                        (false, false) => "",
+                    };
                     vec![
                         t.placement.clone(),
                         t.covariate.clone(),
                         t.indicator.clone(),
-                        opt(t.statistic, 2),
-                        t.df.to_string(),
-                        t.p_value.map_or_else(|| t.note.clone().unwrap_or_else(|| "–".into()), p_value),
+                        shared,
+                        shared_p,
+                        own,
+                        own_p,
                         match (t.flagged, t.step_three_covariate) {
-                            (true, true) => "⚑ three-step assumption fails".into(),
-                            (true, false) => "⚑".into(),
+                            (true, true) => format!("⚑ {which}: three-step assumption fails"),
+                            (true, false) => format!("⚑ {which}"),
                             _ => String::new(),
                         },
                     ]

@@ -179,19 +179,30 @@ fn phrase_effects(f: &Finding) -> (String, Vec<String>) {
             vec![format!("{ari:.3}")],
         ),
         Finding::DirectEffect(t) => {
-            let p = t.p_value.map_or_else(String::new, p_value);
+            // The flagged tests, shared first.
+            let mut evidence = Vec::new();
+            let mut numbers = Vec::new();
+            if let (true, Some(p)) = (t.shared.flagged, t.shared.p_value) {
+                evidence.push(format!("an effect shared by the clusters: score test p {}", p_value(p)));
+                numbers.push(p_value(p));
+            }
+            if let (true, Some(p)) = (t.by_cluster_flagged, t.p_value) {
+                evidence.push(format!("an effect per cluster: likelihood-ratio p {}", p_value(p)));
+                numbers.push(p_value(p));
+            }
+            let evidence = evidence.join("; ");
             let text = if t.step_three_covariate {
                 format!(
-                    "Warning: under '{}', {} has a direct effect on {} (likelihood-ratio p {p}), which the three-step estimate assumes away; prefer a placement that models it.",
+                    "Warning: under '{}', {} has a direct effect on {} ({evidence}), which the three-step estimate assumes away; prefer a placement that models it.",
                     t.placement, t.covariate, t.indicator
                 )
             } else {
                 format!(
-                    "Under '{}', {} may act directly on {} (likelihood-ratio p {p}); the clusters' meaning then differs across its values unless the effect is modelled (acts_on).",
+                    "Under '{}', {} may act directly on {} ({evidence}); the clusters' meaning then differs across its values unless the effect is modelled (acts_on).",
                     t.placement, t.covariate, t.indicator
                 )
             };
-            (text, vec![p])
+            (text, numbers)
         }
         Finding::ModelChoice { .. } | Finding::ShareChange { .. } | Finding::ProfileShift { .. } => phrase(f),
     }

@@ -394,6 +394,37 @@ impl Block for CountComponents {
         Ok(read)
     }
 
+    fn embed(&mut self, smaller: &dyn Block) -> std::result::Result<(), String> {
+        let small = smaller
+            .as_any()
+            .downcast_ref::<CountComponents>()
+            .ok_or("the smaller block is not of counts")?;
+        if small.g != self.g || small.terms.len() != self.terms.len() {
+            return Err("the smaller block of counts has other clusters or counts".into());
+        }
+        let names = |c: &CountComponents, j: usize| -> Vec<String> {
+            c.terms[j]
+                .iter()
+                .map(|&t| c.rows.design.terms[t].name.clone())
+                .collect()
+        };
+        for j in 0..self.terms.len() {
+            let (large, small_terms) = (names(self, j), names(small, j));
+            let positions = super::term_positions(
+                &large.iter().map(String::as_str).collect::<Vec<_>>(),
+                &small_terms.iter().map(String::as_str).collect::<Vec<_>>(),
+            );
+            let (q, qs) = (large.len(), small_terms.len());
+            for k in 0..self.g {
+                for (a, from) in positions.iter().enumerate() {
+                    self.coef[j][k * q + a] = from.map_or(0.0, |b| small.coef[j][k * qs + b]);
+                }
+            }
+        }
+        self.started = true;
+        Ok(())
+    }
+
     fn chart(&self) -> std::result::Result<Box<dyn BlockChart + '_>, String> {
         Ok(Box::new(CountChart {
             base: self,

@@ -559,6 +559,54 @@ impl Block for ItemComponents {
         Ok(read)
     }
 
+    fn embed(&mut self, smaller: &dyn Block) -> std::result::Result<(), String> {
+        let small = smaller
+            .as_any()
+            .downcast_ref::<ItemComponents>()
+            .ok_or("the smaller block is not of items")?;
+        if small.g != self.g || small.levels != self.levels {
+            return Err("the smaller block of items has other clusters or items".into());
+        }
+        let names = |c: &ItemComponents, j: usize| -> Vec<String> {
+            c.terms[j]
+                .iter()
+                .map(|&t| c.rows.design.terms[t].name.clone())
+                .collect()
+        };
+        for j in 0..self.levels.len() {
+            let l = self.levels[j];
+            let (large, small_terms) = (names(self, j), names(small, j));
+            let q = large.len();
+            if q == 1 {
+                if small_terms.len() != 1 {
+                    return Err("the smaller block of items has a term the larger lacks".into());
+                }
+                self.log_prob[j].clone_from(&small.log_prob[j]);
+                continue;
+            }
+            let positions = super::term_positions(
+                &large.iter().map(String::as_str).collect::<Vec<_>>(),
+                &small_terms.iter().map(String::as_str).collect::<Vec<_>>(),
+            );
+            let qs = small_terms.len();
+            for k in 0..self.g {
+                for lv in 1..l {
+                    let start = (k * (l - 1) + lv - 1) * q;
+                    for (a, from) in positions.iter().enumerate() {
+                        self.coef[j][start + a] = match (from, qs) {
+                            // Without covariates the smaller block holds probabilities:
+                            // the intercept is the level's log odds against the first.
+                            (Some(0), 1) => small.log_prob[j][k * l + lv] - small.log_prob[j][k * l],
+                            (Some(b), _) => small.coef[j][(k * (l - 1) + lv - 1) * qs + b],
+                            (None, _) => 0.0,
+                        };
+                    }
+                }
+            }
+        }
+        Ok(())
+    }
+
     fn chart(&self) -> std::result::Result<Box<dyn BlockChart + '_>, String> {
         for (j, lp) in self.log_prob.iter().enumerate() {
             if self.terms[j].len() == 1 && lp.iter().any(|v| !v.is_finite()) {

@@ -390,6 +390,23 @@ pub trait Block: BlockBase + Debug + Send + Sync {
     /// Its parameters and EM state, to save and to restore exactly
     /// ([`Prepared::restore`]).
     fn state(&self) -> serde_json::Value;
+
+    /// Take the parameters of `smaller`, the same family's block over the same indicators
+    /// with a subset of this block's design terms, and set every coefficient of a term
+    /// `smaller` lacks to 0: the larger model at the smaller one's point (the score test
+    /// of the direct-effect screen evaluates it there). Terms are matched by name. A family
+    /// that cannot do this keeps the default, which says so.
+    fn embed(&mut self, _smaller: &dyn Block) -> std::result::Result<(), String> {
+        Err(format!(
+            "the {} family cannot evaluate a larger model at a smaller one's point",
+            self.info().word
+        ))
+    }
+}
+
+/// For each of `larger`'s term names, its position among `smaller`'s (None: a new term).
+pub fn term_positions(larger: &[&str], smaller: &[&str]) -> Vec<Option<usize>> {
+    larger.iter().map(|t| smaller.iter().position(|s| s == t)).collect()
 }
 
 impl Clone for Box<dyn Block> {

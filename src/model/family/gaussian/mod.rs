@@ -690,6 +690,33 @@ impl Block for GaussianComponents {
         Ok(Box::new(chart::GaussianChart::new(self)?))
     }
 
+    fn embed(&mut self, smaller: &dyn Block) -> std::result::Result<(), String> {
+        let small = smaller
+            .as_any()
+            .downcast_ref::<GaussianComponents>()
+            .ok_or("the smaller block is not Gaussian")?;
+        if (small.g, small.d, small.structure) != (self.g, self.d, self.structure) {
+            return Err("the smaller Gaussian block has other clusters, indicators or structure".into());
+        }
+        let names = |c: &GaussianComponents| c.rows.design.terms.iter().map(|t| t.name.clone()).collect::<Vec<_>>();
+        let (large_names, small_names) = (names(self), names(small));
+        let positions = super::term_positions(
+            &large_names.iter().map(String::as_str).collect::<Vec<_>>(),
+            &small_names.iter().map(String::as_str).collect::<Vec<_>>(),
+        );
+        let (d, q, qs) = (self.d, self.q, small.q);
+        for k in 0..self.g {
+            for (a, from) in positions.iter().enumerate() {
+                for j in 0..d {
+                    self.coef[(k * q + a) * d + j] = from.map_or(0.0, |b| small.coef[(k * qs + b) * d + j]);
+                }
+            }
+            self.set_covariance(k, small.cov[k].clone()).map_err(|e| e.reason)?;
+        }
+        self.orientation = small.orientation.clone();
+        Ok(())
+    }
+
     fn parameters(&self) -> Vec<Parameter> {
         let (d, q) = (self.d, self.q);
         let (names, design) = (&self.rows.names, &self.rows.design);
