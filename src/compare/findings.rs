@@ -172,6 +172,41 @@ pub enum Finding {
     },
     /// A direct effect the screen flags.
     DirectEffect(DirectEffectTest),
+    /// Criteria that would choose another cluster count than BIC does.
+    CriteriaDisagree {
+        /// Placement.
+        placement: String,
+        /// The count BIC chooses (the compared fit's).
+        clusters: usize,
+        /// Each disagreeing criterion: its name, the count it chooses and its value there.
+        others: Vec<(&'static str, usize, f64)>,
+        /// Whether to suggest the bootstrap test of the cluster count: it did not run for
+        /// the placement, and no earlier finding suggested it.
+        suggest_count_test: bool,
+    },
+    /// The compared fit's count is the largest (or, above 1, the smallest) count fitted, so
+    /// the best count may lie outside the range.
+    EdgeOfRange {
+        /// Placement.
+        placement: String,
+        /// The compared fit's count.
+        clusters: usize,
+        /// Whether it is the largest count fitted (else the smallest).
+        largest: bool,
+        /// Its BIC.
+        bic: f64,
+    },
+    /// The compared fit's best optimum was reached by a single start.
+    FewStarts {
+        /// Placement.
+        placement: String,
+        /// Clusters.
+        clusters: usize,
+        /// Starts on the best optimum.
+        reached: usize,
+        /// Starts run.
+        starts: usize,
+    },
 }
 
 impl Finding {
@@ -220,6 +255,21 @@ impl Finding {
                 },
                 RowRef::Whole,
             ),
+            Finding::CriteriaDisagree {
+                placement, clusters, ..
+            }
+            | Finding::EdgeOfRange {
+                placement, clusters, ..
+            }
+            | Finding::FewStarts {
+                placement, clusters, ..
+            } => (
+                TableId::Criteria,
+                RowRef::Fit {
+                    placement: placement.clone(),
+                    clusters: *clusters,
+                },
+            ),
             Finding::DirectEffect(t) => (
                 TableId::DirectEffects,
                 RowRef::Test {
@@ -246,6 +296,7 @@ pub fn findings(c: &Comparison) -> Vec<Finding> {
             bic: r.bic.unwrap_or(f64::NAN),
         })
         .collect();
+    out.extend(count_choice(c));
     out.extend(share_changes(&c.reference, &c.profiles));
     out.extend(profile_shift(&c.reference, &c.indicators, &c.profiles));
     out.extend(gating_finding(&c.gating_effects));
@@ -263,6 +314,73 @@ pub fn findings(c: &Comparison) -> Vec<Finding> {
             .filter(|t| t.flagged)
             .map(|t| Finding::DirectEffect(t.clone())),
     );
+    out
+}
+
+/// What qualifies each placement's choice of cluster count: criteria that choose another
+/// count, a choice at the edge of the fitted range, a best optimum reached by one start.
+fn count_choice(c: &Comparison) -> Vec<Finding> {
+    let mut out = Vec::new();
+    let mut placements: Vec<&str> = Vec::new();
+    for r in &c.criteria {
+        if !placements.contains(&r.placement.as_str()) {
+            placements.push(&r.placement);
+        }
+    }
+    for placement in placements {
+        let rows: Vec<&super::Criteria> = c.criteria.iter().filter(|r| r.placement == placement).collect();
+        let Some(chosen) = rows.iter().find(|r| r.chosen) else {
+            continue;
+        };
+        let best_by = |value: fn(&super::Criteria) -> Option<f64>| {
+            rows.iter()
+                .filter_map(|r| value(r).map(|v| (r.clusters, v)))
+                .min_by(|a, b| a.1.total_cmp(&b.1))
+        };
+        let others: Vec<(&'static str, usize, f64)> = [("AIC", best_by(|r| r.aic)), ("ICL", best_by(|r| r.icl))]
+            .into_iter()
+            .filter_map(|(name, best)| best.map(|(k, v)| (name, k, v)))
+            .filter(|(_, k, _)| *k != chosen.clusters)
+            .collect();
+        if !others.is_empty() {
+            out.push(Finding::CriteriaDisagree {
+                placement: placement.to_string(),
+                clusters: chosen.clusters,
+                others,
+                suggest_count_test: !c.cluster_count_tests.iter().any(|t| t.placement == placement)
+                    && !out.iter().any(|f| {
+                        matches!(
+                            f,
+                            Finding::CriteriaDisagree {
+                                suggest_count_test: true,
+                                ..
+                            }
+                        )
+                    }),
+            });
+        }
+        let fitted: Vec<usize> = rows.iter().filter(|r| r.bic.is_some()).map(|r| r.clusters).collect();
+        let (lo, hi) = (
+            fitted.iter().copied().min().unwrap_or(0),
+            fitted.iter().copied().max().unwrap_or(0),
+        );
+        if hi > lo && (chosen.clusters == hi || (chosen.clusters == lo && lo > 1)) {
+            out.push(Finding::EdgeOfRange {
+                placement: placement.to_string(),
+                clusters: chosen.clusters,
+                largest: chosen.clusters == hi,
+                bic: chosen.bic.unwrap_or(f64::NAN),
+            });
+        }
+        if chosen.clusters > 1 && chosen.starts > 1 && chosen.starts_reaching_best < 2 {
+            out.push(Finding::FewStarts {
+                placement: placement.to_string(),
+                clusters: chosen.clusters,
+                reached: chosen.starts_reaching_best,
+                starts: chosen.starts,
+            });
+        }
+    }
     out
 }
 

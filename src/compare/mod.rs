@@ -17,7 +17,7 @@ pub mod table_one;
 pub mod terms;
 
 pub use align::{Numbering, ALL_PAIRS_UP_TO};
-pub use findings::{Finding, RowRef, Source, TableId};
+pub use findings::{findings, Finding, RowRef, Source, TableId};
 
 use crate::data::Dataset;
 use crate::fit::{chosen_fits, FitResult, PreparedPlacement};

@@ -83,6 +83,67 @@ fn phrase(f: &Finding) -> (String, Vec<String>) {
             format!("Under '{placement}' the comparison uses {clusters} clusters ({covariance}), BIC {bic:.1}."),
             vec![format!("{bic:.1}")],
         ),
+        Finding::CriteriaDisagree {
+            placement,
+            clusters,
+            others,
+            suggest_count_test,
+        } => {
+            let list = others
+                .iter()
+                .map(|(name, k, v)| {
+                    // Common practice: AIC's penalty is light, and in mixtures it tends to
+                    // favour more components than BIC.
+                    let aside = if *name == "AIC" && k > clusters {
+                        ", which tends to favour more clusters than BIC in mixtures,"
+                    } else {
+                        ""
+                    };
+                    format!("{name}{aside} would choose {k} ({name} {v:.1})")
+                })
+                .collect::<Vec<_>>()
+                .join(" and ");
+            let test = if *suggest_count_test {
+                " The bootstrap test of the cluster count did not run; [inference] cluster_count_replicates runs it."
+                    .to_string()
+            } else {
+                String::new()
+            };
+            (
+                format!(
+                    "Under '{placement}' the criteria disagree on the number of clusters: BIC chooses {clusters}, while {list}. The count is uncertain: read the neighbouring solutions beside the chosen one.{test}"
+                ),
+                others.iter().map(|(_, _, v)| format!("{v:.1}")).collect(),
+            )
+        }
+        Finding::EdgeOfRange {
+            placement,
+            clusters,
+            largest,
+            bic,
+        } => (
+            if *largest {
+                format!(
+                    "Under '{placement}' BIC chooses {clusters} clusters (BIC {bic:.1}), the largest count fitted: more clusters might fit better; fit a wider range before settling on it."
+                )
+            } else {
+                format!(
+                    "Under '{placement}' BIC chooses {clusters} clusters (BIC {bic:.1}), the smallest count fitted: fewer clusters were not tried; fit a wider range before settling on it."
+                )
+            },
+            vec![format!("{bic:.1}")],
+        ),
+        Finding::FewStarts {
+            placement,
+            clusters,
+            reached,
+            starts,
+        } => (
+            format!(
+                "Under '{placement}' the best fit with {clusters} clusters was reached by {reached}/{starts} starts: another search may find a better one; run more starts ([search] starts) to confirm it."
+            ),
+            vec![format!("{reached}/{starts}")],
+        ),
         Finding::ShareChange {
             reference,
             placement,
@@ -204,7 +265,12 @@ fn phrase_effects(f: &Finding) -> (String, Vec<String>) {
             };
             (text, numbers)
         }
-        Finding::ModelChoice { .. } | Finding::ShareChange { .. } | Finding::ProfileShift { .. } => phrase(f),
+        Finding::ModelChoice { .. }
+        | Finding::ShareChange { .. }
+        | Finding::ProfileShift { .. }
+        | Finding::CriteriaDisagree { .. }
+        | Finding::EdgeOfRange { .. }
+        | Finding::FewStarts { .. } => phrase(f),
     }
 }
 

@@ -573,3 +573,124 @@ fn membership_curves_follow_the_strongest_covariate() {
     assert!(statistic("dose") > statistic("age"));
     assert_eq!(with.effect_curves[0].covariate, "dose");
 }
+
+/// The choice of cluster count is qualified in words: on data drawn with three clusters,
+/// a range that stops at two makes the choice sit at its edge, and a range that starts at
+/// four does too (fewer were not tried). Each sentence points at the compared fit's row.
+#[test]
+fn a_cluster_count_at_the_edge_of_the_fitted_range_is_said() {
+    let (_dir, s) = study("[[placement]]\nname = \"short\"\nclusters = [1, 2]\n[[placement]]\nname = \"high\"\nclusters = [4, 5]\n[[placement]]\nname = \"wide\"\nclusters = [1, 2, 3, 4, 5]\n");
+    let (d, p, fits) = run(&s);
+    let c = compare::compare(
+        &d,
+        &p,
+        &fits,
+        &compare::number_clusters(&d, p.len(), &fits, &s.compare),
+        &s.compare,
+        compare::InferenceInput::none(),
+    );
+    let edges: Vec<(&str, usize, bool)> = c
+        .findings
+        .iter()
+        .filter_map(|f| match f {
+            compare::Finding::EdgeOfRange {
+                placement,
+                clusters,
+                largest,
+                ..
+            } => Some((placement.as_str(), *clusters, *largest)),
+            _ => None,
+        })
+        .collect();
+    assert_eq!(edges, vec![("short", 2, true), ("high", 4, false)], "{:?}", c.findings);
+    let chosen_wide = c.criteria.iter().find(|r| r.placement == "wide" && r.chosen).unwrap();
+    assert_eq!(chosen_wide.clusters, 3);
+    for f in c
+        .findings
+        .iter()
+        .filter(|f| matches!(f, compare::Finding::EdgeOfRange { .. }))
+    {
+        let sentence = words::sentence(f, &c.cluster_names);
+        assert!(sentence.text.contains("wider range"), "{}", sentence.text);
+        assert!(
+            sentence.source.starts_with("criteria table, placement"),
+            "{}",
+            sentence.source
+        );
+    }
+}
+
+/// Criteria that choose another count than BIC are named with their values, and a best
+/// optimum reached by a single start is said; the bootstrap test's absence is said once.
+#[test]
+fn disagreeing_criteria_and_a_lone_start_are_said() {
+    use compare::{Criteria, Finding};
+    let row = |placement: &str, clusters: usize, bic: f64, aic: f64, icl: f64, reached: usize, chosen: bool| Criteria {
+        placement: placement.into(),
+        clusters,
+        covariance: "unconstrained".into(),
+        status: "converged".into(),
+        loglik: Some(0.0),
+        parameters: 1,
+        bic: Some(bic),
+        aic: Some(aic),
+        sabic: Some(bic),
+        icl: Some(icl),
+        bic_entropy: Some(icl),
+        bic_weight: None,
+        relative_entropy: None,
+        average_posterior: Vec::new(),
+        smallest_share: None,
+        smallest_count: None,
+        starts_reaching_best: reached,
+        starts: 20,
+        chosen,
+    };
+    let (_dir, s) = study("[[placement]]\nname = \"a\"\nclusters = [2]\n");
+    let (d, p, fits) = run(&s);
+    let mut c = compare::compare(
+        &d,
+        &p,
+        &fits,
+        &compare::number_clusters(&d, p.len(), &fits, &s.compare),
+        &s.compare,
+        compare::InferenceInput::none(),
+    );
+    c.criteria = vec![
+        row("a", 1, 130.0, 125.0, 129.0, 20, false),
+        row("a", 2, 100.0, 90.0, 101.0, 1, true),
+        row("a", 3, 110.0, 80.0, 120.0, 3, false),
+        row("b", 1, 300.0, 290.0, 299.0, 20, false),
+        row("b", 2, 200.0, 190.0, 201.0, 9, true),
+        row("b", 3, 250.0, 180.0, 260.0, 5, false),
+    ];
+    c.cluster_count_tests.clear();
+    let found = compare::findings(&c);
+    let disagree: Vec<&Finding> = found
+        .iter()
+        .filter(|f| matches!(f, Finding::CriteriaDisagree { .. }))
+        .collect();
+    assert_eq!(disagree.len(), 2);
+    let texts: Vec<String> = disagree
+        .iter()
+        .map(|f| words::sentence(f, &c.cluster_names).text)
+        .collect();
+    assert!(
+        texts[0].contains("BIC chooses 2") && texts[0].contains("would choose 3 (AIC 80.0)"),
+        "{}",
+        texts[0]
+    );
+    assert!(!texts[0].contains("ICL would"), "ICL agrees with BIC: {}", texts[0]);
+    assert!(texts[0].contains("cluster_count_replicates") && !texts[1].contains("cluster_count_replicates"));
+    let lone: Vec<String> = found
+        .iter()
+        .filter(|f| matches!(f, Finding::FewStarts { .. }))
+        .map(|f| words::sentence(f, &c.cluster_names).text)
+        .collect();
+    assert_eq!(lone.len(), 1, "{lone:?}");
+    assert!(
+        lone[0].contains("'a'") && lone[0].contains("1/20 starts"),
+        "{}",
+        lone[0]
+    );
+}
