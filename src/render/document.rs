@@ -233,8 +233,10 @@ fn capitalise(s: &str) -> String {
 fn html_table(out: &mut String, t: &Table) {
     let _ = write!(
         out,
-        "<p class=\"note\">{}</p><div class=\"scroll\"><table><thead><tr>",
-        esc(&t.note)
+        "<p class=\"note\">{}</p><div class=\"scroll\"><table{}><thead><tr>",
+        esc(&t.note),
+        // Many columns: a smaller type, so that the table fits a laptop's screen.
+        if t.header.len() > 9 { " class=\"wide\"" } else { "" }
     );
     for h in &t.header {
         let _ = write!(out, "<th>{}</th>", esc(h));
@@ -270,12 +272,12 @@ fn html_table(out: &mut String, t: &Table) {
 const CSS: &str = "body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#111;line-height:1.45}\
 h1{font-size:1.6em}h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #ccc}\
 table{border-collapse:collapse;font-size:.85em;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:3px 6px;text-align:left;vertical-align:top}\
-th{background:#ececec}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
+th{background:#ececec}table.wide{font-size:.74em}table.wide th,table.wide td{padding:2px 4px}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
 .caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff8f2}\
 .sw{display:inline-block;width:.8em;height:.8em;margin-right:.35em;border:1px solid #000;vertical-align:middle}\
 svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
-svg.small{width:300px;height:auto;display:inline-block;margin:.3em}\
-svg.grid{max-width:420px;height:auto;display:inline-block;margin:.3em}\
+svg.small{width:300px;height:auto;display:inline-block;margin:.3em}svg.dots{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
+svg.grid{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
 svg text.ct{font-size:14px;font-weight:600}svg text.tk{font-size:11px}\
 p.cap{font-weight:600;font-size:.9em;margin:1em 0 0}.curves svg.chart{max-width:520px;display:inline-block}\
 @media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}\

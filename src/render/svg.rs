@@ -309,13 +309,9 @@ pub fn stacked_shares(title: &str, rows: &[(String, Vec<(usize, f64)>)]) -> Stri
     open_svg(&mut s, (w, h), title, "chart", Some((10.0, 18.0, "ct", usize::MAX)));
     for (i, (label, segs)) in rows.iter().enumerate() {
         let y = 32.0 + i as f64 * (bar + 12.0);
-        let _ = write!(
-            s,
-            r#"<text x="{}" y="{}" class="tk" text-anchor="end">{}</text>"#,
-            l - 8.0,
-            y + bar / 2.0 + 4.0,
-            esc(&truncate(label, 34))
-        );
+        let lines = wrap(label, 34, 2);
+        let first = y + bar / 2.0 + 4.0 - 6.0 * (lines.len() as f64 - 1.0);
+        text_lines(&mut s, l - 8.0, first, &lines, "tk", "end");
         let mut x = l;
         for (k, share) in segs {
             let width = share * (w - l - 10.0);
@@ -324,7 +320,13 @@ pub fn stacked_shares(title: &str, rows: &[(String, Vec<(usize, f64)>)]) -> Stri
                 s,
                 r##"<rect x="{x:.1}" y="{y}" width="{width:.1}" height="{bar}" fill="{fill}" stroke="#fff" stroke-width="1"/>"##
             );
-            if width > 34.0 {
+            // The label that fits the segment: number and share, else the number alone,
+            // else none (the table below the chart has every share).
+            let full = format!("{k} · {:.0}%", 100.0 * share);
+            let label = [full, k.to_string()]
+                .into_iter()
+                .find(|t| tick_text_width(t) + 6.0 <= width);
+            if let Some(label) = label {
                 let text_fill = if matches!(*k % PALETTE.len(), 2 | 7) {
                     "#000"
                 } else {
@@ -332,11 +334,9 @@ pub fn stacked_shares(title: &str, rows: &[(String, Vec<(usize, f64)>)]) -> Stri
                 };
                 let _ = write!(
                     s,
-                    r#"<text x="{:.1}" y="{}" class="tk" fill="{text_fill}" text-anchor="middle">{} · {:.0}%</text>"#,
+                    r#"<text x="{:.1}" y="{}" class="tk" fill="{text_fill}" text-anchor="middle">{label}</text>"#,
                     x + width / 2.0,
                     y + bar / 2.0 + 4.0,
-                    k,
-                    100.0 * share
                 );
             }
             x += width;
@@ -356,16 +356,22 @@ pub fn shaded_grid(
     counts: &[Vec<usize>],
 ) -> String {
     let cell = 46.0;
-    let (l, t) = (110.0, 56.0);
-    let w = l + cell * cols.len() as f64 + 20.0;
+    let l = 110.0;
+    let w = (l + cell * cols.len() as f64 + 20.0).max(300.0);
+    let chars = ((w - 8.0) / 6.2) as usize;
+    // The title and the two placements' names, wrapped to the grid's width.
+    let mut header: Vec<String> = wrap(title, chars, 3);
+    header.extend(wrap(&format!("rows: {row_title}"), chars, 2));
+    header.extend(wrap(&format!("columns: {col_title}"), chars, 2));
+    let t = 16.0 + 12.0 * header.len() as f64 + 18.0;
     let h = t + cell * rows.len() as f64 + 20.0;
     let mut s = String::new();
-    open_svg(&mut s, (w, h), title, "grid", Some((4.0, 16.0, "tk", 60)));
     let _ = write!(
         s,
-        r#"<text x="{l}" y="32" class="tk">columns: {}</text>"#,
-        esc(&truncate(col_title, 40))
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" width="{w}" role="img" aria-label="{}" class="grid">"#,
+        esc(title)
     );
+    text_lines(&mut s, 4.0, 16.0, &header, "tk", "start");
     for (j, c) in cols.iter().enumerate() {
         let _ = write!(
             s,
@@ -374,12 +380,6 @@ pub fn shaded_grid(
             t - 6.0
         );
     }
-    let _ = write!(
-        s,
-        r#"<text x="4" y="{}" class="tk">rows: {}</text>"#,
-        t - 6.0,
-        esc(&truncate(row_title, 14))
-    );
     for (i, r) in rows.iter().enumerate() {
         let total: usize = counts[i].iter().sum();
         let y = t + cell * i as f64;
@@ -449,16 +449,37 @@ pub fn histogram(title: &str, bins: &[f64]) -> String {
 /// One row of a dot chart: label, colour, and (marker style, value) marks.
 pub type DotRow = (String, &'static str, Vec<(usize, f64)>);
 
-/// Dot rows: for each row label, markers (style, value) on a shared axis.
+/// Width in px of `text` at the charts' tick size (11 px), a generous estimate (0.56 em
+/// per character) so that labels laid out by it are not cut.
+pub fn tick_text_width(text: &str) -> f64 {
+    6.2 * text.chars().count() as f64
+}
+
+/// Dot rows: for each row label, markers (style, value) on a shared axis. The label column
+/// is as wide as the longest label, and markers of different styles (placements) sit a
+/// little apart vertically, so that equal values do not hide each other.
 pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
-    let w = 300.0;
-    let l = 80.0;
-    let row_h = 22.0;
+    let longest = rows.iter().map(|r| tick_text_width(&r.0)).fold(0.0, f64::max);
+    let l = (longest + 12.0).max(60.0);
+    let plot = 220.0;
+    let w = l + plot + 14.0;
+    let styles = rows.iter().flat_map(|r| r.2.iter().map(|m| m.0 + 1)).max().unwrap_or(1);
+    let dodge = 5.0;
+    let row_h = (10.0 + dodge * styles as f64).max(22.0);
     let h = 44.0 + rows.len() as f64 * row_h;
     let (lo, hi) = if hi > lo { (lo, hi) } else { (lo - 1.0, hi + 1.0) };
     let sx = |v: f64| l + (v - lo) / (hi - lo) * (w - l - 14.0);
     let mut s = String::new();
-    open_svg(&mut s, (w, h), title, "small", Some((4.0, 16.0, "tk", 44)));
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" width="{w}" role="img" aria-label="{}" class="dots">"#,
+        esc(title)
+    );
+    let _ = write!(
+        s,
+        r#"<text x="4" y="16" class="tk">{}</text>"#,
+        esc(&truncate(title, ((w - 8.0) / 6.2) as usize))
+    );
     for (i, (label, colour, marks)) in rows.iter().enumerate() {
         let y = 30.0 + i as f64 * row_h;
         let _ = write!(
@@ -474,7 +495,8 @@ pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
             esc(label)
         );
         for (style, v) in marks {
-            s.push_str(&marker(*style, sx(*v), y, colour));
+            let offset = (*style as f64 - (styles as f64 - 1.0) / 2.0) * dodge;
+            s.push_str(&marker(*style, sx(*v), y + offset, colour));
         }
     }
     let y = h - 8.0;
@@ -509,6 +531,50 @@ fn open_svg(s: &mut String, (w, h): (f64, f64), title: &str, class: &str, inner:
     }
 }
 
+/// Break text at spaces into lines of at most `n` characters, at most `max_lines` of
+/// them (the last cut with an ellipsis if the text runs on); a word longer than a line is
+/// cut.
+pub fn wrap(text: &str, n: usize, max_lines: usize) -> Vec<String> {
+    let mut lines: Vec<String> = Vec::new();
+    let mut line = String::new();
+    for word in text.split_whitespace() {
+        let candidate = if line.is_empty() {
+            word.to_string()
+        } else {
+            format!("{line} {word}")
+        };
+        if candidate.chars().count() <= n || line.is_empty() {
+            line = candidate;
+        } else {
+            lines.push(std::mem::take(&mut line));
+            line = word.to_string();
+        }
+    }
+    if !line.is_empty() {
+        lines.push(line);
+    }
+    if lines.len() > max_lines {
+        let rest = lines[max_lines - 1..].join(" ");
+        lines.truncate(max_lines - 1);
+        lines.push(rest);
+        let last = lines.pop().unwrap_or_default();
+        lines.push(truncate(&last, n));
+    }
+    lines.into_iter().map(|l| truncate(&l, n)).collect()
+}
+
+/// `<text>` lines (11 px apart) starting at baseline y; `anchor` is an SVG text-anchor.
+fn text_lines(s: &mut String, x: f64, y: f64, lines: &[String], class: &str, anchor: &str) {
+    for (i, line) in lines.iter().enumerate() {
+        let _ = write!(
+            s,
+            r#"<text x="{x:.1}" y="{:.1}" class="{class}" text-anchor="{anchor}">{}</text>"#,
+            y + 12.0 * i as f64,
+            esc(line)
+        );
+    }
+}
+
 /// Cut text to `n` characters, ending with an ellipsis when cut.
 pub fn truncate(s: &str, n: usize) -> String {
     if s.chars().count() <= n {
@@ -539,6 +605,55 @@ mod tests {
         assert_eq!(fmt_tick(0.25, 0.25), "0.25");
         assert_eq!(fmt_tick(116000.0, 1000.0), "116000");
         assert_eq!(fmt_tick(0.4, 0.2), "0.4");
+    }
+
+    #[test]
+    fn wrapping_breaks_at_spaces_and_cuts_only_past_its_last_line() {
+        let text = "membership by age, sex, exposure; smoking shifts profiles";
+        assert_eq!(
+            wrap(text, 34, 2),
+            ["membership by age, sex, exposure;", "smoking shifts profiles"]
+        );
+        assert_eq!(wrap(text, 20, 2), ["membership by age,", "sex, exposure; smok…"]);
+        assert_eq!(wrap("short", 34, 2), ["short"]);
+        assert!(wrap(text, 20, 2).iter().all(|l| l.chars().count() <= 20));
+    }
+
+    #[test]
+    fn dot_rows_leave_room_for_their_longest_label() {
+        let rows: Vec<DotRow> = vec![
+            (
+                "cluster 1 (preserved function)".into(),
+                "#000",
+                vec![(0, 1.0), (1, 1.0)],
+            ),
+            ("cluster 2".into(), "#000", vec![(0, 2.0)]),
+        ];
+        let svg = dot_rows("FEV1 (% predicted)", &rows, 0.0, 3.0);
+        // The label column ends 6 px left of the axis, which starts after the label's width.
+        let axis = svg
+            .split("<line x1=\"")
+            .nth(1)
+            .and_then(|rest| rest.split('"').next())
+            .and_then(|x| x.parse::<f64>().ok())
+            .unwrap();
+        assert!(
+            axis - 6.0 >= tick_text_width("cluster 1 (preserved function)"),
+            "{axis}"
+        );
+        assert!(
+            svg.contains(">cluster 1 (preserved function)</text>"),
+            "the label is whole"
+        );
+    }
+
+    #[test]
+    fn a_segment_label_is_written_only_where_it_fits() {
+        let svg = stacked_shares("t", &[("p".into(), vec![(1, 0.9), (2, 0.05), (3, 0.05 * 0.1)])]);
+        assert!(svg.contains(">1 · 90%<"), "{svg}");
+        // 5% of the bar is about 20 px: room for the number, not for the share.
+        assert!(svg.contains(">2<") && !svg.contains("2 · 5%"), "{svg}");
+        assert!(!svg.contains(">3<"), "{svg}");
     }
 
     #[test]
