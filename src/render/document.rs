@@ -208,6 +208,24 @@ pub fn markdown(results: &Results, c: &Comparison) -> String {
     for w in &results.study.data_warnings {
         let _ = write!(s, "\n>\n> **Data.** {}", md_text(w));
     }
+    let cards = cards(c);
+    if !cards.is_empty() {
+        let _ = write!(
+            s,
+            "\n\n## At a glance: the clusters of '{}'\n\nSize as in Table 1 (posterior-weighted); certainty: mean top posterior of the rows assigned to the cluster.\n",
+            md_text(&c.reference)
+        );
+        for card in &cards {
+            let mut line = format!("{} of the cohort", card.size);
+            if let Some(certainty) = &card.certainty {
+                line.push_str(&format!(", certainty {certainty}"));
+            }
+            if !card.stands_out.is_empty() {
+                line.push_str(&format!("; {}", card.stands_out.join(", ")));
+            }
+            let _ = write!(s, "\n- **{}**: {}", md_text(&card.title), md_text(&line));
+        }
+    }
     s.push_str("\n\n## What changes between placements\n\n");
     for sentence in c.findings.iter().map(|f| words::sentence(f, &c.cluster_names)) {
         let _ = writeln!(s, "- {} *(see {})*", md_text(&sentence.text), md_text(&sentence.source));
@@ -272,7 +290,7 @@ fn html_table(out: &mut String, t: &Table) {
 const CSS: &str = "body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#111;line-height:1.45}\
 h1{font-size:1.6em}h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #ccc}\
 table{border-collapse:collapse;font-size:.85em;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:3px 6px;text-align:left;vertical-align:top}\
-th{background:#ececec}table.wide{font-size:.74em}table.wide th,table.wide td{padding:2px 4px}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
+th{background:#ececec}.cards{display:flex;flex-wrap:wrap;gap:12px}.card{border:1px solid #bbb;border-top:8px solid #888;padding:.3em .8em;flex:1 1 240px;max-width:340px;break-inside:avoid}.card h3{margin:.3em 0;font-size:1.05em}.card p{margin:.3em 0}.card table{font-size:.8em;margin:.3em 0}.card td{border:none;border-bottom:1px solid #eee;padding:1px 4px}table.wide{font-size:.74em}table.wide th,table.wide td{padding:2px 4px}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
 .caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff8f2}\
 .sw{display:inline-block;width:.8em;height:.8em;margin-right:.35em;border:1px solid #000;vertical-align:middle}\
 svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
@@ -313,6 +331,7 @@ fn html_head(s: &mut String, results: &Results, c: &Comparison) {
         let _ = write!(s, "<li><b>Data:</b> {}</li>", esc(w));
     }
     s.push_str("</ul></div>");
+    s.push_str(&cluster_cards(c));
     s.push_str("<h2>What changes between placements</h2><ul>");
     for sentence in c.findings.iter().map(|f| words::sentence(f, &c.cluster_names)) {
         let _ = write!(
@@ -323,6 +342,120 @@ fn html_head(s: &mut String, results: &Results, c: &Comparison) {
         );
     }
     s.push_str("</ul>");
+}
+
+/// One card of the reference placement's compared fit: a cluster in a few lines, its
+/// numbers those of Table 1 and the criteria table.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ClusterCard {
+    /// Aligned cluster number.
+    pub cluster: usize,
+    /// "cluster k (name)".
+    pub title: String,
+    /// The Table 1 "rows" cell: weighted count (share).
+    pub size: String,
+    /// Mean top posterior of its members (criteria table), two decimals.
+    pub certainty: Option<String>,
+    /// What sets it apart: the indicators on which it is the highest or lowest cluster.
+    pub stands_out: Vec<String>,
+    /// Every other Table 1 line: (label, cell), indicators first.
+    pub lines: Vec<(String, String)>,
+}
+
+/// The cards of the reference placement's compared fit, from `c.table_one`.
+pub fn cards(c: &Comparison) -> Vec<ClusterCard> {
+    use crate::compare::table_one::ROWS;
+    use crate::render::tables::{table_one_cell, table_one_label};
+    let cells: Vec<_> = c.table_one.iter().filter(|t| t.placement == c.reference).collect();
+    let mut clusters: Vec<usize> = cells.iter().map(|t| t.cluster).collect();
+    clusters.sort_unstable();
+    clusters.dedup();
+    let chosen = c.criteria.iter().find(|r| r.placement == c.reference && r.chosen);
+    let mean_of = |k: usize, variable: &str| {
+        cells
+            .iter()
+            .find(|t| t.cluster == k && t.variable == variable && t.level.is_none())
+            .and_then(|t| t.weighted.mean)
+    };
+    clusters
+        .iter()
+        .map(|&k| {
+            let own: Vec<_> = cells.iter().filter(|t| t.cluster == k).collect();
+            let size = own
+                .iter()
+                .find(|t| t.variable == ROWS)
+                .map_or_else(|| "–".to_string(), |t| table_one_cell(&t.weighted));
+            let mut stands_out = Vec::new();
+            if clusters.len() > 1 {
+                for ind in &c.indicators {
+                    let values: Vec<(usize, f64)> = clusters
+                        .iter()
+                        .filter_map(|&j| mean_of(j, ind).map(|v| (j, v)))
+                        .collect();
+                    let Some(mine) = mean_of(k, ind) else { continue };
+                    if values.iter().all(|(j, v)| *j == k || *v < mine) {
+                        stands_out.push(format!("highest {ind}"));
+                    } else if values.iter().all(|(j, v)| *j == k || *v > mine) {
+                        stands_out.push(format!("lowest {ind}"));
+                    }
+                }
+            }
+            let is_indicator = |t: &crate::compare::table_one::TableOneCell| c.indicators.contains(&t.variable);
+            let lines = own
+                .iter()
+                .filter(|t| is_indicator(t))
+                .chain(own.iter().filter(|t| t.variable != ROWS && !is_indicator(t)))
+                .map(|t| (table_one_label(t), table_one_cell(&t.weighted)))
+                .collect();
+            ClusterCard {
+                cluster: k,
+                title: crate::render::name_clusters(&format!("cluster {k}"), &c.cluster_names),
+                size,
+                certainty: chosen
+                    .and_then(|r| r.average_posterior.iter().find(|v| v.cluster == k))
+                    .map(|v| format!("{:.2}", v.value)),
+                stands_out,
+                lines,
+            }
+        })
+        .collect()
+}
+
+/// The page's first view: the reference placement's clusters as cards.
+fn cluster_cards(c: &Comparison) -> String {
+    let cards = cards(c);
+    if cards.is_empty() {
+        return String::new();
+    }
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        "<h2>At a glance: the clusters of '{}'</h2><p class=\"note\">The reference placement's compared fit, one card per cluster. Size and every line below it are Table 1's (posterior-weighted: mean (SD), or count (%)); certainty is the mean top posterior of the rows assigned to the cluster (1 = every member clearly belongs). A summary of a model, not a diagnosis.</p><div class=\"cards\">",
+        esc(&c.reference)
+    );
+    for card in &cards {
+        let _ = write!(
+            s,
+            "<div class=\"card\" style=\"border-top-color:{}\"><h3>{}</h3><p><b>{}</b> of the cohort",
+            cluster_colour(card.cluster),
+            esc(&card.title),
+            esc(&card.size)
+        );
+        if let Some(certainty) = &card.certainty {
+            let _ = write!(s, " · certainty {}", esc(certainty));
+        }
+        s.push_str("</p>");
+        if !card.stands_out.is_empty() {
+            let _ = write!(s, "<p>{}</p>", esc(&capitalise(&card.stands_out.join(", "))));
+        }
+        s.push_str("<table><tbody>");
+        for (label, cell) in &card.lines {
+            let _ = write!(s, "<tr><td>{}</td><td>{}</td></tr>", esc(label), esc(cell));
+        }
+        s.push_str("</tbody></table></div>");
+    }
+    s.push_str("</div>");
+    s
 }
 
 /// Model choice: the BIC chart, the criteria and the bootstrap count test.

@@ -381,6 +381,24 @@ fn outcomes_table(c: &Comparison, out: &mut Vec<Table>) {
     });
 }
 
+/// A Table 1 summary as Table 1 and the cluster cards write it: mean (SD) for numbers,
+/// weighted count (%) for a level.
+pub fn table_one_cell(s: &crate::compare::table_one::Summary) -> String {
+    match (s.mean, s.sd, s.share) {
+        (Some(m), Some(sd), _) => format!("{} ({})", val(m), val(sd)),
+        (_, _, Some(share)) => format!("{:.0} ({})", s.n, pct(share)),
+        _ => "–".into(),
+    }
+}
+
+/// A Table 1 line's label: the variable, and its level if it has one.
+pub fn table_one_label(t: &crate::compare::table_one::TableOneCell) -> String {
+    match &t.level {
+        Some(level) => format!("{}: {level}", t.variable),
+        None => t.variable.clone(),
+    }
+}
+
 /// Table 1 of each placement: variables (and levels) by aligned cluster, posterior-weighted.
 fn table_one(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
     for placement in placements {
@@ -394,23 +412,13 @@ fn table_one(c: &Comparison, placements: &[String], out: &mut Vec<Table>) {
         clusters.dedup();
         let mut rows: Vec<Vec<String>> = Vec::new();
         for t in cells.iter().filter(|t| t.cluster == clusters[0]) {
-            let mut row = vec![match &t.level {
-                Some(level) => format!("{}: {level}", t.variable),
-                None => t.variable.clone(),
-            }];
+            let mut row = vec![table_one_label(t)];
             for k in &clusters {
                 let cell = cells
                     .iter()
                     .find(|x| x.cluster == *k && x.variable == t.variable && x.level == t.level)
                     .map(|x| &x.weighted);
-                row.push(match cell {
-                    Some(s) => match (s.mean, s.sd, s.share) {
-                        (Some(m), Some(sd), _) => format!("{} ({})", val(m), val(sd)),
-                        (_, _, Some(share)) => format!("{:.0} ({})", s.n, pct(share)),
-                        _ => "–".into(),
-                    },
-                    None => "–".into(),
-                });
+                row.push(cell.map_or_else(|| "–".into(), table_one_cell));
             }
             rows.push(row);
         }

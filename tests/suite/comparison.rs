@@ -694,3 +694,72 @@ fn disagreeing_criteria_and_a_lone_start_are_said() {
         lone[0]
     );
 }
+
+/// Every number on a cluster card is the one Table 1 and the criteria table print for that
+/// cluster: size and each line against Table 1's column of the cluster, certainty against
+/// the compared fit's "mean top posterior by cluster".
+#[test]
+fn cluster_cards_print_table_one_numbers() {
+    let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [3]\n[[placement]]\nname = \"gated\"\ngating = [\"age\", \"group\"]\nclusters = [3]\n");
+    let (d, p, fits) = run(&s);
+    let c = compare::compare(
+        &d,
+        &p,
+        &fits,
+        &compare::number_clusters(&d, p.len(), &fits, &s.compare),
+        &s.compare,
+        compare::InferenceInput::none(),
+    );
+    let cards = render::document::cards(&c);
+    assert_eq!(cards.len(), 3);
+    let tables = render::tables::tables(&c);
+    let table_one = tables
+        .iter()
+        .find(|t| {
+            t.id == compare::TableId::TableOne {
+                placement: c.reference.clone(),
+            }
+        })
+        .expect("Table 1 of the reference");
+    let criteria = tables.iter().find(|t| t.id == compare::TableId::Criteria).unwrap();
+    let certainty_column = criteria
+        .header
+        .iter()
+        .position(|h| h == "mean top posterior by cluster")
+        .unwrap();
+    let compared_column = criteria.header.iter().position(|h| h == "compared").unwrap();
+    let compared = criteria
+        .rows
+        .iter()
+        .find(|r| r[0] == c.reference && r[compared_column] == "✓")
+        .unwrap();
+    let mut checked = 0;
+    for card in &cards {
+        let column = table_one
+            .header
+            .iter()
+            .position(|h| *h == format!("cluster {}", card.cluster))
+            .unwrap();
+        let cell = |label: &str| {
+            table_one
+                .rows
+                .iter()
+                .find(|r| r[0] == label)
+                .map(|r| r[column].clone())
+                .unwrap_or_else(|| panic!("no Table 1 line '{label}'"))
+        };
+        assert_eq!(card.size, cell("rows"));
+        for (label, value) in &card.lines {
+            assert_eq!(*value, cell(label), "cluster {}, {label}", card.cluster);
+            checked += 1;
+        }
+        let certainty = card.certainty.as_ref().expect("a certainty");
+        assert!(
+            compared[certainty_column].contains(&format!("{}: {certainty}", card.cluster)),
+            "{certainty} against {}",
+            compared[certainty_column]
+        );
+    }
+    // Two indicators, age and the group's two levels on every card.
+    assert_eq!(checked, 3 * 5, "{checked} lines");
+}
