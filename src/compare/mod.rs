@@ -288,6 +288,86 @@ pub struct CrossTable {
     pub agreement: Vec<Option<f64>>,
 }
 
+/// How the reference placement's clusters split from one cluster count to the next: the
+/// rows (weighted) by most likely cluster under the best fit with `from` clusters and under
+/// the best with `to` = `from` + 1, both of the compared fit's covariance structure, in the
+/// run's cluster numbers.
+#[derive(Debug, Clone, Serialize, schemars::JsonSchema)]
+pub struct SplitStep {
+    /// Placement.
+    pub placement: String,
+    /// The smaller count.
+    pub from: usize,
+    /// The larger count.
+    pub to: usize,
+    /// Cluster numbers of the `from` fit.
+    pub from_clusters: Vec<usize>,
+    /// Cluster numbers of the `to` fit.
+    pub to_clusters: Vec<usize>,
+    /// Weighted rows, `counts[a][b]`: most likely cluster `from_clusters[a]`, then
+    /// `to_clusters[b]`.
+    pub counts: Vec<Vec<f64>>,
+}
+
+/// The reference placement's split steps over the counts fitted, at the compared fit's
+/// structure.
+fn splits(
+    fits: &[FitResult],
+    numbering: &Numbering,
+    chosen: &[Option<usize>],
+    reference: usize,
+    weights: &[f64],
+) -> Vec<SplitStep> {
+    let Some(compared) = chosen.get(reference).copied().flatten() else {
+        return Vec::new();
+    };
+    let structure = fits[compared].structure;
+    let mut by_count: Vec<usize> = fits
+        .iter()
+        .enumerate()
+        .filter(|(_, f)| f.placement_index == reference && f.structure == structure && f.best.is_some())
+        .map(|(i, _)| i)
+        .collect();
+    by_count.sort_by_key(|i| fits[*i].clusters);
+    let mut out = Vec::new();
+    for pair in by_count.windows(2) {
+        let (a, b) = (&fits[pair[0]], &fits[pair[1]]);
+        if b.clusters != a.clusters + 1 {
+            continue;
+        }
+        let (Some(ba), Some(bb)) = (&a.best, &b.best) else {
+            continue;
+        };
+        let (ga, gb) = (a.clusters, b.clusters);
+        let mut counts = vec![vec![0.0; gb]; ga];
+        for (i, w) in weights.iter().enumerate() {
+            let ka = crate::numerics::most_likely(&ba.run.tau[i * ga..(i + 1) * ga]);
+            let kb = crate::numerics::most_likely(&bb.run.tau[i * gb..(i + 1) * gb]);
+            counts[ka][kb] += w;
+        }
+        // Rows and columns in the order of their numbers.
+        let order = |numbers: &[usize]| {
+            let mut o: Vec<usize> = (0..numbers.len()).collect();
+            o.sort_by_key(|k| numbers[*k]);
+            o
+        };
+        let (na, nb) = (numbering.of(pair[0]), numbering.of(pair[1]));
+        let (oa, ob) = (order(na), order(nb));
+        out.push(SplitStep {
+            placement: a.placement.clone(),
+            from: ga,
+            to: gb,
+            from_clusters: oa.iter().map(|k| na[*k]).collect(),
+            to_clusters: ob.iter().map(|k| nb[*k]).collect(),
+            counts: oa
+                .iter()
+                .map(|ka| ob.iter().map(|kb| counts[*ka][*kb]).collect())
+                .collect(),
+        });
+    }
+    out
+}
+
 /// Membership probabilities against one continuous gating covariate, with the other
 /// covariates at their reference values (one curve set per level of a categorical
 /// gating covariate, when there is one).
@@ -345,6 +425,8 @@ pub struct Comparison {
     /// Bootstrap likelihood-ratio tests of each compared fit's cluster count against one
     /// fewer.
     pub cluster_count_tests: Vec<crate::inference::cluster_test::ClusterCountTest>,
+    /// How the reference placement's clusters split as the count grows.
+    pub splits: Vec<SplitStep>,
     /// Component covariate effects (mean differences, odds ratios, rate ratios).
     pub component_effects: Vec<ComponentEffect>,
     /// How standard errors were computed, and per placement why they are missing
@@ -540,6 +622,7 @@ pub fn compare(
         component_effects: parts.component_effects,
         inference_notes: parts.inference_notes,
         cross_tables,
+        splits: splits(fits, numbering, &chosen, settings.reference, weights),
         certainty: parts.certainty,
         effect_curves: parts.effect_curves,
         findings: Vec::new(),

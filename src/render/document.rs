@@ -295,7 +295,7 @@ th{background:#ececec}.cards{display:flex;flex-wrap:wrap;gap:12px}.card{border:1
 .sw{display:inline-block;width:.8em;height:.8em;margin-right:.35em;border:1px solid #000;vertical-align:middle}\
 svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
 svg.small{width:300px;height:auto;display:inline-block;margin:.3em}svg.dots{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
-svg.grid{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
+svg.split{max-width:100%;height:auto;display:block;margin:.5em 0}svg.grid{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
 svg text.ct{font-size:14px;font-weight:600}svg text.tk{font-size:11px}\
 p.cap{font-weight:600;font-size:.9em;margin:1em 0 0}.curves svg.chart{max-width:520px;display:inline-block}\
 @media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}\
@@ -462,6 +462,7 @@ fn cluster_cards(c: &Comparison) -> String {
 fn html_model_choice(s: &mut String, c: &Comparison, find: &Find) {
     s.push_str("<h2>Model choice</h2>");
     s.push_str(&criteria_chart(c));
+    s.push_str(&split_chart(c));
     if let Some(t) = find(TableId::Criteria) {
         html_table(s, t);
     }
@@ -627,6 +628,53 @@ fn html_agreement(s: &mut String, results: &Results, c: &Comparison, all: &[Tabl
         "<p class=\"note\">Spec: {}. BIC = −2 loglik + parameters × ln(rows); smaller is better.</p></body></html>",
         esc(&results.study.spec_file)
     );
+}
+
+/// The split diagram of the reference placement, when it was fitted at two or more
+/// consecutive counts.
+fn split_chart(c: &Comparison) -> String {
+    if c.splits.is_empty() {
+        return String::new();
+    }
+    let mut columns: Vec<svg::SplitColumn> = Vec::new();
+    let mut flows = Vec::new();
+    for (i, step) in c.splits.iter().enumerate() {
+        if i > 0 && c.splits[i - 1].to != step.from {
+            break; // a gap in the counts: draw the run that starts at the smallest
+        }
+        if i == 0 {
+            columns.push((
+                step.from,
+                step.from_clusters
+                    .iter()
+                    .zip(&step.counts)
+                    .map(|(k, row)| (*k, row.iter().sum()))
+                    .collect(),
+            ));
+        }
+        columns.push((
+            step.to,
+            step.to_clusters
+                .iter()
+                .enumerate()
+                .map(|(b, k)| (*k, step.counts.iter().map(|row| row[b]).sum()))
+                .collect(),
+        ));
+        flows.push(step.counts.clone());
+    }
+    let chosen = c
+        .criteria
+        .iter()
+        .find(|r| r.placement == c.reference && r.chosen)
+        .map_or(0, |r| r.clusters);
+    let mut s = svg::split_diagram(
+        &format!("How the clusters of '{}' split as the count grows", c.reference),
+        &columns,
+        &flows,
+        chosen,
+    );
+    s.push_str("<p class=\"note\">Each column is the best fit with that many clusters (the compared fit's covariance structure); bars are clusters, labelled by number and share of the rows by most likely cluster, and bands carry the rows from one count to the next (bands under 2% of the rows left out). Read the compared count beside its neighbours: a cluster that splits cleanly in two is a finer view of the same group; one built from pieces of several is a different grouping.</p>");
+    s
 }
 
 fn criteria_chart(c: &Comparison) -> String {

@@ -346,6 +346,132 @@ pub fn stacked_shares(title: &str, rows: &[(String, Vec<(usize, f64)>)]) -> Stri
     s
 }
 
+/// One column of a split diagram: a cluster count and its clusters (number, weight).
+pub type SplitColumn = (usize, Vec<(usize, f64)>);
+
+/// How clusters split as the count grows: one column per count, each cluster a bar whose
+/// height is its share, and bands from each cluster to the clusters its rows go to at the
+/// next count (bands under 2% of the rows are left out). `flows[j][a][b]` is the weight
+/// going from column j's cluster a to column j + 1's cluster b; `chosen` is the compared
+/// count, whose header is marked.
+pub fn split_diagram(title: &str, columns: &[SplitColumn], flows: &[Vec<Vec<f64>>], chosen: usize) -> String {
+    let n = columns.len().max(1);
+    let (l, r, t, plot_h) = (30.0, 64.0, 52.0, 300.0);
+    let bar = 16.0;
+    let w = (l + r + 130.0 * (n as f64 - 1.0) + bar).max(300.0);
+    let h = t + plot_h + 20.0;
+    let gap = 6.0;
+    let x_of = |j: usize| l + (w - l - r - bar) * j as f64 / (n as f64 - 1.0).max(1.0);
+    // Each cluster's top and height, column by column.
+    let layout: Vec<Vec<(f64, f64)>> = columns
+        .iter()
+        .map(|(_, clusters)| {
+            let total: f64 = clusters.iter().map(|c| c.1).sum::<f64>().max(f64::MIN_POSITIVE);
+            let room = plot_h - gap * (clusters.len() as f64 - 1.0);
+            let mut y = t;
+            clusters
+                .iter()
+                .map(|(_, weight)| {
+                    let height = room * weight / total;
+                    let top = y;
+                    y += height + gap;
+                    (top, height)
+                })
+                .collect()
+        })
+        .collect();
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" width="{w}" role="img" aria-label="{}" class="split">"#,
+        esc(title)
+    );
+    text_lines(
+        &mut s,
+        4.0,
+        16.0,
+        &wrap(title, ((w - 8.0) / 7.6) as usize, 2),
+        "ct",
+        "start",
+    );
+    for (j, (count, _)) in columns.iter().enumerate() {
+        let label = if *count == chosen {
+            format!("{count} (compared)")
+        } else {
+            count.to_string()
+        };
+        let weight = if *count == chosen { "bold" } else { "normal" };
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{}" class="tk" font-weight="{weight}" text-anchor="middle">{}</text>"#,
+            x_of(j) + bar / 2.0,
+            t - 8.0,
+            esc(&label)
+        );
+    }
+    // Bands first, under the bars.
+    for (j, flow) in flows.iter().enumerate().take(n - 1) {
+        let total: f64 = flow.iter().flatten().sum::<f64>().max(f64::MIN_POSITIVE);
+        let (from, to) = (&layout[j], &layout[j + 1]);
+        let from_total: Vec<f64> = flow
+            .iter()
+            .map(|row| row.iter().sum::<f64>().max(f64::MIN_POSITIVE))
+            .collect();
+        let to_total: Vec<f64> = (0..to.len())
+            .map(|b| flow.iter().map(|row| row[b]).sum::<f64>().max(f64::MIN_POSITIVE))
+            .collect();
+        let mut out_at: Vec<f64> = from.iter().map(|f| f.0).collect();
+        let mut in_at: Vec<f64> = to.iter().map(|f| f.0).collect();
+        let (x0, x1) = (x_of(j) + bar, x_of(j + 1));
+        let mid = (x0 + x1) / 2.0;
+        for (a, row) in flow.iter().enumerate() {
+            for (b, v) in row.iter().enumerate() {
+                let out_h = from[a].1 * v / from_total[a];
+                let in_h = to[b].1 * v / to_total[b];
+                let (ya, yb) = (out_at[a], in_at[b]);
+                out_at[a] += out_h;
+                in_at[b] += in_h;
+                if v / total < 0.02 {
+                    continue;
+                }
+                let k = columns[j].1[a].0;
+                let _ = write!(
+                    s,
+                    r#"<path d="M{x0:.1},{ya:.1} C{mid:.1},{ya:.1} {mid:.1},{yb:.1} {x1:.1},{yb:.1} L{x1:.1},{:.1} C{mid:.1},{:.1} {mid:.1},{:.1} {x0:.1},{:.1} Z" fill="{}" fill-opacity="0.35" stroke="none"/>"#,
+                    yb + in_h,
+                    yb + in_h,
+                    ya + out_h,
+                    ya + out_h,
+                    cluster_colour(k)
+                );
+            }
+        }
+    }
+    for (j, (_, clusters)) in columns.iter().enumerate() {
+        let total: f64 = clusters.iter().map(|c| c.1).sum::<f64>().max(f64::MIN_POSITIVE);
+        for ((k, weight), (top, height)) in clusters.iter().zip(&layout[j]) {
+            let x = x_of(j);
+            let _ = write!(
+                s,
+                r##"<rect x="{x:.1}" y="{top:.1}" width="{bar}" height="{:.1}" fill="{}" stroke="#333" stroke-width="0.5"/>"##,
+                height.max(0.5),
+                cluster_colour(*k)
+            );
+            if *height >= 12.0 {
+                let _ = write!(
+                    s,
+                    r#"<text x="{:.1}" y="{:.1}" class="tk">{k} · {:.0}%</text>"#,
+                    x + bar + 3.0,
+                    top + height / 2.0 + 4.0,
+                    100.0 * weight / total
+                );
+            }
+        }
+    }
+    s.push_str("</svg>");
+    s
+}
+
 /// A shaded grid: cells shaded by their share of the row, with counts written in.
 pub fn shaded_grid(
     title: &str,
@@ -654,6 +780,19 @@ mod tests {
         // 5% of the bar is about 20 px: room for the number, not for the share.
         assert!(svg.contains(">2<") && !svg.contains("2 · 5%"), "{svg}");
         assert!(!svg.contains(">3<"), "{svg}");
+    }
+
+    #[test]
+    fn a_split_diagram_marks_the_compared_count_and_drops_thin_bands() {
+        let columns: Vec<SplitColumn> = vec![(1, vec![(1, 100.0)]), (2, vec![(1, 60.0), (2, 40.0)])];
+        // 99 rows go to the two clusters; 1 row (1%) would be a band too thin to draw.
+        let flows = vec![vec![vec![59.0, 41.0]]];
+        let svg = split_diagram("t", &columns, &flows, 2);
+        assert!(svg.contains(">2 (compared)<"), "{svg}");
+        assert_eq!(svg.matches("<path").count(), 2);
+        assert!(svg.contains(">1 · 60%<") && svg.contains(">2 · 40%<"), "{svg}");
+        let thin = vec![vec![vec![99.0, 1.0]]];
+        assert_eq!(split_diagram("t", &columns, &thin, 2).matches("<path").count(), 1);
     }
 
     #[test]

@@ -763,3 +763,45 @@ fn cluster_cards_print_table_one_numbers() {
     // Two indicators, age and the group's two levels on every card.
     assert_eq!(checked, 3 * 5, "{checked} lines");
 }
+
+/// The split steps of the reference placement: one per pair of consecutive counts, each
+/// count's clusters in the run's numbers, the counts' rows adding up to the cohort at every
+/// step, and one step's larger fit the next step's smaller one.
+#[test]
+fn split_steps_carry_every_row_from_one_count_to_the_next() {
+    let (_dir, s) = study("[[placement]]\nname = \"plain\"\nclusters = [1, 2, 3, 4]\n");
+    let (d, p, fits) = run(&s);
+    let numbering = compare::number_clusters(&d, p.len(), &fits, &s.compare);
+    let c = compare::compare(&d, &p, &fits, &numbering, &s.compare, compare::InferenceInput::none());
+    assert_eq!(
+        c.splits.iter().map(|x| (x.from, x.to)).collect::<Vec<_>>(),
+        [(1, 2), (2, 3), (3, 4)]
+    );
+    let total: f64 = d.weights.iter().sum();
+    for (i, step) in c.splits.iter().enumerate() {
+        let sum: f64 = step.counts.iter().flatten().sum();
+        assert!((sum - total).abs() < 1e-9, "{sum} against {total}");
+        let mut numbers = step.to_clusters.clone();
+        numbers.sort_unstable();
+        numbers.dedup();
+        assert_eq!(numbers.len(), step.to, "numbers are distinct");
+        if let Some(next) = c.splits.get(i + 1) {
+            assert_eq!(step.to_clusters, next.from_clusters);
+            for (b, _) in step.to_clusters.iter().enumerate() {
+                let into: f64 = step.counts.iter().map(|row| row[b]).sum();
+                let out_of: f64 = next.counts[b].iter().sum();
+                assert!(
+                    (into - out_of).abs() < 1e-9,
+                    "cluster {} holds {into} then {out_of}",
+                    step.to_clusters[b]
+                );
+            }
+        }
+    }
+    // The compared count's clusters carry the numbers every other file uses.
+    let compared = c.criteria.iter().find(|r| r.chosen).unwrap();
+    let step = c.splits.iter().find(|x| x.to == compared.clusters).unwrap();
+    let mut numbers = step.to_clusters.clone();
+    numbers.sort_unstable();
+    assert_eq!(numbers, (1..=compared.clusters).collect::<Vec<_>>());
+}
