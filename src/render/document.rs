@@ -290,7 +290,7 @@ fn html_table(out: &mut String, t: &Table) {
 const CSS: &str = "body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#111;line-height:1.45}\
 h1{font-size:1.6em}h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #ccc}\
 table{border-collapse:collapse;font-size:.85em;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:3px 6px;text-align:left;vertical-align:top}\
-th{background:#ececec}.cards{display:flex;flex-wrap:wrap;gap:12px}.card{border:1px solid #bbb;border-top:8px solid #888;padding:.3em .8em;flex:1 1 240px;max-width:340px;break-inside:avoid}.card h3{margin:.3em 0;font-size:1.05em}.card p{margin:.3em 0}.card table{font-size:.8em;margin:.3em 0}.card td{border:none;border-bottom:1px solid #eee;padding:1px 4px}table.wide{font-size:.74em}table.wide th,table.wide td{padding:2px 4px}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
+th{background:#ececec}.tile{display:inline-block;vertical-align:top;width:310px;margin:0 10px 10px 0;border:1px solid #bbb;border-top:8px solid #888;padding:.3em .8em;break-inside:avoid}.tile h3{margin:.3em 0;font-size:1.05em}.tile p{margin:.3em 0}.tile table{font-size:.8em;margin:.3em 0}.tile td{border:none;border-bottom:1px solid #ededed;padding:1px 4px}table.wide{font-size:.74em}table.wide th,table.wide td{padding:2px 4px}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
 .caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff8f2}\
 .sw{display:inline-block;width:.8em;height:.8em;margin-right:.35em;border:1px solid #000;vertical-align:middle}\
 svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
@@ -430,13 +430,13 @@ fn cluster_cards(c: &Comparison) -> String {
     let mut s = String::new();
     let _ = write!(
         s,
-        "<h2>At a glance: the clusters of '{}'</h2><p class=\"note\">The reference placement's compared fit, one card per cluster. Size and every line below it are Table 1's (posterior-weighted: mean (SD), or count (%)); certainty is the mean top posterior of the rows assigned to the cluster (1 = every member clearly belongs). A summary of a model, not a diagnosis.</p><div class=\"cards\">",
+        "<h2>At a glance: the clusters of '{}'</h2><p class=\"note\">The reference placement's compared fit, one card per cluster. Size and every line below it are Table 1's (posterior-weighted: mean (SD), or count (%)); certainty is the mean top posterior of the rows assigned to the cluster (1 = every member clearly belongs). A summary of a model, not a diagnosis.</p><div class=\"tiles\">",
         esc(&c.reference)
     );
     for card in &cards {
         let _ = write!(
             s,
-            "<div class=\"card\" style=\"border-top-color:{}\"><h3>{}</h3><p><b>{}</b> of the cohort",
+            "<div class=\"tile\" style=\"border-top-color:{}\"><h3>{}</h3><p><b>{}</b> of the cohort",
             cluster_colour(card.cluster),
             esc(&card.title),
             esc(&card.size)
