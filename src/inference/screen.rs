@@ -143,27 +143,9 @@ pub fn screen(
     let covariates: Vec<String> = study.all_covariates().iter().map(|c| c.name.clone()).collect();
     let mut out = Vec::new();
     for &fi in which {
-        let f = &fits[fi];
-        let Some(best) = &f.best else { continue };
-        let pp = &prepared[f.placement_index];
-        let mut null = pp.placement.clone();
-        null.method = Method::OneStep;
-        let fit = FitScreen {
-            study,
-            data,
-            pp,
-            f,
-            tau: &best.run.tau,
-            // Refits run to the polish tolerance, as the fits they start from did, so that
-            // the statistic is a difference of two optima.
-            settings: EmSettings {
-                tolerance: crate::fit::POLISH_TOLERANCE,
-                ..EmSettings::for_search(&study.search)
-            },
-            options: ModelOptions::for_study(study, f.structure),
-            null,
-        };
-        out.extend(fit.tests(&covariates));
+        if let Some(fit) = FitScreen::new(study, data, prepared, &fits[fi]) {
+            out.extend(fit.tests(&covariates));
+        }
     }
     out
 }
@@ -183,24 +165,10 @@ pub fn per_cluster_scores(
     which: usize,
 ) -> Vec<ScoreBesideRatio> {
     let covariates: Vec<String> = study.all_covariates().iter().map(|c| c.name.clone()).collect();
-    let f = &fits[which];
-    let Some(best) = &f.best else { return Vec::new() };
-    let pp = &prepared[f.placement_index];
-    let mut null = pp.placement.clone();
-    null.method = Method::OneStep;
-    let screen = FitScreen {
-        study,
-        data,
-        pp,
-        f,
-        tau: &best.run.tau,
-        settings: EmSettings {
-            tolerance: crate::fit::POLISH_TOLERANCE,
-            ..EmSettings::for_search(&study.search)
-        },
-        options: ModelOptions::for_study(study, f.structure),
-        null,
+    let Some(screen) = FitScreen::new(study, data, prepared, &fits[which]) else {
+        return Vec::new();
     };
+    let pp = screen.pp;
     screen
         .tests(&covariates)
         .into_iter()
@@ -236,7 +204,30 @@ struct FitScreen<'a> {
     null: crate::spec::Placement,
 }
 
-impl FitScreen<'_> {
+impl<'a> FitScreen<'a> {
+    /// The screen of compared fit `f`, when it has a best start.
+    fn new(study: &'a Study, data: &'a Dataset, prepared: &'a [PreparedPlacement], f: &'a FitResult) -> Option<Self> {
+        let best = f.best.as_ref()?;
+        let pp = &prepared[f.placement_index];
+        let mut null = pp.placement.clone();
+        null.method = Method::OneStep;
+        Some(FitScreen {
+            study,
+            data,
+            pp,
+            f,
+            tau: &best.run.tau,
+            // Refits run to the polish tolerance, as the fits they start from did, so that
+            // the statistic is a difference of two optima.
+            settings: EmSettings {
+                tolerance: crate::fit::POLISH_TOLERANCE,
+                ..EmSettings::for_search(&study.search)
+            },
+            options: ModelOptions::for_study(study, f.structure),
+            null,
+        })
+    }
+
     /// Every pair's test, flagged by Holm's procedure over the placement's tests.
     fn tests(&self, covariates: &[String]) -> Vec<DirectEffectTest> {
         let null = &self.null;
