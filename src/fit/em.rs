@@ -281,6 +281,7 @@ impl<'a> Walk<'a> {
         let step = model
             .m_step(&self.data, &self.tau, known, known_sums, GatingUpdate::Newton)
             .map_err(degenerate)?;
+        self.hold_runaway(&mut model);
         self.damped += step.damped;
         self.failed += usize::from(step.outcome.failed());
         let mut next = self.evaluate(&model);
@@ -297,6 +298,7 @@ impl<'a> Walk<'a> {
                     GatingUpdate::Bound,
                 )
                 .map_err(degenerate)?;
+            self.hold_runaway(&mut model);
             next = self.evaluate(&model);
             self.fallbacks += 1;
         }
@@ -310,6 +312,16 @@ impl<'a> Walk<'a> {
         }
         self.trace.push(next.1);
         Ok(())
+    }
+
+    /// Keep the current gating coefficients when the step would take one past
+    /// [`GATING_RUNAWAY`](crate::model::gating::GATING_RUNAWAY): the membership probabilities are 0 or 1 to double precision
+    /// there already, and larger values only add rounding to the log-likelihood. Keeping
+    /// them is still an EM step (the components' part rose, the gating part stays).
+    fn hold_runaway(&self, model: &mut Model) {
+        if model.gating.runs_away() {
+            model.gating = self.model.gating.clone();
+        }
     }
 
     /// Whether the last EM step changed the objective by at most [`SETTLED`] of its size.
@@ -364,6 +376,9 @@ impl<'a> Walk<'a> {
         let Ok(candidate) = self.model.with_coordinates(&jumped) else {
             return (alpha, Jump::Rejected);
         };
+        if candidate.gating.runs_away() {
+            return (alpha, Jump::Rejected);
+        }
         let there = self.evaluate(&candidate);
         let (here_model, here_objective) = (self.model.clone(), self.objective);
         if !(there.1.is_finite() && there.1 >= here_objective) {

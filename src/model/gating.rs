@@ -25,6 +25,14 @@ pub const MAX_NEWTON_ITERATIONS: usize = 100;
 /// climb (a generalised EM step).
 pub const NEWTON_STEPS_PER_EM_ITERATION: usize = 1;
 
+/// Largest |coefficient| a gating step may reach, on the fitting scale (numeric
+/// covariates standardised). Past it the network separates: a log relative risk ratio of
+/// 1000 per standard deviation puts every membership probability at 0 or 1 to double
+/// precision, the report already shows anything past 15 as separation, and letting the
+/// coefficients run on (to 10^12 in one case seen) leaves only rounding error in the
+/// log-likelihood, which then wanders by 10^-3.
+pub const GATING_RUNAWAY: f64 = 1e3;
+
 /// How the gating network is parameterised.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Gating {
@@ -102,6 +110,14 @@ impl Gating {
             Gating::Equal { g } => out.fill(-(*g as f64).ln()),
             Gating::Fixed { log_pi } | Gating::Free { log_pi } => out.copy_from_slice(log_pi),
             Gating::Logit { p, gamma, .. } => log_softmax_row(gamma, *p, w, out),
+        }
+    }
+
+    /// Whether a logit coefficient is past [`GATING_RUNAWAY`] (or not finite).
+    pub fn runs_away(&self) -> bool {
+        match self {
+            Gating::Logit { gamma, .. } => gamma.iter().any(|x| !(x.abs() <= GATING_RUNAWAY)),
+            _ => false,
         }
     }
 
