@@ -427,6 +427,9 @@ pub struct Comparison {
     pub cluster_count_tests: Vec<crate::inference::cluster_test::ClusterCountTest>,
     /// How the reference placement's clusters split as the count grows.
     pub splits: Vec<SplitStep>,
+    /// Approximate probability of each cluster count per placement: the BIC weights of
+    /// the placement's fits at that count, summed over covariance structures.
+    pub count_probabilities: Vec<CountProbability>,
     /// Component covariate effects (mean differences, odds ratios, rate ratios).
     pub component_effects: Vec<ComponentEffect>,
     /// How standard errors were computed, and per placement why they are missing
@@ -535,6 +538,52 @@ fn criteria(fits: &[FitResult], weights: &[f64], chosen: &[Option<usize>], numbe
     out
 }
 
+/// The approximate probability of one cluster count in one placement.
+#[derive(Debug, Clone, PartialEq, Serialize, schemars::JsonSchema)]
+pub struct CountProbability {
+    /// Placement.
+    pub placement: String,
+    /// Number of clusters.
+    pub clusters: usize,
+    /// Σ of the BIC weights of the placement's fits with this many clusters (one per
+    /// covariance structure): exp(−ΔBIC/2) normalised within the placement, a
+    /// large-sample approximation that takes one of the fitted models to be true.
+    pub probability: f64,
+    /// Whether the placement is compared at this count.
+    pub chosen: bool,
+}
+
+/// [`CountProbability`] for every placement and fitted count (fits without a BIC add
+/// nothing; a count with none is left out), placements and counts in criteria order.
+pub fn count_probabilities(criteria: &[Criteria]) -> Vec<CountProbability> {
+    let mut out: Vec<CountProbability> = Vec::new();
+    for r in criteria {
+        let Some(weight) = r.bic_weight else { continue };
+        match out
+            .iter_mut()
+            .find(|o| o.placement == r.placement && o.clusters == r.clusters)
+        {
+            Some(o) => {
+                o.probability += weight;
+                o.chosen |= r.chosen;
+            }
+            None => out.push(CountProbability {
+                placement: r.placement.clone(),
+                clusters: r.clusters,
+                probability: weight,
+                chosen: r.chosen,
+            }),
+        }
+    }
+    out.sort_by(|a, b| {
+        let first = |p: &str| criteria.iter().position(|r| r.placement == p);
+        first(&a.placement)
+            .cmp(&first(&b.placement))
+            .then(a.clusters.cmp(&b.clusters))
+    });
+    out
+}
+
 /// Reference first, then the other placements in spec order.
 fn placement_order(n: usize, reference: usize) -> Vec<usize> {
     let mut order = vec![reference];
@@ -562,6 +611,7 @@ pub fn compare(
     let weights = &data.weights;
     let chosen = chosen_fits(fits, prepared.len(), settings.clusters);
     let criteria = criteria(fits, weights, &chosen, numbering);
+    let count_probabilities = count_probabilities(&criteria);
     let order = placement_order(prepared.len(), settings.reference);
     let (alignments, labelled) = (numbering.alignments.clone(), &numbering.labelled);
     let mut parts = parts::Parts::default();
@@ -623,6 +673,7 @@ pub fn compare(
         inference_notes: parts.inference_notes,
         cross_tables,
         splits: splits(fits, numbering, &chosen, settings.reference, weights),
+        count_probabilities,
         certainty: parts.certainty,
         effect_curves: parts.effect_curves,
         findings: Vec::new(),

@@ -287,7 +287,18 @@ fn html_table(out: &mut String, t: &Table) {
     out.push_str("</tbody></table></div>");
 }
 
-const CSS: &str = "body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#111;line-height:1.45}\
+/// The text styles of the charts (font, title and tick sizes): part of the page's
+/// stylesheet, and written into each file of `figures/`.
+macro_rules! chart_text_css {
+    () => {
+        "svg{font-family:system-ui,-apple-system,'Segoe UI',sans-serif}svg text.ct{font-size:14px;font-weight:600}svg text.tk{font-size:11px}"
+    };
+}
+
+/// The chart text styles, as [`crate::render::figures`] writes them into each figure.
+pub const CHART_TEXT_CSS: &str = chart_text_css!();
+
+const CSS: &str = concat!("body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#111;line-height:1.45}\
 h1{font-size:1.6em}h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #ccc}\
 table{border-collapse:collapse;font-size:.85em;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:3px 6px;text-align:left;vertical-align:top}\
 th{background:#ececec}.tile{display:inline-block;vertical-align:top;width:310px;margin:0 10px 10px 0;border:1px solid #bbb;border-top:8px solid #888;padding:.3em .8em;break-inside:avoid}.tile h3{margin:.3em 0;font-size:1.05em}.tile p{margin:.3em 0}.tile table{font-size:.8em;margin:.3em 0}.tile td{border:none;border-bottom:1px solid #ededed;padding:1px 4px}table.wide{font-size:.74em}table.wide th,table.wide td{padding:2px 4px}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
@@ -296,11 +307,11 @@ th{background:#ececec}.tile{display:inline-block;vertical-align:top;width:310px;
 svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
 svg.small{width:300px;height:auto;display:inline-block;margin:.3em}svg.dots{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
 svg.split{max-width:100%;height:auto;display:block;margin:.5em 0}svg.grid{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
-svg text.ct{font-size:14px;font-weight:600}svg text.tk{font-size:11px}\
+", chart_text_css!(), "\
 p.cap{font-weight:600;font-size:.9em;margin:1em 0 0}.curves svg.chart{max-width:520px;display:inline-block}\
 @media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}\
 .scroll{overflow:visible}table{font-size:6.5pt;width:100%}th,td{padding:1px 3px;overflow-wrap:break-word}}\
-@page{size:A4 landscape;margin:10mm}";
+@page{size:A4 landscape;margin:10mm}");
 
 /// `report.html`: one self-contained page (inline CSS and SVG, no scripts, nothing fetched).
 pub fn html(results: &Results, c: &Comparison) -> String {
@@ -458,10 +469,10 @@ fn cluster_cards(c: &Comparison) -> String {
     s
 }
 
-/// Model choice: the BIC chart, the criteria and the bootstrap count test.
+/// Model choice: the cluster-count chart, the split diagram, the criteria and the bootstrap count test.
 fn html_model_choice(s: &mut String, c: &Comparison, find: &Find) {
     s.push_str("<h2>Model choice</h2>");
-    s.push_str(&criteria_chart(c));
+    s.push_str(&count_chart(c));
     s.push_str(&split_chart(c));
     if let Some(t) = find(TableId::Criteria) {
         html_table(s, t);
@@ -677,43 +688,35 @@ fn split_chart(c: &Comparison) -> String {
     s
 }
 
-fn criteria_chart(c: &Comparison) -> String {
-    let mut series = Vec::new();
-    for (i, a) in c.alignments.iter().enumerate() {
-        let mut pts: Vec<(f64, f64)> = Vec::new();
-        let mut gs: Vec<usize> = c
-            .criteria
-            .iter()
-            .filter(|r| r.placement == a.placement)
-            .map(|r| r.clusters)
-            .collect();
-        gs.sort_unstable();
-        gs.dedup();
-        for g in gs {
-            let best = c
-                .criteria
+/// The approximate probability of each cluster count, per placement
+/// ([`Comparison::count_probabilities`]).
+fn count_chart(c: &Comparison) -> String {
+    let mut counts: Vec<usize> = c.count_probabilities.iter().map(|r| r.clusters).collect();
+    counts.sort_unstable();
+    counts.dedup();
+    let rows: Vec<svg::CountRow> = c
+        .alignments
+        .iter()
+        .map(|a| {
+            let mine = || c.count_probabilities.iter().filter(|r| r.placement == a.placement);
+            let probabilities = counts
                 .iter()
-                .filter(|r| r.placement == a.placement && r.clusters == g)
-                .filter_map(|r| r.bic)
-                .fold(f64::INFINITY, f64::min);
-            if best.is_finite() {
-                pts.push((g as f64, best));
-            }
-        }
-        series.push(Series {
-            name: a.placement.clone(),
-            points: pts,
-            colour: svg::PLACEMENT_COLOURS[i % svg::PLACEMENT_COLOURS.len()].to_string(),
-            style: i,
-        });
+                .map(|g| mine().find(|r| r.clusters == *g).map(|r| r.probability))
+                .collect();
+            let chosen = mine().find(|r| r.chosen).map_or(0, |r| r.clusters);
+            (a.placement.clone(), probabilities, chosen)
+        })
+        .collect();
+    if counts.len() < 2 {
+        return String::new();
     }
-    svg::line_chart(
-        "BIC against the number of clusters, per placement (best structure at each count; smaller is better)",
-        "clusters",
-        "BIC",
-        &series,
-        true,
-    )
+    let mut s = svg::count_probabilities(
+        "How sure BIC is of the number of clusters, per placement (approximate probability)",
+        &counts,
+        &rows,
+    );
+    s.push_str("<p class=\"note\">Each bar is exp(−ΔBIC/2) normalised over the placement's fits, summed over the covariance structures fitted at that count: the BIC weights of the criteria table. It is a large-sample approximation that takes one of the fitted models to be true; with thousands of rows it piles onto one count even when the neighbouring counts describe the data nearly as well, so read it beside the split diagram and the findings on the criteria. BIC values themselves are in the criteria table.</p>");
+    s
 }
 
 fn profile_grid(c: &Comparison) -> String {

@@ -1,6 +1,7 @@
 //! Rendering: the output types of a run ([`crate::pipeline::output`]) in, bytes out. JSON
 //! (`results.json`, [`json`]), CSV (`models.csv`, `memberships.csv`, [`csv`]), Markdown and
-//! HTML (`summary.md`, `report.html`, [`document`], with the tables of [`tables`], the
+//! HTML (`summary.md`, `report.html`, [`document`], its charts as files in `figures/`,
+//! [`figures`], with the tables of [`tables`], the
 //! charts of [`svg`] and the findings in words of [`words`]), and the terminal's lines
 //! ([`console`]). Nothing here computes a number that is not in the output types; every
 //! number is formatted by the functions below, so it reads the same in every file.
@@ -8,6 +9,7 @@
 pub mod console;
 pub mod csv;
 pub mod document;
+pub mod figures;
 pub mod json;
 pub mod svg;
 pub mod tables;

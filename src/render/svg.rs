@@ -346,6 +346,107 @@ pub fn stacked_shares(title: &str, rows: &[(String, Vec<(usize, f64)>)]) -> Stri
     s
 }
 
+/// One row of the cluster-count chart: a placement, its probability at each count of the
+/// chart (None where the count was not fitted), and the count it was compared at.
+pub type CountRow = (String, Vec<Option<f64>>, usize);
+
+/// How sure the criteria are of the cluster count: one row per placement, one cell per
+/// count, each cell a bar whose height is the count's approximate probability, written
+/// above it (to 3 decimals, as in the criteria table; "<0.001" for less); the compared
+/// count's cell is framed.
+pub fn count_probabilities(title: &str, counts: &[usize], rows: &[CountRow]) -> String {
+    let labels: Vec<Vec<String>> = rows.iter().map(|r| wrap(&r.0, 30, 3)).collect();
+    let longest = labels.iter().flatten().map(|t| tick_text_width(t)).fold(0.0, f64::max);
+    let l = (longest + 16.0).max(80.0);
+    let cell = 58.0;
+    let (top, row_h, bar_max, bar_w) = (52.0, 56.0, 30.0, 26.0);
+    let axis = "number of clusters (framed: the count each placement is compared at)";
+    let w = (l + cell * counts.len().max(1) as f64 + 10.0).max(tick_text_width(axis) + 20.0);
+    let h = top + row_h * rows.len() as f64 + 30.0;
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {w} {h}" width="{w}" role="img" aria-label="{}" class="split">"#,
+        esc(title)
+    );
+    for (i, line) in wrap(title, ((w - 20.0) / 8.6) as usize, 2).iter().enumerate() {
+        let _ = write!(
+            s,
+            r#"<text x="10" y="{}" class="ct">{}</text>"#,
+            18.0 + 17.0 * i as f64,
+            esc(line)
+        );
+    }
+    for (j, g) in counts.iter().enumerate() {
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{}" class="tk" text-anchor="middle">{g}</text>"#,
+            l + cell * (j as f64 + 0.5),
+            top - 4.0
+        );
+    }
+    for (i, ((_, probabilities, chosen), lines)) in rows.iter().zip(&labels).enumerate() {
+        let y0 = top + row_h * i as f64;
+        let base = y0 + row_h - 10.0;
+        let first = base - 8.0 - 6.0 * (lines.len() as f64 - 1.0);
+        text_lines(&mut s, l - 8.0, first, lines, "tk", "end");
+        let colour = PLACEMENT_COLOURS[i % PLACEMENT_COLOURS.len()];
+        let _ = write!(
+            s,
+            r##"<line x1="{l}" x2="{:.1}" y1="{base}" y2="{base}" stroke="#999"/>"##,
+            l + cell * counts.len() as f64
+        );
+        for (j, (g, p)) in counts.iter().zip(probabilities).enumerate() {
+            let cx = l + cell * (j as f64 + 0.5);
+            if g == chosen {
+                let _ = write!(
+                    s,
+                    r##"<rect x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="none" stroke="#333" stroke-width="1.2"/>"##,
+                    cx - cell / 2.0 + 3.0,
+                    y0 + 2.0,
+                    cell - 6.0,
+                    row_h - 4.0
+                );
+            }
+            let Some(p) = p else {
+                let _ = write!(
+                    s,
+                    r##"<text x="{cx:.1}" y="{:.1}" class="tk" fill="#777" text-anchor="middle">–</text>"##,
+                    base - 4.0
+                );
+                continue;
+            };
+            let height = (p * bar_max).max(0.0);
+            let _ = write!(
+                s,
+                r#"<rect x="{:.1}" y="{:.1}" width="{bar_w}" height="{height:.1}" fill="{colour}"/>"#,
+                cx - bar_w / 2.0,
+                base - height
+            );
+            let value = if *p < 0.0005 {
+                "<0.001".to_string()
+            } else {
+                format!("{p:.3}")
+            };
+            let weight = if g == chosen { "600" } else { "400" };
+            let _ = write!(
+                s,
+                r#"<text x="{cx:.1}" y="{:.1}" class="tk" font-weight="{weight}" text-anchor="middle">{}</text>"#,
+                base - height - 4.0,
+                esc(&value)
+            );
+        }
+    }
+    let _ = write!(
+        s,
+        r#"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="middle">{axis}</text>"#,
+        w / 2.0,
+        h - 8.0
+    );
+    s.push_str("</svg>");
+    s
+}
+
 /// One column of a split diagram: a cluster count and its clusters (number, weight).
 pub type SplitColumn = (usize, Vec<(usize, f64)>);
 
@@ -538,12 +639,36 @@ pub fn shaded_grid(
 
 /// Small bar chart of a 10-bin histogram on [0, 1].
 pub fn histogram(title: &str, bins: &[f64]) -> String {
-    let (w, h) = (300.0, 160.0);
-    let (l, b, t) = (36.0, 30.0, 26.0);
-    let top = bins.iter().copied().fold(0.0, f64::max).max(f64::MIN_POSITIVE);
-    let bw = (w - l - 10.0) / bins.len() as f64;
+    let (w, h) = (300.0, 170.0);
+    let (b, t) = (30.0, 26.0);
+    let peak = bins.iter().copied().fold(0.0, f64::max);
+    let mut marks = ticks(0.0, peak.max(1.0), 3);
+    let step = step_of(&marks);
+    if let Some(last) = marks.last().copied().filter(|last| *last < peak) {
+        marks.push(last + step);
+    }
+    let top = marks.last().copied().unwrap_or(1.0).max(peak).max(f64::MIN_POSITIVE);
+    let labels: Vec<String> = marks.iter().map(|m| fmt_tick(*m, step)).collect();
+    let l = 24.0 + labels.iter().map(|x| tick_text_width(x)).fold(0.0, f64::max);
+    let bw = (w - l - 10.0) / bins.len().max(1) as f64;
+    let y_of = |v: f64| h - b - v / top * (h - t - b);
     let mut s = String::new();
     open_svg(&mut s, (w, h), title, "small", Some((4.0, 16.0, "tk", 44)));
+    for (m, label) in marks.iter().zip(&labels) {
+        let y = y_of(*m);
+        let _ = write!(
+            s,
+            r##"<line x1="{l:.1}" x2="{:.1}" y1="{y:.1}" y2="{y:.1}" stroke="#ddd"/><text x="{:.1}" y="{:.1}" class="tk" text-anchor="end">{label}</text>"##,
+            w - 10.0,
+            l - 4.0,
+            y + 4.0
+        );
+    }
+    let _ = write!(
+        s,
+        r#"<text x="10" y="{0:.1}" class="tk" text-anchor="middle" transform="rotate(-90 10 {0:.1})">rows (weighted)</text>"#,
+        (t + h - b) / 2.0
+    );
     for (i, v) in bins.iter().enumerate() {
         let bh = v / top * (h - t - b);
         let x = l + i as f64 * bw;
@@ -554,11 +679,12 @@ pub fn histogram(title: &str, bins: &[f64]) -> String {
             bw - 1.0
         );
     }
+    let half = bins.len() as f64 / 2.0;
     for (i, lab) in ["0", "0.5", "1"].iter().enumerate() {
         let _ = write!(
             s,
             r#"<text x="{:.1}" y="{}" class="tk" text-anchor="middle">{lab}</text>"#,
-            l + i as f64 * 5.0 * bw,
+            l + i as f64 * half * bw,
             h - b + 14.0
         );
     }

@@ -22,8 +22,8 @@ use sha2::{Digest, Sha256};
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
-/// The files a run writes (`manifest.json` last); a run folder holds these, `cache/`, and
-/// what `predict` wrote (`predictions/`).
+/// The files a run writes (`manifest.json` last); a run folder holds these, the charts in
+/// `figures/`, `cache/`, and what `predict` wrote (`predictions/`).
 pub const FILES: [&str; 8] = [
     "results.json",
     "models.csv",
@@ -51,7 +51,11 @@ pub fn outputs<'a>(loaded: &'a Loaded, run: &'a RunResults) -> Result<RunFiles<'
     files.add(crate::fit::saved::FILE_NAME, saved + "\n");
     if let Some(c) = &results.comparison {
         files.add("summary.md", render::document::markdown(results, c));
-        files.add("report.html", render::document::html(results, c));
+        let page = render::document::html(results, c);
+        for (name, svg) in render::figures::from_report(&page) {
+            files.add(&format!("{}/{name}", render::figures::FOLDER), svg);
+        }
+        files.add("report.html", page);
         files.add("table1.csv", render::csv::table_one_csv(c));
     }
     Ok(files)
@@ -329,6 +333,10 @@ impl RunFolder {
         })?;
         let mut written = Vec::new();
         for (name, contents) in files.files {
+            if let Some((folder, _)) = name.rsplit_once('/') {
+                std::fs::create_dir_all(stage.path().join(folder))
+                    .map_err(|e| untouched(format!("cannot create {folder} in {}: {e}", stage.path().display())))?;
+            }
             let entry = write_new(&stage.path().join(&name), &name, contents)
                 .map_err(|e| untouched(format!("cannot write {name} in {}: {e}", stage.path().display())))?;
             written.push(entry);

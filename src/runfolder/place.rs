@@ -127,7 +127,7 @@ pub fn check(folder: &Path, shown: &Path, inputs: &[&Path]) -> Result<()> {
 
 /// The names in a run folder that a run writes or keeps (anything else is not the run's).
 pub fn is_run_entry(name: &str) -> bool {
-    super::FILES.contains(&name) || name == crate::fit::cache::CACHE_DIR
+    super::FILES.contains(&name) || name == crate::fit::cache::CACHE_DIR || name == crate::render::figures::FOLDER
 }
 
 /// What the existing folder `folder` holds.

@@ -153,8 +153,9 @@ fn a_failed_rerun_leaves_earlier_results_intact() {
 
 /// The files a run writes that must not change between identical runs (only
 /// `manifest.json` carries timings and the thread count).
-const STABLE: [&str; 7] = [
+const STABLE: [&str; 8] = [
     "results.json",
+    "figures",
     "models.csv",
     "memberships.csv",
     "fitted-models.json",

@@ -318,6 +318,17 @@ fn names_from_the_data_are_escaped_in_the_report() {
     assert!(html.contains("a&amp;b &quot;q&quot;"));
     assert!(html.contains("&lt;b&gt;x&lt;/b&gt;"));
     assert!(html.contains("gate&#39;s &amp; &lt;co&gt;"));
+    for figure in std::fs::read_dir(dir.path().join("run/figures")).unwrap() {
+        let text = std::fs::read_to_string(figure.unwrap().path()).unwrap();
+        let (declaration, chart) = text.split_once('\n').unwrap();
+        assert!(declaration.starts_with("<?xml "), "{declaration}");
+        for tag in tag_names(chart) {
+            assert!(
+                ALLOWED_TAGS.contains(&tag.as_str()) || ["title", "style"].contains(&tag.as_str()),
+                "unexpected tag <{tag}> in a figure"
+            );
+        }
+    }
     assert!(
         !html.contains("http://")
             || html
@@ -804,4 +815,99 @@ fn split_steps_carry_every_row_from_one_count_to_the_next() {
     let mut numbers = step.to_clusters.clone();
     numbers.sort_unstable();
     assert_eq!(numbers, (1..=compared.clusters).collect::<Vec<_>>());
+}
+
+/// Each placement's cluster-count probabilities are its criteria rows' BIC weights summed
+/// by count (they add to 1, and the compared count is the criteria table's), the report's
+/// count chart prints them as the criteria table prints a weight, and every chart of the
+/// report is also a file in `figures/` that holds the chart byte for byte.
+#[test]
+fn count_probabilities_are_the_bic_weights_and_figures_are_the_report_charts() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut csv = String::from("id,x,age,y1,y2\n");
+    let mut rng = cohortmix::rng::Stream::new(11, "counts");
+    for i in 0..400 {
+        let k = i % 3;
+        let x = usize::from(rng.uniform() < 0.3 + 0.2 * k as f64);
+        let age = 30.0 + 20.0 * rng.uniform();
+        let y1 = 3.0 * k as f64 + rng.normal();
+        let y2 = [0.0, 2.0, -1.0][k] + rng.normal();
+        csv.push_str(&format!("r{i},{x},{age:.1},{y1:.4},{y2:.4}\n"));
+    }
+    std::fs::write(dir.path().join("data.csv"), csv).unwrap();
+    std::fs::write(
+        dir.path().join("study.toml"),
+        "[study]\ntitle = \"counts\"\ndata = \"data.csv\"\nid = \"id\"\noutput = \"run\"\n\
+         [variables]\nx = \"binary\"\nage = \"continuous\"\n\
+         [indicators]\ncolumns = [\"y1\", \"y2\"]\n[search]\nclusters = [1, 2, 3, 4]\nstarts = 4\n\
+         covariance = [{ orientation = \"axes\" }, {}]\n\
+         [[placement]]\nname = \"plain\"\n[[placement]]\nname = \"x and age drive membership\"\ngating = [\"x\", \"age\"]\n",
+    )
+    .unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_cohortmix"))
+        .args(["compare", "study.toml"])
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let run = dir.path().join("run");
+    let results: serde_json::Value = serde_json::from_slice(&std::fs::read(run.join("results.json")).unwrap()).unwrap();
+    let criteria = results["comparison"]["criteria"].as_array().unwrap();
+    let counts = results["comparison"]["count_probabilities"].as_array().unwrap();
+    let report = std::fs::read_to_string(run.join("report.html")).unwrap();
+    let chart_at = report.find("aria-label=\"How sure BIC is").expect("the count chart");
+    let chart = &report[chart_at..chart_at + report[chart_at..].find("</svg>").unwrap()];
+    for placement in ["plain", "x and age drive membership"] {
+        let mine: Vec<&serde_json::Value> = counts.iter().filter(|c| c["placement"] == placement).collect();
+        assert_eq!(mine.len(), 4, "{placement}: {mine:?}");
+        let total: f64 = mine.iter().map(|c| c["probability"].as_f64().unwrap()).sum();
+        assert!((total - 1.0).abs() < 1e-12, "{placement}: {total}");
+        for c in &mine {
+            let g = c["clusters"].as_u64().unwrap();
+            let rows: Vec<&serde_json::Value> = criteria
+                .iter()
+                .filter(|r| r["placement"] == placement && r["clusters"].as_u64() == Some(g))
+                .collect();
+            let summed: f64 = rows.iter().filter_map(|r| r["bic_weight"].as_f64()).sum();
+            let p = c["probability"].as_f64().unwrap();
+            assert!((p - summed).abs() < 1e-15, "{placement}, {g}: {p} against {summed}");
+            assert_eq!(c["chosen"].as_bool(), Some(rows.iter().any(|r| r["chosen"] == true)));
+            let printed = if p < 0.0005 {
+                "&lt;0.001".to_string()
+            } else {
+                format!("{p:.3}")
+            };
+            assert!(
+                chart.contains(&format!(">{printed}</text>")),
+                "{placement}, {g}: {printed} not in the chart"
+            );
+        }
+        assert_eq!(mine.iter().filter(|c| c["chosen"] == true).count(), 1);
+    }
+    // Every chart of the page is a figure file, in page order, holding the chart exactly.
+    let open = "<svg xmlns=\"http://www.w3.org/2000/svg\"";
+    let charts: Vec<&str> = report
+        .match_indices(open)
+        .map(|(at, _)| &report[at..at + report[at..].find("</svg>").unwrap() + "</svg>".len()])
+        .collect();
+    let mut names: Vec<String> = std::fs::read_dir(run.join("figures"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().to_string())
+        .collect();
+    names.sort();
+    assert!(charts.len() >= 5, "{} charts", charts.len());
+    assert_eq!(names.len(), charts.len(), "{names:?}");
+    for (name, chart) in names.iter().zip(&charts) {
+        let file = std::fs::read_to_string(run.join("figures").join(name)).unwrap();
+        let body = file.split_once('\n').unwrap().1;
+        let tag_end = body.find('>').unwrap() + 1;
+        assert_eq!(&body[..tag_end], &chart[..chart.find('>').unwrap() + 1], "{name}");
+        let added_end = body.find("fill=\"#fff\"/>").unwrap() + "fill=\"#fff\"/>".len();
+        assert_eq!(
+            &body[added_end..body.len() - 1],
+            &chart[chart.find('>').unwrap() + 1..],
+            "{name}"
+        );
+        assert!(body[tag_end..added_end].starts_with("<title>"), "{name}");
+    }
 }

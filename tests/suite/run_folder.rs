@@ -78,7 +78,8 @@ fn study() -> tempfile::TempDir {
 }
 
 /// Every file of the run as its manifest lists it, checked against the listed hashes; the
-/// folder holds nothing else but `cache/` (and `predictions/`). Panics otherwise.
+/// folder holds nothing else but `cache/` (and `predictions/`), and `figures/` nothing the
+/// manifest does not list. Panics otherwise.
 fn complete_run(run: &Path) -> BTreeMap<String, Vec<u8>> {
     let manifest: serde_json::Value =
         serde_json::from_slice(&std::fs::read(run.join("manifest.json")).unwrap()).unwrap();
@@ -95,6 +96,13 @@ fn complete_run(run: &Path) -> BTreeMap<String, Vec<u8>> {
     }
     for entry in std::fs::read_dir(run).unwrap() {
         let name = entry.unwrap().file_name().to_string_lossy().to_string();
+        if name == "figures" {
+            for figure in std::fs::read_dir(run.join(&name)).unwrap() {
+                let inner = format!("figures/{}", figure.unwrap().file_name().to_string_lossy());
+                assert!(files.contains_key(&inner), "{inner} is not part of the run");
+            }
+            continue;
+        }
         assert!(
             files.contains_key(&name) || ["manifest.json", "cache", "predictions"].contains(&name.as_str()),
             "{name} in {} is not part of the run",
