@@ -248,21 +248,131 @@ fn capitalise(s: &str) -> String {
         .map_or_else(String::new, |f| f.to_uppercase().chain(c).collect())
 }
 
+/// Widest a table may need at its narrowest (every cell wrapped at its spaces), in px:
+/// the page's text column at a window 800 px wide (768 px) less some room for error.
+const TABLE_BUDGET_PX: f64 = 740.0;
+
+/// Headers of the leading columns that say what a row is about; a table too wide for the
+/// page is split into parts that each repeat them.
+const KEY_HEADERS: [&str; 7] = [
+    "placement",
+    "clusters",
+    "covariance",
+    "cluster",
+    "variable",
+    "cluster vs cluster 1",
+    "term",
+];
+
+/// The columns of each part of `t` when it is printed as several tables: one part when
+/// it fits [`TABLE_BUDGET_PX`] at its narrowest, else parts that each repeat the key
+/// columns (at least the first) and take the other columns in order while they fit.
+fn column_parts(t: &Table, px_per_char: f64) -> Vec<Vec<usize>> {
+    let columns = t.header.len();
+    // A column's narrowest width: its longest unbreakable word, plus the cell padding.
+    let narrowest: Vec<f64> = (0..columns)
+        .map(|c| {
+            let longest = std::iter::once(&t.header[c])
+                .chain(t.rows.iter().filter_map(|r| r.get(c)))
+                .flat_map(|text| text.split_whitespace())
+                .map(|w| w.chars().count())
+                .max()
+                .unwrap_or(1);
+            // The first column may carry a colour swatch (about 1.2 em).
+            let swatch = if c == 0 { 1.2 * px_per_char / 0.55 } else { 0.0 };
+            longest as f64 * px_per_char + 12.0 + swatch
+        })
+        .collect();
+    if narrowest.iter().sum::<f64>() <= TABLE_BUDGET_PX {
+        return vec![(0..columns).collect()];
+    }
+    let keys = t
+        .header
+        .iter()
+        .take(3)
+        .take_while(|h| KEY_HEADERS.contains(&h.as_str()))
+        .count()
+        .max(1)
+        .min(columns);
+    let key_width: f64 = narrowest[..keys].iter().sum();
+    // The other columns in order, a new part when the next would not fit `limit`.
+    let split = |limit: f64| {
+        let mut parts: Vec<Vec<usize>> = Vec::new();
+        let mut part: Vec<usize> = (0..keys).collect();
+        let mut width = key_width;
+        for c in keys..columns {
+            if part.len() > keys && width + narrowest[c] > limit {
+                parts.push(std::mem::replace(&mut part, (0..keys).collect()));
+                width = key_width;
+            }
+            part.push(c);
+            width += narrowest[c];
+        }
+        parts.push(part);
+        parts
+    };
+    let fewest = split(TABLE_BUDGET_PX);
+    // As many parts as needed, but of even widths, so that no part is left with one column.
+    let rest: f64 = narrowest[keys..].iter().sum();
+    let widest = narrowest[keys..].iter().copied().fold(0.0, f64::max);
+    let even = split((key_width + rest / fewest.len() as f64 + widest / 2.0).min(TABLE_BUDGET_PX));
+    if even.len() == fewest.len() {
+        even
+    } else {
+        fewest
+    }
+}
+
 fn html_table(out: &mut String, t: &Table) {
+    // Many columns: a smaller type, so that the table fits a laptop's screen.
+    let wide = t.header.len() > 9;
+    let _ = write!(out, "<p class=\"note\">{}</p>", esc(&t.note));
+    let parts = column_parts(t, if wide { 7.1 } else { 8.2 });
+    if parts.len() > 1 {
+        // The page printed is wider than a screen's text column and its type smaller:
+        // print shows the table whole, the screen in its parts.
+        out.push_str("<div class=\"whole\">");
+        table_part(out, t, &(0..t.header.len()).collect::<Vec<_>>(), wide);
+        out.push_str("</div><div class=\"parts\">");
+    }
+    for (n, part) in parts.iter().enumerate() {
+        if parts.len() > 1 {
+            let keys = parts[0]
+                .iter()
+                .take_while(|c| parts.iter().all(|p| p.contains(c)))
+                .count();
+            let repeated: Vec<String> = t.header[..keys].iter().map(|h| format!("'{h}'")).collect();
+            let _ = write!(
+                out,
+                "<p class=\"note\">Part {} of {}: the table is split by columns to fit the screen (printed, it is whole); {} {} in every part.</p>",
+                n + 1,
+                parts.len(),
+                esc(&repeated.join(", ")),
+                if keys == 1 { "repeats" } else { "repeat" }
+            );
+        }
+        table_part(out, t, part, wide);
+    }
+    if parts.len() > 1 {
+        out.push_str("</div>");
+    }
+}
+
+/// The columns `part` of `t` as one `<table>` in a scrolling block.
+fn table_part(out: &mut String, t: &Table, part: &[usize], wide: bool) {
     let _ = write!(
         out,
-        "<p class=\"note\">{}</p><div class=\"scroll\"><table{}><thead><tr>",
-        esc(&t.note),
-        // Many columns: a smaller type, so that the table fits a laptop's screen.
-        if t.header.len() > 9 { " class=\"wide\"" } else { "" }
+        "<div class=\"scroll\"><table{}><thead><tr>",
+        if wide { " class=\"wide\"" } else { "" }
     );
-    for h in &t.header {
-        let _ = write!(out, "<th>{}</th>", esc(h));
+    for &c in part {
+        let _ = write!(out, "<th>{}</th>", esc(&t.header[c]));
     }
     out.push_str("</tr></thead><tbody>");
     for r in &t.rows {
         out.push_str("<tr>");
-        for (i, cell) in r.iter().enumerate() {
+        for &i in part {
+            let cell = r.get(i).map_or("", String::as_str);
             let swatch = if i == 0 {
                 cell.strip_prefix("cluster ").and_then(|k| k.parse::<usize>().ok())
             } else {
@@ -302,14 +412,14 @@ const CSS: &str = concat!("body{font-family:system-ui,-apple-system,'Segoe UI',s
 h1{font-size:1.6em}h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #ccc}\
 table{border-collapse:collapse;font-size:.85em;margin:.5em 0 1.5em}th,td{border:1px solid #bbb;padding:3px 6px;text-align:left;vertical-align:top}\
 th{background:#ececec}.tile{display:inline-block;vertical-align:top;width:310px;margin:0 10px 10px 0;border:1px solid #bbb;border-top:8px solid #888;padding:.3em .8em;break-inside:avoid}.tile h3{margin:.3em 0;font-size:1.05em}.tile p{margin:.3em 0}.tile table{font-size:.8em;margin:.3em 0}.tile td{border:none;border-bottom:1px solid #ededed;padding:1px 4px}table.wide{font-size:.74em}table.wide th,table.wide td{padding:2px 4px}.scroll{overflow-x:auto}.note{font-size:.85em;color:#444}\
-.caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff8f2}\
+.whole{display:none}.caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff8f2}\
 .sw{display:inline-block;width:.8em;height:.8em;margin-right:.35em;border:1px solid #000;vertical-align:middle}\
 svg.chart{width:100%;max-width:680px;height:auto;display:block;margin:.5em 0}\
 svg.small{width:300px;height:auto;display:inline-block;margin:.3em}svg.dots{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
 svg.split{max-width:100%;height:auto;display:block;margin:.5em 0}svg.grid{max-width:100%;height:auto;display:inline-block;margin:.3em;vertical-align:top}\
 ", chart_text_css!(), "\
 p.cap{font-weight:600;font-size:.9em;margin:1em 0 0}.curves svg.chart{max-width:520px;display:inline-block}\
-@media print{body{max-width:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}\
+@media print{body{max-width:none}.whole{display:block}.parts{display:none}h2{page-break-after:avoid}svg{page-break-inside:avoid}\
 .scroll{overflow:visible}table{font-size:6.5pt;width:100%}th,td{padding:1px 3px;overflow-wrap:break-word}}\
 @page{size:A4 landscape;margin:10mm}");
 
@@ -779,4 +889,55 @@ fn two_stages(s: &crate::pipeline::output::StudySummary) -> String {
 /// The notes on standard errors, in words.
 fn notes(c: &Comparison) -> Vec<String> {
     c.inference_notes.iter().map(words::inference_note).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn table(header: &[&str], cell: &str) -> Table {
+        Table {
+            id: TableId::Criteria,
+            note: String::new(),
+            header: header.iter().map(|h| h.to_string()).collect(),
+            rows: vec![header.iter().map(|_| cell.to_string()).collect(); 3],
+        }
+    }
+
+    #[test]
+    fn a_narrow_table_stays_whole() {
+        let t = table(&["placement", "clusters", "BIC"], "12345.678");
+        assert_eq!(column_parts(&t, 8.2), vec![vec![0, 1, 2]]);
+    }
+
+    #[test]
+    fn a_wide_table_splits_into_even_parts_that_repeat_its_key_columns() {
+        let header: Vec<String> = ["placement", "clusters", "covariance"]
+            .iter()
+            .map(|h| h.to_string())
+            .chain((0..12).map(|i| format!("criterion{i}")))
+            .collect();
+        let names: Vec<&str> = header.iter().map(String::as_str).collect();
+        let t = table(&names, "-58862.220");
+        let parts = column_parts(&t, 7.1);
+        assert!(parts.len() >= 2, "{parts:?}");
+        let mut seen: Vec<usize> = Vec::new();
+        for part in &parts {
+            assert_eq!(&part[..3], &[0, 1, 2], "{parts:?}");
+            assert!(part.len() >= 5, "a part with too few columns: {parts:?}");
+            seen.extend(&part[3..]);
+        }
+        assert_eq!(seen, (3..15).collect::<Vec<usize>>());
+        // The widest part fits the budget at its narrowest.
+        for part in &parts {
+            let width: f64 = part
+                .iter()
+                .map(|c| {
+                    let swatch = if *c == 0 { 1.2 * 7.1 / 0.55 } else { 0.0 };
+                    header[*c].len().max(10) as f64 * 7.1 + 12.0 + swatch
+                })
+                .sum();
+            assert!(width <= TABLE_BUDGET_PX + 1e-9, "{width}");
+        }
+    }
 }
