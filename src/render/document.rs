@@ -300,13 +300,13 @@ fn column_parts(t: &Table, px_per_char: f64) -> Vec<Vec<usize>> {
         let mut parts: Vec<Vec<usize>> = Vec::new();
         let mut part: Vec<usize> = (0..keys).collect();
         let mut width = key_width;
-        for c in keys..columns {
-            if part.len() > keys && width + narrowest[c] > limit {
+        for (c, w) in narrowest.iter().enumerate().skip(keys) {
+            if part.len() > keys && width + w > limit {
                 parts.push(std::mem::replace(&mut part, (0..keys).collect()));
                 width = key_width;
             }
             part.push(c);
-            width += narrowest[c];
+            width += w;
         }
         parts.push(part);
         parts
