@@ -112,6 +112,10 @@ pub struct Profile {
     /// (sample mean of continuous and count covariates, reference level of categorical
     /// and binary ones).
     pub at_reference: Vec<f64>,
+    /// 95% intervals of `at_reference` ([`crate::inference::profile_intervals`]: delta
+    /// method with the fit's analytic errors, on the logit scale for probabilities and the
+    /// log scale for rates), null where a value has none; empty without analytic errors.
+    pub at_reference_interval: Vec<Option<[f64; 2]>>,
     /// Profile values averaged over the sample, weighted by the posterior.
     pub population_averaged: Vec<f64>,
 }

@@ -77,7 +77,12 @@ impl Parts {
                     unavailable: r.as_ref().err().cloned(),
                 }));
         }
-        self.add_sizes(data, f, aligned);
+        self.add_sizes(
+            data,
+            f,
+            aligned,
+            inference.map_or(&[][..], |fi| &fi.profile_intervals[..]),
+        );
         let best = f.best.as_ref().expect("labelled fits have a best start");
         let gating = f.reported_gating().unwrap_or_else(|| best.run.model.gating.clone());
         let design = pp.reported_design(f);
@@ -105,7 +110,8 @@ impl Parts {
     }
 
     /// Sizes, certainty and profiles of `f`'s clusters.
-    fn add_sizes(&mut self, data: &Dataset, f: &FitResult, aligned: &[usize]) {
+    /// `intervals`: the fit's profile intervals by fitted cluster (empty when none).
+    fn add_sizes(&mut self, data: &Dataset, f: &FitResult, aligned: &[usize], intervals: &[Vec<Option<(f64, f64)>>]) {
         let weights = &data.weights;
         let best = f.best.as_ref().expect("labelled fits have a best start");
         let g = f.clusters;
@@ -125,6 +131,10 @@ impl Parts {
                 placement: f.placement.clone(),
                 share: shares[k],
                 count: counts[k],
+                at_reference_interval: intervals
+                    .get(k)
+                    .map(|v| v.iter().map(|i| i.map(|(a, b)| [a, b])).collect())
+                    .unwrap_or_default(),
                 at_reference,
                 population_averaged: avg,
             });
@@ -166,8 +176,6 @@ fn cluster_profile(data: &Dataset, best: &crate::fit::BestFit, k: usize) -> (Vec
     (at_reference, avg)
 }
 
-/// Effect curves for the first continuous gating covariate, by the levels of the first
-/// categorical one.
 /// Membership probabilities along the numeric gating covariate with the largest joint
 /// Wald statistic (`strength`; the first listed when there are no standard errors), one
 /// curve per level of the strongest categorical or binary gating covariate, the others at

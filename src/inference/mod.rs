@@ -472,7 +472,7 @@ pub fn for_fits(
             let label = format!("{}|{}|{}", f.placement, f.clusters, f.covariance());
             let pp = &prepared[f.placement_index];
             let (model, tau) = (&best.run.model, &best.run.tau);
-            let analytic_v1 = settings.method != ErrorMethod::Bootstrap && !pp.placement.outcomes.is_empty();
+            let analytic_v1 = settings.method != ErrorMethod::Bootstrap;
             // V₁: the covariance of the fitted model's chart coordinates, which the outcomes'
             // errors need for step 1's part.
             let (uncertainty, step_three_errors, v1) = match &f.step_three {
@@ -496,6 +496,9 @@ pub fn for_fits(
             let mut inference = FitInference::new(uncertainty, &study.inference.per, pp.reported_design(f));
             inference.step_three_errors = step_three_errors;
             inference.outcomes = fit_outcomes(data, pp, model, tau, v1.as_ref(), &settings, &label);
+            if let Some(v1) = &v1 {
+                inference.profile_intervals = profile_intervals(model, v1).unwrap_or_default();
+            }
             Some(inference)
         })
         .collect()
@@ -623,6 +626,9 @@ pub struct FitInference {
     pub step_three_errors: Option<StepThreeErrors>,
     /// The placement's distal outcomes compared across the clusters, each or why not.
     pub outcomes: Vec<(String, Result<outcomes::OutcomeEstimate, String>)>,
+    /// 95% intervals of each fitted cluster's profile at the reference covariate values
+    /// ([`profile_intervals`]); empty without analytic errors (the bootstrap gives none).
+    pub profile_intervals: Vec<Vec<Option<(f64, f64)>>>,
 }
 
 impl FitInference {
@@ -643,8 +649,69 @@ impl FitInference {
             gating_tests,
             step_three_errors: None,
             outcomes: Vec::new(),
+            profile_intervals: Vec::new(),
         }
     }
+}
+
+/// 95% intervals of every cluster's profile at the reference covariate values
+/// (`[fitted cluster][profile column]`), by the delta method: the profile's Jacobian in the
+/// chart's coordinates (central differences) with `v`, their covariance; each interval is
+/// made on its block's [`ProfileScale`](crate::model::family::ProfileScale).
+pub fn profile_intervals(model: &Model, v: &DMatrix<f64>) -> Result<Vec<Vec<Option<(f64, f64)>>>, String> {
+    let chart = Chart::new(model)?;
+    let p = chart.len();
+    if v.nrows() != p || v.ncols() != p {
+        return Err(format!(
+            "the covariance is {}×{}, the chart has {p} coordinates",
+            v.nrows(),
+            v.ncols()
+        ));
+    }
+    let g = model.clusters();
+    let profiles = |m: &Model| -> Vec<f64> {
+        let mut all = Vec::new();
+        let mut one = Vec::new();
+        for k in 0..g {
+            for b in &m.components.blocks {
+                one.clear();
+                b.profile(k, None, &mut one);
+                all.extend_from_slice(&one);
+            }
+        }
+        all
+    };
+    let values = profiles(model);
+    let mut scales = Vec::with_capacity(values.len());
+    let mut one = Vec::new();
+    for k in 0..g {
+        for b in &model.components.blocks {
+            one.clear();
+            b.profile(k, None, &mut one);
+            scales.extend(std::iter::repeat_n(b.profile_scale(), one.len()));
+        }
+    }
+    let mut jac = DMatrix::zeros(values.len(), p);
+    for j in 0..p {
+        let h = JACOBIAN_STEP * chart.scale(j);
+        let mut theta = vec![0.0; p];
+        theta[j] = h;
+        let up = profiles(&chart.model(&theta).map_err(|e| e.reason)?);
+        theta[j] = -h;
+        let down = profiles(&chart.model(&theta).map_err(|e| e.reason)?);
+        for (i, (a, b)) in up.iter().zip(&down).enumerate() {
+            jac[(i, j)] = (a - b) / (2.0 * h);
+        }
+    }
+    let cov = &jac * v * jac.transpose();
+    let per_cluster = values.len() / g.max(1);
+    Ok((0..g)
+        .map(|k| {
+            (k * per_cluster..(k + 1) * per_cluster)
+                .map(|i| scales[i].interval(values[i], cov[(i, i)].max(0.0).sqrt()))
+                .collect()
+        })
+        .collect())
 }
 
 /// A three-step fit's uncertainty: its step-3 gating coefficients (with `gating_covariance`,

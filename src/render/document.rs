@@ -830,7 +830,21 @@ fn count_chart(c: &Comparison) -> String {
 }
 
 fn profile_grid(c: &Comparison) -> String {
-    let mut s = String::from("<p class=\"note\">Averaged profile per aligned cluster; marker shape = placement: ");
+    let intervals = c
+        .profiles
+        .iter()
+        .any(|p| p.at_reference_interval.iter().any(Option::is_some));
+    let mut s = format!(
+        "<p class=\"note\">Each cluster's profile at the reference covariate values ({}){}; marker shape = placement: ",
+        esc(c
+            .reference_values
+            .trim_start_matches("profiles at the reference covariate values: ")),
+        if intervals {
+            ", with its 95% interval as a line (delta method; on the logit scale for probabilities and the log scale for rates)"
+        } else {
+            ""
+        }
+    );
     for (i, a) in c.alignments.iter().enumerate() {
         let _ = write!(
             s,
@@ -839,14 +853,21 @@ fn profile_grid(c: &Comparison) -> String {
             esc(&a.placement)
         );
     }
-    s.push_str("</p>");
+    s.truncate(s.trim_end().len());
+    s.push_str(". Where a placement adjusts the profiles for covariates, the values at the reference differ from the averaged ones in the table below.</p>");
     let mut clusters: Vec<usize> = c.profiles.iter().map(|p| p.cluster).collect();
     clusters.sort_unstable();
     clusters.dedup();
     for (j, ind) in c.indicators.iter().enumerate() {
-        let values: Vec<f64> = c.profiles.iter().map(|p| p.population_averaged[j]).collect();
-        let lo = values.iter().copied().fold(f64::INFINITY, f64::min);
-        let hi = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+        let interval =
+            |p: &crate::compare::Profile| p.at_reference_interval.get(j).copied().flatten().map(|[a, b]| (a, b));
+        let mut lo = f64::INFINITY;
+        let mut hi = f64::NEG_INFINITY;
+        for p in &c.profiles {
+            let (a, b) = interval(p).unwrap_or((p.at_reference[j], p.at_reference[j]));
+            lo = lo.min(a.min(p.at_reference[j]));
+            hi = hi.max(b.max(p.at_reference[j]));
+        }
         let pad = 0.05 * (hi - lo).max(1e-9);
         let rows: Vec<svg::DotRow> = clusters
             .iter()
@@ -859,7 +880,7 @@ fn profile_grid(c: &Comparison) -> String {
                         c.profiles
                             .iter()
                             .find(|p| p.cluster == *k && p.placement == a.placement)
-                            .map(|p| (i, p.population_averaged[j]))
+                            .map(|p| (i, p.at_reference[j], interval(p)))
                     })
                     .collect();
                 (

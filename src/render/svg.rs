@@ -698,8 +698,11 @@ pub fn histogram(title: &str, bins: &[f64]) -> String {
     s
 }
 
-/// One row of a dot chart: label, colour, and (marker style, value) marks.
-pub type DotRow = (String, &'static str, Vec<(usize, f64)>);
+/// One mark of a dot chart: marker style, value, and its 95% interval when it has one.
+pub type DotMark = (usize, f64, Option<(f64, f64)>);
+
+/// One row of a dot chart: label, colour, and its marks.
+pub type DotRow = (String, &'static str, Vec<DotMark>);
 
 /// Width in px of `text` at the charts' tick size (11 px), a generous estimate (0.56 em
 /// per character) so that labels laid out by it are not cut.
@@ -707,7 +710,8 @@ pub fn tick_text_width(text: &str) -> f64 {
     6.2 * text.chars().count() as f64
 }
 
-/// Dot rows: for each row label, markers (style, value) on a shared axis. The label column
+/// Dot rows: for each row label, markers (style, value) on a shared axis, each with a line
+/// across its interval when it has one. The label column
 /// is as wide as the longest label, and markers of different styles (placements) sit a
 /// little apart vertically, so that equal values do not hide each other.
 pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
@@ -746,8 +750,18 @@ pub fn dot_rows(title: &str, rows: &[DotRow], lo: f64, hi: f64) -> String {
             y + 4.0,
             esc(label)
         );
-        for (style, v) in marks {
+        for (style, v, interval) in marks {
             let offset = (*style as f64 - (styles as f64 - 1.0) / 2.0) * dodge;
+            if let Some((a, b)) = interval {
+                let _ = write!(
+                    s,
+                    r#"<line x1="{:.1}" x2="{:.1}" y1="{:.1}" y2="{:.1}" stroke="{colour}" stroke-width="1.5"/>"#,
+                    sx(*a),
+                    sx(*b),
+                    y + offset,
+                    y + offset
+                );
+            }
             s.push_str(&marker(*style, sx(*v), y + offset, colour));
         }
     }
@@ -877,9 +891,9 @@ mod tests {
             (
                 "cluster 1 (preserved function)".into(),
                 "#000",
-                vec![(0, 1.0), (1, 1.0)],
+                vec![(0, 1.0, Some((0.5, 1.5))), (1, 1.0, None)],
             ),
-            ("cluster 2".into(), "#000", vec![(0, 2.0)]),
+            ("cluster 2".into(), "#000", vec![(0, 2.0, None)]),
         ];
         let svg = dot_rows("FEV1 (% predicted)", &rows, 0.0, 3.0);
         // The label column ends 6 px left of the axis, which starts after the label's width.

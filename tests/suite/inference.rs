@@ -1281,3 +1281,65 @@ fn the_screen_keeps_its_size_under_a_cluster_sample_when_the_design_is_declared(
         100.0 * design
     );
 }
+
+/// A one-cluster Gaussian fit's profile intervals are the textbook intervals of a mean,
+/// x̄ ± 1.959964 σ̂/√n with σ̂ the maximum-likelihood standard deviation (the observed
+/// information of a normal mean is n/σ²), on iris's four measurements (the dataset as
+/// `tests/reference/iris.csv` holds it); the interval of a probability is made on the
+/// logit scale and that of a rate on the log scale.
+#[test]
+fn profile_intervals_of_one_cluster_are_the_textbook_intervals_of_a_mean() {
+    use cohortmix::model::family::ProfileScale;
+    let (y, n) = iris_measurements();
+    let d = 4;
+    let ones = vec![1.0; n];
+    let data = unadjusted_data(&ones);
+    let blocks = gaussian_block(&y, d, &Design::intercept(n));
+    let options = plain_options(CovarianceStructure::UNCONSTRAINED);
+    let model = initial_model(&data, &blocks, &free_placement(), 1, options);
+    let run = em::run(
+        &data,
+        model,
+        ones.clone(),
+        EmSettings {
+            max_iterations: 100,
+            tolerance: 1e-14,
+            accelerate: false,
+        },
+    );
+    let chart = cohortmix::inference::chart::Chart::new(&run.model).unwrap();
+    let v = cohortmix::inference::parameter_covariance(&chart, &data, ErrorMethod::ObservedInformation, None, None)
+        .unwrap();
+    let intervals = cohortmix::inference::profile_intervals(&run.model, &v).unwrap();
+    assert_eq!(intervals.len(), 1);
+    assert_eq!(intervals[0].len(), d);
+    for j in 0..d {
+        let column: Vec<f64> = (0..n).map(|i| y[i * d + j]).collect();
+        let mean = column.iter().sum::<f64>() / n as f64;
+        let sd = (column.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / n as f64).sqrt();
+        let half = 1.959963984540054 * sd / (n as f64).sqrt();
+        let (lo, hi) = intervals[0][j].expect("an interval");
+        assert!(
+            (lo - (mean - half)).abs() < 1e-6 * half,
+            "column {j}: {lo} against {}",
+            mean - half
+        );
+        assert!(
+            (hi - (mean + half)).abs() < 1e-6 * half,
+            "column {j}: {hi} against {}",
+            mean + half
+        );
+    }
+    // p = 0.3 with SE 0.05: the logit 0.3/0.7 ± 1.96 × 0.05 / 0.21, back through the
+    // inverse logit; a rate 2 with SE 0.4: 2 × exp(∓1.96 × 0.2).
+    let (a, b) = ProfileScale::Probability.interval(0.3, 0.05).unwrap();
+    let logit = (0.3f64 / 0.7).ln();
+    let spread = 1.959963984540054 * 0.05 / 0.21;
+    let expit = |x: f64| 1.0 / (1.0 + (-x).exp());
+    assert!((a - expit(logit - spread)).abs() < 1e-12 && (b - expit(logit + spread)).abs() < 1e-12);
+    assert!(a > 0.0 && b < 1.0 && a < 0.3 && b > 0.3);
+    let (a, b) = ProfileScale::Rate.interval(2.0, 0.4).unwrap();
+    assert!((a - 2.0 * (-1.959963984540054 * 0.2f64).exp()).abs() < 1e-12);
+    assert!((b - 2.0 * (1.959963984540054 * 0.2f64).exp()).abs() < 1e-12);
+    assert_eq!(ProfileScale::Probability.interval(1.0, 0.1), None);
+}

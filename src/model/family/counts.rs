@@ -460,6 +460,10 @@ impl Block for CountComponents {
         out
     }
 
+    fn profile_scale(&self) -> super::ProfileScale {
+        super::ProfileScale::Rate
+    }
+
     fn profile(&self, k: usize, row: Option<usize>, out: &mut Vec<f64>) {
         let reference;
         let z = match row {

@@ -669,6 +669,10 @@ impl Block for ItemComponents {
         out
     }
 
+    fn profile_scale(&self) -> super::ProfileScale {
+        super::ProfileScale::Probability
+    }
+
     fn profile(&self, k: usize, row: Option<usize>, out: &mut Vec<f64>) {
         let reference;
         let z = match row {

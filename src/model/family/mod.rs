@@ -328,6 +328,47 @@ impl<T: Block + Clone + 'static> BlockBase for T {
     }
 }
 
+/// What a block's profile values are: the scale on which their 95% intervals are made
+/// (Wald intervals on the scale where the estimate is closest to normal, mapped back).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ProfileScale {
+    /// Means of continuous indicators: estimate ± 1.96 SE.
+    Mean,
+    /// Probabilities: on the logit scale, so the interval stays inside (0, 1).
+    Probability,
+    /// Rates or mean counts: on the log scale, so the interval stays positive.
+    Rate,
+}
+
+impl ProfileScale {
+    /// The 95% interval of `value` with standard error `se` (None when the value sits on
+    /// the edge of its range or the error is not finite).
+    pub fn interval(self, value: f64, se: f64) -> Option<(f64, f64)> {
+        const Z: f64 = 1.959963984540054;
+        if !(se.is_finite() && value.is_finite()) {
+            return None;
+        }
+        match self {
+            ProfileScale::Mean => Some((value - Z * se, value + Z * se)),
+            ProfileScale::Probability => {
+                if !(value > 0.0 && value < 1.0) {
+                    return None;
+                }
+                let (logit, spread) = ((value / (1.0 - value)).ln(), Z * se / (value * (1.0 - value)));
+                let expit = |x: f64| 1.0 / (1.0 + (-x).exp());
+                Some((expit(logit - spread), expit(logit + spread)))
+            }
+            ProfileScale::Rate => {
+                if !(value > 0.0) {
+                    return None;
+                }
+                let spread = (Z * se / value).exp();
+                Some((value / spread, value * spread))
+            }
+        }
+    }
+}
+
 /// One block of the component model: a family's parameters over its prepared arrays.
 pub trait Block: BlockBase + Debug + Send + Sync {
     /// The family.
@@ -372,6 +413,10 @@ pub trait Block: BlockBase + Debug + Send + Sync {
     /// Cluster k's profile values ([`Prepared::profile_columns`]) at row `row`'s covariates,
     /// or at the reference covariate values (`None`), into `out` (cleared first).
     fn profile(&self, k: usize, row: Option<usize>, out: &mut Vec<f64>);
+    /// What its profile values are, which sets the scale their intervals are made on.
+    fn profile_scale(&self) -> ProfileScale {
+        ProfileScale::Mean
+    }
     /// The numerical guards it applied.
     fn guards(&self) -> Vec<Guard> {
         Vec::new()
