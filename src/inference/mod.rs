@@ -628,7 +628,7 @@ pub struct FitInference {
     pub outcomes: Vec<(String, Result<outcomes::OutcomeEstimate, String>)>,
     /// 95% intervals of each fitted cluster's profile at the reference covariate values
     /// ([`profile_intervals`]); empty without analytic errors (the bootstrap gives none).
-    pub profile_intervals: Vec<Vec<Option<(f64, f64)>>>,
+    pub profile_intervals: ProfileIntervals,
 }
 
 impl FitInference {
@@ -654,11 +654,14 @@ impl FitInference {
     }
 }
 
+/// Per fitted cluster, per profile column, a 95% interval (None where there is none).
+pub type ProfileIntervals = Vec<Vec<Option<(f64, f64)>>>;
+
 /// 95% intervals of every cluster's profile at the reference covariate values
 /// (`[fitted cluster][profile column]`), by the delta method: the profile's Jacobian in the
 /// chart's coordinates (central differences) with `v`, their covariance; each interval is
 /// made on its block's [`ProfileScale`](crate::model::family::ProfileScale).
-pub fn profile_intervals(model: &Model, v: &DMatrix<f64>) -> Result<Vec<Vec<Option<(f64, f64)>>>, String> {
+pub fn profile_intervals(model: &Model, v: &DMatrix<f64>) -> Result<ProfileIntervals, String> {
     let chart = Chart::new(model)?;
     let p = chart.len();
     if v.nrows() != p || v.ncols() != p {
