@@ -492,11 +492,20 @@ pub fn cards(c: &Comparison) -> Vec<ClusterCard> {
     clusters.sort_unstable();
     clusters.dedup();
     let chosen = c.criteria.iter().find(|r| r.placement == c.reference && r.chosen);
-    let mean_of = |k: usize, variable: &str| {
-        cells
-            .iter()
-            .find(|t| t.cluster == k && t.variable == variable && t.level.is_none())
-            .and_then(|t| t.weighted.mean)
+    // Table 1's line of a profile column: a continuous indicator's own line (a count's
+    // profile column adds " (rate)"; Table 1 gives its mean count), an item level's
+    // "item: level" line.
+    let shows = |t: &crate::compare::table_one::TableOneCell, ind: &str| match &t.level {
+        None => t.variable == ind || format!("{} (rate)", t.variable) == ind,
+        Some(level) => format!("{}: {level}", t.variable) == ind,
+    };
+    // The cluster's value on that line (a mean, or the share of an item level) and how the
+    // card words it.
+    let value_of = |k: usize, ind: &str| {
+        cells.iter().find(|t| t.cluster == k && shows(t, ind)).and_then(|t| match &t.level {
+            None => t.weighted.mean.map(|v| (v, t.variable.clone())),
+            Some(_) => t.weighted.share.map(|v| (v, format!("share with {}", table_one_label(t)))),
+        })
     };
     clusters
         .iter()
@@ -511,17 +520,20 @@ pub fn cards(c: &Comparison) -> Vec<ClusterCard> {
                 for ind in &c.indicators {
                     let values: Vec<(usize, f64)> = clusters
                         .iter()
-                        .filter_map(|&j| mean_of(j, ind).map(|v| (j, v)))
+                        .filter_map(|&j| value_of(j, ind).map(|(v, _)| (j, v)))
                         .collect();
-                    let Some(mine) = mean_of(k, ind) else { continue };
+                    let Some((mine, words)) = value_of(k, ind) else { continue };
                     if values.iter().all(|(j, v)| *j == k || *v < mine) {
-                        stands_out.push(format!("highest {ind}"));
+                        stands_out.push(format!("highest {words}"));
                     } else if values.iter().all(|(j, v)| *j == k || *v > mine) {
-                        stands_out.push(format!("lowest {ind}"));
+                        stands_out.push(format!("lowest {words}"));
                     }
                 }
             }
-            let is_indicator = |t: &crate::compare::table_one::TableOneCell| c.indicators.contains(&t.variable);
+            let is_indicator = |t: &crate::compare::table_one::TableOneCell| {
+                c.indicators.iter().any(|ind| shows(t, ind))
+                    || (t.level.is_some() && c.indicators.iter().any(|ind| ind.starts_with(&format!("{}: ", t.variable))))
+            };
             let lines = own
                 .iter()
                 .filter(|t| is_indicator(t))
