@@ -502,10 +502,16 @@ pub fn cards(c: &Comparison) -> Vec<ClusterCard> {
     // The cluster's value on that line (a mean, or the share of an item level) and how the
     // card words it.
     let value_of = |k: usize, ind: &str| {
-        cells.iter().find(|t| t.cluster == k && shows(t, ind)).and_then(|t| match &t.level {
-            None => t.weighted.mean.map(|v| (v, t.variable.clone())),
-            Some(_) => t.weighted.share.map(|v| (v, format!("share with {}", table_one_label(t)))),
-        })
+        cells
+            .iter()
+            .find(|t| t.cluster == k && shows(t, ind))
+            .and_then(|t| match &t.level {
+                None => t.weighted.mean.map(|v| (v, t.variable.clone())),
+                Some(_) => t
+                    .weighted
+                    .share
+                    .map(|v| (v, format!("share with {}", table_one_label(t)))),
+            })
     };
     clusters
         .iter()
@@ -522,7 +528,9 @@ pub fn cards(c: &Comparison) -> Vec<ClusterCard> {
                         .iter()
                         .filter_map(|&j| value_of(j, ind).map(|(v, _)| (j, v)))
                         .collect();
-                    let Some((mine, words)) = value_of(k, ind) else { continue };
+                    let Some((mine, words)) = value_of(k, ind) else {
+                        continue;
+                    };
                     if values.iter().all(|(j, v)| *j == k || *v < mine) {
                         stands_out.push(format!("highest {words}"));
                     } else if values.iter().all(|(j, v)| *j == k || *v > mine) {
@@ -532,7 +540,10 @@ pub fn cards(c: &Comparison) -> Vec<ClusterCard> {
             }
             let is_indicator = |t: &crate::compare::table_one::TableOneCell| {
                 c.indicators.iter().any(|ind| shows(t, ind))
-                    || (t.level.is_some() && c.indicators.iter().any(|ind| ind.starts_with(&format!("{}: ", t.variable))))
+                    || (t.level.is_some()
+                        && c.indicators
+                            .iter()
+                            .any(|ind| ind.starts_with(&format!("{}: ", t.variable))))
             };
             let lines = own
                 .iter()
