@@ -1,4 +1,4 @@
-//! `figures/`: every chart of `report.html` as its own SVG file, for slides and papers.
+//! `figures/`: every chart of `report.html` as its own SVG file, for presentations and papers.
 //!
 //! The files are cut from the finished page, so a figure is the report's chart byte for
 //! byte (its numbers are the report's), with what the page gave it from outside added:
