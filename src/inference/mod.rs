@@ -246,17 +246,23 @@ fn reported_jacobian(
     reported: &(dyn Fn(&Model) -> Vec<Parameter> + Sync),
     r: usize,
 ) -> Result<DMatrix<f64>, String> {
+    chart_jacobian(chart, r, &|m| reported(m).into_iter().map(|p| p.value).collect())
+}
+
+/// Jacobian of the r values `f` makes of a model with respect to the chart's θ, by
+/// central differences of relative step [`JACOBIAN_STEP`].
+fn chart_jacobian(chart: &Chart, r: usize, f: &dyn Fn(&Model) -> Vec<f64>) -> Result<DMatrix<f64>, String> {
     let p = chart.len();
     let mut jac = DMatrix::zeros(r, p);
     for j in 0..p {
         let h = JACOBIAN_STEP * chart.scale(j);
         let mut theta = vec![0.0; p];
         theta[j] = h;
-        let up = reported(&chart.model(&theta).map_err(|e| e.reason)?);
+        let up = f(&chart.model(&theta).map_err(|e| e.reason)?);
         theta[j] = -h;
-        let down = reported(&chart.model(&theta).map_err(|e| e.reason)?);
+        let down = f(&chart.model(&theta).map_err(|e| e.reason)?);
         for (i, (a, b)) in up.iter().zip(&down).enumerate() {
-            jac[(i, j)] = (a.value - b.value) / (2.0 * h);
+            jac[(i, j)] = (a - b) / (2.0 * h);
         }
     }
     Ok(jac)
@@ -694,18 +700,7 @@ pub fn profile_intervals(model: &Model, v: &DMatrix<f64>) -> Result<ProfileInter
             scales.extend(std::iter::repeat_n(b.profile_scale(), one.len()));
         }
     }
-    let mut jac = DMatrix::zeros(values.len(), p);
-    for j in 0..p {
-        let h = JACOBIAN_STEP * chart.scale(j);
-        let mut theta = vec![0.0; p];
-        theta[j] = h;
-        let up = profiles(&chart.model(&theta).map_err(|e| e.reason)?);
-        theta[j] = -h;
-        let down = profiles(&chart.model(&theta).map_err(|e| e.reason)?);
-        for (i, (a, b)) in up.iter().zip(&down).enumerate() {
-            jac[(i, j)] = (a - b) / (2.0 * h);
-        }
-    }
+    let jac = chart_jacobian(&chart, values.len(), &profiles)?;
     let cov = &jac * v * jac.transpose();
     let per_cluster = values.len() / g.max(1);
     Ok((0..g)
