@@ -407,7 +407,10 @@ fn share_changes(reference: &str, profiles: &[Profile]) -> Vec<Finding> {
                 }
             }
         }
-        if let Some((_, r, p)) = best {
+        // A change the one-decimal percentages cannot show ("from 11.8% to 11.8%") says
+        // nothing.
+        let shown = |share: f64| (1000.0 * share).round();
+        if let Some((_, r, p)) = best.filter(|(_, r, p)| shown(r.share) != shown(p.share)) {
             out.push(Finding::ShareChange {
                 reference: reference.to_string(),
                 placement: p.placement.clone(),
@@ -528,4 +531,29 @@ fn agreements(reference: &str, tables: &[CrossTable]) -> Vec<Finding> {
             ari: t.adjusted_rand_index,
         })
         .collect()
+}
+
+#[cfg(test)]
+mod share_change_tests {
+    use super::*;
+
+    fn profile(placement: &str, cluster: usize, share: f64) -> Profile {
+        Profile {
+            cluster,
+            placement: placement.to_string(),
+            share,
+            count: 0,
+            at_reference: Vec::new(),
+            at_reference_interval: Vec::new(),
+            population_averaged: Vec::new(),
+        }
+    }
+
+    #[test]
+    fn a_size_change_is_said_only_when_the_printed_shares_differ() {
+        let same = [profile("a", 1, 0.1181), profile("b", 1, 0.1176)];
+        assert!(share_changes("a", &same).is_empty());
+        let moved = [profile("a", 1, 0.118), profile("b", 1, 0.128)];
+        assert_eq!(share_changes("a", &moved).len(), 1);
+    }
 }
